@@ -1,0 +1,88 @@
+package storage
+
+import (
+	"context"
+	"errors"
+	"fmt"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/qtally/qtally/training"
+)
+
+// Ingest validates a batch against its policy and stores the episodes whose
+// ids the policy has not stored yet, in one transaction: all or nothing.
+func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Episode) (training.IngestResult, error) {
+	var res training.IngestResult
+	ingest := func(tx pgx.Tx) error {
+		// KEY SHARE keeps the actions from changing under the batch without
+		// blocking the worker's revision updates.
+		p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1 FOR KEY SHARE`, policy))
+		if errors.Is(err, pgx.ErrNoRows) {
+			return training.NotFoundf("no policy named %q", policy)
+		}
+		if err != nil {
+			return fmt.Errorf("read policy: %w", err)
+		}
+		records, err := training.EncodeEpisodes(p.Settings, p.ActionIndex(), episodes, db.limits)
+		if err != nil {
+			return err
+		}
+		fresh, err := withoutStored(ctx, tx, p.ID, records)
+		if err != nil {
+			return err
+		}
+		res = training.IngestResult{Accepted: len(fresh), Duplicates: len(records) - len(fresh)}
+		if len(fresh) == 0 {
+			return nil
+		}
+		_, err = tx.CopyFrom(ctx, pgx.Identifier{"episodes"},
+			[]string{"policy_id", "episode_id", "states", "actions", "rewards", "probabilities"},
+			pgx.CopyFromSlice(len(fresh), func(i int) ([]any, error) {
+				r := fresh[i]
+				return []any{p.ID, r.ID, r.States, r.Actions, r.Rewards, r.Probabilities}, nil
+			}))
+		if err != nil {
+			return fmt.Errorf("store episodes: %w", err)
+		}
+		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::text)`, ChannelEpisodes, p.ID)
+		return err
+	}
+	err := db.WithTx(ctx, ingest)
+	if isUniqueViolation(err) {
+		// A concurrent request stored one of these ids first; the retry sees
+		// it and counts it as a duplicate.
+		err = db.WithTx(ctx, ingest)
+	}
+	return res, err
+}
+
+// withoutStored drops the episodes whose ids the policy already has.
+func withoutStored(ctx context.Context, tx pgx.Tx, policyID int32, records []training.EpisodeRecord) ([]training.EpisodeRecord, error) {
+	ids := make([]string, len(records))
+	for i, r := range records {
+		ids[i] = r.ID
+	}
+	rows, err := tx.Query(ctx, `SELECT episode_id FROM episodes WHERE policy_id = $1 AND episode_id = ANY($2)`, policyID, ids)
+	if err != nil {
+		return nil, fmt.Errorf("look up episode ids: %w", err)
+	}
+	stored, err := pgx.CollectRows(rows, pgx.RowTo[string])
+	if err != nil {
+		return nil, fmt.Errorf("look up episode ids: %w", err)
+	}
+	if len(stored) == 0 {
+		return records, nil
+	}
+	known := make(map[string]bool, len(stored))
+	for _, id := range stored {
+		known[id] = true
+	}
+	fresh := make([]training.EpisodeRecord, 0, len(records)-len(stored))
+	for _, r := range records {
+		if !known[r.ID] {
+			fresh = append(fresh, r)
+		}
+	}
+	return fresh, nil
+}

@@ -1,0 +1,168 @@
+package storage
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"slices"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/qtally/qtally/training"
+)
+
+const policyColumns = `policy_id, name, actions, gamma, alpha, epsilon, epsilon_min,
+	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at`
+
+func scanPolicy(row pgx.Row) (training.Policy, error) {
+	var p training.Policy
+	var visit string
+	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
+		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt)
+	p.Visit = training.VisitRule(visit)
+	return p, err
+}
+
+func nullIfZero(x float64) *float64 {
+	if x == 0 {
+		return nil
+	}
+	return &x
+}
+
+// PutPolicy creates a policy or replaces its settings, reporting whether it
+// created it. Changing the actions of a policy that has stored episodes or
+// learned values is a conflict: stored indexes would point at other actions.
+func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (training.Policy, bool, error) {
+	var p training.Policy
+	var created bool
+	put := func(tx pgx.Tx) error {
+		existing, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1 FOR UPDATE`, name))
+		switch {
+		case errors.Is(err, pgx.ErrNoRows):
+			created = true
+			p, err = scanPolicy(tx.QueryRow(ctx, `
+				INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q)
+				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9)
+				RETURNING `+policyColumns,
+				name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ))
+			if err != nil {
+				return fmt.Errorf("insert policy: %w", err)
+			}
+		case err != nil:
+			return fmt.Errorf("read policy: %w", err)
+		default:
+			created = false
+			if !slices.Equal(existing.Actions, s.Actions) {
+				var used bool
+				if err := tx.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM episodes WHERE policy_id = $1)
+					OR EXISTS (SELECT 1 FROM q_values WHERE policy_id = $1)`, existing.ID).Scan(&used); err != nil {
+					return fmt.Errorf("check policy use: %w", err)
+				}
+				if used {
+					return training.Conflictf("policy %q has stored episodes or learned values, so its actions cannot change (stored steps refer to actions by position); create a new policy instead", name)
+				}
+			}
+			p, err = scanPolicy(tx.QueryRow(ctx, `
+				UPDATE policies SET actions = $2, gamma = $3, alpha = $4, epsilon = $5, epsilon_min = $6,
+					epsilon_decay_visits = $7, visit = $8, initial_q = $9, updated_at = now()
+				WHERE policy_id = $1
+				RETURNING `+policyColumns,
+				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ))
+			if err != nil {
+				return fmt.Errorf("update policy: %w", err)
+			}
+		}
+		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::text)`, ChannelPolicy, p.ID)
+		return err
+	}
+	err := db.WithTx(ctx, put)
+	if isUniqueViolation(err) {
+		// Another request created the same name meanwhile: now it is an update.
+		err = db.WithTx(ctx, put)
+	}
+	return p, created, err
+}
+
+// PolicyByName reads one policy.
+func (db *DB) PolicyByName(ctx context.Context, name string) (training.Policy, error) {
+	p, err := scanPolicy(db.pool.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1`, name))
+	if errors.Is(err, pgx.ErrNoRows) {
+		return p, training.NotFoundf("no policy named %q", name)
+	}
+	if err != nil {
+		return p, mapError(fmt.Errorf("read policy %q: %w", name, err))
+	}
+	return p, nil
+}
+
+// PolicyByID reads one policy.
+func (db *DB) PolicyByID(ctx context.Context, id int32) (training.Policy, error) {
+	p, err := scanPolicy(db.pool.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE policy_id = $1`, id))
+	if errors.Is(err, pgx.ErrNoRows) {
+		return p, training.NotFoundf("no policy with id %d", id)
+	}
+	if err != nil {
+		return p, mapError(fmt.Errorf("read policy %d: %w", id, err))
+	}
+	return p, nil
+}
+
+// ListPolicies reads every policy, ordered by name.
+func (db *DB) ListPolicies(ctx context.Context) ([]training.Policy, error) {
+	rows, err := db.pool.Query(ctx, `SELECT `+policyColumns+` FROM policies ORDER BY name`)
+	if err != nil {
+		return nil, mapError(fmt.Errorf("list policies: %w", err))
+	}
+	policies, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.Policy, error) { return scanPolicy(r) })
+	if err != nil {
+		return nil, mapError(fmt.Errorf("list policies: %w", err))
+	}
+	return policies, nil
+}
+
+const statusQuery = `
+	SELECT (SELECT count(*) FROM episodes e WHERE e.policy_id = p.policy_id),
+	       (SELECT count(*) FROM episodes e WHERE e.policy_id = p.policy_id AND e.trained_at IS NULL),
+	       (SELECT min(received_at) FROM episodes e WHERE e.policy_id = p.policy_id AND e.trained_at IS NULL),
+	       (SELECT count(DISTINCT state) FROM q_values q WHERE q.policy_id = p.policy_id),
+	       (SELECT count(*) FROM q_values q WHERE q.policy_id = p.policy_id)
+	FROM policies p WHERE p.policy_id = $1`
+
+// PolicyStatus reads a policy with its episode and table counts.
+func (db *DB) PolicyStatus(ctx context.Context, name string) (training.PolicyStatus, error) {
+	p, err := db.PolicyByName(ctx, name)
+	if err != nil {
+		return training.PolicyStatus{}, err
+	}
+	return db.status(ctx, p)
+}
+
+func (db *DB) status(ctx context.Context, p training.Policy) (training.PolicyStatus, error) {
+	st := training.PolicyStatus{Policy: p}
+	var oldest *time.Time
+	err := db.pool.QueryRow(ctx, statusQuery, p.ID).Scan(&st.Episodes, &st.Backlog, &oldest, &st.States, &st.Pairs)
+	if err != nil {
+		return st, mapError(fmt.Errorf("policy status %q: %w", p.Name, err))
+	}
+	st.OldestUntrained = oldest
+	return st, nil
+}
+
+// ListPolicyStatus reads every policy with its counts.
+func (db *DB) ListPolicyStatus(ctx context.Context) ([]training.PolicyStatus, error) {
+	policies, err := db.ListPolicies(ctx)
+	if err != nil {
+		return nil, err
+	}
+	out := make([]training.PolicyStatus, 0, len(policies))
+	for _, p := range policies {
+		st, err := db.status(ctx, p)
+		if err != nil {
+			return nil, err
+		}
+		out = append(out, st)
+	}
+	return out, nil
+}

@@ -1,0 +1,164 @@
+package storage
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/qtally/qtally/training"
+)
+
+// trainingLockClass namespaces qtally's per-policy advisory locks
+// (the two-key form: class, policy id).
+const trainingLockClass = 0x71746c79
+
+// TrainBatch implements training.BatchTrainer. One policy's batches are
+// serialised by a transaction-level advisory lock, so several workers can
+// share a database and spread over policies; a batch that fails or whose
+// worker dies rolls back whole and is claimed again.
+func (db *DB) TrainBatch(ctx context.Context, maxEpisodes int, learn func(training.BatchInput) training.BatchResult) (training.BatchReport, bool, error) {
+	rows, err := db.pool.Query(ctx, `
+		SELECT policy_id FROM policies p
+		WHERE EXISTS (SELECT 1 FROM episodes e WHERE e.policy_id = p.policy_id AND e.trained_at IS NULL)
+		ORDER BY random()`)
+	if err != nil {
+		return training.BatchReport{}, false, mapError(fmt.Errorf("find backlog: %w", err))
+	}
+	candidates, err := pgx.CollectRows(rows, pgx.RowTo[int32])
+	if err != nil {
+		return training.BatchReport{}, false, mapError(fmt.Errorf("find backlog: %w", err))
+	}
+	for _, id := range candidates {
+		report, trained, err := db.trainPolicy(ctx, id, maxEpisodes, learn)
+		if err != nil || trained {
+			return report, trained, err
+		}
+	}
+	return training.BatchReport{}, false, nil
+}
+
+var errSkip = errors.New("policy busy or drained")
+
+func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, learn func(training.BatchInput) training.BatchResult) (training.BatchReport, bool, error) {
+	start := time.Now()
+	var report training.BatchReport
+	err := db.WithTx(ctx, func(tx pgx.Tx) error {
+		var locked bool
+		if err := tx.QueryRow(ctx, `SELECT pg_try_advisory_xact_lock($1, $2)`, trainingLockClass, policyID).Scan(&locked); err != nil {
+			return fmt.Errorf("training lock: %w", err)
+		}
+		if !locked {
+			return errSkip
+		}
+		p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE policy_id = $1`, policyID))
+		if err != nil {
+			return fmt.Errorf("read policy %d: %w", policyID, err)
+		}
+		episodes, err := untrainedEpisodes(ctx, tx, policyID, maxEpisodes)
+		if err != nil {
+			return err
+		}
+		if len(episodes) == 0 {
+			return errSkip
+		}
+		current, err := estimatesOfStates(ctx, tx, policyID, training.TouchedStates(episodes))
+		if err != nil {
+			return err
+		}
+		result := learn(training.BatchInput{Policy: p, Episodes: episodes, Current: current})
+		revision, err := writeBatch(ctx, tx, policyID, episodes, result)
+		if err != nil {
+			return err
+		}
+		report = training.BatchReport{PolicyID: policyID, PolicyName: p.Name, Revision: revision,
+			Episodes: len(episodes), Result: result}
+		return nil
+	})
+	if errors.Is(err, errSkip) {
+		return report, false, nil
+	}
+	if err != nil {
+		return report, false, err
+	}
+	report.Duration = time.Since(start)
+	return report, true, nil
+}
+
+func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, limit int) ([]training.StoredEpisode, error) {
+	rows, err := tx.Query(ctx, `
+		SELECT seq, received_at, episode_id, states, actions, rewards, probabilities
+		FROM episodes WHERE policy_id = $1 AND trained_at IS NULL
+		ORDER BY seq LIMIT $2`, policyID, limit)
+	if err != nil {
+		return nil, fmt.Errorf("read untrained episodes: %w", err)
+	}
+	var out []training.StoredEpisode
+	var ep training.StoredEpisode
+	_, err = pgx.ForEachRow(rows, []any{&ep.Seq, &ep.ReceivedAt, &ep.ID, &ep.States, &ep.Actions, &ep.Rewards, &ep.Probabilities}, func() error {
+		out = append(out, ep)
+		ep = training.StoredEpisode{}
+		return nil
+	})
+	if err != nil {
+		return nil, fmt.Errorf("read untrained episodes: %w", err)
+	}
+	return out, nil
+}
+
+func estimatesOfStates(ctx context.Context, tx pgx.Tx, policyID int32, states []string) (map[training.PairKey]training.Estimate, error) {
+	rows, err := tx.Query(ctx, `
+		SELECT state, action, q, visits, last_delta FROM q_values
+		WHERE policy_id = $1 AND state = ANY($2)`, policyID, states)
+	if err != nil {
+		return nil, fmt.Errorf("read estimates: %w", err)
+	}
+	current := make(map[training.PairKey]training.Estimate)
+	var k training.PairKey
+	var e training.Estimate
+	_, err = pgx.ForEachRow(rows, []any{&k.State, &k.Action, &e.Q, &e.Visits, &e.LastDelta}, func() error {
+		current[k] = e
+		return nil
+	})
+	if err != nil {
+		return nil, fmt.Errorf("read estimates: %w", err)
+	}
+	return current, nil
+}
+
+// writeBatch writes every updated pair with one upsert, marks the episodes
+// trained and announces the new revision, in one round trip.
+func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []training.StoredEpisode, res training.BatchResult) (int64, error) {
+	n := len(res.Pairs)
+	states, actions := make([]string, n), make([]int16, n)
+	qs, visits, deltas := make([]float64, n), make([]int64, n), make([]float64, n)
+	for i, pr := range res.Pairs {
+		states[i], actions[i], qs[i], visits[i], deltas[i] = pr.State, pr.Action, pr.Q, pr.Visits, pr.LastDelta
+	}
+	seqs := make([]int64, len(episodes))
+	for i, ep := range episodes {
+		seqs[i] = ep.Seq
+	}
+	var revision int64
+	batch := &pgx.Batch{}
+	batch.Queue(`UPDATE policies SET revision = revision + 1 WHERE policy_id = $1 RETURNING revision`, policyID).
+		QueryRow(func(row pgx.Row) error { return row.Scan(&revision) })
+	batch.Queue(`
+		INSERT INTO q_values (policy_id, state, action, q, visits, last_delta, updated_at, revision)
+		SELECT $1, u.state, u.action, u.q, u.visits, u.last_delta, now(),
+		       (SELECT revision FROM policies WHERE policy_id = $1)
+		FROM unnest($2::text[], $3::int2[], $4::float8[], $5::int8[], $6::float8[])
+		     AS u(state, action, q, visits, last_delta)
+		ON CONFLICT (policy_id, state, action) DO UPDATE
+		SET q = excluded.q, visits = excluded.visits, last_delta = excluded.last_delta,
+		    updated_at = excluded.updated_at, revision = excluded.revision`,
+		policyID, states, actions, qs, visits, deltas)
+	batch.Queue(`UPDATE episodes SET trained_at = now() WHERE policy_id = $1 AND seq = ANY($2)`, policyID, seqs)
+	batch.Queue(`SELECT pg_notify($1, $2::text)`, ChannelPolicy, policyID)
+	if err := tx.SendBatch(ctx, batch).Close(); err != nil {
+		return 0, fmt.Errorf("write training batch: %w", err)
+	}
+	return revision, nil
+}

@@ -1,0 +1,83 @@
+package training
+
+import "math/rand/v2"
+
+// Mode says how an action is chosen.
+type Mode string
+
+const (
+	// Explore chooses epsilon-soft: mostly greedy, sometimes any action.
+	Explore Mode = "explore"
+	// Greedy chooses an action of highest estimated value.
+	Greedy Mode = "greedy"
+)
+
+// Choice is an action chosen among the allowed ones, by position in the
+// slice of values the caller gave.
+type Choice struct {
+	Action int
+	// Probability is the chance the rule gave the chosen action.
+	Probability float64
+	// Explored is true when the chosen action is not a greedy one.
+	Explored bool
+	// Greedy is a greedy action (the chosen one when it is greedy).
+	Greedy int
+}
+
+// ActionProbability is the chance the rule gives an action whose value is
+// tied at the top with g-1 others (greedy) or not (greedy=false), among n
+// allowed actions: (1-epsilon)/g + epsilon/n for a greedy action and
+// epsilon/n for any other; in Greedy mode 1/g and 0.
+func ActionProbability(mode Mode, epsilon float64, n, g int, greedy bool) float64 {
+	if mode == Greedy {
+		epsilon = 0
+	}
+	p := epsilon / float64(n)
+	if greedy {
+		p += (1 - epsilon) / float64(g)
+	}
+	return p
+}
+
+// Choose picks an action among the allowed ones given their values q.
+// Ties at the top are split uniformly at random. It does not allocate.
+func Choose(q []float64, mode Mode, epsilon float64) Choice {
+	n := len(q)
+	top := q[0]
+	ties := 0
+	for _, v := range q {
+		switch {
+		case v > top:
+			top, ties = v, 1
+		case v == top:
+			ties++
+		}
+	}
+	greedy := nthTie(q, top, rand.IntN(ties))
+	chosen := greedy
+	if mode == Explore && epsilon > 0 && rand.Float64() < epsilon {
+		chosen = rand.IntN(n)
+	}
+	isGreedy := q[chosen] == top
+	if isGreedy {
+		greedy = chosen
+	}
+	return Choice{
+		Action:      chosen,
+		Probability: ActionProbability(mode, epsilon, n, ties, isGreedy),
+		Explored:    !isGreedy,
+		Greedy:      greedy,
+	}
+}
+
+func nthTie(q []float64, top float64, k int) int {
+	for i, v := range q {
+		if v == top {
+			if k == 0 {
+				return i
+			}
+			k--
+		}
+	}
+	panic("training: tie index out of range")
+}

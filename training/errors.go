@@ -1,0 +1,110 @@
+package training
+
+import (
+	"errors"
+	"fmt"
+	"strings"
+)
+
+// Domain errors; the HTTP layer maps each to one status.
+var (
+	ErrNotFound    = errors.New("not found")
+	ErrConflict    = errors.New("conflict")
+	ErrUnavailable = errors.New("temporarily unavailable")
+)
+
+// kindError is a domain error with a message fit to show a client.
+type kindError struct {
+	kind error
+	msg  string
+}
+
+func (e *kindError) Error() string { return e.msg }
+func (e *kindError) Unwrap() error { return e.kind }
+
+// NotFoundf returns an error that is ErrNotFound with the given message.
+func NotFoundf(format string, args ...any) error {
+	return &kindError{ErrNotFound, fmt.Sprintf(format, args...)}
+}
+
+// Conflictf returns an error that is ErrConflict with the given message.
+func Conflictf(format string, args ...any) error {
+	return &kindError{ErrConflict, fmt.Sprintf(format, args...)}
+}
+
+// Unavailablef returns an error that is ErrUnavailable with the given message.
+func Unavailablef(format string, args ...any) error {
+	return &kindError{ErrUnavailable, fmt.Sprintf(format, args...)}
+}
+
+// FieldError locates one problem in a request: the episode and step it is
+// in (-1 where not applicable) and the JSON field.
+type FieldError struct {
+	Episode int    `json:"episode"`
+	Step    int    `json:"step"`
+	Field   string `json:"field"`
+	Message string `json:"message"`
+}
+
+func (e FieldError) String() string {
+	var where []string
+	if e.Episode >= 0 {
+		where = append(where, fmt.Sprintf("episode %d", e.Episode))
+	}
+	if e.Step >= 0 {
+		where = append(where, fmt.Sprintf("step %d", e.Step))
+	}
+	if e.Field != "" {
+		where = append(where, e.Field)
+	}
+	if len(where) == 0 {
+		return e.Message
+	}
+	return strings.Join(where, ", ") + ": " + e.Message
+}
+
+// ValidationError is a refused request with every problem found in it.
+type ValidationError struct {
+	Problems []FieldError
+}
+
+func (e *ValidationError) Error() string {
+	if len(e.Problems) == 1 {
+		return "invalid input: " + e.Problems[0].String()
+	}
+	return fmt.Sprintf("invalid input: %d problems, first: %s", len(e.Problems), e.Problems[0].String())
+}
+
+// maxReportedProblems bounds the error list so a hostile batch cannot make
+// the answer larger than the request.
+const maxReportedProblems = 100
+
+type problemList struct {
+	problems []FieldError
+	dropped  int
+}
+
+func (l *problemList) add(episode, step int, field, format string, args ...any) {
+	if len(l.problems) >= maxReportedProblems {
+		l.dropped++
+		return
+	}
+	l.problems = append(l.problems, FieldError{Episode: episode, Step: step, Field: field, Message: fmt.Sprintf(format, args...)})
+}
+
+func (l *problemList) err() error {
+	if len(l.problems) == 0 {
+		return nil
+	}
+	if l.dropped > 0 {
+		l.problems = append(l.problems, FieldError{Episode: -1, Step: -1, Message: fmt.Sprintf("%d more problems not listed", l.dropped)})
+	}
+	return &ValidationError{Problems: l.problems}
+}
+
+// Invalid returns a ValidationError with a single problem.
+func Invalid(episode, step int, field, format string, args ...any) error {
+	var l problemList
+	l.add(episode, step, field, format, args...)
+	return l.err()
+}

@@ -1,0 +1,166 @@
+package training
+
+import (
+	"errors"
+	"fmt"
+	"math"
+	"reflect"
+	"regexp"
+	"time"
+	"unicode"
+	"unicode/utf8"
+
+	"github.com/go-playground/validator/v10"
+)
+
+// VisitRule says which occurrences of a pair in an episode update it.
+type VisitRule string
+
+const (
+	// FirstVisit updates a pair once per episode, from its earliest occurrence.
+	FirstVisit VisitRule = "first"
+	// EveryVisit updates a pair at every occurrence.
+	EveryVisit VisitRule = "every"
+)
+
+// Limits on action names and on the number of actions of a policy.
+const (
+	MinActions       = 2
+	MaxActions       = 1024
+	MaxActionNameLen = 128
+	MaxPolicyNameLen = 64
+)
+
+// Settings are the learning parameters a client chooses for a policy.
+type Settings struct {
+	// Actions are the policy's action names; their order is the index order
+	// used in storage, so it cannot change once anything is stored.
+	Actions []string  `json:"actions" validate:"min=2,max=1024,unique,dive,required,max=128,actionname"`
+	Gamma   float64   `json:"gamma" validate:"gte=0,lte=1"`
+	Alpha   float64   `json:"alpha" validate:"gt=0,lte=1"`
+	Epsilon float64   `json:"epsilon" validate:"gte=0,lte=1"`
+	Visit   VisitRule `json:"visit" validate:"oneof=first every"`
+	// InitialQ is the value of pairs never updated; a high value makes the
+	// greedy policy try every action (optimistic start).
+	InitialQ   float64 `json:"initial_q" validate:"finite"`
+	EpsilonMin float64 `json:"epsilon_min" validate:"gte=0,ltefield=Epsilon"`
+	// EpsilonDecayVisits is k in epsilon(s) = max(epsilon_min, epsilon*k/(k+N(s)));
+	// 0 turns the decay off.
+	EpsilonDecayVisits float64 `json:"epsilon_decay_visits,omitempty" validate:"gte=0,finite"`
+}
+
+// DefaultSettings are used for every field a client leaves out.
+func DefaultSettings() Settings {
+	return Settings{Gamma: 1, Alpha: 0.1, Epsilon: 0.1, Visit: FirstVisit}
+}
+
+// Policy is a named learning unit: its settings and where training stands.
+type Policy struct {
+	ID   int32  `json:"-"`
+	Name string `json:"name"`
+	Settings
+	// Revision counts committed training batches (and table rewrites).
+	Revision  int64     `json:"revision"`
+	CreatedAt time.Time `json:"created_at"`
+	UpdatedAt time.Time `json:"updated_at"`
+}
+
+// EpsilonFor is the exploration rate in a state visited n times in all.
+func (s Settings) EpsilonFor(n int64) float64 {
+	if s.EpsilonDecayVisits <= 0 {
+		return s.Epsilon
+	}
+	k := s.EpsilonDecayVisits
+	return math.Max(s.EpsilonMin, s.Epsilon*k/(k+float64(n)))
+}
+
+// ActionIndex maps each action name to its position.
+func (s Settings) ActionIndex() map[string]int16 {
+	index := make(map[string]int16, len(s.Actions))
+	for i, a := range s.Actions {
+		index[a] = int16(i)
+	}
+	return index
+}
+
+var policyName = regexp.MustCompile(`^[A-Za-z0-9][A-Za-z0-9._-]*$`)
+
+// ValidatePolicyName accepts names that are safe in a URL path segment.
+func ValidatePolicyName(name string) error {
+	if len(name) == 0 || len(name) > MaxPolicyNameLen || !policyName.MatchString(name) {
+		return Invalid(-1, -1, "policy", "policy names are 1 to %d characters of letters, digits, '.', '_' and '-', starting with a letter or digit", MaxPolicyNameLen)
+	}
+	return nil
+}
+
+var settingsValidator = newSettingsValidator()
+
+func newSettingsValidator() *validator.Validate {
+	v := validator.New(validator.WithRequiredStructEnabled())
+	v.RegisterTagNameFunc(func(f reflect.StructField) string { return jsonName(f.Tag.Get("json")) })
+	must(v.RegisterValidation("finite", func(fl validator.FieldLevel) bool {
+		x := fl.Field().Float()
+		return !math.IsNaN(x) && !math.IsInf(x, 0)
+	}))
+	must(v.RegisterValidation("actionname", func(fl validator.FieldLevel) bool {
+		return printableName(fl.Field().String())
+	}))
+	return v
+}
+
+func must(err error) {
+	if err != nil {
+		panic(err)
+	}
+}
+
+// printableName holds for valid UTF-8 without control characters.
+func printableName(s string) bool {
+	if !utf8.ValidString(s) {
+		return false
+	}
+	for _, r := range s {
+		if unicode.IsControl(r) {
+			return false
+		}
+	}
+	return true
+}
+
+var ruleMessages = map[string]string{
+	"min":        "needs at least %s items",
+	"max":        "must be at most %s (items or bytes)",
+	"unique":     "must not repeat a name",
+	"required":   "must not be empty",
+	"gte":        "must be at least %s",
+	"gt":         "must be greater than %s",
+	"lte":        "must be at most %s",
+	"oneof":      "must be one of: %s",
+	"finite":     "must be a finite number",
+	"actionname": "must be valid UTF-8 without control characters",
+	"ltefield":   "must not exceed epsilon",
+}
+
+// Validate reports every invalid setting, each with its JSON field name.
+func (s Settings) Validate() error {
+	err := settingsValidator.Struct(s)
+	if err == nil {
+		return nil
+	}
+	var fieldErrs validator.ValidationErrors
+	if !errors.As(err, &fieldErrs) {
+		return fmt.Errorf("validate settings: %w", err)
+	}
+	var l problemList
+	for _, fe := range fieldErrs {
+		msg, ok := ruleMessages[fe.Tag()]
+		if !ok {
+			msg = "is invalid (" + fe.Tag() + ")"
+		}
+		if fe.Param() != "" && containsVerb(msg) {
+			msg = fmt.Sprintf(msg, fe.Param())
+		}
+		l.add(-1, -1, fieldPath(fe.Namespace()), "%s", msg)
+	}
+	return l.err()
+}

@@ -1,0 +1,301 @@
+package training
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"sync"
+	"sync/atomic"
+	"time"
+)
+
+// QRow is one stored pair as the replica reads it.
+type QRow struct {
+	State    string
+	Action   int16
+	Q        float64
+	Visits   int64
+	Revision int64
+}
+
+// ReplicaSource is where the replica reads policies and Q rows from.
+type ReplicaSource interface {
+	PolicyByName(ctx context.Context, name string) (Policy, error)
+	PolicyByID(ctx context.Context, id int32) (Policy, error)
+	ListPolicies(ctx context.Context) ([]Policy, error)
+	// QRowsSince calls fn for every pair of the policy last written by a
+	// revision greater than after.
+	QRowsSince(ctx context.Context, policyID int32, after int64, fn func(QRow)) error
+}
+
+// Replica is a process's in-memory copy of every policy's Q table, kept
+// current by Refresh calls (driven by change notifications and a slow
+// poll), so that choosing never waits on the database.
+type Replica struct {
+	source ReplicaSource
+
+	mu     sync.RWMutex
+	byName map[string]*replicaTable
+	byID   map[int32]*replicaTable
+}
+
+type replicaTable struct {
+	// loadMu serialises loads of this table so rows arrive in order.
+	loadMu sync.Mutex
+
+	mu       sync.RWMutex
+	policy   Policy
+	index    map[string]int16
+	states   map[string]*stateValues
+	revision int64
+	pairs    int
+
+	syncedAt atomic.Int64 // unix nanoseconds of the last successful check
+}
+
+type stateValues struct {
+	q      []float64
+	visits []int64
+	total  int64
+}
+
+// NewReplica returns an empty replica; tables load on first use.
+func NewReplica(source ReplicaSource) *Replica {
+	return &Replica{source: source, byName: map[string]*replicaTable{}, byID: map[int32]*replicaTable{}}
+}
+
+// ChooseRequest asks for an action in a state.
+type ChooseRequest struct {
+	State   string
+	Mode    Mode
+	Allowed []string
+}
+
+// ChooseResult is the chosen action and what it was chosen from.
+type ChooseResult struct {
+	Action       string
+	Probability  float64
+	Explored     bool
+	GreedyAction string
+	KnownState   bool
+	Revision     int64
+	// Staleness is how long ago the copy was last confirmed current.
+	Staleness time.Duration
+}
+
+// maxStackActions bounds the allowed-action count served from a stack
+// buffer; larger sets allocate.
+const maxStackActions = 64
+
+// Choose picks an action for a state from the in-memory copy.
+func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) (ChooseResult, error) {
+	t, err := r.table(ctx, policy)
+	if err != nil {
+		return ChooseResult{}, err
+	}
+	var qBuf [maxStackActions]float64
+	var idxBuf [maxStackActions]int16
+	t.mu.RLock()
+	defer t.mu.RUnlock()
+	allowed := idxBuf[:0]
+	if len(req.Allowed) == 0 {
+		for i := range t.policy.Actions {
+			allowed = append(allowed, int16(i))
+		}
+	} else {
+		for i, name := range req.Allowed {
+			a, ok := t.index[name]
+			if !ok {
+				return ChooseResult{}, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "%q is not one of the policy's actions", truncate(name, 64))
+			}
+			for _, prev := range allowed {
+				if prev == a {
+					return ChooseResult{}, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "repeats %q", truncate(name, 64))
+				}
+			}
+			allowed = append(allowed, a)
+		}
+	}
+	q := qBuf[:0]
+	sv, known := t.states[req.State]
+	var visits int64
+	for _, a := range allowed {
+		if known {
+			q = append(q, sv.q[a])
+		} else {
+			q = append(q, t.policy.InitialQ)
+		}
+	}
+	if known {
+		visits = sv.total
+	}
+	c := Choose(q, req.Mode, t.policy.EpsilonFor(visits))
+	return ChooseResult{
+		Action:       t.policy.Actions[allowed[c.Action]],
+		Probability:  c.Probability,
+		Explored:     c.Explored,
+		GreedyAction: t.policy.Actions[allowed[c.Greedy]],
+		KnownState:   known,
+		Revision:     t.revision,
+		Staleness:    time.Since(time.Unix(0, t.syncedAt.Load())),
+	}, nil
+}
+
+// table returns a policy's table, loading it on first use.
+func (r *Replica) table(ctx context.Context, name string) (*replicaTable, error) {
+	r.mu.RLock()
+	t, ok := r.byName[name]
+	r.mu.RUnlock()
+	if ok {
+		return t, nil
+	}
+	p, err := r.source.PolicyByName(ctx, name)
+	if err != nil {
+		return nil, err
+	}
+	return r.load(ctx, p)
+}
+
+// load adds (or finds) a policy's table and brings it up to date.
+func (r *Replica) load(ctx context.Context, p Policy) (*replicaTable, error) {
+	r.mu.Lock()
+	t, ok := r.byID[p.ID]
+	if !ok {
+		t = &replicaTable{policy: p, index: p.ActionIndex(), states: map[string]*stateValues{}}
+		r.byID[p.ID] = t
+	}
+	r.mu.Unlock()
+	if err := r.sync(ctx, t, p); err != nil {
+		return nil, err
+	}
+	r.mu.Lock()
+	r.byName[p.Name] = t
+	r.mu.Unlock()
+	return t, nil
+}
+
+// sync applies a policy's settings and the rows changed since the table's
+// revision. Rows are read outside the table's lock; choosing goes on.
+func (r *Replica) sync(ctx context.Context, t *replicaTable, p Policy) error {
+	t.loadMu.Lock()
+	defer t.loadMu.Unlock()
+	t.mu.RLock()
+	after := t.revision
+	t.mu.RUnlock()
+	var rows []QRow
+	if err := r.source.QRowsSince(ctx, p.ID, after, func(row QRow) { rows = append(rows, row) }); err != nil {
+		return fmt.Errorf("refresh policy %q: %w", p.Name, err)
+	}
+	t.mu.Lock()
+	t.apply(p, rows)
+	t.mu.Unlock()
+	t.syncedAt.Store(time.Now().UnixNano())
+	return nil
+}
+
+func (t *replicaTable) apply(p Policy, rows []QRow) {
+	if len(p.Actions) != len(t.policy.Actions) {
+		// Actions only change while nothing is stored, so there is nothing to keep.
+		t.states = map[string]*stateValues{}
+		t.pairs = 0
+	}
+	t.policy, t.index = p, p.ActionIndex()
+	n := len(p.Actions)
+	for _, row := range rows {
+		sv, ok := t.states[row.State]
+		if !ok {
+			sv = &stateValues{q: make([]float64, n), visits: make([]int64, n)}
+			for i := range sv.q {
+				sv.q[i] = p.InitialQ
+			}
+			t.states[row.State] = sv
+		}
+		if sv.visits[row.Action] == 0 {
+			t.pairs++
+		}
+		sv.total += row.Visits - sv.visits[row.Action]
+		sv.q[row.Action] = row.Q
+		sv.visits[row.Action] = row.Visits
+		t.revision = max(t.revision, row.Revision)
+	}
+}
+
+// Refresh brings one policy's table up to date, if this process holds it.
+func (r *Replica) Refresh(ctx context.Context, policyID int32) error {
+	r.mu.RLock()
+	t, ok := r.byID[policyID]
+	r.mu.RUnlock()
+	if !ok {
+		return nil
+	}
+	p, err := r.source.PolicyByID(ctx, policyID)
+	if err != nil {
+		return err
+	}
+	return r.renamed(t, p, r.sync(ctx, t, p))
+}
+
+// renamed keeps the name index right after a sync (names never change
+// today, but a stale entry would serve the wrong policy if they did).
+func (r *Replica) renamed(t *replicaTable, p Policy, err error) error {
+	if err != nil {
+		return err
+	}
+	r.mu.Lock()
+	r.byName[p.Name] = t
+	r.mu.Unlock()
+	return nil
+}
+
+// RefreshAll checks every policy this process holds against the database;
+// it is the fallback for missed notifications.
+func (r *Replica) RefreshAll(ctx context.Context) error {
+	policies, err := r.source.ListPolicies(ctx)
+	if err != nil {
+		return err
+	}
+	var errs []error
+	for _, p := range policies {
+		r.mu.RLock()
+		t, ok := r.byID[p.ID]
+		r.mu.RUnlock()
+		if !ok {
+			continue
+		}
+		t.mu.RLock()
+		current := t.revision >= p.Revision && t.policy.UpdatedAt.Equal(p.UpdatedAt)
+		t.mu.RUnlock()
+		if current {
+			t.syncedAt.Store(time.Now().UnixNano())
+			continue
+		}
+		errs = append(errs, r.renamed(t, p, r.sync(ctx, t, p)))
+	}
+	return errors.Join(errs...)
+}
+
+// ReplicaStats describes one policy's in-memory table.
+type ReplicaStats struct {
+	Policy   string
+	Revision int64
+	States   int
+	Pairs    int
+	SyncedAt time.Time
+}
+
+// Stats lists the tables this process holds.
+func (r *Replica) Stats() []ReplicaStats {
+	r.mu.RLock()
+	tables := make([]*replicaTable, 0, len(r.byID))
+	for _, t := range r.byID {
+		tables = append(tables, t)
+	}
+	r.mu.RUnlock()
+	out := make([]ReplicaStats, 0, len(tables))
+	for _, t := range tables {
+		t.mu.RLock()
+		out = append(out, ReplicaStats{Policy: t.policy.Name, Revision: t.revision, States: len(t.states), Pairs: t.pairs, SyncedAt: time.Unix(0, t.syncedAt.Load())})
+		t.mu.RUnlock()
+	}
+	return out
+}

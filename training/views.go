@@ -1,0 +1,61 @@
+package training
+
+import "time"
+
+// PolicyStatus is a policy with where its data and training stand.
+type PolicyStatus struct {
+	Policy
+	Episodes int64 `json:"episodes"`
+	// Backlog counts stored episodes not trained yet.
+	Backlog         int64      `json:"backlog"`
+	OldestUntrained *time.Time `json:"oldest_untrained,omitempty"`
+	States          int64      `json:"states"`
+	Pairs           int64      `json:"pairs"`
+}
+
+// ActionValue is one action's estimate in a state.
+type ActionValue struct {
+	Action    string     `json:"action"`
+	Q         float64    `json:"q"`
+	Visits    int64      `json:"visits"`
+	LastDelta float64    `json:"last_delta"`
+	UpdatedAt *time.Time `json:"updated_at,omitempty"`
+}
+
+// StateView is everything known of one state.
+type StateView struct {
+	State string `json:"state"`
+	// Known is false for a state no episode has trained yet.
+	Known        bool          `json:"known"`
+	Visits       int64         `json:"visits"`
+	Actions      []ActionValue `json:"actions"`
+	GreedyAction string        `json:"greedy_action"`
+}
+
+// NewStateView fills in the actions the table lacks with the initial value
+// and names the greedy action (the first of any tie, so that reading is
+// deterministic; choosing splits ties at random).
+func NewStateView(p Policy, state string, stored map[int16]ActionValue) StateView {
+	v := StateView{State: state, Known: len(stored) > 0, Actions: make([]ActionValue, len(p.Actions))}
+	best := 0
+	for i, name := range p.Actions {
+		av, ok := stored[int16(i)]
+		if !ok {
+			av = ActionValue{Q: p.InitialQ}
+		}
+		av.Action = name
+		v.Actions[i] = av
+		v.Visits += av.Visits
+		if av.Q > v.Actions[best].Q {
+			best = i
+		}
+	}
+	v.GreedyAction = p.Actions[best]
+	return v
+}
+
+// IngestResult says what became of a posted batch.
+type IngestResult struct {
+	Accepted   int `json:"accepted"`
+	Duplicates int `json:"duplicates"`
+}
