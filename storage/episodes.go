@@ -45,7 +45,7 @@ func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Epi
 		if err != nil {
 			return fmt.Errorf("store episodes: %w", err)
 		}
-		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::text)`, ChannelEpisodes, p.ID)
+		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelEpisodes, p.ID)
 		return err
 	}
 	err := db.WithTx(ctx, ingest)

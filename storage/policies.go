@@ -74,7 +74,7 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 				return fmt.Errorf("update policy: %w", err)
 			}
 		}
-		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::text)`, ChannelPolicy, p.ID)
+		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, p.ID)
 		return err
 	}
 	err := db.WithTx(ctx, put)
@@ -163,6 +163,26 @@ func (db *DB) ListPolicyStatus(ctx context.Context) ([]training.PolicyStatus, er
 			return nil, err
 		}
 		out = append(out, st)
+	}
+	return out, nil
+}
+
+// Backlogs reads every policy's untrained episode count and oldest arrival.
+func (db *DB) Backlogs(ctx context.Context) ([]training.Backlog, error) {
+	rows, err := db.pool.Query(ctx, `
+		SELECT p.name, count(e.seq), min(e.received_at)
+		FROM policies p LEFT JOIN episodes e ON e.policy_id = p.policy_id AND e.trained_at IS NULL
+		GROUP BY p.name ORDER BY p.name`)
+	if err != nil {
+		return nil, mapError(fmt.Errorf("read backlog: %w", err))
+	}
+	out, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.Backlog, error) {
+		var b training.Backlog
+		err := r.Scan(&b.Policy, &b.Episodes, &b.OldestReceived)
+		return b, err
+	})
+	if err != nil {
+		return nil, mapError(fmt.Errorf("read backlog: %w", err))
 	}
 	return out, nil
 }

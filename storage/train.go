@@ -156,7 +156,7 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []train
 		    updated_at = excluded.updated_at, revision = excluded.revision`,
 		policyID, states, actions, qs, visits, deltas)
 	batch.Queue(`UPDATE episodes SET trained_at = now() WHERE policy_id = $1 AND seq = ANY($2)`, policyID, seqs)
-	batch.Queue(`SELECT pg_notify($1, $2::text)`, ChannelPolicy, policyID)
+	batch.Queue(`SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, policyID)
 	if err := tx.SendBatch(ctx, batch).Close(); err != nil {
 		return 0, fmt.Errorf("write training batch: %w", err)
 	}

@@ -39,9 +39,25 @@ func ActionProbability(mode Mode, epsilon float64, n, g int, greedy bool) float6
 	return p
 }
 
+// Random is the source of randomness for choosing. *rand.Rand satisfies it;
+// SharedRandom is safe for concurrent use.
+type Random interface {
+	Float64() float64
+	IntN(n int) int
+}
+
+type sharedRandom struct{}
+
+func (sharedRandom) Float64() float64 { return rand.Float64() }
+func (sharedRandom) IntN(n int) int   { return rand.IntN(n) }
+
+// SharedRandom draws from the runtime's per-thread generator: no lock,
+// safe from any goroutine.
+var SharedRandom Random = sharedRandom{}
+
 // Choose picks an action among the allowed ones given their values q.
 // Ties at the top are split uniformly at random. It does not allocate.
-func Choose(q []float64, mode Mode, epsilon float64) Choice {
+func Choose(q []float64, mode Mode, epsilon float64, rng Random) Choice {
 	n := len(q)
 	top := q[0]
 	ties := 0
@@ -53,10 +69,10 @@ func Choose(q []float64, mode Mode, epsilon float64) Choice {
 			ties++
 		}
 	}
-	greedy := nthTie(q, top, rand.IntN(ties))
+	greedy := nthTie(q, top, rng.IntN(ties))
 	chosen := greedy
-	if mode == Explore && epsilon > 0 && rand.Float64() < epsilon {
-		chosen = rand.IntN(n)
+	if mode == Explore && epsilon > 0 && rng.Float64() < epsilon {
+		chosen = rng.IntN(n)
 	}
 	isGreedy := q[chosen] == top
 	if isGreedy {

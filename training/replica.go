@@ -129,7 +129,7 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 	if known {
 		visits = sv.total
 	}
-	c := Choose(q, req.Mode, t.policy.EpsilonFor(visits))
+	c := Choose(q, req.Mode, t.policy.EpsilonFor(visits), SharedRandom)
 	return ChooseResult{
 		Action:       t.policy.Actions[allowed[c.Action]],
 		Probability:  c.Probability,

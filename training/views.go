@@ -59,3 +59,10 @@ type IngestResult struct {
 	Accepted   int `json:"accepted"`
 	Duplicates int `json:"duplicates"`
 }
+
+// Backlog is how much of a policy's stored data awaits training.
+type Backlog struct {
+	Policy         string
+	Episodes       int64
+	OldestReceived *time.Time
+}

@@ -1,0 +1,214 @@
+package api
+
+import (
+	"encoding/json"
+	"errors"
+	"io"
+	"net/http"
+	"net/url"
+	"strconv"
+
+	"github.com/labstack/echo/v4"
+
+	"github.com/qtally/qtally/metrics"
+	"github.com/qtally/qtally/training"
+)
+
+func jsonEncode(w io.Writer, v any) error {
+	return json.NewEncoder(w).Encode(v)
+}
+
+func handleLive() echo.HandlerFunc {
+	return func(c echo.Context) error {
+		return c.JSON(http.StatusOK, map[string]string{"status": "live"})
+	}
+}
+
+func handleReady(r Readiness) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		if err := r.Ready(c.Request().Context()); err != nil {
+			if errors.Is(err, training.ErrUnavailable) {
+				return echo.NewHTTPError(http.StatusServiceUnavailable, "not ready: "+err.Error())
+			}
+			return err
+		}
+		return c.JSON(http.StatusOK, map[string]string{"status": "ready"})
+	}
+}
+
+// policyParam reads and checks the policy name of the path.
+func policyParam(c echo.Context) (string, error) {
+	name := c.Param("policy")
+	if err := training.ValidatePolicyName(name); err != nil {
+		return "", err
+	}
+	return name, nil
+}
+
+func handleListPolicies(p Policies) echo.HandlerFunc {
+	type response struct {
+		Policies []training.PolicyStatus `json:"policies"`
+	}
+	return func(c echo.Context) error {
+		list, err := p.ListPolicyStatus(c.Request().Context())
+		if err != nil {
+			return err
+		}
+		if list == nil {
+			list = []training.PolicyStatus{}
+		}
+		return c.JSON(http.StatusOK, response{Policies: list})
+	}
+}
+
+func handleGetPolicy(p Policies) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		st, err := p.PolicyStatus(c.Request().Context(), name)
+		if err != nil {
+			return err
+		}
+		return c.JSON(http.StatusOK, st)
+	}
+}
+
+func handlePutPolicy(p Policies, cfg Config) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		body, _, err := readBody(c, cfg.MaxBodyBytes, mediaJSON)
+		if err != nil {
+			return err
+		}
+		// Fields the client leaves out keep their defaults.
+		settings := training.DefaultSettings()
+		if err := decodeStrict(body, &settings, -1); err != nil {
+			return err
+		}
+		if err := settings.Validate(); err != nil {
+			return err
+		}
+		policy, created, err := p.PutPolicy(c.Request().Context(), name, settings)
+		if err != nil {
+			return err
+		}
+		status := http.StatusOK
+		if created {
+			status = http.StatusCreated
+		}
+		return c.JSON(status, policy)
+	}
+}
+
+func handlePostEpisodes(e Episodes, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		body, media, err := readBody(c, cfg.MaxBodyBytes, mediaJSON, mediaNDJSON)
+		if err != nil {
+			return err
+		}
+		episodes, err := decodeEpisodes(body, media)
+		if err != nil {
+			return err
+		}
+		res, err := e.Ingest(c.Request().Context(), name, episodes)
+		var verr *training.ValidationError
+		if errors.As(err, &verr) {
+			m.EpisodesRejected.WithLabelValues(name).Add(float64(len(episodes)))
+		}
+		if err != nil {
+			return err
+		}
+		m.EpisodesReceived.WithLabelValues(name).Add(float64(res.Accepted))
+		m.EpisodesDuplicate.WithLabelValues(name).Add(float64(res.Duplicates))
+		return c.JSON(http.StatusAccepted, res)
+	}
+}
+
+type chooseRequest struct {
+	State   string        `json:"state"`
+	Mode    training.Mode `json:"mode"`
+	Allowed []string      `json:"allowed"`
+}
+
+type chooseResponse struct {
+	Action       string  `json:"action"`
+	Probability  float64 `json:"probability"`
+	Explored     bool    `json:"explored"`
+	GreedyAction string  `json:"greedy_action"`
+	KnownState   bool    `json:"known_state"`
+	Revision     int64   `json:"revision"`
+	// CopyAgeSeconds is how long ago this process last confirmed its
+	// in-memory copy was current.
+	CopyAgeSeconds float64 `json:"copy_age_seconds"`
+}
+
+func handleChoose(ch Chooser, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		body, _, err := readBody(c, cfg.MaxBodyBytes, mediaJSON)
+		if err != nil {
+			return err
+		}
+		req := chooseRequest{Mode: training.Greedy}
+		if err := decodeStrict(body, &req, -1); err != nil {
+			return err
+		}
+		if err := validateChoose(req, cfg); err != nil {
+			return err
+		}
+		res, err := ch.Choose(c.Request().Context(), name, training.ChooseRequest{State: req.State, Mode: req.Mode, Allowed: req.Allowed})
+		if err != nil {
+			return err
+		}
+		m.Choices.WithLabelValues(name, string(req.Mode), strconv.FormatBool(res.Explored), strconv.FormatBool(res.KnownState)).Inc()
+		return c.JSON(http.StatusOK, chooseResponse{
+			Action: res.Action, Probability: res.Probability, Explored: res.Explored,
+			GreedyAction: res.GreedyAction, KnownState: res.KnownState, Revision: res.Revision,
+			CopyAgeSeconds: res.Staleness.Seconds(),
+		})
+	}
+}
+
+func validateChoose(req chooseRequest, cfg Config) error {
+	switch {
+	case req.State == "":
+		return training.Invalid(-1, -1, "state", "is missing")
+	case len(req.State) > cfg.MaxStateLength:
+		return training.Invalid(-1, -1, "state", "is %d bytes, longer than the limit of %d", len(req.State), cfg.MaxStateLength)
+	case req.Mode != training.Explore && req.Mode != training.Greedy:
+		return training.Invalid(-1, -1, "mode", "must be %q or %q", training.Explore, training.Greedy)
+	case req.Allowed != nil && len(req.Allowed) == 0:
+		return training.Invalid(-1, -1, "allowed", "must name at least one action when given")
+	}
+	return nil
+}
+
+func handleGetState(s States) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		state, err := url.PathUnescape(c.Param("state"))
+		if err != nil || state == "" {
+			return training.Invalid(-1, -1, "state", "is not a valid path-escaped state name")
+		}
+		view, err := s.State(c.Request().Context(), name, state)
+		if err != nil {
+			return err
+		}
+		return c.JSON(http.StatusOK, view)
+	}
+}

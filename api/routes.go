@@ -1,0 +1,25 @@
+package api
+
+import (
+	"github.com/labstack/echo/v4"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+)
+
+// addHealthRoutes serves what every process serves, API or worker.
+func addHealthRoutes(e *echo.Echo, d Deps) {
+	e.GET("/livez", handleLive())
+	e.GET("/readyz", handleReady(d.Ready))
+	e.GET("/metrics", echo.WrapHandler(promhttp.HandlerFor(d.Gatherer, promhttp.HandlerOpts{})))
+}
+
+// addAPIRoutes serves the policy API.
+func addAPIRoutes(e *echo.Echo, cfg Config, d Deps) {
+	e.GET("/v1/openapi.json", handleOpenAPI())
+
+	e.GET("/v1/policies", handleListPolicies(d.Policies))
+	e.GET("/v1/policies/:policy", handleGetPolicy(d.Policies))
+	e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg))
+	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg))
+	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg))
+	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States))
+}

@@ -1,0 +1,87 @@
+// Package api is qtally's HTTP layer: it binds and validates requests,
+// makes one call into the domain, and answers. It holds no SQL and no
+// learning maths; it declares the narrow interfaces it needs.
+package api
+
+import (
+	"context"
+	"log/slog"
+	"net/http"
+
+	"github.com/labstack/echo/v4"
+	"github.com/prometheus/client_golang/prometheus"
+
+	"github.com/qtally/qtally/metrics"
+	"github.com/qtally/qtally/training"
+)
+
+// Policies creates, updates and reads policies.
+type Policies interface {
+	PutPolicy(ctx context.Context, name string, s training.Settings) (training.Policy, bool, error)
+	PolicyStatus(ctx context.Context, name string) (training.PolicyStatus, error)
+	ListPolicyStatus(ctx context.Context) ([]training.PolicyStatus, error)
+}
+
+// Episodes stores posted episodes.
+type Episodes interface {
+	Ingest(ctx context.Context, policy string, episodes []training.Episode) (training.IngestResult, error)
+}
+
+// States reads one state's estimates.
+type States interface {
+	State(ctx context.Context, policy, state string) (training.StateView, error)
+}
+
+// Chooser picks actions.
+type Chooser interface {
+	Choose(ctx context.Context, policy string, req training.ChooseRequest) (training.ChooseResult, error)
+}
+
+// Readiness tells whether the service can do its work.
+type Readiness interface {
+	Ready(ctx context.Context) error
+}
+
+// Config holds the HTTP layer's limits.
+type Config struct {
+	// MaxBodyBytes bounds a request body; larger bodies get 413.
+	MaxBodyBytes int64
+	// MaxStateLength bounds a state name in choose requests.
+	MaxStateLength int
+}
+
+// Deps are what the server calls.
+type Deps struct {
+	Logger   *slog.Logger
+	Policies Policies
+	Episodes Episodes
+	States   States
+	Chooser  Chooser
+	Ready    Readiness
+	Metrics  *metrics.Metrics
+	Gatherer prometheus.Gatherer
+}
+
+// NewServer returns the HTTP handler of an API process.
+func NewServer(cfg Config, d Deps) http.Handler {
+	e := newEcho(d)
+	addHealthRoutes(e, d)
+	addAPIRoutes(e, cfg, d)
+	return e
+}
+
+// NewHealthServer serves only health and metrics, for worker processes.
+func NewHealthServer(d Deps) http.Handler {
+	e := newEcho(d)
+	addHealthRoutes(e, d)
+	return e
+}
+
+func newEcho(d Deps) *echo.Echo {
+	e := echo.New()
+	e.HideBanner = true
+	e.HidePort = true
+	e.HTTPErrorHandler = errorHandler(d.Logger)
+	e.Use(observe(d.Metrics))
+	return e
+}

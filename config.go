@@ -1,0 +1,136 @@
+package main
+
+import (
+	"fmt"
+	"io"
+	"log/slog"
+	"time"
+
+	"github.com/urfave/cli/v3"
+
+	"github.com/qtally/qtally/api"
+	"github.com/qtally/qtally/training"
+)
+
+// envSource reads a flag's value from the environment given to run, so
+// tests set configuration without touching the process environment.
+type envSource struct {
+	key    string
+	getenv func(string) string
+}
+
+func (e envSource) Lookup() (string, bool) {
+	v := e.getenv(e.key)
+	return v, v != ""
+}
+func (e envSource) String() string   { return fmt.Sprintf("environment variable %q", e.key) }
+func (e envSource) GoString() string { return fmt.Sprintf("envSource{%q}", e.key) }
+func (e envSource) IsFromEnv() bool  { return true }
+func (e envSource) Key() string      { return e.key }
+
+type flagEnv func(key string) cli.ValueSourceChain
+
+func newFlagEnv(getenv func(string) string) flagEnv {
+	return func(key string) cli.ValueSourceChain {
+		return cli.NewValueSourceChain(envSource{key: key, getenv: getenv})
+	}
+}
+
+// Flag names shared by several commands.
+const (
+	flagDatabaseURL    = "database-url"
+	flagListen         = "listen"
+	flagBatchEpisodes  = "batch-episodes"
+	flagPollInterval   = "poll-interval"
+	flagMaxBodyBytes   = "max-body-bytes"
+	flagMaxEpisodes    = "max-episodes-per-request"
+	flagMaxSteps       = "max-steps"
+	flagMaxIDLength    = "max-id-length"
+	flagMaxStateLength = "max-state-length"
+	flagNoWorker       = "no-worker"
+	flagShutdownGrace  = "shutdown-grace"
+	flagDBMaxConns     = "db-max-conns"
+	flagLogFormat      = "log-format"
+)
+
+func databaseFlag(env flagEnv, required bool) cli.Flag {
+	return &cli.StringFlag{Name: flagDatabaseURL, Usage: "PostgreSQL connection URL", Sources: env("DATABASE_URL"), Required: required}
+}
+
+func logFlag(env flagEnv) cli.Flag {
+	return &cli.StringFlag{Name: flagLogFormat, Value: "json", Usage: "log format: json or text", Sources: env("QTALLY_LOG_FORMAT")}
+}
+
+// serviceFlags configure the API and the worker.
+func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
+	lim := training.DefaultLimits()
+	return []cli.Flag{
+		&cli.StringFlag{Name: flagListen, Value: listenDefault, Usage: "HTTP listen address", Sources: env("QTALLY_LISTEN")},
+		&cli.IntFlag{Name: flagBatchEpisodes, Value: 2000, Usage: "most episodes one training transaction takes", Sources: env("QTALLY_BATCH_EPISODES")},
+		&cli.DurationFlag{Name: flagPollInterval, Value: 2 * time.Second, Usage: "fallback poll for work and changes when notifications are missed", Sources: env("QTALLY_POLL_INTERVAL")},
+		&cli.Int64Flag{Name: flagMaxBodyBytes, Value: 16 << 20, Usage: "largest request body accepted (bytes)", Sources: env("QTALLY_MAX_BODY_BYTES")},
+		&cli.IntFlag{Name: flagMaxEpisodes, Value: lim.MaxEpisodes, Usage: "most episodes in one request", Sources: env("QTALLY_MAX_EPISODES_PER_REQUEST")},
+		&cli.IntFlag{Name: flagMaxSteps, Value: lim.MaxSteps, Usage: "most steps in one episode", Sources: env("QTALLY_MAX_STEPS")},
+		&cli.IntFlag{Name: flagMaxIDLength, Value: lim.MaxIDLength, Usage: "longest episode id (bytes)", Sources: env("QTALLY_MAX_ID_LENGTH")},
+		&cli.IntFlag{Name: flagMaxStateLength, Value: lim.MaxStateLength, Usage: "longest state name (bytes)", Sources: env("QTALLY_MAX_STATE_LENGTH")},
+		&cli.DurationFlag{Name: flagShutdownGrace, Value: 15 * time.Second, Usage: "time in-flight work gets to finish on shutdown", Sources: env("QTALLY_SHUTDOWN_GRACE")},
+		&cli.Int32Flag{Name: flagDBMaxConns, Value: 20, Usage: "most PostgreSQL connections of this process", Sources: env("QTALLY_DB_MAX_CONNS")},
+		logFlag(env),
+	}
+}
+
+// serviceConfig is what serve, worker and dev run with.
+type serviceConfig struct {
+	DatabaseURL   string
+	Listen        string
+	BatchEpisodes int
+	PollInterval  time.Duration
+	Limits        training.Limits
+	HTTP          api.Config
+	RunAPI        bool
+	RunWorker     bool
+	ShutdownGrace time.Duration
+	DBMaxConns    int32
+}
+
+func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
+	cfg := serviceConfig{
+		DatabaseURL:   cmd.String(flagDatabaseURL),
+		Listen:        cmd.String(flagListen),
+		BatchEpisodes: cmd.Int(flagBatchEpisodes),
+		PollInterval:  cmd.Duration(flagPollInterval),
+		Limits: training.Limits{
+			MaxEpisodes:    cmd.Int(flagMaxEpisodes),
+			MaxSteps:       cmd.Int(flagMaxSteps),
+			MaxIDLength:    cmd.Int(flagMaxIDLength),
+			MaxStateLength: cmd.Int(flagMaxStateLength),
+		},
+		ShutdownGrace: cmd.Duration(flagShutdownGrace),
+		DBMaxConns:    cmd.Int32(flagDBMaxConns),
+	}
+	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength}
+	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,
+		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength} {
+		if v < 1 {
+			return cfg, fmt.Errorf("--%s must be at least 1, got %d", name, v)
+		}
+	}
+	if cfg.HTTP.MaxBodyBytes < 1024 {
+		return cfg, fmt.Errorf("--%s must be at least 1024", flagMaxBodyBytes)
+	}
+	if cfg.PollInterval <= 0 {
+		return cfg, fmt.Errorf("--%s must be positive", flagPollInterval)
+	}
+	return cfg, nil
+}
+
+func newLogger(cmd *cli.Command, w io.Writer) (*slog.Logger, error) {
+	switch f := cmd.String(flagLogFormat); f {
+	case "json":
+		return slog.New(slog.NewJSONHandler(w, nil)), nil
+	case "text":
+		return slog.New(slog.NewTextHandler(w, nil)), nil
+	default:
+		return nil, fmt.Errorf("--%s must be json or text, got %q", flagLogFormat, f)
+	}
+}

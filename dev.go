@@ -1,0 +1,76 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"net"
+	"strings"
+
+	"github.com/urfave/cli/v3"
+
+	"github.com/qtally/qtally/storage"
+	"github.com/qtally/qtally/storage/localpg"
+)
+
+const flagDataDir = "data-dir"
+
+// devCommand runs everything on one machine for a first look: a private
+// PostgreSQL (unless DATABASE_URL is set), the API and the worker.
+func devCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
+	flags := append(serviceFlags(env, "127.0.0.1:8080"), databaseFlag(env, false),
+		&cli.StringFlag{Name: flagDataDir, Value: ".qtally", Usage: "where the private PostgreSQL keeps its data", Sources: env("QTALLY_DATA_DIR")})
+	return &cli.Command{
+		Name:  "dev",
+		Usage: "run API and worker on a private local PostgreSQL (started from the installed server binaries when DATABASE_URL is unset)",
+		Flags: flags,
+		Action: func(ctx context.Context, cmd *cli.Command) error {
+			cfg, err := readServiceConfig(cmd)
+			if err != nil {
+				return err
+			}
+			cfg.RunAPI, cfg.RunWorker = true, true
+			if cmd.String(flagLogFormat) == "json" && !cmd.IsSet(flagLogFormat) {
+				_ = cmd.Set(flagLogFormat, "text")
+			}
+			logger, err := newLogger(cmd, stderr)
+			if err != nil {
+				return err
+			}
+			if cfg.DatabaseURL == "" {
+				fmt.Fprintf(stdout, "qtally: starting a private PostgreSQL in %s ...\n", cmd.String(flagDataDir))
+				pg, err := localpg.Start(ctx, localpg.Options{Dir: cmd.String(flagDataDir), Durable: true, Port: -1})
+				if errors.Is(err, localpg.ErrNoBinaries) {
+					return fmt.Errorf("%w\nqtally dev needs them to run a private database, or DATABASE_URL pointing at a server you run", err)
+				}
+				if err != nil {
+					return err
+				}
+				defer pg.Stop()
+				cfg.DatabaseURL = pg.URL()
+				fmt.Fprintf(stdout, "qtally: PostgreSQL is up: DATABASE_URL=%s\n", pg.URL())
+			}
+			if _, err := storage.Migrate(ctx, cfg.DatabaseURL); err != nil {
+				return err
+			}
+			printWelcome(stdout, cfg.Listen)
+			return runService(ctx, cfg, logger, stdout)
+		},
+	}
+}
+
+func printWelcome(w io.Writer, listen string) {
+	host, port, err := net.SplitHostPort(listen)
+	if err != nil || host == "" || host == "0.0.0.0" || host == "::" {
+		host = "127.0.0.1"
+	}
+	base := "http://" + net.JoinHostPort(host, port)
+	fmt.Fprintln(w, strings.TrimSpace(fmt.Sprintf(`
+qtally: API at %[1]s  (stop with Ctrl-C)
+Try it:
+  curl -X PUT %[1]s/v1/policies/checkout -H 'Content-Type: application/json' \
+       -d '{"actions":["offer_help","wait"],"alpha":0.1,"epsilon":0.1}'
+  curl -X POST %[1]s/v1/policies/checkout/choose -H 'Content-Type: application/json' \
+       -d '{"state":"cart_abandoned","mode":"explore"}'`, base)))
+}

@@ -1,0 +1,144 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"log/slog"
+	"net"
+	"net/http"
+	"sync"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+
+	"github.com/qtally/qtally/api"
+	"github.com/qtally/qtally/metrics"
+	"github.com/qtally/qtally/storage"
+	"github.com/qtally/qtally/training"
+)
+
+// runService runs the API, the worker, or both, until ctx ends, then shuts
+// down within the grace period: in-flight requests finish and the worker
+// commits or rolls back its batch.
+func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, stdout io.Writer) error {
+	db, err := storage.Open(ctx, cfg.DatabaseURL, cfg.DBMaxConns, cfg.Limits)
+	if err != nil {
+		return err
+	}
+	defer db.Close()
+
+	reg := prometheus.NewRegistry()
+	m := metrics.New(reg)
+	replica := training.NewReplica(db)
+	wake := make(chan struct{}, 1)
+
+	var wg sync.WaitGroup
+	defer wg.Wait()
+	bgCtx, stopBackground := context.WithCancel(context.WithoutCancel(ctx))
+	defer stopBackground()
+	goBackground := func(name string, fn func(context.Context) error) {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			if err := fn(bgCtx); err != nil {
+				logger.Error(name+" stopped", "error", err)
+			}
+		}()
+	}
+
+	handlers := map[string]func(int32){}
+	if cfg.RunAPI {
+		handlers[storage.ChannelPolicy] = func(id int32) {
+			if err := replica.Refresh(bgCtx, id); err != nil {
+				logger.Warn("refreshing in-memory Q", "policy_id", id, "error", err)
+			}
+		}
+		goBackground("replica poll", func(ctx context.Context) error {
+			return every(ctx, cfg.PollInterval, func() {
+				if err := replica.RefreshAll(ctx); err != nil {
+					logger.Warn("polling for Q changes", "error", err)
+				}
+			})
+		})
+	}
+	if cfg.RunWorker {
+		handlers[storage.ChannelEpisodes] = func(int32) { nudge(wake) }
+		reg.MustRegister(metrics.NewTableCollector(db, 5*time.Second, logger))
+	}
+	goBackground("notification listener", func(ctx context.Context) error {
+		return db.Listen(ctx, logger, handlers, func() { nudge(wake) })
+	})
+
+	workerDone := make(chan struct{})
+	if cfg.RunWorker {
+		w := &training.Worker{
+			Store: db, BatchEpisodes: cfg.BatchEpisodes, Wake: wake, PollInterval: cfg.PollInterval,
+			BatchTimeout: cfg.ShutdownGrace, OnBatch: m.ObserveBatch, Logger: logger,
+			OnError: func(error) { m.TrainingErrors.Inc() },
+		}
+		go func() {
+			defer close(workerDone)
+			_ = w.Run(ctx)
+		}()
+	} else {
+		close(workerDone)
+	}
+
+	var handler http.Handler
+	if cfg.RunAPI {
+		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, Episodes: db, States: db,
+			Chooser: replica, Ready: db, Metrics: m, Gatherer: reg})
+	} else {
+		handler = api.NewHealthServer(api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})
+	}
+	listener, err := net.Listen("tcp", cfg.Listen)
+	if err != nil {
+		return fmt.Errorf("listen on %s: %w", cfg.Listen, err)
+	}
+	fmt.Fprintf(stdout, "qtally: listening on http://%s\n", listener.Addr())
+	srv := &http.Server{Handler: handler, ReadHeaderTimeout: 10 * time.Second}
+	serveErr := make(chan error, 1)
+	go func() { serveErr <- srv.Serve(listener) }()
+
+	select {
+	case err := <-serveErr:
+		return fmt.Errorf("http server: %w", err)
+	case <-ctx.Done():
+	}
+	logger.Info("shutting down", "grace", cfg.ShutdownGrace)
+	shutdownCtx, cancel := context.WithTimeout(context.Background(), cfg.ShutdownGrace)
+	defer cancel()
+	if err := srv.Shutdown(shutdownCtx); err != nil && !errors.Is(err, http.ErrServerClosed) {
+		logger.Warn("http shutdown", "error", err)
+	}
+	select {
+	case <-workerDone:
+	case <-shutdownCtx.Done():
+		logger.Warn("worker did not finish within the grace period")
+	}
+	stopBackground()
+	return nil
+}
+
+// nudge wakes the worker without blocking; one pending wake is enough.
+func nudge(wake chan<- struct{}) {
+	select {
+	case wake <- struct{}{}:
+	default:
+	}
+}
+
+func every(ctx context.Context, d time.Duration, fn func()) error {
+	t := time.NewTicker(d)
+	defer t.Stop()
+	for {
+		select {
+		case <-ctx.Done():
+			return nil
+		case <-t.C:
+			fn()
+		}
+	}
+}
