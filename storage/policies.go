@@ -5,7 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"slices"
-	"time"
 
 	"github.com/jackc/pgx/v5"
 
@@ -122,47 +121,49 @@ func (db *DB) ListPolicies(ctx context.Context) ([]training.Policy, error) {
 	return policies, nil
 }
 
+// statusQuery reads a policy and its counts in one statement, so that they
+// come from one snapshot (a revision never disagrees with the backlog).
 const statusQuery = `
-	SELECT (SELECT count(*) FROM episodes e WHERE e.policy_id = p.policy_id),
+	SELECT ` + policyColumns + `,
+	       (SELECT count(*) FROM episodes e WHERE e.policy_id = p.policy_id),
 	       (SELECT count(*) FROM episodes e WHERE e.policy_id = p.policy_id AND e.trained_at IS NULL),
 	       (SELECT min(received_at) FROM episodes e WHERE e.policy_id = p.policy_id AND e.trained_at IS NULL),
 	       (SELECT count(DISTINCT state) FROM q_values q WHERE q.policy_id = p.policy_id),
 	       (SELECT count(*) FROM q_values q WHERE q.policy_id = p.policy_id)
-	FROM policies p WHERE p.policy_id = $1`
+	FROM policies p`
+
+func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
+	var st training.PolicyStatus
+	var visit string
+	p := &st.Policy
+	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
+		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt,
+		&st.Episodes, &st.Backlog, &st.OldestUntrained, &st.States, &st.Pairs)
+	p.Visit = training.VisitRule(visit)
+	return st, err
+}
 
 // PolicyStatus reads a policy with its episode and table counts.
 func (db *DB) PolicyStatus(ctx context.Context, name string) (training.PolicyStatus, error) {
-	p, err := db.PolicyByName(ctx, name)
-	if err != nil {
-		return training.PolicyStatus{}, err
+	st, err := scanStatus(db.pool.QueryRow(ctx, statusQuery+` WHERE p.name = $1`, name))
+	if errors.Is(err, pgx.ErrNoRows) {
+		return st, training.NotFoundf("no policy named %q", name)
 	}
-	return db.status(ctx, p)
-}
-
-func (db *DB) status(ctx context.Context, p training.Policy) (training.PolicyStatus, error) {
-	st := training.PolicyStatus{Policy: p}
-	var oldest *time.Time
-	err := db.pool.QueryRow(ctx, statusQuery, p.ID).Scan(&st.Episodes, &st.Backlog, &oldest, &st.States, &st.Pairs)
 	if err != nil {
-		return st, mapError(fmt.Errorf("policy status %q: %w", p.Name, err))
+		return st, mapError(fmt.Errorf("policy status %q: %w", name, err))
 	}
-	st.OldestUntrained = oldest
 	return st, nil
 }
 
 // ListPolicyStatus reads every policy with its counts.
 func (db *DB) ListPolicyStatus(ctx context.Context) ([]training.PolicyStatus, error) {
-	policies, err := db.ListPolicies(ctx)
+	rows, err := db.pool.Query(ctx, statusQuery+` ORDER BY p.name`)
 	if err != nil {
-		return nil, err
+		return nil, mapError(fmt.Errorf("list policies: %w", err))
 	}
-	out := make([]training.PolicyStatus, 0, len(policies))
-	for _, p := range policies {
-		st, err := db.status(ctx, p)
-		if err != nil {
-			return nil, err
-		}
-		out = append(out, st)
+	out, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.PolicyStatus, error) { return scanStatus(r) })
+	if err != nil {
+		return nil, mapError(fmt.Errorf("list policies: %w", err))
 	}
 	return out, nil
 }
