@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"io"
 	"net"
+	"os"
 	"strings"
 
 	"github.com/urfave/cli/v3"
@@ -20,7 +21,7 @@ const flagDataDir = "data-dir"
 // PostgreSQL (unless DATABASE_URL is set), the API and the worker.
 func devCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 	flags := append(serviceFlags(env, "127.0.0.1:8080"), databaseFlag(env, false),
-		&cli.StringFlag{Name: flagDataDir, Value: ".qtally", Usage: "where the private PostgreSQL keeps its data", Sources: env("QTALLY_DATA_DIR")})
+		&cli.StringFlag{Name: flagDataDir, Value: defaultDataDir(), Usage: "where the private PostgreSQL keeps its data", Sources: env("QTALLY_DATA_DIR")})
 	return &cli.Command{
 		Name:  "dev",
 		Usage: "run API and worker on a private local PostgreSQL (started from the installed server binaries when DATABASE_URL is unset)",
@@ -58,6 +59,16 @@ func devCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 			return runService(ctx, cfg, logger, stdout)
 		},
 	}
+}
+
+// defaultDataDir is ./.qtally, except for root: then the server runs as an
+// unprivileged user who must reach the directory, and a working directory
+// under /root is closed to it.
+func defaultDataDir() string {
+	if os.Geteuid() == 0 {
+		return "/var/lib/qtally/dev"
+	}
+	return ".qtally"
 }
 
 func printWelcome(w io.Writer, listen string) {

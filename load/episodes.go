@@ -1,0 +1,64 @@
+package load
+
+import (
+	"encoding/json"
+	"fmt"
+	"math/rand/v2"
+	"strconv"
+)
+
+type step struct {
+	State       string  `json:"state"`
+	Action      string  `json:"action"`
+	Reward      float64 `json:"reward"`
+	Probability float64 `json:"probability"`
+}
+
+type episode struct {
+	ID    string `json:"id"`
+	Steps []step `json:"steps"`
+}
+
+// generator makes synthetic episodes over a fixed pool of state names.
+type generator struct {
+	rng     *rand.Rand
+	states  []string
+	actions []string
+	steps   int
+	run     string
+	next    int
+}
+
+func newGenerator(cfg Config, run string) *generator {
+	states := make([]string, cfg.States)
+	for i := range states {
+		states[i] = fmt.Sprintf("tier=%d|day=%d|reason=%d", i%7, (i/7)%30, i/210)
+	}
+	return &generator{rng: rand.New(rand.NewPCG(cfg.Seed, uint64(len(run)))), states: states,
+		actions: cfg.Actions, steps: cfg.StepsPerEpisode, run: run}
+}
+
+func (g *generator) state() string { return g.states[g.rng.IntN(len(g.states))] }
+
+func (g *generator) episode() episode {
+	g.next++
+	ep := episode{ID: g.run + "-" + strconv.Itoa(g.next), Steps: make([]step, g.steps)}
+	for i := range ep.Steps {
+		ep.Steps[i] = step{State: g.state(), Action: g.actions[g.rng.IntN(len(g.actions))],
+			Reward: float64(g.rng.IntN(200)-50) / 10, Probability: 0.25}
+	}
+	return ep
+}
+
+// batchBody is one POST body of n fresh episodes.
+func (g *generator) batchBody(n int) []byte {
+	eps := make([]episode, n)
+	for i := range eps {
+		eps[i] = g.episode()
+	}
+	data, err := json.Marshal(map[string]any{"episodes": eps})
+	if err != nil {
+		panic(err) // plain structs always marshal
+	}
+	return data
+}

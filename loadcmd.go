@@ -1,0 +1,118 @@
+package main
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"io"
+	"os"
+	"os/exec"
+	"strings"
+	"time"
+
+	"github.com/urfave/cli/v3"
+
+	"github.com/qtally/qtally/load"
+)
+
+// loadCommand drives a running qtally on this machine with bounded load.
+func loadCommand(env flagEnv, stdout io.Writer) *cli.Command {
+	def := load.DefaultConfig()
+	common := []cli.Flag{
+		&cli.StringFlag{Name: "url", Value: def.BaseURL, Usage: "base URL of the qtally to load (loopback only)", Sources: env("QTALLY_LOAD_URL")},
+		&cli.StringFlag{Name: "policy", Value: def.Policy, Usage: "policy to create and load"},
+		&cli.StringFlag{Name: "token", Usage: "API token", Sources: env("QTALLY_TOKEN")},
+		&cli.IntFlag{Name: "rate", Usage: "requests per second (episodes per second for mixed); 0 finds the maximum"},
+		&cli.IntFlag{Name: "workers", Value: def.Workers, Usage: "concurrent clients (connections)"},
+		&cli.DurationFlag{Name: "duration", Value: def.Duration, Usage: "how long to load (at most 30m)"},
+		&cli.IntFlag{Name: "states", Value: def.States, Usage: "distinct states in the traffic"},
+		&cli.IntFlag{Name: "steps", Value: def.StepsPerEpisode, Usage: "steps per episode"},
+		&cli.IntFlag{Name: "episodes-per-post", Value: def.EpisodesPerPost, Usage: "episodes per POST"},
+		&cli.BoolFlag{Name: "json", Usage: "print figures as JSON"},
+	}
+	config := func(cmd *cli.Command) load.Config {
+		cfg := def
+		cfg.BaseURL, cfg.Policy, cfg.Token = cmd.String("url"), cmd.String("policy"), cmd.String("token")
+		cfg.Rate, cfg.Workers, cfg.Duration = cmd.Int("rate"), cmd.Int("workers"), cmd.Duration("duration")
+		cfg.States, cfg.StepsPerEpisode, cfg.EpisodesPerPost = cmd.Int("states"), cmd.Int("steps"), cmd.Int("episodes-per-post")
+		return cfg
+	}
+	show := func(cmd *cli.Command, v any) error {
+		if cmd.Bool("json") {
+			enc := json.NewEncoder(stdout)
+			enc.SetIndent("", "  ")
+			return enc.Encode(v)
+		}
+		_, err := fmt.Fprintf(stdout, "%+v\n", v)
+		return err
+	}
+	return &cli.Command{
+		Name:  "load",
+		Usage: "drive a running qtally on this machine with bounded load and report figures",
+		Commands: []*cli.Command{
+			{Name: "choose", Usage: "explore-mode choose requests only", Flags: common,
+				Action: func(ctx context.Context, cmd *cli.Command) error {
+					f, err := load.Choose(ctx, config(cmd))
+					if err != nil {
+						return err
+					}
+					return show(cmd, f)
+				}},
+			{Name: "post", Usage: "episode posts only (episodes-per-post episodes of steps steps each)", Flags: common,
+				Action: func(ctx context.Context, cmd *cli.Command) error {
+					f, err := load.Post(ctx, config(cmd))
+					if err != nil {
+						return err
+					}
+					return show(cmd, f)
+				}},
+			{Name: "mixed", Usage: "simulated clients choose during episodes and post them as they end, at --rate episodes/s",
+				Flags: append(common, &cli.IntFlag{Name: "choose-every", Value: 1, Usage: "choose at every n-th step (1: every step)"}),
+				Action: func(ctx context.Context, cmd *cli.Command) error {
+					r, err := load.Mixed(ctx, config(cmd), cmd.Int("choose-every"))
+					if err != nil {
+						return err
+					}
+					return show(cmd, r)
+				}},
+			{Name: "drain", Usage: "store --episodes with training paused (the service runs --no-worker), then start a worker and time the drain",
+				Flags: append(common, &cli.IntFlag{Name: "episodes", Value: 50_000, Usage: "backlog to store"},
+					databaseFlag(env, true)),
+				Action: func(ctx context.Context, cmd *cli.Command) error {
+					databaseURL := cmd.String(flagDatabaseURL)
+					r, err := load.Drain(ctx, config(cmd), cmd.Int("episodes"), func() (func(), error) {
+						return startWorkerProcess(databaseURL)
+					})
+					if err != nil {
+						return err
+					}
+					return show(cmd, r)
+				}},
+		},
+	}
+}
+
+// startWorkerProcess runs this binary's worker against databaseURL.
+func startWorkerProcess(databaseURL string) (func(), error) {
+	self, err := os.Executable()
+	if err != nil {
+		return nil, err
+	}
+	cmd := exec.Command(self, "worker")
+	cmd.Env = append(os.Environ(), "DATABASE_URL="+databaseURL, "QTALLY_LISTEN=127.0.0.1:0")
+	var logs strings.Builder
+	cmd.Stderr = &logs
+	if err := cmd.Start(); err != nil {
+		return nil, fmt.Errorf("start worker: %w", err)
+	}
+	return func() {
+		_ = cmd.Process.Signal(os.Interrupt)
+		done := make(chan struct{})
+		go func() { _ = cmd.Wait(); close(done) }()
+		select {
+		case <-done:
+		case <-time.After(15 * time.Second):
+			_ = cmd.Process.Kill()
+		}
+	}, nil
+}
