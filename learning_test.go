@@ -10,6 +10,8 @@ import (
 	"testing"
 	"time"
 
+	"gonum.org/v1/gonum/stat/distuv"
+
 	"github.com/qtally/qtally/storage/pgtest"
 )
 
@@ -282,5 +284,47 @@ func TestChangingActionsAfterLearningIsRefused(t *testing.T) {
 	s.call("GET", "/v1/policies", nil, 200).decode(t, &list)
 	if len(list.Policies) != 1 || list.Policies[0].Epsilon != 0.3 {
 		t.Fatalf("policies: %+v", list)
+	}
+}
+
+// Sampled frequencies of choose over HTTP must fit the epsilon-soft
+// probabilities of Sutton & Barto, 2nd ed., section 5.4 (greedy:
+// 1 - epsilon + epsilon/|A|; others: epsilon/|A|). The server's generator
+// is not seeded, so the test uses a 1e-6 level (not the customary 1%) to
+// stay deterministic in practice; the seeded 1% test is in training/.
+func TestChooseFrequenciesOverHTTP(t *testing.T) {
+	s := startService(t, pgtest.NewDatabase(t))
+	actions := []string{"retry", "wait", "remind", "stop"}
+	s.call("PUT", "/v1/policies/sampled", map[string]any{"actions": actions, "alpha": 1, "epsilon": 0.4}, 201)
+	s.call("POST", "/v1/policies/sampled/episodes", map[string]any{"episodes": []episodeJSON{
+		{ID: "1", Steps: []stepJSON{{State: "late", Action: "remind", Reward: 5}}}}}, 202)
+	s.waitTrained("sampled", 1)
+	waitFor(t, time.Second, "choose to know the state", func() bool {
+		var c struct {
+			KnownState bool `json:"known_state"`
+		}
+		s.call("POST", "/v1/policies/sampled/choose", map[string]any{"state": "late", "mode": "explore"}, 200).decode(t, &c)
+		return c.KnownState
+	})
+	want := map[string]float64{"retry": 0.1, "wait": 0.1, "remind": 0.7, "stop": 0.1}
+	const draws = 3000
+	counts := map[string]float64{}
+	for range draws {
+		var c struct {
+			Action      string  `json:"action"`
+			Probability float64 `json:"probability"`
+		}
+		s.call("POST", "/v1/policies/sampled/choose", map[string]any{"state": "late", "mode": "explore"}, 200).decode(t, &c)
+		if math.Abs(c.Probability-want[c.Action]) > 1e-12 {
+			t.Fatalf("%s reported with probability %v, want %v", c.Action, c.Probability, want[c.Action])
+		}
+		counts[c.Action]++
+	}
+	chi2 := 0.0
+	for a, p := range want {
+		chi2 += (counts[a] - p*draws) * (counts[a] - p*draws) / (p * draws)
+	}
+	if critical := (distuv.ChiSquared{K: 3}).Quantile(1 - 1e-6); chi2 > critical {
+		t.Fatalf("chi-square %.1f > %.1f: counts %v", chi2, critical, counts)
 	}
 }
