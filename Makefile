@@ -1,4 +1,4 @@
-.PHONY: test build fmt-check
+.PHONY: test build fmt-check dev
 
 # Installs what the tests need when missing, then vets and tests everything.
 test:
@@ -11,3 +11,9 @@ build:
 
 fmt-check:
 	@out=$$(gofmt -l .); if [ -n "$$out" ]; then echo "gofmt needed:"; echo "$$out"; exit 1; fi
+
+# Runs qtally with its demo on a private PostgreSQL, installing PostgreSQL
+# first when it is missing.
+dev:
+	scripts/setup-test-machine.sh postgresql
+	go run . dev --demo

@@ -1,11 +1,16 @@
 #!/usr/bin/env bash
-# Installs the system packages the tests need, skipping what is already there.
+# Installs the system packages the tests need (or those named as arguments),
+# skipping what is already there.
 # As root it uses apt-get; otherwise it says what to install.
 set -euo pipefail
 
 # Debian/Ubuntu packages the tests need. Add new ones here; a package without
 # its own case in installed() counts as present when dpkg says it is.
 packages=(postgresql)
+# Callers that need less (make dev) name their packages.
+if (($#)); then
+	packages=("$@")
+fi
 
 # The same search storage/localpg.FindBinaries does: initdb and postgres on
 # PATH (symlinks resolved), else a Debian-style install.
