@@ -81,7 +81,7 @@ func New(reg prometheus.Registerer) *Metrics {
 		BatchDuration: prometheus.NewHistogramVec(prometheus.HistogramOpts{
 			Name:    "qtally_training_batch_duration_seconds",
 			Help:    "Time to read, learn and commit one training batch.",
-			Buckets: prometheus.ExponentialBuckets(0.001, 2.5, 12),
+			Buckets: []float64{0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30, 60},
 		}, policy),
 		LastBatch: prometheus.NewGaugeVec(prometheus.GaugeOpts{
 			Name: "qtally_training_last_batch_timestamp_seconds", Help: "When this process last committed a training batch.",
