@@ -51,6 +51,7 @@ const (
 	flagShutdownGrace  = "shutdown-grace"
 	flagDBMaxConns     = "db-max-conns"
 	flagLogFormat      = "log-format"
+	flagCoverageVisits = "coverage-visits"
 )
 
 func databaseFlag(env flagEnv, required bool) cli.Flag {
@@ -75,6 +76,7 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 		&cli.IntFlag{Name: flagMaxStateLength, Value: lim.MaxStateLength, Usage: "longest state name (bytes)", Sources: env("QTALLY_MAX_STATE_LENGTH")},
 		&cli.DurationFlag{Name: flagShutdownGrace, Value: 15 * time.Second, Usage: "time in-flight work gets to finish on shutdown", Sources: env("QTALLY_SHUTDOWN_GRACE")},
 		&cli.Int32Flag{Name: flagDBMaxConns, Value: 20, Usage: "most PostgreSQL connections of this process", Sources: env("QTALLY_DB_MAX_CONNS")},
+		&cli.Int64Flag{Name: flagCoverageVisits, Value: 10, Usage: "visits a state-action pair needs to count as covered in the coverage metric", Sources: env("QTALLY_COVERAGE_VISITS")},
 		logFlag(env),
 	}
 }
@@ -91,6 +93,8 @@ type serviceConfig struct {
 	RunWorker     bool
 	ShutdownGrace time.Duration
 	DBMaxConns    int32
+	// CoverageVisits is the visit count from which a pair counts as covered.
+	CoverageVisits int64
 }
 
 func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
@@ -108,12 +112,16 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		ShutdownGrace: cmd.Duration(flagShutdownGrace),
 		DBMaxConns:    cmd.Int32(flagDBMaxConns),
 	}
+	cfg.CoverageVisits = cmd.Int64(flagCoverageVisits)
 	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength}
 	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,
 		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength} {
 		if v < 1 {
 			return cfg, fmt.Errorf("--%s must be at least 1, got %d", name, v)
 		}
+	}
+	if cfg.CoverageVisits < 1 {
+		return cfg, fmt.Errorf("--%s must be at least 1, got %d", flagCoverageVisits, cfg.CoverageVisits)
 	}
 	if cfg.HTTP.MaxBodyBytes < 1024 {
 		return cfg, fmt.Errorf("--%s must be at least 1024", flagMaxBodyBytes)

@@ -50,6 +50,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 
 	handlers := map[string]func(int32){}
 	if cfg.RunAPI {
+		reg.MustRegister(metrics.NewReplicaCollector(replica, cfg.CoverageVisits))
 		handlers[storage.ChannelPolicy] = func(id int32) {
 			if err := replica.Refresh(bgCtx, id); err != nil {
 				logger.Warn("refreshing in-memory Q", "policy_id", id, "error", err)

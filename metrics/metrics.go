@@ -1,6 +1,16 @@
 // Package metrics defines qtally's Prometheus metrics on an explicit
 // registry. Labels stay bounded: a policy name and small fixed sets, never a
 // state or an action.
+//
+// Who exports what, so that no figure is counted twice:
+//   - Event counters and histograms (Metrics) count what this process did;
+//     sum them across processes.
+//   - ReplicaCollector, registered by API processes, describes the
+//     process's own in-memory Q copies; aggregate it with max.
+//   - TableCollector reads table-wide figures (the backlog) from the
+//     database and is registered only by processes that run the worker, so
+//     that scaling out the API does not multiply it; with several workers,
+//     aggregate it with max.
 package metrics
 
 import (
@@ -9,6 +19,11 @@ import (
 
 	"github.com/qtally/qtally/training"
 )
+
+// updateSizeBuckets bound |delta Q| from a millionth to a thousand in steps
+// of about half a decade: constant-step updates shrink as estimates settle,
+// and the drift of a settled table lives in the lowest buckets.
+var updateSizeBuckets = []float64{1e-6, 3e-6, 1e-5, 3e-5, 1e-4, 3e-4, 1e-3, 3e-3, 0.01, 0.03, 0.1, 0.3, 1, 3, 10, 30, 100, 300, 1000}
 
 // Metrics holds every collector the service updates directly.
 type Metrics struct {
@@ -53,7 +68,7 @@ func New(reg prometheus.Registerer) *Metrics {
 		UpdateSize: prometheus.NewHistogramVec(prometheus.HistogramOpts{
 			Name:    "qtally_q_update_size",
 			Help:    "Absolute change |alpha (G - Q)| of each applied update: the estimates' drift.",
-			Buckets: prometheus.ExponentialBuckets(1e-4, 4, 12),
+			Buckets: updateSizeBuckets,
 		}, policy),
 		GreedyChanges: prometheus.NewCounterVec(prometheus.CounterOpts{
 			Name: "qtally_greedy_changes_total", Help: "States whose set of greedy actions changed in a training batch.",
@@ -61,12 +76,12 @@ func New(reg prometheus.Registerer) *Metrics {
 		EpisodeReturn: prometheus.NewHistogramVec(prometheus.HistogramOpts{
 			Name:    "qtally_episode_return",
 			Help:    "Discounted return G0 of each trained episode.",
-			Buckets: []float64{-1000, -300, -100, -30, -10, -3, -1, 0, 1, 3, 10, 30, 100, 300, 1000},
+			Buckets: []float64{-1000, -300, -100, -30, -10, -3, -1, -0.3, -0.1, 0, 0.1, 0.3, 1, 3, 10, 30, 100, 300, 1000},
 		}, policy),
 		BatchDuration: prometheus.NewHistogramVec(prometheus.HistogramOpts{
 			Name:    "qtally_training_batch_duration_seconds",
 			Help:    "Time to read, learn and commit one training batch.",
-			Buckets: prometheus.ExponentialBuckets(0.001, 2.5, 12),
+			Buckets: []float64{0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1, 2.5, 5, 10, 30, 60},
 		}, policy),
 		LastBatch: prometheus.NewGaugeVec(prometheus.GaugeOpts{
 			Name: "qtally_training_last_batch_timestamp_seconds", Help: "When this process last committed a training batch.",

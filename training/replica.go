@@ -49,6 +49,11 @@ type replicaTable struct {
 	states   map[string]*stateValues
 	revision int64
 	pairs    int
+	visits   int64
+	// pairsByVisits counts pairs by their visit count, kept as rows arrive,
+	// so that a scrape reads the visit distribution in time proportional to
+	// the number of distinct counts, not the number of pairs.
+	pairsByVisits map[int64]int64
 
 	syncedAt atomic.Int64 // unix nanoseconds of the last successful check
 }
@@ -161,7 +166,7 @@ func (r *Replica) load(ctx context.Context, p Policy) (*replicaTable, error) {
 	r.mu.Lock()
 	t, ok := r.byID[p.ID]
 	if !ok {
-		t = &replicaTable{policy: p, index: p.ActionIndex(), states: map[string]*stateValues{}}
+		t = &replicaTable{policy: p, index: p.ActionIndex(), states: map[string]*stateValues{}, pairsByVisits: map[int64]int64{}}
 		r.byID[p.ID] = t
 	}
 	r.mu.Unlock()
@@ -197,7 +202,8 @@ func (t *replicaTable) apply(p Policy, rows []QRow) {
 	if len(p.Actions) != len(t.policy.Actions) {
 		// Actions only change while nothing is stored, so there is nothing to keep.
 		t.states = map[string]*stateValues{}
-		t.pairs = 0
+		t.pairs, t.visits = 0, 0
+		clear(t.pairsByVisits)
 	}
 	t.policy, t.index = p, p.ActionIndex()
 	n := len(p.Actions)
@@ -210,10 +216,15 @@ func (t *replicaTable) apply(p Policy, rows []QRow) {
 			}
 			t.states[row.State] = sv
 		}
-		if sv.visits[row.Action] == 0 {
+		old := sv.visits[row.Action]
+		if old == 0 {
 			t.pairs++
+		} else if t.pairsByVisits[old]--; t.pairsByVisits[old] == 0 {
+			delete(t.pairsByVisits, old)
 		}
-		sv.total += row.Visits - sv.visits[row.Action]
+		t.pairsByVisits[row.Visits]++
+		t.visits += row.Visits - old
+		sv.total += row.Visits - old
 		sv.q[row.Action] = row.Q
 		sv.visits[row.Action] = row.Visits
 		t.revision = max(t.revision, row.Revision)
@@ -277,14 +288,22 @@ func (r *Replica) RefreshAll(ctx context.Context) error {
 // ReplicaStats describes one policy's in-memory table.
 type ReplicaStats struct {
 	Policy   string
+	Actions  int
 	Revision int64
 	States   int
+	// Pairs counts the pairs visited at least once; Visits adds up their
+	// visit counts.
 	Pairs    int
+	Visits   int64
 	SyncedAt time.Time
+	// PairsAtLeast[i] counts the pairs with at least atLeast[i] visits, for
+	// the atLeast given to Stats.
+	PairsAtLeast []int64
 }
 
-// Stats lists the tables this process holds.
-func (r *Replica) Stats() []ReplicaStats {
+// Stats lists the tables this process holds, with how many pairs have at
+// least each of the given visit counts.
+func (r *Replica) Stats(atLeast ...int64) []ReplicaStats {
 	r.mu.RLock()
 	tables := make([]*replicaTable, 0, len(r.byID))
 	for _, t := range r.byID {
@@ -294,8 +313,18 @@ func (r *Replica) Stats() []ReplicaStats {
 	out := make([]ReplicaStats, 0, len(tables))
 	for _, t := range tables {
 		t.mu.RLock()
-		out = append(out, ReplicaStats{Policy: t.policy.Name, Revision: t.revision, States: len(t.states), Pairs: t.pairs, SyncedAt: time.Unix(0, t.syncedAt.Load())})
+		st := ReplicaStats{Policy: t.policy.Name, Actions: len(t.policy.Actions), Revision: t.revision,
+			States: len(t.states), Pairs: t.pairs, Visits: t.visits, SyncedAt: time.Unix(0, t.syncedAt.Load()),
+			PairsAtLeast: make([]int64, len(atLeast))}
+		for visits, pairs := range t.pairsByVisits {
+			for i, k := range atLeast {
+				if visits >= k {
+					st.PairsAtLeast[i] += pairs
+				}
+			}
+		}
 		t.mu.RUnlock()
+		out = append(out, st)
 	}
 	return out
 }
