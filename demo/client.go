@@ -1,0 +1,701 @@
+package demo
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"math/rand/v2"
+	"net/http"
+	"net/url"
+	"strconv"
+	"strings"
+	"sync"
+	"time"
+
+	"golang.org/x/sync/errgroup"
+)
+
+// PolicySettings are the learning settings the demo registers for its
+// policy (the body of PUT /v1/policies/{policy} without the actions).
+type PolicySettings struct {
+	Gamma              float64 `json:"gamma"`
+	Alpha              float64 `json:"alpha"`
+	Epsilon            float64 `json:"epsilon"`
+	EpsilonMin         float64 `json:"epsilon_min"`
+	EpsilonDecayVisits float64 `json:"epsilon_decay_visits"`
+	Visit              string  `json:"visit"`
+	InitialQ           float64 `json:"initial_q"`
+}
+
+// RecommendedSettings learn this scenario to at least 90% of the way from
+// the random policy's value to the optimum within about 30,000 episodes.
+// They were tuned by simulating the service's learning rule (first-visit
+// constant-step Monte Carlo, epsilon-soft with per-state decay) on this
+// model over many seeds.
+func RecommendedSettings() PolicySettings {
+	return PolicySettings{
+		// Episodes last at most DayCap days, so discounting barely matters;
+		// the report's exact values use the same gamma.
+		Gamma: 0.99,
+		// Small: returns vary by the whole price of a plan, and the
+		// estimate's noise grows with alpha.
+		Alpha: 0.02,
+		// Fully random in a new state, greedy in a familiar one.
+		Epsilon:            1,
+		EpsilonMin:         0.02,
+		EpsilonDecayVisits: 300,
+		Visit:              "first",
+		InitialQ:           0,
+	}
+}
+
+// Config says where to send simulated customers and how many.
+type Config struct {
+	// BaseURL is the service root, such as http://127.0.0.1:8080; the
+	// client sends requests there and nowhere else.
+	BaseURL string
+	Policy  string
+	// Token, when set, is sent as "Authorization: Bearer <Token>".
+	Token string
+	// Rate is episodes started per second; 0 starts them as fast as the
+	// workers finish them.
+	Rate float64
+	// The run stops starting episodes when Duration has passed or Episodes
+	// have started, whichever comes first; 0 turns either limit off, but not
+	// both.
+	Duration time.Duration
+	Episodes int
+	// BatchSize is episodes per POST.
+	BatchSize int
+	// Concurrency is customers in flight at once.
+	Concurrency int
+	// Seed makes the customers' side of every episode reproducible; the
+	// service's choices are its own.
+	Seed uint64
+	// Window is how many recent episodes the running mean return covers.
+	Window int
+	// ProgressInterval is the time between progress lines.
+	ProgressInterval time.Duration
+	// SettleTimeout bounds the wait, after the last post, for the worker to
+	// train every stored episode before the learned policy is read.
+	SettleTimeout time.Duration
+	Settings      PolicySettings
+}
+
+// DefaultConfig is a one-minute run against a local service.
+func DefaultConfig() Config {
+	return Config{
+		BaseURL:          "http://127.0.0.1:8080",
+		Policy:           "payment-recovery-demo",
+		Rate:             500,
+		Episodes:         30_000,
+		BatchSize:        100,
+		Concurrency:      16,
+		Seed:             1,
+		Window:           1000,
+		ProgressInterval: time.Second,
+		SettleTimeout:    30 * time.Second,
+		Settings:         RecommendedSettings(),
+	}
+}
+
+func (c Config) validate() error {
+	u, err := url.Parse(c.BaseURL)
+	switch {
+	case err != nil:
+		return fmt.Errorf("base URL: %w", err)
+	case u.Scheme != "http" && u.Scheme != "https" || u.Host == "":
+		return fmt.Errorf("base URL %q: want http://host:port or https://host:port", c.BaseURL)
+	case c.Policy == "":
+		return errors.New("policy name is empty")
+	case c.Rate < 0 || math.IsNaN(c.Rate) || math.IsInf(c.Rate, 0):
+		return fmt.Errorf("rate %v: want a finite number of episodes per second, 0 for unpaced", c.Rate)
+	case c.Duration < 0 || c.Episodes < 0:
+		return errors.New("duration and episode budget cannot be negative")
+	case c.Duration == 0 && c.Episodes == 0:
+		return errors.New("set a duration, an episode budget or both")
+	case c.BatchSize < 1 || c.Concurrency < 1 || c.Window < 1:
+		return errors.New("batch size, concurrency and window must be at least 1")
+	case c.ProgressInterval <= 0 || c.SettleTimeout <= 0:
+		return errors.New("progress interval and settle timeout must be positive")
+	}
+	return nil
+}
+
+// Report is what a run achieved. Returns are discounted with the policy's
+// gamma, in the scenario's currency units per failed renewal.
+type Report struct {
+	Episodes   int // episodes this run posted, accepted or duplicate
+	Duplicates int
+	Elapsed    time.Duration
+	// MeanReturn is the mean return of the last Window episodes, as
+	// experienced while exploring.
+	MeanReturn float64
+	Window     int
+	// PriorEpisodes were stored for the policy before this run.
+	PriorEpisodes int64
+	// Untrained counts stored episodes the worker had not trained when Q
+	// was read (0 unless the settle timeout ran out).
+	Untrained int64
+	// Exact expected returns from the start distribution.
+	Optimal float64
+	Learned float64 // greedy policy on the service's Q, ties split evenly
+	Random  float64 // every action equally likely
+	// FirstDay compares the learned and optimal first actions per customer kind.
+	FirstDay []FirstAction
+}
+
+// FirstAction is the day-0 decision for one start state.
+type FirstAction struct {
+	State   State
+	Learned []Action
+	Optimal []Action
+	// Shortfall is how much less the learned choice is worth than the
+	// optimal one when the optimal policy takes over from day 1; near 0
+	// means a near tie, not a mistake.
+	Shortfall float64
+}
+
+// Fraction is how far the learned policy got from random to optimal: 0 is
+// no better than random, 1 is optimal.
+func (r Report) Fraction() float64 {
+	return (r.Learned - r.Random) / (r.Optimal - r.Random)
+}
+
+func (r Report) String() string {
+	var b strings.Builder
+	fmt.Fprintf(&b, "episodes sent:             %d (%d duplicates) in %s\n", r.Episodes, r.Duplicates, r.Elapsed.Round(time.Second))
+	if r.PriorEpisodes > 0 {
+		fmt.Fprintf(&b, "episodes stored before:    %d (the policy kept learning from them)\n", r.PriorEpisodes)
+	}
+	if r.Untrained > 0 {
+		fmt.Fprintf(&b, "not yet trained:           %d episodes when Q was read\n", r.Untrained)
+	}
+	fmt.Fprintf(&b, "mean return, last %-6d   %.3f (while exploring)\n", r.Window, r.MeanReturn)
+	fmt.Fprintf(&b, "optimal expected return:   %.3f\n", r.Optimal)
+	fmt.Fprintf(&b, "learned greedy policy:     %.3f\n", r.Learned)
+	fmt.Fprintf(&b, "random policy:             %.3f\n", r.Random)
+	fmt.Fprintf(&b, "random -> optimal:         %.1f%% of the way\n", 100*r.Fraction())
+	b.WriteString("day-0 action by customer (learned / optimal):\n")
+	for _, f := range r.FirstDay {
+		fmt.Fprintf(&b, "  %-18s %-7s  %s / %s", f.State.Reason, f.State.Plan, joinActions(f.Learned), joinActions(f.Optimal))
+		if f.Shortfall > 0 {
+			fmt.Fprintf(&b, "  (%.3f less)", f.Shortfall)
+		}
+		b.WriteString("\n")
+	}
+	return b.String()
+}
+
+func joinActions(actions []Action) string {
+	names := make([]string, len(actions))
+	for i, a := range actions {
+		names[i] = a.String()
+	}
+	return strings.Join(names, " or ")
+}
+
+// Run registers the demo policy, plays simulated customers against the
+// service until the duration or episode budget is used up, waits for the
+// worker to train what was sent, and reports how good the learned policy
+// is against the exact optimum.
+func Run(ctx context.Context, cfg Config, out io.Writer) (Report, error) {
+	if err := cfg.validate(); err != nil {
+		return Report{}, fmt.Errorf("demo config: %w", err)
+	}
+	c := newClient(cfg)
+	if err := c.putPolicy(ctx); err != nil {
+		return Report{}, err
+	}
+	before, err := c.policyStatus(ctx)
+	if err != nil {
+		return Report{}, err
+	}
+	optimal := Optimal(cfg.Settings.Gamma)
+	report := Report{
+		PriorEpisodes: before.Episodes,
+		Optimal:       optimal.Start(),
+		Random:        RandomValue(cfg.Settings.Gamma),
+	}
+	fmt.Fprintf(out, "demo: policy %q at %s; optimal expected return %.3f, random %.3f\n",
+		cfg.Policy, cfg.BaseURL, report.Optimal, report.Random)
+
+	start := time.Now()
+	traffic, err := c.sendTraffic(ctx, out)
+	if err != nil {
+		return Report{}, err
+	}
+	report.Episodes, report.Duplicates = traffic.sent, traffic.duplicates
+	report.MeanReturn, report.Window = traffic.window.mean(), traffic.window.len()
+	report.Elapsed = time.Since(start)
+
+	fmt.Fprintf(out, "demo: waiting for the worker to train what was sent\n")
+	if report.Untrained, err = c.settle(ctx); err != nil {
+		return Report{}, err
+	}
+	q, err := c.readQ(ctx)
+	if err != nil {
+		return Report{}, err
+	}
+	report.Learned = Evaluate(Greedy(q), cfg.Settings.Gamma).Start()
+	greedy := Greedy(q)
+	for _, st := range Starts() {
+		var shortfall float64
+		for a, p := range greedy(st.State) {
+			shortfall += p * (optimal.V[st.State] - optimal.Q[st.State][a])
+		}
+		report.FirstDay = append(report.FirstDay, FirstAction{
+			State:     st.State,
+			Learned:   Values{Q: q}.BestActions(st.State),
+			Optimal:   optimal.BestActions(st.State),
+			Shortfall: shortfall,
+		})
+	}
+	return report, nil
+}
+
+// client speaks the service's HTTP API.
+type client struct {
+	cfg   Config
+	http  *http.Client
+	base  string
+	runID string
+}
+
+func newClient(cfg Config) *client {
+	transport := http.DefaultTransport.(*http.Transport).Clone()
+	// Only the given address: no proxy from the environment.
+	transport.Proxy = nil
+	// Keep a connection per worker open instead of redialling.
+	transport.MaxIdleConnsPerHost = cfg.Concurrency + 2
+	return &client{
+		cfg:  cfg,
+		http: &http.Client{Transport: transport, Timeout: 30 * time.Second},
+		base: strings.TrimRight(cfg.BaseURL, "/") + "/v1/policies/" + url.PathEscape(cfg.Policy),
+		// Episode ids must not collide with an earlier run's on the same
+		// policy, or the service would drop them as duplicates.
+		runID: strconv.FormatInt(time.Now().UnixNano(), 36),
+	}
+}
+
+// ProblemError is an error answer from the service (problem JSON).
+type ProblemError struct {
+	Status int
+	Title  string
+	Detail string
+}
+
+func (e *ProblemError) Error() string {
+	if e.Detail == "" {
+		return fmt.Sprintf("%d %s", e.Status, e.Title)
+	}
+	return fmt.Sprintf("%d %s: %s", e.Status, e.Title, e.Detail)
+}
+
+// decodeProblem reads an error answer, falling back to the status text
+// and the start of the body when it is not problem JSON.
+func decodeProblem(status int, body []byte) *ProblemError {
+	p := &ProblemError{}
+	if err := json.Unmarshal(body, p); err != nil || p.Title == "" {
+		p.Title = http.StatusText(status)
+		p.Detail = strings.TrimSpace(string(body[:min(len(body), 200)]))
+	}
+	p.Status = status
+	return p
+}
+
+const maxAttempts = 5
+
+// do sends one JSON request and decodes a 2xx answer into result. It
+// retries 429 and 503, which the service sends while it cannot take work,
+// after the Retry-After it asks for; every request the demo makes is safe
+// to repeat (episode ids make posts idempotent).
+func (c *client) do(ctx context.Context, method, path string, body, result any) (int, error) {
+	var payload []byte
+	if body != nil {
+		var err error
+		if payload, err = json.Marshal(body); err != nil {
+			return 0, fmt.Errorf("%s %s: encoding request: %w", method, path, err)
+		}
+	}
+	for attempt := 1; ; attempt++ {
+		req, err := http.NewRequestWithContext(ctx, method, c.base+path, bytes.NewReader(payload))
+		if err != nil {
+			return 0, fmt.Errorf("%s %s: %w", method, path, err)
+		}
+		if body != nil {
+			req.Header.Set("Content-Type", "application/json")
+		}
+		req.Header.Set("Accept", "application/json")
+		if c.cfg.Token != "" {
+			req.Header.Set("Authorization", "Bearer "+c.cfg.Token)
+		}
+		resp, err := c.http.Do(req)
+		if err != nil {
+			return 0, fmt.Errorf("%s %s: %w", method, path, err)
+		}
+		answer, err := io.ReadAll(io.LimitReader(resp.Body, 16<<20))
+		resp.Body.Close()
+		if err != nil {
+			return 0, fmt.Errorf("%s %s: reading answer: %w", method, path, err)
+		}
+		switch {
+		case resp.StatusCode >= 200 && resp.StatusCode < 300:
+			if result != nil {
+				if err := json.Unmarshal(answer, result); err != nil {
+					return 0, fmt.Errorf("%s %s: decoding answer: %w", method, path, err)
+				}
+			}
+			return resp.StatusCode, nil
+		case (resp.StatusCode == http.StatusTooManyRequests || resp.StatusCode == http.StatusServiceUnavailable) && attempt < maxAttempts:
+			if err := sleep(ctx, retryAfter(resp.Header.Get("Retry-After"))); err != nil {
+				return 0, fmt.Errorf("%s %s: %w", method, path, err)
+			}
+		default:
+			return 0, fmt.Errorf("%s %s: %w", method, path, decodeProblem(resp.StatusCode, answer))
+		}
+	}
+}
+
+// retryAfter reads a Retry-After in seconds, one second when absent.
+func retryAfter(header string) time.Duration {
+	if s, err := strconv.Atoi(header); err == nil && s >= 0 {
+		return time.Duration(s) * time.Second
+	}
+	return time.Second
+}
+
+func sleep(ctx context.Context, d time.Duration) error {
+	t := time.NewTimer(d)
+	defer t.Stop()
+	select {
+	case <-t.C:
+		return nil
+	case <-ctx.Done():
+		return ctx.Err()
+	}
+}
+
+func (c *client) putPolicy(ctx context.Context) error {
+	body := struct {
+		Actions []string `json:"actions"`
+		PolicySettings
+	}{ActionNames(), c.cfg.Settings}
+	if _, err := c.do(ctx, http.MethodPut, "", body, nil); err != nil {
+		var problem *ProblemError
+		if errors.As(err, &problem) && problem.Status == http.StatusConflict {
+			return fmt.Errorf("policy %q already learned with other actions; choose another policy name: %w", c.cfg.Policy, err)
+		}
+		return err
+	}
+	return nil
+}
+
+type policyStatus struct {
+	Episodes int64 `json:"episodes"`
+	Backlog  int64 `json:"backlog"`
+}
+
+func (c *client) policyStatus(ctx context.Context) (policyStatus, error) {
+	var st policyStatus
+	_, err := c.do(ctx, http.MethodGet, "", nil, &st)
+	return st, err
+}
+
+type step struct {
+	State       string  `json:"state"`
+	Action      string  `json:"action"`
+	Reward      float64 `json:"reward"`
+	Probability float64 `json:"probability"`
+}
+
+type episode struct {
+	ID    string `json:"id"`
+	Steps []step `json:"steps"`
+}
+
+type chooseAnswer struct {
+	Action      string  `json:"action"`
+	Probability float64 `json:"probability"`
+}
+
+// playEpisode runs one customer: the service chooses each day's action,
+// exploring, and the model answers with what the customer did.
+func (c *client) playEpisode(ctx context.Context, n int, actions map[string]Action) (episode, float64, error) {
+	rng := rand.New(rand.NewPCG(c.cfg.Seed, uint64(n)))
+	ep := episode{ID: fmt.Sprintf("demo-%s-%d", c.runID, n)}
+	var ret, discount float64 = 0, 1
+	s := SampleStart(rng)
+	for {
+		var choice chooseAnswer
+		req := map[string]string{"state": s.String(), "mode": "explore"}
+		if _, err := c.do(ctx, http.MethodPost, "/choose", req, &choice); err != nil {
+			return episode{}, 0, err
+		}
+		a, ok := actions[choice.Action]
+		if !ok {
+			return episode{}, 0, fmt.Errorf("choose answered unknown action %q", choice.Action)
+		}
+		o := Step(s, a, rng)
+		ep.Steps = append(ep.Steps, step{State: s.String(), Action: choice.Action, Reward: o.Reward, Probability: choice.Probability})
+		ret += discount * o.Reward
+		discount *= c.cfg.Settings.Gamma
+		if o.Done {
+			return ep, ret, nil
+		}
+		s = o.Next
+	}
+}
+
+// window is a running mean over the most recent returns.
+type window struct {
+	returns []float64
+	next    int
+	full    bool
+}
+
+func newWindow(size int) *window { return &window{returns: make([]float64, size)} }
+
+func (w *window) add(g float64) {
+	w.returns[w.next] = g
+	w.next = (w.next + 1) % len(w.returns)
+	w.full = w.full || w.next == 0
+}
+
+func (w *window) len() int {
+	if w.full {
+		return len(w.returns)
+	}
+	return w.next
+}
+
+func (w *window) mean() float64 {
+	n := w.len()
+	if n == 0 {
+		return math.NaN()
+	}
+	var total float64
+	for _, g := range w.returns[:n] {
+		total += g
+	}
+	return total / float64(n)
+}
+
+type finished struct {
+	episode episode
+	ret     float64
+}
+
+type trafficResult struct {
+	sent, duplicates int
+	window           *window
+}
+
+// sendTraffic starts episodes at the configured rate, plays them on
+// Concurrency workers and posts them in batches, printing progress.
+func (c *client) sendTraffic(ctx context.Context, out io.Writer) (trafficResult, error) {
+	g, ctx := errgroup.WithContext(ctx)
+	jobs := make(chan int)
+	done := make(chan finished, c.cfg.BatchSize)
+	result := trafficResult{window: newWindow(c.cfg.Window)}
+
+	g.Go(func() error {
+		defer close(jobs)
+		return c.dispatch(ctx, jobs)
+	})
+
+	actions := make(map[string]Action, numActions)
+	for _, a := range Actions() {
+		actions[a.String()] = a
+	}
+	var workers sync.WaitGroup
+	for range c.cfg.Concurrency {
+		workers.Add(1)
+		g.Go(func() error {
+			defer workers.Done()
+			for n := range jobs {
+				ep, ret, err := c.playEpisode(ctx, n, actions)
+				if err != nil {
+					return err
+				}
+				select {
+				case done <- finished{ep, ret}:
+				case <-ctx.Done():
+					return ctx.Err()
+				}
+			}
+			return nil
+		})
+	}
+	go func() {
+		workers.Wait()
+		close(done)
+	}()
+
+	g.Go(func() error {
+		start := time.Now()
+		printed := -1
+		progress := func() {
+			if result.sent != printed {
+				c.progress(out, start, result)
+				printed = result.sent
+			}
+		}
+		ticker := time.NewTicker(c.cfg.ProgressInterval)
+		defer ticker.Stop()
+		var batch []episode
+		post := func() error {
+			if len(batch) == 0 {
+				return nil
+			}
+			var answer struct {
+				Accepted   int `json:"accepted"`
+				Duplicates int `json:"duplicates"`
+			}
+			req := map[string][]episode{"episodes": batch}
+			if _, err := c.do(ctx, http.MethodPost, "/episodes", req, &answer); err != nil {
+				return err
+			}
+			result.sent += len(batch)
+			result.duplicates += answer.Duplicates
+			batch = batch[:0]
+			return nil
+		}
+		for {
+			select {
+			case f, ok := <-done:
+				if !ok {
+					if err := post(); err != nil {
+						return err
+					}
+					progress()
+					return nil
+				}
+				batch = append(batch, f.episode)
+				result.window.add(f.ret)
+				if len(batch) >= c.cfg.BatchSize {
+					if err := post(); err != nil {
+						return err
+					}
+				}
+			case <-ticker.C:
+				progress()
+			case <-ctx.Done():
+				return ctx.Err()
+			}
+		}
+	})
+
+	if err := g.Wait(); err != nil {
+		return trafficResult{}, err
+	}
+	return result, nil
+}
+
+func (c *client) progress(out io.Writer, start time.Time, r trafficResult) {
+	fmt.Fprintf(out, "%6.1fs  episodes sent %7d  mean return of last %d: %.3f\n",
+		time.Since(start).Seconds(), r.sent, r.window.len(), r.window.mean())
+}
+
+// dispatch hands out episode numbers, the nth due n/Rate seconds after the
+// start, until the duration or the budget is used up.
+func (c *client) dispatch(ctx context.Context, jobs chan<- int) error {
+	start := time.Now()
+	for n := 0; c.cfg.Episodes == 0 || n < c.cfg.Episodes; n++ {
+		if c.cfg.Rate > 0 {
+			due := start.Add(time.Duration(float64(n) / c.cfg.Rate * float64(time.Second)))
+			if err := sleep(ctx, time.Until(due)); err != nil {
+				return err
+			}
+		}
+		if c.cfg.Duration > 0 && time.Since(start) >= c.cfg.Duration {
+			return nil
+		}
+		select {
+		case jobs <- n:
+		case <-ctx.Done():
+			return ctx.Err()
+		}
+	}
+	return nil
+}
+
+// settle waits until the worker has trained every stored episode of the
+// policy, or SettleTimeout passes; it returns how many were left.
+func (c *client) settle(ctx context.Context) (int64, error) {
+	deadline := time.Now().Add(c.cfg.SettleTimeout)
+	for {
+		st, err := c.policyStatus(ctx)
+		if err != nil {
+			return 0, err
+		}
+		if st.Backlog == 0 || time.Now().After(deadline) {
+			return st.Backlog, nil
+		}
+		if err := sleep(ctx, 200*time.Millisecond); err != nil {
+			return 0, err
+		}
+	}
+}
+
+type actionValue struct {
+	Action string  `json:"action"`
+	Q      float64 `json:"q"`
+}
+
+type stateAnswer struct {
+	Actions []actionValue `json:"actions"`
+}
+
+// readQ fetches the service's Q for every state of the model.
+func (c *client) readQ(ctx context.Context) (map[State][]float64, error) {
+	states := States()
+	rows := make([][]float64, len(states))
+	g, ctx := errgroup.WithContext(ctx)
+	g.SetLimit(c.cfg.Concurrency)
+	for i, s := range states {
+		g.Go(func() error {
+			var answer stateAnswer
+			if _, err := c.do(ctx, http.MethodGet, "/states/"+url.PathEscape(s.String()), nil, &answer); err != nil {
+				return err
+			}
+			row, err := qRow(answer)
+			if err != nil {
+				return fmt.Errorf("state %s: %w", s, err)
+			}
+			rows[i] = row
+			return nil
+		})
+	}
+	if err := g.Wait(); err != nil {
+		return nil, err
+	}
+	q := make(map[State][]float64, len(states))
+	for i, s := range states {
+		q[s] = rows[i]
+	}
+	return q, nil
+}
+
+// qRow puts a state's action values in Actions order.
+func qRow(answer stateAnswer) ([]float64, error) {
+	row := make([]float64, numActions)
+	seen := make([]bool, numActions)
+	for _, av := range answer.Actions {
+		for _, a := range Actions() {
+			if a.String() == av.Action {
+				row[a], seen[a] = av.Q, true
+			}
+		}
+	}
+	for _, a := range Actions() {
+		if !seen[a] {
+			return nil, fmt.Errorf("no value for action %s", a)
+		}
+	}
+	return row, nil
+}

@@ -1,0 +1,113 @@
+package demo
+
+import (
+	"math"
+	"net/http"
+	"strings"
+	"testing"
+	"time"
+)
+
+func TestDefaultConfigIsValid(t *testing.T) {
+	if err := DefaultConfig().validate(); err != nil {
+		t.Fatal(err)
+	}
+}
+
+func TestConfigValidationRefusesNonsense(t *testing.T) {
+	for name, change := range map[string]func(*Config){
+		"no scheme":       func(c *Config) { c.BaseURL = "127.0.0.1:8080" },
+		"other scheme":    func(c *Config) { c.BaseURL = "ftp://127.0.0.1" },
+		"no policy":       func(c *Config) { c.Policy = "" },
+		"negative rate":   func(c *Config) { c.Rate = -1 },
+		"infinite rate":   func(c *Config) { c.Rate = math.Inf(1) },
+		"no limit at all": func(c *Config) { c.Episodes, c.Duration = 0, 0 },
+		"zero batch":      func(c *Config) { c.BatchSize = 0 },
+		"zero workers":    func(c *Config) { c.Concurrency = 0 },
+		"zero window":     func(c *Config) { c.Window = 0 },
+		"zero settle":     func(c *Config) { c.SettleTimeout = 0 },
+	} {
+		cfg := DefaultConfig()
+		change(&cfg)
+		if err := cfg.validate(); err == nil {
+			t.Errorf("%s: accepted", name)
+		}
+	}
+	cfg := DefaultConfig()
+	cfg.Episodes, cfg.Duration = 0, time.Minute
+	if err := cfg.validate(); err != nil {
+		t.Errorf("duration without a budget: %v", err)
+	}
+}
+
+func TestReportFractionAndText(t *testing.T) {
+	r := Report{Episodes: 30_000, Window: 1000, MeanReturn: 6.5, Optimal: 8, Learned: 7.5, Random: 0.5,
+		FirstDay: []FirstAction{{State: State{Reason: ExpiredCard}, Learned: []Action{EmailReminder}, Optimal: []Action{TextReminder}, Shortfall: 0.031}}}
+	if got := r.Fraction(); math.Abs(got-7.0/7.5) > 1e-15 {
+		t.Errorf("fraction %v, want %v", got, 7.0/7.5)
+	}
+	text := r.String()
+	for _, want := range []string{"30000", "93.3% of the way", "expired_card", "email_reminder / text_reminder  (0.031 less)"} {
+		if !strings.Contains(text, want) {
+			t.Errorf("report lacks %q:\n%s", want, text)
+		}
+	}
+}
+
+func TestWindowKeepsTheMostRecentReturns(t *testing.T) {
+	w := newWindow(3)
+	if !math.IsNaN(w.mean()) {
+		t.Errorf("empty window mean %v, want NaN", w.mean())
+	}
+	w.add(1)
+	w.add(2)
+	if w.len() != 2 || w.mean() != 1.5 {
+		t.Errorf("after 1, 2: len %d mean %v", w.len(), w.mean())
+	}
+	w.add(3)
+	w.add(10)
+	if w.len() != 3 || w.mean() != 5 {
+		t.Errorf("after 1, 2, 3, 10: len %d mean %v, want 3 and 5", w.len(), w.mean())
+	}
+}
+
+func TestDecodeProblem(t *testing.T) {
+	p := decodeProblem(http.StatusConflict, []byte(`{"type":"urn:qtally:problem:conflict","title":"Conflict","status":409,"detail":"actions cannot change"}`))
+	if p.Status != 409 || p.Title != "Conflict" || p.Detail != "actions cannot change" {
+		t.Errorf("decoded %+v", p)
+	}
+	p = decodeProblem(http.StatusBadGateway, []byte("upstream down"))
+	if p.Status != 502 || p.Title != "Bad Gateway" || p.Detail != "upstream down" {
+		t.Errorf("decoded plain text as %+v", p)
+	}
+}
+
+func TestQRowFollowsActionOrder(t *testing.T) {
+	var answer stateAnswer
+	names := ActionNames()
+	// The service may list actions in any order; the row must not care.
+	for i := len(names) - 1; i >= 0; i-- {
+		answer.Actions = append(answer.Actions, actionValue{names[i], float64(i)})
+	}
+	row, err := qRow(answer)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for a, q := range row {
+		if q != float64(a) {
+			t.Errorf("action %s has %v, want %v", Action(a), q, float64(a))
+		}
+	}
+	answer.Actions = answer.Actions[1:]
+	if _, err := qRow(answer); err == nil {
+		t.Error("a missing action was accepted")
+	}
+}
+
+func TestRetryAfter(t *testing.T) {
+	for header, want := range map[string]time.Duration{"": time.Second, "3": 3 * time.Second, "soon": time.Second} {
+		if got := retryAfter(header); got != want {
+			t.Errorf("Retry-After %q: %v, want %v", header, got, want)
+		}
+	}
+}

@@ -1,0 +1,215 @@
+package demo
+
+import (
+	"math"
+	"math/rand/v2"
+	"slices"
+	"testing"
+
+	"gonum.org/v1/gonum/stat"
+)
+
+var gammas = []float64{0.9, 0.99, 1}
+
+// bellmanBackup is sum over outcomes of p * (r + gamma * v(next)),
+// written out again here rather than borrowed from the solver.
+func bellmanBackup(s State, a Action, gamma float64, v map[State]float64) float64 {
+	var total float64
+	for _, o := range Transitions(s, a) {
+		next := 0.0
+		if !o.Done {
+			nv, ok := v[o.Next]
+			if !ok {
+				panic("successor without a value: " + o.Next.String())
+			}
+			next = nv
+		}
+		total += o.Prob * (o.Reward + gamma*next)
+	}
+	return total
+}
+
+// Bellman optimality equation for v*: v*(s) = max_a sum_{s',r} p(s',r|s,a)
+// [r + gamma v*(s')]. Sutton & Barto, Reinforcement Learning: An
+// Introduction, 2nd ed., eq. 3.19.
+func TestOptimalSatisfiesBellmanOptimality(t *testing.T) {
+	for _, gamma := range gammas {
+		opt := Optimal(gamma)
+		if len(opt.V) != len(States()) {
+			t.Fatalf("gamma %v: %d values for %d states", gamma, len(opt.V), len(States()))
+		}
+		for _, s := range States() {
+			best := math.Inf(-1)
+			for _, a := range Actions() {
+				q := bellmanBackup(s, a, gamma, opt.V)
+				best = math.Max(best, q)
+				if math.Abs(opt.Q[s][a]-q) > 1e-12 {
+					t.Errorf("gamma %v, %s, %s: q* %.15g, backup %.15g", gamma, s, a, opt.Q[s][a], q)
+				}
+			}
+			if math.Abs(opt.V[s]-best) > 1e-12 {
+				t.Errorf("gamma %v, %s: v* %.15g, max backup %.15g", gamma, s, opt.V[s], best)
+			}
+		}
+	}
+}
+
+// leanPolicy is a stochastic policy unlike the ones the solver produces:
+// it leans on one action that depends on the state and spreads the rest.
+func leanPolicy(s State) []float64 {
+	p := make([]float64, numActions)
+	for a := range p {
+		p[a] = 0.4 / float64(numActions-1)
+	}
+	p[(s.Day+int(s.Reason)+s.Messages)%int(numActions)] = 0.6
+	return p
+}
+
+// Bellman equation for v_pi: v_pi(s) = sum_a pi(a|s) sum_{s',r}
+// p(s',r|s,a) [r + gamma v_pi(s')]. Sutton & Barto, Reinforcement
+// Learning: An Introduction, 2nd ed., eq. 3.14 (as an update, eq. 4.4).
+func TestEvaluateSatisfiesBellmanEquation(t *testing.T) {
+	for _, gamma := range gammas {
+		for name, policy := range map[string]Policy{"uniform": Uniform, "lean": leanPolicy} {
+			v := Evaluate(policy, gamma)
+			for _, s := range States() {
+				var want float64
+				for a, p := range policy(s) {
+					want += p * bellmanBackup(s, Action(a), gamma, v.V)
+				}
+				if math.Abs(v.V[s]-want) > 1e-12 {
+					t.Errorf("%s, gamma %v, %s: v %.15g, backup %.15g", name, gamma, s, v.V[s], want)
+				}
+			}
+		}
+	}
+}
+
+// sampleReturns plays n episodes with the policy and returns each
+// discounted return.
+func sampleReturns(policy Policy, gamma float64, n int, rng *rand.Rand) []float64 {
+	returns := make([]float64, n)
+	for i := range returns {
+		s := SampleStart(rng)
+		discount := 1.0
+		for {
+			o := Step(s, drawAction(policy(s), rng), rng)
+			returns[i] += discount * o.Reward
+			discount *= gamma
+			if o.Done {
+				break
+			}
+			s = o.Next
+		}
+	}
+	return returns
+}
+
+func drawAction(p []float64, rng *rand.Rand) Action {
+	u := rng.Float64()
+	for a, pa := range p {
+		if u < pa {
+			return Action(a)
+		}
+		u -= pa
+	}
+	return Action(len(p) - 1)
+}
+
+// The exact value of a policy must agree with the mean of sampled returns.
+// The sample mean is within 4 standard errors of the true mean except with
+// probability about 6e-5 (normal approximation by the central limit
+// theorem; 4 standard errors is a common-practice bound).
+func TestEvaluateMatchesSampledReturns(t *testing.T) {
+	const gamma, n = 0.99, 200_000
+	opt := Optimal(gamma)
+	policies := map[string]Policy{
+		"uniform": Uniform,
+		"lean":    leanPolicy,
+		"optimal": Greedy(opt.Q),
+	}
+	rng := rand.New(rand.NewPCG(3, 4))
+	for name, policy := range policies {
+		exact := Evaluate(policy, gamma).Start()
+		mean, sd := stat.MeanStdDev(sampleReturns(policy, gamma, n, rng), nil)
+		stderr := sd / math.Sqrt(n)
+		if math.Abs(mean-exact) > 4*stderr {
+			t.Errorf("%s: exact %.4f, sampled %.4f ± %.4f (standard error)", name, exact, mean, stderr)
+		}
+	}
+}
+
+func TestOptimalBeatsRandomClearly(t *testing.T) {
+	const gamma = 0.99
+	optimal, random := Optimal(gamma).Start(), RandomValue(gamma)
+	// Prices are 10 and 20: the gap must be several currency units for the
+	// demo to show anything.
+	if optimal-random < 5 {
+		t.Errorf("optimal %.3f, random %.3f: gap below 5", optimal, random)
+	}
+	uniformValue := Evaluate(Uniform, gamma).Start()
+	if uniformValue != random {
+		t.Errorf("RandomValue %.15g differs from evaluating Uniform %.15g", random, uniformValue)
+	}
+}
+
+// The optimum follows the decline reason the way the scenario intends:
+// wait for payday after insufficient funds, get an expired card replaced
+// before retrying, retry a generic decline at once, and retry as soon as
+// the customer has entered new details.
+func TestOptimalFirstActionsFollowTheReason(t *testing.T) {
+	opt := Optimal(0.99)
+	for p := range numPlans {
+		funds := opt.BestActions(State{Reason: InsufficientFunds, Plan: p})
+		if slices.Contains(funds, RetryCard) {
+			t.Errorf("%s, insufficient funds, day 0: optimal %v includes retry_card", p, funds)
+		}
+		expired := opt.BestActions(State{Reason: ExpiredCard, Plan: p})
+		for _, a := range expired {
+			if a != EmailReminder && a != TextReminder {
+				t.Errorf("%s, expired card, day 0: optimal %v, want a reminder", p, expired)
+			}
+		}
+		generic := opt.BestActions(State{Reason: GenericDecline, Plan: p})
+		if !slices.Equal(generic, []Action{RetryCard}) {
+			t.Errorf("%s, generic decline, day 0: optimal %v, want retry_card", p, generic)
+		}
+		for r := range numReasons {
+			updated := State{Day: 1, Messages: 1, Reason: r, Plan: p, CardUpdated: true}
+			if got := opt.BestActions(updated); !slices.Equal(got, []Action{RetryCard}) {
+				t.Errorf("%s: optimal %v, want retry_card", updated, got)
+			}
+		}
+	}
+	// Retrying an insufficient-funds decline pays off more as payday nears.
+	funds := func(day int) float64 {
+		s := State{Day: day, Reason: InsufficientFunds}
+		return opt.Q[s][RetryCard] - opt.Q[s][Wait]
+	}
+	if !(funds(0) < 0 && funds(3) > 0) {
+		t.Errorf("retry minus wait, insufficient funds: day 0 %.3f (want < 0), day 3 %.3f (want > 0)", funds(0), funds(3))
+	}
+}
+
+func TestGreedyOfOptimalQIsOptimal(t *testing.T) {
+	for _, gamma := range gammas {
+		opt := Optimal(gamma)
+		if got := Evaluate(Greedy(opt.Q), gamma).Start(); math.Abs(got-opt.Start()) > 1e-9 {
+			t.Errorf("gamma %v: greedy on q* is worth %.12g, optimum %.12g", gamma, got, opt.Start())
+		}
+	}
+}
+
+func TestGreedySplitsTiesEvenly(t *testing.T) {
+	s := State{Day: 2, Reason: ExpiredCard}
+	q := map[State][]float64{s: {1, 3, 0, 3, -1, 3}}
+	got := Greedy(q)(s)
+	want := []float64{0, 1.0 / 3, 0, 1.0 / 3, 0, 1.0 / 3}
+	if !slices.Equal(got, want) {
+		t.Errorf("greedy probabilities %v, want %v", got, want)
+	}
+	// A state the table lacks has every action tied.
+	if got := Greedy(q)(State{Day: 1}); !slices.Equal(got, Uniform(State{})) {
+		t.Errorf("unknown state: %v, want uniform", got)
+	}
+}
