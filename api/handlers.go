@@ -36,9 +36,27 @@ func handleReady(r Readiness) echo.HandlerFunc {
 	}
 }
 
+// pathParam returns a path parameter unescaped. Echo matches on the raw
+// path when the URL has one (so that an encoded slash stays inside its
+// segment), and its parameters are then still escaped.
+func pathParam(c echo.Context, name string) (string, error) {
+	v := c.Param(name)
+	if c.Request().URL.RawPath == "" {
+		return v, nil
+	}
+	u, err := url.PathUnescape(v)
+	if err != nil {
+		return "", training.Invalid(-1, -1, name, "is not validly path-escaped")
+	}
+	return u, nil
+}
+
 // policyParam reads and checks the policy name of the path.
 func policyParam(c echo.Context) (string, error) {
-	name := c.Param("policy")
+	name, err := pathParam(c, "policy")
+	if err != nil {
+		return "", err
+	}
 	if err := training.ValidatePolicyName(name); err != nil {
 		return "", err
 	}
@@ -201,9 +219,9 @@ func handleGetState(s States) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
-		state, err := url.PathUnescape(c.Param("state"))
-		if err != nil || state == "" {
-			return training.Invalid(-1, -1, "state", "is not a valid path-escaped state name")
+		state, err := pathParam(c, "state")
+		if err != nil {
+			return err
 		}
 		view, err := s.State(c.Request().Context(), name, state)
 		if err != nil {
