@@ -71,6 +71,7 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 			},
 			devCommand(env, stdout, stderr),
 			loadCommand(env, stdout),
+			demoCommand(env, stdout),
 		},
 	}
 }

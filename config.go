@@ -1,6 +1,7 @@
 package main
 
 import (
+	"context"
 	"fmt"
 	"io"
 	"log/slog"
@@ -90,6 +91,9 @@ type serviceConfig struct {
 	Limits        training.Limits
 	HTTP          api.Config
 	RunAPI        bool
+	// OnListening, when set, runs in its own goroutine once the API
+	// accepts connections, with the context of the service.
+	OnListening   func(ctx context.Context, baseURL string)
 	RunWorker     bool
 	ShutdownGrace time.Duration
 	DBMaxConns    int32

@@ -21,7 +21,9 @@ const flagDataDir = "data-dir"
 // PostgreSQL (unless DATABASE_URL is set), the API and the worker.
 func devCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 	flags := append(serviceFlags(env, "127.0.0.1:8080"), databaseFlag(env, false),
+		&cli.BoolFlag{Name: "demo", Usage: "also run the demo's simulated customers against this service"},
 		&cli.StringFlag{Name: flagDataDir, Value: defaultDataDir(), Usage: "where the private PostgreSQL keeps its data", Sources: env("QTALLY_DATA_DIR")})
+	flags = append(flags, demoFlags(env)...)
 	return &cli.Command{
 		Name:  "dev",
 		Usage: "run API and worker on a private local PostgreSQL (started from the installed server binaries when DATABASE_URL is unset)",
@@ -56,6 +58,13 @@ func devCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 				return err
 			}
 			printWelcome(stdout, cfg.Listen)
+			if cmd.Bool("demo") {
+				cfg.OnListening = func(ctx context.Context, baseURL string) {
+					if err := runDemo(ctx, demoConfig(cmd, baseURL), stdout); err != nil && ctx.Err() == nil {
+						logger.Error("demo stopped", "error", err)
+					}
+				}
+			}
 			return runService(ctx, cfg, logger, stdout)
 		},
 	}

@@ -99,6 +99,12 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		return fmt.Errorf("listen on %s: %w", cfg.Listen, err)
 	}
 	fmt.Fprintf(stdout, "qtally: listening on http://%s\n", listener.Addr())
+	if cfg.OnListening != nil {
+		goBackground("on listening", func(context.Context) error {
+			cfg.OnListening(ctx, "http://"+listener.Addr().String())
+			return nil
+		})
+	}
 	srv := &http.Server{Handler: handler, ReadHeaderTimeout: 10 * time.Second}
 	serveErr := make(chan error, 1)
 	go func() { serveErr <- srv.Serve(listener) }()
