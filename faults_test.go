@@ -2,6 +2,7 @@ package main
 
 import (
 	"context"
+	"fmt"
 	"math/rand/v2"
 	"net/http"
 	"sync"
@@ -143,6 +144,16 @@ func TestSeveralProcessesShareOneDatabase(t *testing.T) {
 
 	for _, ps := range policies {
 		verifyLearnedOnce(t, s, databaseURL, ps, l.episodes(ps.name))
+	}
+	// Both processes' in-memory copies catch up with the final tables.
+	for _, ps := range policies {
+		final := s.status(ps.name).Revision
+		for i, a := range apis {
+			waitFor(t, 5*time.Second, fmt.Sprintf("API %d to choose from revision %d of %s", i, final, ps.name), func() bool {
+				c, err := choose(http.DefaultClient, a.URL, ps.name, "day 0/bucket")
+				return err == nil && c.Revision == final
+			})
+		}
 	}
 	requests, _, _, accepted := l.counts()
 	trained := 0.0

@@ -48,12 +48,19 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		}()
 	}
 
-	handlers := map[string]func(int32){}
+	subs := map[string]storage.Subscription{}
 	if cfg.RunAPI {
-		handlers[storage.ChannelPolicy] = func(id int32) {
-			if err := replica.Refresh(bgCtx, id); err != nil {
-				logger.Warn("refreshing in-memory Q", "policy_id", id, "error", err)
-			}
+		subs[storage.ChannelPolicy] = storage.Subscription{
+			Notify: func(id int32) {
+				if err := replica.Refresh(bgCtx, id); err != nil {
+					logger.Warn("refreshing in-memory Q", "policy_id", id, "error", err)
+				}
+			},
+			CatchUp: func() {
+				if err := replica.RefreshAll(bgCtx); err != nil {
+					logger.Warn("catching up on Q changes", "error", err)
+				}
+			},
 		}
 		goBackground("replica poll", func(ctx context.Context) error {
 			return every(ctx, cfg.PollInterval, func() {
@@ -64,11 +71,11 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		})
 	}
 	if cfg.RunWorker {
-		handlers[storage.ChannelEpisodes] = func(int32) { nudge(wake) }
+		subs[storage.ChannelEpisodes] = storage.Subscription{Notify: func(int32) { nudge(wake) }, CatchUp: func() { nudge(wake) }}
 		reg.MustRegister(metrics.NewTableCollector(db, 5*time.Second, logger))
 	}
 	goBackground("notification listener", func(ctx context.Context) error {
-		return db.Listen(ctx, logger, handlers, func() { nudge(wake) })
+		return db.Listen(ctx, logger, subs)
 	})
 
 	workerDone := make(chan struct{})
