@@ -256,8 +256,8 @@ func choose(client *http.Client, baseURL, policy, state string) (choice, error) 
 
 // storedOrder reads a policy's stored episode ids in the order the
 // database assigned them (seq), which is the order training must follow,
-// and how many are untrained. Test-only SQL: the API has no such listing.
-func storedOrder(t testing.TB, databaseURL, policy string) (ids []string, untrained int) {
+// and the ids not trained yet. Test-only SQL: the API has no such listing.
+func storedOrder(t testing.TB, databaseURL, policy string) (ids, untrained []string) {
 	t.Helper()
 	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
 	defer cancel()
@@ -278,7 +278,7 @@ func storedOrder(t testing.TB, databaseURL, policy string) (ids []string, untrai
 	_, err = pgx.ForEachRow(rows, []any{&id, &pending}, func() error {
 		ids = append(ids, id)
 		if pending {
-			untrained++
+			untrained = append(untrained, id)
 		}
 		return nil
 	})
@@ -286,6 +286,17 @@ func storedOrder(t testing.TB, databaseURL, policy string) (ids []string, untrai
 		t.Fatalf("read stored episodes: %v", err)
 	}
 	return ids, untrained
+}
+
+// lockWaits counts the sessions of the database waiting for a lock.
+func lockWaits(t testing.TB, conn *pgx.Conn) int {
+	t.Helper()
+	var n int
+	if err := conn.QueryRow(context.Background(), `SELECT count(*) FROM pg_stat_activity
+		WHERE datname = current_database() AND wait_event_type = 'Lock'`).Scan(&n); err != nil {
+		t.Fatalf("count lock waits: %v", err)
+	}
+	return n
 }
 
 // verifyLearnedOnce waits until the policy has no backlog and checks that
@@ -300,8 +311,8 @@ func verifyLearnedOnce(t *testing.T, s *service, databaseURL string, ps policySp
 		return st.Backlog == 0 && st.Episodes >= int64(len(accepted))
 	})
 	ids, untrained := storedOrder(t, databaseURL, ps.name)
-	if untrained != 0 {
-		t.Fatalf("%s: %d stored episodes untrained", ps.name, untrained)
+	if len(untrained) != 0 {
+		t.Fatalf("%s: %d stored episodes untrained", ps.name, len(untrained))
 	}
 	if len(ids) != len(accepted) {
 		t.Fatalf("%s: %d episodes stored, %d accepted", ps.name, len(ids), len(accepted))

@@ -212,20 +212,12 @@ func TestIngestCommitsInArrivalOrder(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer watch.Close(ctx)
-	lockWaits := func() int {
-		var n int
-		if err := watch.QueryRow(ctx, `SELECT count(*) FROM pg_stat_activity
-			WHERE datname = current_database() AND wait_event_type = 'Lock'`).Scan(&n); err != nil {
-			t.Fatal(err)
-		}
-		return n
-	}
-	waitFor(t, 10*time.Second, "the first request to wait on the held id", func() bool { return lockWaits() == 1 })
+	waitFor(t, 10*time.Second, "the first request to wait on the held id", func() bool { return lockWaits(t, watch) == 1 })
 	posts.Go(func() { l.post(ctx, client, s.URL, ps.name, late) })
 	// Either the second request waits for the first, or it is stored and
 	// trained ahead of it.
 	waitFor(t, 10*time.Second, "the second request to wait or be trained", func() bool {
-		if lockWaits() == 2 {
+		if lockWaits(t, watch) == 2 {
 			return true
 		}
 		st := s.status(ps.name)

@@ -118,7 +118,11 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	shutdownCtx, cancel := context.WithTimeout(context.Background(), cfg.ShutdownGrace)
 	defer cancel()
 	if err := srv.Shutdown(shutdownCtx); err != nil && !errors.Is(err, http.ErrServerClosed) {
-		logger.Warn("http shutdown", "error", err)
+		// Requests still running hold database connections, and closing the
+		// pool waits for them: cut them off, which ends their contexts and
+		// rolls back their transactions; clients retry with the same ids.
+		logger.Warn("requests did not finish within the grace period; closing their connections", "error", err)
+		_ = srv.Close()
 	}
 	select {
 	case <-workerDone:

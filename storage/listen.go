@@ -32,8 +32,10 @@ func (db *DB) Listen(ctx context.Context, logger *slog.Logger, subs map[string]S
 		Connect: func(ctx context.Context) (*pgx.Conn, error) {
 			return pgx.ConnectConfig(ctx, db.pool.Config().ConnConfig.Copy())
 		},
-		LogError: func(_ context.Context, err error) {
-			logger.Warn("notification listener", "error", err)
+		LogError: func(ctx context.Context, err error) {
+			if ctx.Err() == nil { // not the shutdown itself
+				logger.Warn("notification listener", "error", err)
+			}
 		},
 		ReconnectDelay: listenRetryDelay,
 	}
