@@ -48,13 +48,20 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		}()
 	}
 
-	handlers := map[string]func(int32){}
+	subs := map[string]storage.Subscription{}
 	if cfg.RunAPI {
 		reg.MustRegister(metrics.NewReplicaCollector(replica, cfg.CoverageVisits))
-		handlers[storage.ChannelPolicy] = func(id int32) {
-			if err := replica.Refresh(bgCtx, id); err != nil {
-				logger.Warn("refreshing in-memory Q", "policy_id", id, "error", err)
-			}
+		subs[storage.ChannelPolicy] = storage.Subscription{
+			Notify: func(id int32) {
+				if err := replica.Refresh(bgCtx, id); err != nil {
+					logger.Warn("refreshing in-memory Q", "policy_id", id, "error", err)
+				}
+			},
+			CatchUp: func() {
+				if err := replica.RefreshAll(bgCtx); err != nil {
+					logger.Warn("catching up on Q changes", "error", err)
+				}
+			},
 		}
 		goBackground("replica poll", func(ctx context.Context) error {
 			return every(ctx, cfg.PollInterval, func() {
@@ -65,11 +72,11 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		})
 	}
 	if cfg.RunWorker {
-		handlers[storage.ChannelEpisodes] = func(int32) { nudge(wake) }
+		subs[storage.ChannelEpisodes] = storage.Subscription{Notify: func(int32) { nudge(wake) }, CatchUp: func() { nudge(wake) }}
 		reg.MustRegister(metrics.NewTableCollector(db, 5*time.Second, logger))
 	}
 	goBackground("notification listener", func(ctx context.Context) error {
-		return db.Listen(ctx, logger, handlers, func() { nudge(wake) })
+		return db.Listen(ctx, logger, subs)
 	})
 
 	workerDone := make(chan struct{})
@@ -118,7 +125,11 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	shutdownCtx, cancel := context.WithTimeout(context.Background(), cfg.ShutdownGrace)
 	defer cancel()
 	if err := srv.Shutdown(shutdownCtx); err != nil && !errors.Is(err, http.ErrServerClosed) {
-		logger.Warn("http shutdown", "error", err)
+		// Requests still running hold database connections, and closing the
+		// pool waits for them: cut them off, which ends their contexts and
+		// rolls back their transactions; clients retry with the same ids.
+		logger.Warn("requests did not finish within the grace period; closing their connections", "error", err)
+		_ = srv.Close()
 	}
 	select {
 	case <-workerDone:

@@ -10,6 +10,10 @@ import (
 	"github.com/qtally/qtally/training"
 )
 
+// ingestLockClass namespaces the per-policy advisory lock that orders
+// ingest commits (the two-key form: class, policy id).
+const ingestLockClass = 0x71746c6a
+
 // Ingest validates a batch against its policy and stores the episodes whose
 // ids the policy has not stored yet, in one transaction: all or nothing.
 func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Episode) (training.IngestResult, error) {
@@ -35,6 +39,13 @@ func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Epi
 		res = training.IngestResult{Accepted: len(fresh), Duplicates: len(records) - len(fresh)}
 		if len(fresh) == 0 {
 			return nil
+		}
+		// Episodes take their seq during the COPY but become visible at
+		// commit; without this lock a later seq could commit first, be
+		// trained, and the earlier one be trained after it, out of arrival
+		// order. Held to commit, it makes each policy's commits follow seq.
+		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
+			return fmt.Errorf("ingest lock: %w", err)
 		}
 		_, err = tx.CopyFrom(ctx, pgx.Identifier{"episodes"},
 			[]string{"policy_id", "episode_id", "states", "actions", "rewards", "probabilities"},
