@@ -9,6 +9,7 @@ import (
 	"github.com/urfave/cli/v3"
 
 	"github.com/qtally/qtally/api"
+	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/training"
 )
 
@@ -51,6 +52,8 @@ const (
 	flagShutdownGrace  = "shutdown-grace"
 	flagDBMaxConns     = "db-max-conns"
 	flagLogFormat      = "log-format"
+	flagHistoryBucket  = "history-bucket"
+	flagHistoryWindow  = "history-window"
 )
 
 func databaseFlag(env flagEnv, required bool) cli.Flag {
@@ -75,6 +78,8 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 		&cli.IntFlag{Name: flagMaxStateLength, Value: lim.MaxStateLength, Usage: "longest state name (bytes)", Sources: env("QTALLY_MAX_STATE_LENGTH")},
 		&cli.DurationFlag{Name: flagShutdownGrace, Value: 15 * time.Second, Usage: "time in-flight work gets to finish on shutdown", Sources: env("QTALLY_SHUTDOWN_GRACE")},
 		&cli.Int32Flag{Name: flagDBMaxConns, Value: 20, Usage: "most PostgreSQL connections of this process", Sources: env("QTALLY_DB_MAX_CONNS")},
+		&cli.DurationFlag{Name: flagHistoryBucket, Value: storage.DefaultHistory().Bucket, Usage: "stretch of time one row of training history sums up", Sources: env("QTALLY_HISTORY_BUCKET")},
+		&cli.DurationFlag{Name: flagHistoryWindow, Value: storage.DefaultHistory().Window, Usage: "how long training history is kept", Sources: env("QTALLY_HISTORY_WINDOW")},
 		logFlag(env),
 	}
 }
@@ -91,6 +96,7 @@ type serviceConfig struct {
 	RunWorker     bool
 	ShutdownGrace time.Duration
 	DBMaxConns    int32
+	History       storage.HistorySettings
 }
 
 func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
@@ -107,8 +113,10 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		},
 		ShutdownGrace: cmd.Duration(flagShutdownGrace),
 		DBMaxConns:    cmd.Int32(flagDBMaxConns),
+		History:       storage.HistorySettings{Bucket: cmd.Duration(flagHistoryBucket), Window: cmd.Duration(flagHistoryWindow)},
 	}
-	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength}
+	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength,
+		HistoryWindow: cfg.History.Window}
 	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,
 		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength} {
 		if v < 1 {
@@ -120,6 +128,9 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 	}
 	if cfg.PollInterval <= 0 {
 		return cfg, fmt.Errorf("--%s must be positive", flagPollInterval)
+	}
+	if err := cfg.History.Validate(); err != nil {
+		return cfg, fmt.Errorf("--%s, --%s: %w", flagHistoryBucket, flagHistoryWindow, err)
 	}
 	return cfg, nil
 }

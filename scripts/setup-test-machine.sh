@@ -5,7 +5,7 @@ set -euo pipefail
 
 # Debian/Ubuntu packages the tests need. Add new ones here; a package without
 # its own case in installed() counts as present when dpkg says it is.
-packages=(postgresql)
+packages=(postgresql chromium)
 
 # The same search storage/localpg.FindBinaries does: initdb and postgres on
 # PATH (symlinks resolved), else a Debian-style install.
