@@ -10,8 +10,8 @@ import (
 
 // A chart is drawn on the server as inline SVG: the page needs no script.
 const (
-	chartWidth   = 460
-	chartHeight  = 170
+	chartWidth   = 540
+	chartHeight  = 180
 	chartLeft    = 58
 	chartRight   = 14
 	chartTop     = 12
@@ -75,6 +75,9 @@ func newChart(id, title, note string, from, to time.Time, gap time.Duration, zer
 	}
 	if zeroBased {
 		lo, hi = math.Min(lo, 0), math.Max(hi, 0)
+		if lo == hi {
+			hi = 1
+		}
 	}
 	ticks := niceTicks(lo, hi, chartYTicks)
 	lo, hi = ticks[0], ticks[len(ticks)-1]
@@ -84,8 +87,12 @@ func newChart(id, title, note string, from, to time.Time, gap time.Duration, zer
 	for _, v := range ticks {
 		c.YTicks = append(c.YTicks, chartTick{Pos: round2(y(v)), Label: formatNumber(v)})
 	}
+	clock := "15:04"
+	if to.Sub(from) <= 10*time.Minute {
+		clock = "15:04:05"
+	}
 	for _, t := range timeTicks(from, to, chartXLabels) {
-		c.XTicks = append(c.XTicks, chartTick{Pos: round2(x(t)), Label: t.UTC().Format("15:04")})
+		c.XTicks = append(c.XTicks, chartTick{Pos: round2(x(t)), Label: t.UTC().Format(clock)})
 	}
 	for i, s := range series {
 		cs := chartSeries{Name: s.name, Class: "s" + strconv.Itoa(i)}
@@ -130,17 +137,15 @@ func niceTicks(lo, hi float64, n int) []float64 {
 	}
 	start := math.Floor(lo/step) * step
 	var ticks []float64
-	for v := start; v < hi+step/2; v += step {
-		// Snap away float noise so that zero prints as 0.
-		ticks = append(ticks, math.Round(v/step)*step)
-		if v >= hi {
-			break
+	for i := 0; ; i++ {
+		// Multiply rather than add, and snap, so that float noise never
+		// prints (0.30000000000000004) or leaves hi just out of range.
+		v := math.Round((start+float64(i)*step)/step) * step
+		ticks = append(ticks, v)
+		if v >= hi || i > 4*n {
+			return ticks
 		}
 	}
-	if len(ticks) < 2 {
-		ticks = append(ticks, ticks[0]+step)
-	}
-	return ticks
 }
 
 // timeTicks returns up to about n round clock times within [from, to].

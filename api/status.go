@@ -303,8 +303,11 @@ func formatCount(n int64) string {
 
 // formatAgo says how long before now t was.
 func formatAgo(now time.Time, t *time.Time) string {
-	if t == nil {
+	switch {
+	case t == nil:
 		return "never"
+	case now.Sub(*t) < time.Second:
+		return "just now"
 	}
 	return formatDuration(now.Sub(*t)) + " ago"
 }
