@@ -233,7 +233,7 @@ func historyCharts(r training.PolicyReport, now time.Time) []chartView {
 			drift.add(p.Start, p.MeanDrift())
 		}
 		churn.add(p.Start, float64(p.GreedyChanges))
-		backlog.add(p.Start, float64(p.BacklogAfter))
+		backlog.add(p.Start, float64(p.Backlog))
 		states.add(p.Start, float64(p.States))
 		pairs.add(p.Start, float64(p.Pairs))
 	}
@@ -242,7 +242,7 @@ func historyCharts(r training.PolicyReport, now time.Time) []chartView {
 		newChart("return", "Mean return", "discounted return G0 of the episodes trained, per "+step, from, now, gap, false, ret),
 		newChart("drift", "Mean |ΔQ| per update", "how far updates move the estimates, per "+step, from, now, gap, true, drift),
 		newChart("churn", "Greedy changes", "states whose greedy action changed, per "+step, from, now, gap, true, churn),
-		newChart("backlog", "Backlog", "episodes waiting after the last batch of each "+step, from, now, gap, true, backlog),
+		newChart("backlog", "Backlog", "episodes waiting, sampled once per "+step, from, now, gap, true, backlog),
 		newChart("coverage", "Coverage", "states and (state, action) pairs with an estimate", from, now, gap, true, states, pairs),
 	}
 }

@@ -20,8 +20,9 @@ CREATE TABLE training_history (
     -- today's counts they give the coverage at the end of any bucket.
     new_states     bigint NOT NULL,
     new_pairs      bigint NOT NULL,
-    -- Untrained episodes right after the bucket's last batch.
-    backlog_after  bigint NOT NULL,
+    -- Untrained episodes right after the bucket's first batch (a sample:
+    -- counting after every batch would cost most when training is behind).
+    backlog        bigint NOT NULL,
     last_batch_at  timestamptz NOT NULL,
     PRIMARY KEY (policy_id, bucket_start)
 );

@@ -54,19 +54,26 @@ func (db *DB) History() HistorySettings {
 
 // historyWrite adds a batch to its policy's current bucket and drops the
 // policy's buckets that left the window, in one statement of the batch's
-// transaction (the primary key makes both touch only a few rows). It must
-// follow the statement that marks the batch's episodes trained, so that the
-// backlog it records excludes them.
+// transaction (the primary key makes both touch only a few rows). The
+// backlog is counted by the first batch of each bucket only: counting costs
+// time in proportion to the backlog, and a policy that is behind should not
+// pay that on every batch. The statement must follow the one that marks
+// the batch's episodes trained, so that the count excludes them.
 const historyWrite = `
 	WITH pruned AS (
 		DELETE FROM training_history
 		WHERE policy_id = $1 AND bucket_start < now() - $3::bigint * interval '1 microsecond'
+	), bucket AS (
+		SELECT date_bin($2::bigint * interval '1 microsecond', now(), timestamptz 'epoch') AS start
 	)
 	INSERT INTO training_history AS h (policy_id, bucket_start, batches, episodes, steps, sum_return,
-		sum_abs_delta, updates, greedy_changes, new_states, new_pairs, backlog_after, last_batch_at)
-	SELECT $1, date_bin($2::bigint * interval '1 microsecond', now(), timestamptz 'epoch'), 1,
-		$4, $5, $6, $7, $8, $9, $10, $11,
-		(SELECT count(*) FROM episodes e WHERE e.policy_id = $1 AND e.trained_at IS NULL), now()
+		sum_abs_delta, updates, greedy_changes, new_states, new_pairs, backlog, last_batch_at)
+	SELECT $1, b.start, 1, $4, $5, $6, $7, $8, $9, $10, $11,
+		CASE WHEN NOT EXISTS (SELECT 1 FROM training_history x WHERE x.policy_id = $1 AND x.bucket_start = b.start)
+		     THEN (SELECT count(*) FROM episodes e WHERE e.policy_id = $1 AND e.trained_at IS NULL)
+		     ELSE 0 END, -- never stored: a later batch of the bucket keeps the first one's count
+		now()
+	FROM bucket b
 	ON CONFLICT (policy_id, bucket_start) DO UPDATE SET
 		batches = h.batches + 1,
 		episodes = h.episodes + excluded.episodes,
@@ -77,7 +84,6 @@ const historyWrite = `
 		greedy_changes = h.greedy_changes + excluded.greedy_changes,
 		new_states = h.new_states + excluded.new_states,
 		new_pairs = h.new_pairs + excluded.new_pairs,
-		backlog_after = excluded.backlog_after,
 		last_batch_at = excluded.last_batch_at`
 
 func queueHistory(batch *pgx.Batch, policyID int32, h HistorySettings, s training.BatchSummary) {
@@ -96,14 +102,14 @@ const historyRead = `
 		       sum(sum_return) AS sum_return, sum(sum_abs_delta) AS sum_abs_delta,
 		       sum(updates)::bigint AS updates, sum(greedy_changes)::bigint AS greedy_changes,
 		       sum(new_states)::bigint AS new_states, sum(new_pairs)::bigint AS new_pairs,
-		       (array_agg(backlog_after ORDER BY bucket_start DESC))[1] AS backlog_after
+		       (array_agg(backlog ORDER BY bucket_start DESC))[1] AS backlog
 		FROM training_history
 		WHERE policy_id = $1
 		  AND bucket_start >= date_bin($2::bigint * interval '1 microsecond',
 		                               now() - $3::bigint * interval '1 microsecond', timestamptz 'epoch')
 		GROUP BY 1
 	)
-	SELECT start, batches, episodes, steps, sum_return, sum_abs_delta, updates, greedy_changes, backlog_after,
+	SELECT start, batches, episodes, steps, sum_return, sum_abs_delta, updates, greedy_changes, backlog,
 	       greatest($4::bigint - coalesce(sum(new_states) OVER later, 0), 0)::bigint,
 	       greatest($5::bigint - coalesce(sum(new_pairs) OVER later, 0), 0)::bigint
 	FROM points
@@ -133,7 +139,7 @@ func (db *DB) PolicyReport(ctx context.Context, name string, window time.Duratio
 		}
 		var pt training.HistoryPoint
 		_, err = pgx.ForEachRow(rows, []any{&pt.Start, &pt.Batches, &pt.Episodes, &pt.Steps, &pt.SumReturn, &pt.SumAbsDelta,
-			&pt.Updates, &pt.GreedyChanges, &pt.BacklogAfter, &pt.States, &pt.Pairs}, func() error {
+			&pt.Updates, &pt.GreedyChanges, &pt.Backlog, &pt.States, &pt.Pairs}, func() error {
 			report.History = append(report.History, pt)
 			return nil
 		})

@@ -57,8 +57,9 @@ type HistoryPoint struct {
 	SumAbsDelta   float64
 	Updates       int64
 	GreedyChanges int64
-	// BacklogAfter is the untrained episode count after the stretch's last batch.
-	BacklogAfter int64
+	// Backlog is the untrained episode count sampled in the stretch: after
+	// the first batch of its latest stored bucket.
+	Backlog int64
 	// States and Pairs are how many had estimates at the end of the stretch.
 	States int64
 	Pairs  int64
