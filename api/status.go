@@ -210,8 +210,8 @@ func windowParam(c echo.Context, kept time.Duration) (time.Duration, error) {
 		return min(defaultWindow, kept), nil
 	}
 	w, err := time.ParseDuration(s)
-	if err != nil || w < minWindow || w > kept {
-		return 0, training.Invalid(-1, -1, "window", "must be a duration such as 90m or 6h, from %v to the %v of history kept", minWindow, kept)
+	if lo := min(minWindow, kept); err != nil || w < lo || w > kept {
+		return 0, training.Invalid(-1, -1, "window", "must be a duration such as 90m or 6h, from %v to the %v of history kept", lo, kept)
 	}
 	return w, nil
 }

@@ -104,15 +104,16 @@ const historyRead = `
 		       sum(new_states)::bigint AS new_states, sum(new_pairs)::bigint AS new_pairs,
 		       (array_agg(backlog ORDER BY bucket_start DESC))[1] AS backlog
 		FROM training_history
-		WHERE policy_id = $1
-		  AND bucket_start >= date_bin($2::bigint * interval '1 microsecond',
-		                               now() - $3::bigint * interval '1 microsecond', timestamptz 'epoch')
+		WHERE policy_id = $1 AND bucket_start >= now() - ($2::bigint + $3::bigint) * interval '1 microsecond'
 		GROUP BY 1
 	)
 	SELECT start, batches, episodes, steps, sum_return, sum_abs_delta, updates, greedy_changes, backlog,
 	       greatest($4::bigint - coalesce(sum(new_states) OVER later, 0), 0)::bigint,
 	       greatest($5::bigint - coalesce(sum(new_pairs) OVER later, 0), 0)::bigint
 	FROM points
+	-- Only points that start within the window, so that none is drawn
+	-- before it; the coverage needs only the points after each one.
+	WHERE start >= now() - $3::bigint * interval '1 microsecond'
 	WINDOW later AS (ORDER BY start DESC ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING)
 	ORDER BY start`
 
