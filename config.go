@@ -10,6 +10,7 @@ import (
 	"github.com/urfave/cli/v3"
 
 	"github.com/qtally/qtally/api"
+	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/training"
 )
 
@@ -53,6 +54,8 @@ const (
 	flagDBMaxConns     = "db-max-conns"
 	flagLogFormat      = "log-format"
 	flagCoverageVisits = "coverage-visits"
+	flagHistoryBucket  = "history-bucket"
+	flagHistoryWindow  = "history-window"
 )
 
 func databaseFlag(env flagEnv, required bool) cli.Flag {
@@ -78,6 +81,8 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 		&cli.DurationFlag{Name: flagShutdownGrace, Value: 15 * time.Second, Usage: "time in-flight work gets to finish on shutdown", Sources: env("QTALLY_SHUTDOWN_GRACE")},
 		&cli.Int32Flag{Name: flagDBMaxConns, Value: 20, Usage: "most PostgreSQL connections of this process", Sources: env("QTALLY_DB_MAX_CONNS")},
 		&cli.Int64Flag{Name: flagCoverageVisits, Value: 10, Usage: "visits a state-action pair needs to count as covered in the coverage metric", Sources: env("QTALLY_COVERAGE_VISITS")},
+		&cli.DurationFlag{Name: flagHistoryBucket, Value: storage.DefaultHistory().Bucket, Usage: "stretch of time one row of training history sums up", Sources: env("QTALLY_HISTORY_BUCKET")},
+		&cli.DurationFlag{Name: flagHistoryWindow, Value: storage.DefaultHistory().Window, Usage: "how long training history is kept", Sources: env("QTALLY_HISTORY_WINDOW")},
 		logFlag(env),
 	}
 }
@@ -99,6 +104,7 @@ type serviceConfig struct {
 	DBMaxConns    int32
 	// CoverageVisits is the visit count from which a pair counts as covered.
 	CoverageVisits int64
+	History        storage.HistorySettings
 }
 
 func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
@@ -115,9 +121,11 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		},
 		ShutdownGrace: cmd.Duration(flagShutdownGrace),
 		DBMaxConns:    cmd.Int32(flagDBMaxConns),
+		History:       storage.HistorySettings{Bucket: cmd.Duration(flagHistoryBucket), Window: cmd.Duration(flagHistoryWindow)},
 	}
 	cfg.CoverageVisits = cmd.Int64(flagCoverageVisits)
-	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength}
+	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength,
+		HistoryWindow: cfg.History.Window}
 	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,
 		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength} {
 		if v < 1 {
@@ -132,6 +140,9 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 	}
 	if cfg.PollInterval <= 0 {
 		return cfg, fmt.Errorf("--%s must be positive", flagPollInterval)
+	}
+	if err := cfg.History.Validate(); err != nil {
+		return cfg, fmt.Errorf("--%s, --%s: %w", flagHistoryBucket, flagHistoryWindow, err)
 	}
 	return cfg, nil
 }

@@ -87,7 +87,7 @@ func printWelcome(w io.Writer, listen string) {
 	}
 	base := "http://" + net.JoinHostPort(host, port)
 	fmt.Fprintln(w, strings.TrimSpace(fmt.Sprintf(`
-qtally: API at %[1]s  (stop with Ctrl-C)
+qtally: API at %[1]s, status page at %[1]s/  (stop with Ctrl-C)
 Try it:
   curl -X PUT %[1]s/v1/policies/checkout -H 'Content-Type: application/json' \
        -d '{"actions":["offer_help","wait"],"alpha":0.1,"epsilon":0.1}'

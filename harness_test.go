@@ -24,6 +24,7 @@ import (
 
 func TestMain(m *testing.M) {
 	openapi3filter.RegisterBodyDecoder("application/x-ndjson", openapi3filter.PlainBodyDecoder)
+	openapi3filter.RegisterBodyDecoder("text/html", openapi3filter.PlainBodyDecoder)
 	pgtest.Main(m)
 }
 

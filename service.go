@@ -28,6 +28,9 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		return err
 	}
 	defer db.Close()
+	if err := db.SetHistory(cfg.History); err != nil {
+		return err
+	}
 
 	reg := prometheus.NewRegistry()
 	m := metrics.New(reg)
@@ -97,7 +100,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	var handler http.Handler
 	if cfg.RunAPI {
 		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, Episodes: db, States: db,
-			Chooser: replica, Ready: db, Metrics: m, Gatherer: reg})
+			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg})
 	} else {
 		handler = api.NewHealthServer(api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})
 	}

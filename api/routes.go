@@ -21,5 +21,13 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps) {
 	e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg))
 	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg))
 	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg))
+	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect))
 	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States))
+}
+
+// addStatusRoutes serves the status pages for people.
+func addStatusRoutes(e *echo.Echo, cfg Config, d Deps) {
+	e.GET("/", handleOverview(d.Policies))
+	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, cfg))
+	e.GET("/policies/:policy/states", handleStatesPage(d.Inspect))
 }

@@ -7,6 +7,7 @@ import (
 	"context"
 	"log/slog"
 	"net/http"
+	"time"
 
 	"github.com/labstack/echo/v4"
 	"github.com/prometheus/client_golang/prometheus"
@@ -48,6 +49,9 @@ type Config struct {
 	MaxBodyBytes int64
 	// MaxStateLength bounds a state name in choose requests.
 	MaxStateLength int
+	// HistoryWindow is how much training history is kept: the status
+	// page's charts reach back at most this far.
+	HistoryWindow time.Duration
 }
 
 // Deps are what the server calls.
@@ -57,6 +61,7 @@ type Deps struct {
 	Episodes Episodes
 	States   States
 	Chooser  Chooser
+	Inspect  Inspector
 	Ready    Readiness
 	Metrics  *metrics.Metrics
 	Gatherer prometheus.Gatherer
@@ -67,6 +72,7 @@ func NewServer(cfg Config, d Deps) http.Handler {
 	e := newEcho(d)
 	addHealthRoutes(e, d)
 	addAPIRoutes(e, cfg, d)
+	addStatusRoutes(e, cfg, d)
 	return e
 }
 

@@ -6,7 +6,7 @@ set -euo pipefail
 
 # Debian/Ubuntu packages the tests need. Add new ones here; a package without
 # its own case in installed() counts as present when dpkg says it is.
-packages=(postgresql prometheus)
+packages=(postgresql prometheus chromium)
 # Callers that need less (make dev) name their packages.
 if (($#)); then
 	packages=("$@")

@@ -29,6 +29,7 @@ type DB struct {
 	migrator *goose.Provider
 	sqlDB    *sql.DB
 	limits   training.Limits
+	history  HistorySettings
 }
 
 // Open connects to PostgreSQL. It does not apply migrations.
@@ -49,7 +50,7 @@ func Open(ctx context.Context, databaseURL string, maxConns int32, limits traini
 		pool.Close()
 		return nil, err
 	}
-	return &DB{pool: pool, migrator: migrator, sqlDB: sqlDB, limits: limits}, nil
+	return &DB{pool: pool, migrator: migrator, sqlDB: sqlDB, limits: limits, history: DefaultHistory()}, nil
 }
 
 // Close releases every connection.

@@ -12,8 +12,6 @@ import (
 	"github.com/qtally/qtally/training"
 )
 
-func TestMain(m *testing.M) { pgtest.Main(m) }
-
 func openDB(t *testing.T) *storage.DB {
 	t.Helper()
 	db, err := storage.Open(context.Background(), pgtest.NewDatabase(t), 20, training.DefaultLimits())

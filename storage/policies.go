@@ -129,7 +129,8 @@ const statusQuery = `
 	       (SELECT count(*) FROM episodes e WHERE e.policy_id = p.policy_id AND e.trained_at IS NULL),
 	       (SELECT min(received_at) FROM episodes e WHERE e.policy_id = p.policy_id AND e.trained_at IS NULL),
 	       (SELECT count(DISTINCT state) FROM q_values q WHERE q.policy_id = p.policy_id),
-	       (SELECT count(*) FROM q_values q WHERE q.policy_id = p.policy_id)
+	       (SELECT count(*) FROM q_values q WHERE q.policy_id = p.policy_id),
+	       p.last_trained_at
 	FROM policies p`
 
 func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
@@ -138,7 +139,7 @@ func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
 	p := &st.Policy
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
 		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt,
-		&st.Episodes, &st.Backlog, &st.OldestUntrained, &st.States, &st.Pairs)
+		&st.Episodes, &st.Backlog, &st.OldestUntrained, &st.States, &st.Pairs, &st.LastTrainedAt)
 	p.Visit = training.VisitRule(visit)
 	return st, err
 }

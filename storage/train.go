@@ -68,8 +68,9 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 		if err != nil {
 			return err
 		}
-		result := learn(training.BatchInput{Policy: p, Episodes: episodes, Current: current})
-		revision, err := writeBatch(ctx, tx, policyID, episodes, result)
+		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}
+		result := learn(in)
+		revision, err := writeBatch(ctx, tx, policyID, episodes, result, db.history, training.SummarizeBatch(in, result))
 		if err != nil {
 			return err
 		}
@@ -129,8 +130,10 @@ func estimatesOfStates(ctx context.Context, tx pgx.Tx, policyID int32, states []
 }
 
 // writeBatch writes every updated pair with one upsert, marks the episodes
-// trained and announces the new revision, in one round trip.
-func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []training.StoredEpisode, res training.BatchResult) (int64, error) {
+// trained, adds the batch to the training history and announces the new
+// revision, in one round trip.
+func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []training.StoredEpisode, res training.BatchResult,
+	history HistorySettings, summary training.BatchSummary) (int64, error) {
 	n := len(res.Pairs)
 	states, actions := make([]string, n), make([]int16, n)
 	qs, visits, deltas := make([]float64, n), make([]int64, n), make([]float64, n)
@@ -143,7 +146,7 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []train
 	}
 	var revision int64
 	batch := &pgx.Batch{}
-	batch.Queue(`UPDATE policies SET revision = revision + 1 WHERE policy_id = $1 RETURNING revision`, policyID).
+	batch.Queue(`UPDATE policies SET revision = revision + 1, last_trained_at = now() WHERE policy_id = $1 RETURNING revision`, policyID).
 		QueryRow(func(row pgx.Row) error { return row.Scan(&revision) })
 	batch.Queue(`
 		INSERT INTO q_values (policy_id, state, action, q, visits, last_delta, updated_at, revision)
@@ -156,6 +159,7 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []train
 		    updated_at = excluded.updated_at, revision = excluded.revision`,
 		policyID, states, actions, qs, visits, deltas)
 	batch.Queue(`UPDATE episodes SET trained_at = now() WHERE policy_id = $1 AND seq = ANY($2)`, policyID, seqs)
+	queueHistory(batch, policyID, history, summary)
 	batch.Queue(`SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, policyID)
 	if err := tx.SendBatch(ctx, batch).Close(); err != nil {
 		return 0, fmt.Errorf("write training batch: %w", err)

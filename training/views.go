@@ -11,6 +11,8 @@ type PolicyStatus struct {
 	OldestUntrained *time.Time `json:"oldest_untrained,omitempty"`
 	States          int64      `json:"states"`
 	Pairs           int64      `json:"pairs"`
+	// LastTrainedAt is when the last training batch committed.
+	LastTrainedAt *time.Time `json:"last_trained_at,omitempty"`
 }
 
 // ActionValue is one action's estimate in a state.

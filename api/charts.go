@@ -1,0 +1,189 @@
+package api
+
+import (
+	"fmt"
+	"math"
+	"strconv"
+	"strings"
+	"time"
+)
+
+// A chart is drawn on the server as inline SVG: the page needs no script.
+const (
+	chartWidth   = 540
+	chartHeight  = 180
+	chartLeft    = 58
+	chartRight   = 14
+	chartTop     = 12
+	chartBottom  = 26
+	chartYTicks  = 4
+	chartXLabels = 4
+)
+
+type chartPoint struct {
+	X, Y  float64
+	Label string
+}
+
+type chartSeries struct {
+	Name  string
+	Class string
+	// Path joins the points, broken where no data was stored in between.
+	Path   string
+	Points []chartPoint
+}
+
+type chartTick struct {
+	Pos   float64
+	Label string
+}
+
+type chartView struct {
+	ID, Title, Note string
+	Width, Height   int
+	PlotLeft        float64
+	PlotRight       float64
+	PlotTop         float64
+	PlotBottom      float64
+	Series          []chartSeries
+	YTicks, XTicks  []chartTick
+	Empty           bool
+}
+
+// seriesData is one line of a chart before it is placed.
+type seriesData struct {
+	name   string
+	times  []time.Time
+	values []float64
+}
+
+// newChart lays out series over [from, to]. Values of zeroBased charts
+// (counts) keep zero in view. Consecutive points further apart than gap are
+// not joined.
+func newChart(id, title, note string, from, to time.Time, gap time.Duration, zeroBased bool, series ...seriesData) chartView {
+	c := chartView{ID: id, Title: title, Note: note, Width: chartWidth, Height: chartHeight,
+		PlotLeft: chartLeft, PlotRight: chartWidth - chartRight, PlotTop: chartTop, PlotBottom: chartHeight - chartBottom}
+	lo, hi := math.Inf(1), math.Inf(-1)
+	for _, s := range series {
+		for _, v := range s.values {
+			lo, hi = math.Min(lo, v), math.Max(hi, v)
+		}
+	}
+	c.Empty = math.IsInf(lo, 1)
+	if c.Empty {
+		lo, hi = 0, 1
+	}
+	if zeroBased {
+		lo, hi = math.Min(lo, 0), math.Max(hi, 0)
+		if lo == hi {
+			hi = 1
+		}
+	}
+	ticks := niceTicks(lo, hi, chartYTicks)
+	lo, hi = ticks[0], ticks[len(ticks)-1]
+	y := func(v float64) float64 { return c.PlotBottom - (v-lo)/(hi-lo)*(c.PlotBottom-c.PlotTop) }
+	span := to.Sub(from).Seconds()
+	x := func(t time.Time) float64 { return c.PlotLeft + t.Sub(from).Seconds()/span*(c.PlotRight-c.PlotLeft) }
+	for _, v := range ticks {
+		c.YTicks = append(c.YTicks, chartTick{Pos: round2(y(v)), Label: formatNumber(v)})
+	}
+	clock := "15:04"
+	if to.Sub(from) <= 10*time.Minute {
+		clock = "15:04:05"
+	}
+	for _, t := range timeTicks(from, to, chartXLabels) {
+		c.XTicks = append(c.XTicks, chartTick{Pos: round2(x(t)), Label: t.UTC().Format(clock)})
+	}
+	for i, s := range series {
+		cs := chartSeries{Name: s.name, Class: "s" + strconv.Itoa(i)}
+		var path strings.Builder
+		for j, t := range s.times {
+			p := chartPoint{X: round2(x(t)), Y: round2(y(s.values[j])),
+				Label: fmt.Sprintf("%s %s: %s", t.UTC().Format("15:04:05"), s.name, formatNumber(s.values[j]))}
+			move := j == 0 || t.Sub(s.times[j-1]) > gap
+			if move {
+				fmt.Fprintf(&path, "M%g %g", p.X, p.Y)
+			} else {
+				fmt.Fprintf(&path, "L%g %g", p.X, p.Y)
+			}
+			cs.Points = append(cs.Points, p)
+		}
+		cs.Path = path.String()
+		c.Series = append(c.Series, cs)
+	}
+	return c
+}
+
+func round2(v float64) float64 { return math.Round(v*100) / 100 }
+
+// niceTicks returns about n+1 evenly spaced round values (steps of 1, 2 or
+// 5 times a power of ten) covering [lo, hi].
+func niceTicks(lo, hi float64, n int) []float64 {
+	if hi-lo < 1e-12*math.Max(1, math.Abs(hi)) {
+		pad := math.Max(math.Abs(hi)*0.1, 1e-9)
+		if hi == 0 {
+			pad = 1
+		}
+		lo, hi = lo-pad, hi+pad
+	}
+	raw := (hi - lo) / float64(n)
+	mag := math.Pow(10, math.Floor(math.Log10(raw)))
+	step := mag * 10
+	for _, m := range []float64{1, 2, 5} {
+		if m*mag >= raw {
+			step = m * mag
+			break
+		}
+	}
+	start := math.Floor(lo/step) * step
+	var ticks []float64
+	for i := 0; ; i++ {
+		// Multiply rather than add, and snap, so that float noise never
+		// prints (0.30000000000000004) or leaves hi just out of range.
+		v := math.Round((start+float64(i)*step)/step) * step
+		ticks = append(ticks, v)
+		if v >= hi || i > 4*n {
+			return ticks
+		}
+	}
+}
+
+// timeTicks returns up to about n round clock times within [from, to].
+func timeTicks(from, to time.Time, n int) []time.Time {
+	steps := []time.Duration{time.Second, 5 * time.Second, 15 * time.Second, 30 * time.Second,
+		time.Minute, 5 * time.Minute, 15 * time.Minute, 30 * time.Minute,
+		time.Hour, 2 * time.Hour, 3 * time.Hour, 6 * time.Hour, 12 * time.Hour, 24 * time.Hour}
+	step := steps[len(steps)-1]
+	for _, s := range steps {
+		if to.Sub(from)/s <= time.Duration(n) {
+			step = s
+			break
+		}
+	}
+	var out []time.Time
+	for t := from.Truncate(step); !t.After(to); t = t.Add(step) {
+		if !t.Before(from) {
+			out = append(out, t)
+		}
+	}
+	return out
+}
+
+// formatNumber prints a figure short and exact enough to read: integers
+// whole, other values with four significant digits.
+func formatNumber(v float64) string {
+	a := math.Abs(v)
+	switch {
+	case v == math.Trunc(v) && a < 1e12:
+		return strconv.FormatFloat(v, 'f', 0, 64)
+	case a >= 1e-3 && a < 1e9:
+		digits := max(0, 3-int(math.Floor(math.Log10(a))))
+		s := strconv.FormatFloat(v, 'f', digits, 64)
+		if strings.Contains(s, ".") {
+			s = strings.TrimRight(strings.TrimRight(s, "0"), ".")
+		}
+		return s
+	default:
+		return strconv.FormatFloat(v, 'e', 3, 64)
+	}
+}

@@ -1,0 +1,90 @@
+package api
+
+import (
+	"math"
+	"math/rand/v2"
+	"testing"
+	"time"
+)
+
+// Axis ticks are round (1, 2 or 5 times a power of ten apart), cover the
+// data and stay few, whatever the range.
+func TestNiceTicksCoverTheRangeInRoundSteps(t *testing.T) {
+	rng := rand.New(rand.NewPCG(7, 8))
+	for range 2000 {
+		scale := math.Pow(10, float64(rng.IntN(16)-8))
+		lo := (rng.Float64() - 0.5) * scale
+		hi := lo + rng.Float64()*scale
+		ticks := niceTicks(lo, hi, 4)
+		if len(ticks) < 2 || len(ticks) > 7 {
+			t.Fatalf("[%v, %v]: %d ticks %v", lo, hi, len(ticks), ticks)
+		}
+		if ticks[0] > lo || ticks[len(ticks)-1] < hi {
+			t.Fatalf("[%v, %v]: ticks %v do not cover it", lo, hi, ticks)
+		}
+		step := ticks[1] - ticks[0]
+		mantissa := step / math.Pow(10, math.Floor(math.Log10(step)))
+		if !near(mantissa, 1) && !near(mantissa, 2) && !near(mantissa, 5) && !near(mantissa, 10) {
+			t.Fatalf("[%v, %v]: step %v is not round", lo, hi, step)
+		}
+	}
+	if got := niceTicks(0, 1, 4); len(got) != 3 || got[0] != 0 || got[1] != 0.5 || got[2] != 1 {
+		t.Fatalf("ticks of [0, 1]: %v", got)
+	}
+	if got := niceTicks(3, 3, 4); got[0] > 3 || got[len(got)-1] < 3 || len(got) < 2 {
+		t.Fatalf("ticks of a flat line at 3: %v", got)
+	}
+}
+
+func near(a, b float64) bool { return math.Abs(a-b) < 1e-6*b }
+
+func TestFiguresPrintShortAndReadable(t *testing.T) {
+	for v, want := range map[float64]string{
+		0: "0", 12: "12", -3: "-3", 1234567: "1234567", 0.5: "0.5", 13.5812: "13.58",
+		-0.18974: "-0.1897", 0.0012345: "0.001234", 2.5e-7: "2.500e-07", 123456.7: "123457",
+	} {
+		if got := formatNumber(v); got != want {
+			t.Errorf("formatNumber(%v) = %q, want %q", v, got, want)
+		}
+	}
+	for n, want := range map[int64]string{0: "0", 999: "999", 1000: "1,000", 1234567: "1,234,567", -45000: "-45,000"} {
+		if got := formatCount(n); got != want {
+			t.Errorf("formatCount(%d) = %q, want %q", n, got, want)
+		}
+	}
+	for d, want := range map[time.Duration]string{
+		0: "0s", 59 * time.Second: "59s", 185 * time.Second: "3m 5s", time.Hour: "1h",
+		6*time.Hour + 30*time.Minute: "6h 30m", 48 * time.Hour: "48h", 75 * time.Hour: "3d 3h",
+	} {
+		if got := formatDuration(d); got != want {
+			t.Errorf("formatDuration(%v) = %q, want %q", d, got, want)
+		}
+	}
+}
+
+// Points further apart than the gap are not joined, and every point lies
+// in the plot.
+func TestChartBreaksLinesAcrossGaps(t *testing.T) {
+	from := time.Date(2030, 5, 1, 12, 0, 0, 0, time.UTC)
+	to := from.Add(time.Hour)
+	var s seriesData
+	s.name = "mean return"
+	for _, m := range []int{5, 6, 7, 30, 31} {
+		s.add(from.Add(time.Duration(m)*time.Minute), float64(m))
+	}
+	c := newChart("return", "Mean return", "", from, to, 3*time.Minute, false, s)
+	moves := 0
+	for _, ch := range c.Series[0].Path {
+		if ch == 'M' {
+			moves++
+		}
+	}
+	if moves != 2 || len(c.Series[0].Points) != 5 {
+		t.Fatalf("path %q: %d pieces, want 2", c.Series[0].Path, moves)
+	}
+	for _, p := range c.Series[0].Points {
+		if p.X < c.PlotLeft || p.X > c.PlotRight || p.Y < c.PlotTop || p.Y > c.PlotBottom {
+			t.Fatalf("point %+v outside the plot", p)
+		}
+	}
+}

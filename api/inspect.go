@@ -1,0 +1,109 @@
+package api
+
+import (
+	"context"
+	"encoding/base64"
+	"encoding/json"
+	"net/http"
+	"slices"
+	"strconv"
+	"time"
+
+	"github.com/labstack/echo/v4"
+
+	"github.com/qtally/qtally/training"
+)
+
+// Inspector reads what operators look at: a policy's states and the
+// status page's report of a policy.
+type Inspector interface {
+	ListStates(ctx context.Context, policy string, q training.StateQuery) (training.StatePage, error)
+	PolicyReport(ctx context.Context, policy string, window time.Duration, top int) (training.PolicyReport, error)
+}
+
+type statesResponse struct {
+	States []training.StateSummary `json:"states"`
+	// NextCursor continues the listing; absent on its last page.
+	NextCursor string `json:"next_cursor,omitempty"`
+}
+
+func handleListStates(in Inspector) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		q, err := bindStateQuery(c)
+		if err != nil {
+			return err
+		}
+		page, err := in.ListStates(c.Request().Context(), name, q)
+		if err != nil {
+			return err
+		}
+		res := statesResponse{States: page.States, NextCursor: encodeCursor(page.Next)}
+		if res.States == nil {
+			res.States = []training.StateSummary{}
+		}
+		return c.JSON(http.StatusOK, res)
+	}
+}
+
+// bindStateQuery reads sort, limit and cursor of a state listing.
+func bindStateQuery(c echo.Context) (training.StateQuery, error) {
+	q := training.StateQuery{Order: training.ByVisits, Limit: training.DefaultStatePage}
+	if s := c.QueryParam("sort"); s != "" {
+		q.Order = training.StateOrder(s)
+		if !slices.Contains(training.StateOrders, q.Order) {
+			return q, training.Invalid(-1, -1, "sort", "%q is not a sort order; use one of %q", truncateRunes(s, 64), training.StateOrders)
+		}
+	}
+	if s := c.QueryParam("limit"); s != "" {
+		n, err := strconv.Atoi(s)
+		if err != nil || n < 1 || n > training.MaxStatePage {
+			return q, training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", training.MaxStatePage)
+		}
+		q.Limit = n
+	}
+	if s := c.QueryParam("cursor"); s != "" {
+		k, err := decodeCursor(s)
+		if err != nil {
+			return q, training.Invalid(-1, -1, "cursor", "is not a cursor this service handed out; start the listing again without it")
+		}
+		if k.Order != q.Order {
+			return q, training.Invalid(-1, -1, "cursor", "continues a listing sorted by %q, not by %q", k.Order, q.Order)
+		}
+		q.After = &k
+	}
+	return q, nil
+}
+
+// Cursors are opaque to clients: the key of the last state of a page, as
+// unpadded base64url JSON.
+func encodeCursor(k *training.StateKey) string {
+	if k == nil {
+		return ""
+	}
+	data, err := json.Marshal(k)
+	if err != nil {
+		panic("a state key always encodes: " + err.Error())
+	}
+	return base64.RawURLEncoding.EncodeToString(data)
+}
+
+func decodeCursor(s string) (training.StateKey, error) {
+	var k training.StateKey
+	data, err := base64.RawURLEncoding.DecodeString(s)
+	if err != nil {
+		return k, err
+	}
+	return k, json.Unmarshal(data, &k)
+}
+
+func truncateRunes(s string, n int) string {
+	r := []rune(s)
+	if len(r) <= n {
+		return s
+	}
+	return string(r[:n]) + "…"
+}

@@ -1,0 +1,377 @@
+package main
+
+import (
+	"context"
+	"encoding/json"
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/chromedp/chromedp"
+
+	"github.com/qtally/qtally/storage/pgtest"
+)
+
+const browserWidth = 1500
+
+// newBrowser starts headless Chromium for one test. The flags keep it off
+// the network: without them it keeps trying to reach update and sync
+// services.
+func newBrowser(t *testing.T) context.Context {
+	t.Helper()
+	path, err := exec.LookPath("chromium")
+	if err != nil {
+		t.Fatalf("the page tests drive a real browser and need Debian's chromium package (run scripts/setup-test-machine.sh as root, or apt-get install chromium): %v", err)
+	}
+	opts := []chromedp.ExecAllocatorOption{
+		chromedp.ExecPath(path),
+		chromedp.Headless,
+		chromedp.NoSandbox,
+		chromedp.DisableGPU,
+		chromedp.NoFirstRun,
+		chromedp.NoDefaultBrowserCheck,
+		chromedp.Flag("disable-quic", true),
+		chromedp.Flag("disable-background-networking", true),
+		chromedp.Flag("disable-component-update", true),
+		chromedp.Flag("disable-sync", true),
+		chromedp.Flag("disable-extensions", true),
+		chromedp.UserDataDir(t.TempDir()),
+		chromedp.WindowSize(browserWidth, 1000),
+	}
+	allocCtx, cancelAlloc := chromedp.NewExecAllocator(context.Background(), opts...)
+	browser, cancelBrowser := chromedp.NewContext(allocCtx)
+	t.Cleanup(func() {
+		cancelBrowser()
+		cancelAlloc()
+	})
+	// The first call starts the browser, which lives as long as the
+	// context of that call: the time limit goes on the later calls only.
+	if err := chromedp.Do(browser); err != nil {
+		t.Fatalf("start chromium: %v", err)
+	}
+	ctx, cancel := context.WithTimeout(browser, 2*time.Minute)
+	t.Cleanup(cancel)
+	return ctx
+}
+
+// screenshot saves a full-page PNG under test-output/ in the repository.
+// It makes the viewport as tall as the page first: capturing beyond the
+// viewport draws the inline SVG charts shifted.
+func screenshot(t *testing.T, ctx context.Context, name string) {
+	t.Helper()
+	height, err := chromedp.Run(ctx, chromedp.Evaluate[int64](`document.documentElement.scrollHeight`))
+	if err != nil {
+		t.Fatalf("page height: %v", err)
+	}
+	if err := chromedp.Do(ctx, chromedp.EmulateViewport(browserWidth, height)); err != nil {
+		t.Fatalf("resize the viewport: %v", err)
+	}
+	png, err := chromedp.Run(ctx, chromedp.CaptureScreenshot())
+	if err != nil {
+		t.Fatalf("screenshot: %v", err)
+	}
+	dir, err := filepath.Abs("test-output")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.MkdirAll(dir, 0o755); err != nil {
+		t.Fatal(err)
+	}
+	path := filepath.Join(dir, name)
+	if err := os.WriteFile(path, png, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	t.Logf("screenshot: %s", path)
+}
+
+// pageData is what the test reads off a rendered page.
+type pageData struct {
+	Figures map[string]string `json:"figures"`
+	Charts  []struct {
+		ID     string `json:"id"`
+		Series []struct {
+			Name   string   `json:"name"`
+			Points []string `json:"points"`
+			Path   string   `json:"path"`
+			// Outside counts points drawn outside the plot area.
+			Outside int `json:"outside"`
+		} `json:"series"`
+	} `json:"charts"`
+	StateCells  []string `json:"stateCells"`
+	ActionCells []string `json:"actionCells"`
+	// Injected counts elements that only exist if a client-chosen name
+	// was parsed as markup.
+	Injected int    `json:"injected"`
+	Title    string `json:"title"`
+}
+
+// readPage reads the figures within the element the selector %s finds.
+const readPage = `((scope) => {
+	const figures = {};
+	for (const e of document.querySelector(scope).querySelectorAll('[data-figure]')) {
+		figures[e.dataset.figure] = e.dataset.figure === 'last_trained_at' ? e.getAttribute('datetime') : e.textContent.trim();
+	}
+	return {
+		title: document.title,
+		figures,
+		charts: [...document.querySelectorAll('figure.chart')].map(f => {
+			// The plot area: between the outermost grid lines.
+			const ys = [...f.querySelectorAll('line.gridline')].map(l => +l.getAttribute('y1'));
+			const axis = f.querySelector('line.baseline');
+			const inside = c => +c.getAttribute('cy') >= Math.min(...ys) - 0.01 && +c.getAttribute('cy') <= Math.max(...ys) + 0.01 &&
+				+c.getAttribute('cx') >= +axis.getAttribute('x1') && +c.getAttribute('cx') <= +axis.getAttribute('x2');
+			return {
+				id: f.dataset.chart,
+				series: [...f.querySelectorAll('g[data-series]')].map(g => ({
+					name: g.dataset.series,
+					path: g.querySelector('path').getAttribute('d'),
+					points: [...g.querySelectorAll('circle.point')].map(c => c.querySelector('title').textContent),
+					outside: [...g.querySelectorAll('circle.point')].filter(c => !inside(c)).length,
+				})),
+			};
+		}),
+		stateCells: [...document.querySelectorAll('td.state')].map(e => e.textContent),
+		actionCells: [...document.querySelectorAll('span.q')].map(e => e.firstChild.textContent.trim()),
+		injected: document.querySelectorAll('td.state b, span.q i, td i, script').length,
+	};
+})(%s)`
+
+// open loads a page and reads it, taking the figures within figuresIn.
+func (s *service) open(t *testing.T, ctx context.Context, path, figuresIn string) pageData {
+	t.Helper()
+	if err := chromedp.Do(ctx, chromedp.Navigate(s.URL+path), chromedp.WaitReady(chromedp.CSS("footer"))); err != nil {
+		t.Fatalf("open %s: %v", path, err)
+	}
+	d, err := chromedp.Run(ctx, chromedp.Evaluate[pageData](fmt.Sprintf(readPage, must(json.Marshal(figuresIn)))))
+	if err != nil {
+		t.Fatalf("read %s: %v", path, err)
+	}
+	return d
+}
+
+type jsonStatus struct {
+	Revision      int64      `json:"revision"`
+	Episodes      int64      `json:"episodes"`
+	Backlog       int64      `json:"backlog"`
+	States        int64      `json:"states"`
+	Pairs         int64      `json:"pairs"`
+	LastTrainedAt *time.Time `json:"last_trained_at"`
+}
+
+// checkFigures compares the figures a page shows with the JSON API's.
+func checkFigures(t *testing.T, where string, shown map[string]string, st jsonStatus) {
+	t.Helper()
+	for name, want := range map[string]int64{"revision": st.Revision, "episodes": st.Episodes, "backlog": st.Backlog, "states": st.States, "pairs": st.Pairs} {
+		got, err := strconv.ParseInt(strings.ReplaceAll(shown[name], ",", ""), 10, 64)
+		if err != nil || got != want {
+			t.Fatalf("%s shows %s %q; the JSON API says %d", where, name, shown[name], want)
+		}
+	}
+	if st.LastTrainedAt == nil {
+		t.Fatalf("%s: the JSON API has no last training time", where)
+	}
+	if want := st.LastTrainedAt.UTC().Format(time.RFC3339); shown["last_trained_at"] != want {
+		t.Fatalf("%s shows last training at %q; the JSON API says %s", where, shown["last_trained_at"], want)
+	}
+}
+
+// pointValue reads the number a chart point's tooltip states.
+func pointValue(t *testing.T, label string) float64 {
+	t.Helper()
+	i := strings.LastIndex(label, ": ")
+	v, err := strconv.ParseFloat(label[i+2:], 64)
+	if i < 0 || err != nil {
+		t.Fatalf("point label %q has no value", label)
+	}
+	return v
+}
+
+// The status pages, in a real browser, after a few training batches: the
+// charts carry one point per batch with the right values, the figures are
+// the JSON API's, and names with markup in them show as text.
+func TestStatusPageInBrowser(t *testing.T) {
+	ctx := newBrowser(t)
+	// One-second history buckets, so that a few batches a second apart
+	// give the charts several points.
+	s := startService(t, pgtest.NewDatabase(t), "serve", "--history-bucket", "1s", "--batch-episodes", "1000")
+	const policy = "dunning.eu-west_2"
+	actions := []string{"wait & see", "<i>call</i>", `"email"`}
+	const gamma = 0.9
+	s.call("PUT", "/v1/policies/"+policy, map[string]any{"actions": actions, "alpha": 0.25, "gamma": gamma}, 201)
+	s.call("PUT", "/v1/policies/idle-one", map[string]any{"actions": []string{"a", "b"}}, 201)
+
+	rng := rand.New(rand.NewPCG(11, 12))
+	const batches = 5
+	var posted int64
+	var wantMeans []float64
+	for b := range batches {
+		if b > 0 {
+			// Each batch lands in its own history bucket.
+			time.Sleep(1100 * time.Millisecond)
+		}
+		eps := reminderEpisodes(rng, fmt.Sprint("b", b), 15+5*b, actions)
+		sum := 0.0
+		for _, ep := range eps {
+			g := 0.0
+			for i := len(ep.Steps) - 1; i >= 0; i-- {
+				g = ep.Steps[i].Reward + gamma*g
+			}
+			sum += g
+		}
+		wantMeans = append(wantMeans, sum/float64(len(eps)))
+		s.call("POST", "/v1/policies/"+policy+"/episodes", map[string]any{"episodes": eps}, 202)
+		posted += int64(len(eps))
+		s.waitTrained(policy, posted)
+	}
+	var st jsonStatus
+	s.call("GET", "/v1/policies/"+policy, nil, 200).decode(t, &st)
+	if st.Revision != batches {
+		t.Fatalf("%d training batches, want one per posted batch (%d)", st.Revision, batches)
+	}
+
+	overview := s.open(t, ctx, "/", `tr[data-policy="`+policy+`"]`)
+	screenshot(t, ctx, "status-overview.png")
+	checkFigures(t, "the overview", overview.Figures, st)
+
+	page := s.open(t, ctx, "/policies/"+policy+"?window=2m", "section.figures")
+	screenshot(t, ctx, "status-page.png")
+	checkFigures(t, "the policy page", page.Figures, st)
+	if !strings.HasPrefix(page.Title, policy) {
+		t.Fatalf("page title %q", page.Title)
+	}
+
+	charts := map[string][][]string{}
+	for _, c := range page.Charts {
+		for _, sr := range c.Series {
+			charts[c.ID] = append(charts[c.ID], sr.Points)
+			if len(sr.Points) > 0 && !strings.HasPrefix(sr.Path, "M") {
+				t.Fatalf("chart %s series %s has points but no line: %q", c.ID, sr.Name, sr.Path)
+			}
+			if sr.Outside > 0 {
+				t.Fatalf("chart %s series %s draws %d of its points outside the plot", c.ID, sr.Name, sr.Outside)
+			}
+		}
+	}
+	for id, series := range map[string]int{"return": 1, "drift": 1, "churn": 1, "backlog": 1, "coverage": 2} {
+		if len(charts[id]) != series {
+			t.Fatalf("chart %s has %d series, want %d (charts: %v)", id, len(charts[id]), series, charts)
+		}
+		for _, points := range charts[id] {
+			if len(points) != batches {
+				t.Fatalf("chart %s has %d points, want one per batch (%d): %q", id, len(points), batches, points)
+			}
+		}
+	}
+	for i, label := range charts["return"][0] {
+		// Four significant digits are shown.
+		if got, want := pointValue(t, label), wantMeans[i]; math.Abs(got-want) > 5e-4*math.Max(1, math.Abs(want)) {
+			t.Fatalf("return point %d reads %q; the batch's mean G0 is %v", i, label, want)
+		}
+	}
+	for i, label := range charts["backlog"][0] {
+		if pointValue(t, label) != 0 {
+			t.Fatalf("backlog point %d reads %q, but every batch trained all that was waiting", i, label)
+		}
+	}
+	coverage := charts["coverage"]
+	if last := coverage[0][batches-1]; pointValue(t, last) != float64(st.States) {
+		t.Fatalf("coverage ends at %q states; the policy has %d", last, st.States)
+	}
+	if last := coverage[1][batches-1]; pointValue(t, last) != float64(st.Pairs) {
+		t.Fatalf("coverage ends at %q pairs; the policy has %d", last, st.Pairs)
+	}
+	for i := 1; i < batches; i++ {
+		if pointValue(t, coverage[1][i]) < pointValue(t, coverage[1][i-1]) {
+			t.Fatalf("pairs covered fell from %q to %q", coverage[1][i-1], coverage[1][i])
+		}
+	}
+
+	// Names with markup show as the text they are.
+	if page.Injected != 0 {
+		t.Fatalf("%d elements were made from client-chosen names", page.Injected)
+	}
+	if !contains(page.StateCells, `<b>overdue & "large"</b>`) {
+		t.Fatalf("the state with markup in its name is not shown as text: %q", page.StateCells)
+	}
+	for _, a := range actions {
+		if !contains(page.ActionCells, a) {
+			t.Fatalf("action %q is not shown as text: %q", a, page.ActionCells)
+		}
+	}
+	raw := s.send("GET", "/policies/"+policy+"?window=2m", "", nil, false)
+	if err := os.WriteFile(filepath.Join("test-output", "status-page.html"), raw.Body, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(string(raw.Body), "&lt;b&gt;overdue &amp; &#34;large&#34;&lt;/b&gt;") || strings.Contains(string(raw.Body), "<i>call</i>") {
+		t.Fatal("the page source does not escape client-chosen names")
+	}
+
+	// Every state, a page at a time, in the browser too.
+	var seen []string
+	next := "/policies/" + policy + "/states?sort=visits&limit=10"
+	for next != "" {
+		type statesPage struct {
+			Cells []string `json:"cells"`
+			Next  string   `json:"next"`
+		}
+		if err := chromedp.Do(ctx, chromedp.Navigate(s.URL+next), chromedp.WaitReady(chromedp.CSS("footer"))); err != nil {
+			t.Fatal(err)
+		}
+		pg, err := chromedp.Run(ctx, chromedp.Evaluate[statesPage](`({
+			cells: [...document.querySelectorAll('td.state')].map(e => e.textContent),
+			next: (document.querySelector('a[rel=next]') || {}).search || '',
+		})`))
+		if err != nil {
+			t.Fatal(err)
+		}
+		cells, href := pg.Cells, pg.Next
+		seen = append(seen, cells...)
+		next = ""
+		if href != "" {
+			next = "/policies/" + policy + "/states" + href
+		}
+	}
+	if int64(len(seen)) != st.States {
+		t.Fatalf("the state pages list %d states; the policy has %d", len(seen), st.States)
+	}
+}
+
+func contains(list []string, s string) bool {
+	for _, x := range list {
+		if x == s {
+			return true
+		}
+	}
+	return false
+}
+
+// The pages refuse what they cannot show, saying what is wrong.
+func TestStatusPagesRefuseBadInput(t *testing.T) {
+	s := startService(t, pgtest.NewDatabase(t))
+	s.call("PUT", "/v1/policies/plain", map[string]any{"actions": []string{"a", "b"}}, 201)
+	r := s.call("GET", "/", nil, 200)
+	if !strings.HasPrefix(r.Header.Get("Content-Type"), "text/html") || !strings.Contains(string(r.Body), `href="/policies/plain"`) {
+		t.Fatalf("overview: %s %s", r.Header.Get("Content-Type"), r.Body)
+	}
+	if body := string(s.call("GET", "/policies/plain", nil, 200).Body); !strings.Contains(body, "No training in this window.") {
+		t.Fatal("a policy never trained should say its charts have no data")
+	}
+	s.call("GET", "/policies/nobody", nil, 404)
+	for _, w := range []string{"5", "30s", "49h", "soon"} {
+		r := s.send("GET", "/policies/plain?window="+w, "", nil, true)
+		if r.Status != 400 || !strings.Contains(string(r.Body), `"field":"window"`) {
+			t.Fatalf("window=%s: %d %s", w, r.Status, r.Body)
+		}
+	}
+	r = s.send("GET", "/policies/plain/states?sort=alphabet", "", nil, true)
+	if r.Status != 400 || !strings.Contains(string(r.Body), `"field":"sort"`) {
+		t.Fatalf("sort=alphabet: %d %s", r.Status, r.Body)
+	}
+}

@@ -1,0 +1,11 @@
+package storage_test
+
+import (
+	"testing"
+
+	"github.com/qtally/qtally/storage/pgtest"
+)
+
+func TestMain(m *testing.M) {
+	pgtest.Main(m)
+}
