@@ -70,6 +70,8 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 				},
 			},
 			devCommand(env, stdout, stderr),
+			exportCommand(env, stdout),
+			importCommand(env, stdout),
 		},
 	}
 }

@@ -53,6 +53,13 @@ const (
 	flagLogFormat      = "log-format"
 )
 
+// Flags of episode retention.
+const (
+	flagEpisodeRetention = "episode-retention"
+	flagPruneInterval    = "prune-interval"
+	flagPruneBatch       = "prune-batch"
+)
+
 func databaseFlag(env flagEnv, required bool) cli.Flag {
 	return &cli.StringFlag{Name: flagDatabaseURL, Usage: "PostgreSQL connection URL", Sources: env("DATABASE_URL"), Required: required}
 }
@@ -76,6 +83,9 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 		&cli.DurationFlag{Name: flagShutdownGrace, Value: 15 * time.Second, Usage: "time in-flight work gets to finish on shutdown", Sources: env("QTALLY_SHUTDOWN_GRACE")},
 		&cli.Int32Flag{Name: flagDBMaxConns, Value: 20, Usage: "most PostgreSQL connections of this process", Sources: env("QTALLY_DB_MAX_CONNS")},
 		logFlag(env),
+		&cli.DurationFlag{Name: flagEpisodeRetention, Usage: "keep trained episodes this long for evaluation and replay, then delete them (0 keeps them forever; untrained episodes are always kept)", Sources: env("QTALLY_EPISODE_RETENTION")},
+		&cli.DurationFlag{Name: flagPruneInterval, Value: time.Minute, Usage: "how often the worker deletes episodes older than the retention", Sources: env("QTALLY_PRUNE_INTERVAL")},
+		&cli.IntFlag{Name: flagPruneBatch, Value: 1000, Usage: "most episodes one pruning transaction deletes", Sources: env("QTALLY_PRUNE_BATCH")},
 	}
 }
 
@@ -91,6 +101,10 @@ type serviceConfig struct {
 	RunWorker     bool
 	ShutdownGrace time.Duration
 	DBMaxConns    int32
+
+	EpisodeRetention time.Duration
+	PruneInterval    time.Duration
+	PruneBatch       int
 }
 
 func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
@@ -107,10 +121,15 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		},
 		ShutdownGrace: cmd.Duration(flagShutdownGrace),
 		DBMaxConns:    cmd.Int32(flagDBMaxConns),
+
+		EpisodeRetention: cmd.Duration(flagEpisodeRetention),
+		PruneInterval:    cmd.Duration(flagPruneInterval),
+		PruneBatch:       cmd.Int(flagPruneBatch),
 	}
 	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength}
 	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,
-		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength} {
+		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength,
+		flagPruneBatch: cfg.PruneBatch} {
 		if v < 1 {
 			return cfg, fmt.Errorf("--%s must be at least 1, got %d", name, v)
 		}
@@ -120,6 +139,9 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 	}
 	if cfg.PollInterval <= 0 {
 		return cfg, fmt.Errorf("--%s must be positive", flagPollInterval)
+	}
+	if cfg.EpisodeRetention < 0 || cfg.PruneInterval <= 0 {
+		return cfg, fmt.Errorf("--%s must not be negative and --%s must be positive", flagEpisodeRetention, flagPruneInterval)
 	}
 	return cfg, nil
 }

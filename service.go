@@ -66,6 +66,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	if cfg.RunWorker {
 		handlers[storage.ChannelEpisodes] = func(int32) { nudge(wake) }
 		reg.MustRegister(metrics.NewTableCollector(db, 5*time.Second, logger))
+		startHousekeeping(cfg, db, reg, logger, handlers, goBackground)
 	}
 	goBackground("notification listener", func(ctx context.Context) error {
 		return db.Listen(ctx, logger, handlers, func() { nudge(wake) })
@@ -89,7 +90,8 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	var handler http.Handler
 	if cfg.RunAPI {
 		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, Episodes: db, States: db,
-			Chooser: replica, Ready: db, Metrics: m, Gatherer: reg})
+			Chooser: replica, Ready: db, Metrics: m, Gatherer: reg,
+			Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db})
 	} else {
 		handler = api.NewHealthServer(api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})
 	}

@@ -49,6 +49,8 @@ type replicaTable struct {
 	states   map[string]*stateValues
 	revision int64
 	pairs    int
+	// epoch is the policy's table epoch the copy holds.
+	epoch int64
 
 	syncedAt atomic.Int64 // unix nanoseconds of the last successful check
 }
@@ -181,6 +183,9 @@ func (r *Replica) sync(ctx context.Context, t *replicaTable, p Policy) error {
 	defer t.loadMu.Unlock()
 	t.mu.RLock()
 	after := t.revision
+	if p.TableEpoch != t.epoch {
+		after = 0 // the table was replaced: read it whole
+	}
 	t.mu.RUnlock()
 	var rows []QRow
 	if err := r.source.QRowsSince(ctx, p.ID, after, func(row QRow) { rows = append(rows, row) }); err != nil {
@@ -198,6 +203,14 @@ func (t *replicaTable) apply(p Policy, rows []QRow) {
 		// Actions only change while nothing is stored, so there is nothing to keep.
 		t.states = map[string]*stateValues{}
 		t.pairs = 0
+	}
+	if p.TableEpoch != t.epoch {
+		// A restore or import replaced the table and rows were read whole:
+		// drop rows it no longer has. Every row up to p's revision was
+		// committed before p was read, so the rows hold at least that.
+		t.states = map[string]*stateValues{}
+		t.pairs = 0
+		t.epoch, t.revision = p.TableEpoch, p.Revision
 	}
 	t.policy, t.index = p, p.ActionIndex()
 	n := len(p.Actions)
@@ -263,7 +276,7 @@ func (r *Replica) RefreshAll(ctx context.Context) error {
 			continue
 		}
 		t.mu.RLock()
-		current := t.revision >= p.Revision && t.policy.UpdatedAt.Equal(p.UpdatedAt)
+		current := t.revision >= p.Revision && t.policy.UpdatedAt.Equal(p.UpdatedAt) && t.epoch == p.TableEpoch
 		t.mu.RUnlock()
 		if current {
 			t.syncedAt.Store(time.Now().UnixNano())
