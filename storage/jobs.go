@@ -257,40 +257,48 @@ func (db *DB) ReleaseJob(ctx context.Context, job training.Job) error {
 	return mapError(err)
 }
 
-// readPage is how many episodes ReadEpisodes fetches per query.
+// readPage is how many episodes ReadEpisodes fetches at a time.
 const readPage = 2000
 
-// ReadEpisodes implements training.EpisodeReader: it reads a page at a
-// time by sequence number and calls fn between queries.
+// ReadEpisodes implements training.EpisodeReader. A cursor in one
+// read-only transaction serves the pages: one ordered scan for the whole
+// span whatever the table's statistics say (a fresh bulk load can make
+// re-planned per-page queries sort the whole span for every page), one
+// consistent view, and no result set open while fn runs.
 func (db *DB) ReadEpisodes(ctx context.Context, policyID int32, span training.EpisodeSpan, fn func(training.StoredEpisode) error) error {
-	after := span.FirstSeq - 1
-	for {
-		rows, err := db.pool.Query(ctx, `
+	return db.readTx(ctx, func(tx pgx.Tx) error {
+		_, err := tx.Exec(ctx, `
+			DECLARE window_episodes NO SCROLL CURSOR FOR
 			SELECT seq, received_at, episode_id, states, actions, rewards, probabilities FROM episodes
-			WHERE policy_id = $1 AND seq > $2 AND seq <= $3
+			WHERE policy_id = $1 AND seq >= $2 AND seq <= $3
 			  AND ($4::timestamptz IS NULL OR received_at >= $4) AND ($5::timestamptz IS NULL OR received_at < $5)
-			ORDER BY seq LIMIT $6`, policyID, after, span.LastSeq, span.Since, span.Until, readPage)
+			ORDER BY seq`, policyID, span.FirstSeq, span.LastSeq, span.Since, span.Until)
 		if err != nil {
-			return mapError(fmt.Errorf("read episodes: %w", err))
+			return fmt.Errorf("read episodes: %w", err)
 		}
-		page, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.StoredEpisode, error) {
-			var ep training.StoredEpisode
-			err := r.Scan(&ep.Seq, &ep.ReceivedAt, &ep.ID, &ep.States, &ep.Actions, &ep.Rewards, &ep.Probabilities)
-			return ep, err
-		})
-		if err != nil {
-			return mapError(fmt.Errorf("read episodes: %w", err))
-		}
-		for _, ep := range page {
-			if err := fn(ep); err != nil {
-				return err
+		for {
+			rows, err := tx.Query(ctx, fmt.Sprintf(`FETCH %d FROM window_episodes`, readPage))
+			if err != nil {
+				return fmt.Errorf("read episodes: %w", err)
+			}
+			page, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.StoredEpisode, error) {
+				var ep training.StoredEpisode
+				err := r.Scan(&ep.Seq, &ep.ReceivedAt, &ep.ID, &ep.States, &ep.Actions, &ep.Rewards, &ep.Probabilities)
+				return ep, err
+			})
+			if err != nil {
+				return fmt.Errorf("read episodes: %w", err)
+			}
+			for _, ep := range page {
+				if err := fn(ep); err != nil {
+					return err
+				}
+			}
+			if len(page) < readPage {
+				return nil
 			}
 		}
-		if len(page) < readPage {
-			return nil
-		}
-		after = page[len(page)-1].Seq
-	}
+	})
 }
 
 // ClearTable implements training.ReplayStore.

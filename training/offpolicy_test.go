@@ -175,30 +175,57 @@ func TestTargetProbabilitiesAndRatios(t *testing.T) {
 	}
 }
 
-// With every ratio 1 both estimates are the sample mean, and the
-// percentile bootstrap interval of the mean must be close to the normal
-// theory interval mean +- z(0.975) sd / sqrt(n) (central limit theorem;
-// z from gonum's normal quantile). Seeded, so the check is repeatable.
-func TestBootstrapIntervalAgreesWithNormalTheory(t *testing.T) {
-	rng := rand.New(rand.NewPCG(8, 9))
-	const n = 4000
-	s := make([]training.WeightedReturn, n)
-	xs := make([]float64, n)
-	for i := range s {
-		xs[i] = rng.ExpFloat64()*2 - 1
-		s[i] = training.WeightedReturn{Ratio: 1, Return: xs[i]}
-	}
-	ord, wtd, err := training.BootstrapIS(context.Background(), s, 2000, 0.95, rand.New(rand.NewPCG(1, 2)), nil)
-	if err != nil {
-		t.Fatal(err)
-	}
-	mean, sd := stat.MeanStdDev(xs, nil)
-	half := distuv.UnitNormal.Quantile(0.975) * sd / math.Sqrt(n)
-	t.Logf("bootstrap [%.4f, %.4f], normal theory [%.4f, %.4f]", ord.Low, ord.High, mean-half, mean+half)
-	if ord != wtd {
-		t.Fatalf("with unit ratios the intervals must agree: %v vs %v", ord, wtd)
-	}
-	if math.Abs(ord.Low-(mean-half)) > 0.15*half || math.Abs(ord.High-(mean+half)) > 0.15*half {
-		t.Fatalf("bootstrap interval [%v, %v] far from normal theory [%v, %v]", ord.Low, ord.High, mean-half, mean+half)
+// The percentile bootstrap intervals must be close to the large-sample
+// normal intervals estimate +- z(0.975) se (z from gonum's normal
+// quantile): for the ordinary estimate, a mean, se = sd(rho G)/sqrt(n)
+// (central limit theorem); for the weighted estimate, a ratio of means, the
+// delta-method se = sqrt(sum rho^2 (G - w)^2) / sum rho (common practice
+// for self-normalised weights). Once with every ratio 1, where both
+// estimates are the sample mean, and once with most ratios 0, the case the
+// bootstrap's shortcut for zero weights serves. Seeded, so repeatable.
+func TestBootstrapIntervalsAgreeWithNormalTheory(t *testing.T) {
+	for _, zeroShare := range []float64{0, 0.85} {
+		rng := rand.New(rand.NewPCG(8, 9))
+		const n = 4000
+		s := make([]training.WeightedReturn, n)
+		for i := range s {
+			s[i] = training.WeightedReturn{Ratio: 1, Return: rng.ExpFloat64()*2 - 1}
+			if zeroShare > 0 {
+				s[i].Ratio = 0
+				if rng.Float64() >= zeroShare {
+					s[i].Ratio = float64(2 + rng.IntN(6))
+				}
+			}
+		}
+		ord, wtd, err := training.BootstrapIS(context.Background(), s, 2000, 0.95, rand.New(rand.NewPCG(1, 2)), nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		z := distuv.UnitNormal.Quantile(0.975)
+		products := make([]float64, n)
+		w := training.WeightedIS(s)
+		sumRho, sumSq := 0.0, 0.0
+		for i, x := range s {
+			products[i] = x.Ratio * x.Return
+			sumRho += x.Ratio
+			sumSq += x.Ratio * x.Ratio * (x.Return - w) * (x.Return - w)
+		}
+		ordHalf := z * stat.StdDev(products, nil) / math.Sqrt(n)
+		wtdHalf := z * math.Sqrt(sumSq) / sumRho
+		o := training.OrdinaryIS(s)
+		t.Logf("zero share %.2f: ordinary bootstrap [%.4f, %.4f], normal [%.4f, %.4f]; weighted bootstrap [%.4f, %.4f], delta method [%.4f, %.4f]",
+			zeroShare, ord.Low, ord.High, o-ordHalf, o+ordHalf, wtd.Low, wtd.High, w-wtdHalf, w+wtdHalf)
+		for _, c := range []struct {
+			name         string
+			got          training.Interval
+			center, half float64
+		}{{"ordinary", ord, o, ordHalf}, {"weighted", wtd, w, wtdHalf}} {
+			if math.Abs(c.got.Low-(c.center-c.half)) > 0.15*c.half || math.Abs(c.got.High-(c.center+c.half)) > 0.15*c.half {
+				t.Errorf("zero share %.2f: %s bootstrap interval [%v, %v] far from [%v, %v]", zeroShare, c.name, c.got.Low, c.got.High, c.center-c.half, c.center+c.half)
+			}
+		}
+		if zeroShare == 0 && ord != wtd {
+			t.Errorf("with unit ratios the intervals must agree: %v vs %v", ord, wtd)
+		}
 	}
 }
