@@ -58,6 +58,7 @@ const (
 	flagEpisodeRetention = "episode-retention"
 	flagPruneInterval    = "prune-interval"
 	flagPruneBatch       = "prune-batch"
+	flagJobStaleAfter    = "job-stale-after"
 )
 
 func databaseFlag(env flagEnv, required bool) cli.Flag {
@@ -86,6 +87,7 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 		&cli.DurationFlag{Name: flagEpisodeRetention, Usage: "keep trained episodes this long for evaluation and replay, then delete them (0 keeps them forever; untrained episodes are always kept)", Sources: env("QTALLY_EPISODE_RETENTION")},
 		&cli.DurationFlag{Name: flagPruneInterval, Value: time.Minute, Usage: "how often the worker deletes episodes older than the retention", Sources: env("QTALLY_PRUNE_INTERVAL")},
 		&cli.IntFlag{Name: flagPruneBatch, Value: 1000, Usage: "most episodes one pruning transaction deletes", Sources: env("QTALLY_PRUNE_BATCH")},
+		&cli.DurationFlag{Name: flagJobStaleAfter, Value: 30 * time.Second, Usage: "a background job whose runner has not reported for this long is taken over by another worker", Sources: env("QTALLY_JOB_STALE_AFTER")},
 	}
 }
 
@@ -105,6 +107,7 @@ type serviceConfig struct {
 	EpisodeRetention time.Duration
 	PruneInterval    time.Duration
 	PruneBatch       int
+	JobStaleAfter    time.Duration
 }
 
 func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
@@ -125,6 +128,7 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		EpisodeRetention: cmd.Duration(flagEpisodeRetention),
 		PruneInterval:    cmd.Duration(flagPruneInterval),
 		PruneBatch:       cmd.Int(flagPruneBatch),
+		JobStaleAfter:    cmd.Duration(flagJobStaleAfter),
 	}
 	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength}
 	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,
@@ -142,6 +146,9 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 	}
 	if cfg.EpisodeRetention < 0 || cfg.PruneInterval <= 0 {
 		return cfg, fmt.Errorf("--%s must not be negative and --%s must be positive", flagEpisodeRetention, flagPruneInterval)
+	}
+	if cfg.JobStaleAfter < 2*jobReportInterval {
+		return cfg, fmt.Errorf("--%s must be at least %v (twice the progress report interval)", flagJobStaleAfter, 2*jobReportInterval)
 	}
 	return cfg, nil
 }

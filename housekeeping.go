@@ -13,11 +13,10 @@ import (
 )
 
 // Job runner pacing: progress is written (and the runner shows it is
-// alive) every jobReportInterval; a job not heard of for jobStaleAfter is
-// taken over by another runner, up to jobMaxAttempts claims in all.
+// alive) every jobReportInterval; a job not heard of for --job-stale-after
+// is taken over by another runner, up to jobMaxAttempts claims in all.
 const (
 	jobReportInterval = time.Second
-	jobStaleAfter     = 30 * time.Second
 	jobMaxAttempts    = 3
 )
 
@@ -30,7 +29,7 @@ func startHousekeeping(cfg serviceConfig, db *storage.DB, reg prometheus.Registe
 	runner := &training.JobRunner{
 		Jobs: db, Evaluations: db, Replays: db, BatchEpisodes: cfg.BatchEpisodes,
 		Wake: jobWake, PollInterval: cfg.PollInterval,
-		ReportInterval: jobReportInterval, StaleAfter: jobStaleAfter, MaxAttempts: jobMaxAttempts,
+		ReportInterval: jobReportInterval, StaleAfter: cfg.JobStaleAfter, MaxAttempts: jobMaxAttempts,
 		Logger: logger,
 	}
 	goBackground("job runner", runner.Run)
