@@ -195,7 +195,7 @@ func (db *DB) ClaimJob(ctx context.Context, staleAfter time.Duration, maxAttempt
 		}
 		var kind string
 		err := tx.QueryRow(ctx, `
-			UPDATE jobs j SET status = 'running', attempts = j.attempts + 1,
+			UPDATE jobs j SET status = 'running', attempts = j.attempts + 1, progress = '{"phase": "starting", "done": 0, "total": 0}',
 			       started_at = coalesce(j.started_at, now()), heartbeat_at = now()
 			FROM (SELECT policy_id, job_id FROM jobs
 			      WHERE status = 'queued' OR (status = 'running' AND heartbeat_at < now() - make_interval(secs => $1))
