@@ -72,6 +72,8 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 			devCommand(env, stdout, stderr),
 			loadCommand(env, stdout),
 			demoCommand(env, stdout),
+			exportCommand(env, stdout),
+			importCommand(env, stdout),
 		},
 	}
 }

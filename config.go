@@ -58,6 +58,14 @@ const (
 	flagHistoryWindow  = "history-window"
 )
 
+// Flags of episode retention.
+const (
+	flagEpisodeRetention = "episode-retention"
+	flagPruneInterval    = "prune-interval"
+	flagPruneBatch       = "prune-batch"
+	flagJobStaleAfter    = "job-stale-after"
+)
+
 func databaseFlag(env flagEnv, required bool) cli.Flag {
 	return &cli.StringFlag{Name: flagDatabaseURL, Usage: "PostgreSQL connection URL", Sources: env("DATABASE_URL"), Required: required}
 }
@@ -84,6 +92,10 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 		&cli.DurationFlag{Name: flagHistoryBucket, Value: storage.DefaultHistory().Bucket, Usage: "stretch of time one row of training history sums up", Sources: env("QTALLY_HISTORY_BUCKET")},
 		&cli.DurationFlag{Name: flagHistoryWindow, Value: storage.DefaultHistory().Window, Usage: "how long training history is kept", Sources: env("QTALLY_HISTORY_WINDOW")},
 		logFlag(env),
+		&cli.DurationFlag{Name: flagEpisodeRetention, Usage: "keep trained episodes this long for evaluation and replay, then delete them (0 keeps them forever; untrained episodes are always kept)", Sources: env("QTALLY_EPISODE_RETENTION")},
+		&cli.DurationFlag{Name: flagPruneInterval, Value: time.Minute, Usage: "how often the worker deletes episodes older than the retention", Sources: env("QTALLY_PRUNE_INTERVAL")},
+		&cli.IntFlag{Name: flagPruneBatch, Value: 1000, Usage: "most episodes one pruning transaction deletes", Sources: env("QTALLY_PRUNE_BATCH")},
+		&cli.DurationFlag{Name: flagJobStaleAfter, Value: 30 * time.Second, Usage: "a background job whose runner has not reported for this long is taken over by another worker", Sources: env("QTALLY_JOB_STALE_AFTER")},
 	}
 }
 
@@ -105,6 +117,11 @@ type serviceConfig struct {
 	// CoverageVisits is the visit count from which a pair counts as covered.
 	CoverageVisits int64
 	History        storage.HistorySettings
+
+	EpisodeRetention time.Duration
+	PruneInterval    time.Duration
+	PruneBatch       int
+	JobStaleAfter    time.Duration
 }
 
 func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
@@ -122,12 +139,18 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		ShutdownGrace: cmd.Duration(flagShutdownGrace),
 		DBMaxConns:    cmd.Int32(flagDBMaxConns),
 		History:       storage.HistorySettings{Bucket: cmd.Duration(flagHistoryBucket), Window: cmd.Duration(flagHistoryWindow)},
+
+		EpisodeRetention: cmd.Duration(flagEpisodeRetention),
+		PruneInterval:    cmd.Duration(flagPruneInterval),
+		PruneBatch:       cmd.Int(flagPruneBatch),
+		JobStaleAfter:    cmd.Duration(flagJobStaleAfter),
 	}
 	cfg.CoverageVisits = cmd.Int64(flagCoverageVisits)
 	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength,
 		HistoryWindow: cfg.History.Window}
 	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,
-		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength} {
+		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength,
+		flagPruneBatch: cfg.PruneBatch} {
 		if v < 1 {
 			return cfg, fmt.Errorf("--%s must be at least 1, got %d", name, v)
 		}
@@ -143,6 +166,12 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 	}
 	if err := cfg.History.Validate(); err != nil {
 		return cfg, fmt.Errorf("--%s, --%s: %w", flagHistoryBucket, flagHistoryWindow, err)
+	}
+	if cfg.EpisodeRetention < 0 || cfg.PruneInterval <= 0 {
+		return cfg, fmt.Errorf("--%s must not be negative and --%s must be positive", flagEpisodeRetention, flagPruneInterval)
+	}
+	if cfg.JobStaleAfter < 2*jobReportInterval {
+		return cfg, fmt.Errorf("--%s must be at least %v (twice the progress report interval)", flagJobStaleAfter, 2*jobReportInterval)
 	}
 	return cfg, nil
 }

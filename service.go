@@ -77,6 +77,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	if cfg.RunWorker {
 		subs[storage.ChannelEpisodes] = storage.Subscription{Notify: func(int32) { nudge(wake) }, CatchUp: func() { nudge(wake) }}
 		reg.MustRegister(metrics.NewTableCollector(db, 5*time.Second, logger))
+		startHousekeeping(cfg, db, reg, logger, subs, goBackground)
 	}
 	goBackground("notification listener", func(ctx context.Context) error {
 		return db.Listen(ctx, logger, subs)
@@ -100,7 +101,8 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	var handler http.Handler
 	if cfg.RunAPI {
 		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, Episodes: db, States: db,
-			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg})
+			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg,
+			Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db})
 	} else {
 		handler = api.NewHealthServer(api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})
 	}

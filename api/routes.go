@@ -3,6 +3,8 @@ package api
 import (
 	"github.com/labstack/echo/v4"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
+
+	"github.com/qtally/qtally/training"
 )
 
 // addHealthRoutes serves what every process serves, API or worker.
@@ -23,6 +25,20 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps) {
 	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg))
 	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect))
 	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States))
+
+	e.GET("/v1/policies/:policy/table", handleExportTable(d.Snapshots, false))
+	e.PUT("/v1/policies/:policy/table", handleImportTable(d.Tables, cfg))
+	e.GET("/v1/policies/:policy/diff", handleDiffTables(d.Snapshots))
+	e.GET("/v1/policies/:policy/snapshots", handleListSnapshots(d.Snapshots))
+	e.POST("/v1/policies/:policy/snapshots", handleCreateSnapshot(d.Snapshots, cfg))
+	e.GET("/v1/policies/:policy/snapshots/:snapshot", handleGetSnapshot(d.Snapshots))
+	e.DELETE("/v1/policies/:policy/snapshots/:snapshot", handleDeleteSnapshot(d.Snapshots))
+	e.GET("/v1/policies/:policy/snapshots/:snapshot/table", handleExportTable(d.Snapshots, true))
+	e.POST("/v1/policies/:policy/snapshots/:snapshot/restore", handleRestoreSnapshot(d.Tables))
+	e.POST("/v1/policies/:policy/evaluations", handleStartEvaluation(d.Jobs, cfg))
+	e.GET("/v1/policies/:policy/evaluations/:id", handleGetJob(d.Jobs, training.EvaluationJobKind))
+	e.POST("/v1/policies/:policy/replays", handleStartReplay(d.Jobs, cfg))
+	e.GET("/v1/policies/:policy/replays/:id", handleGetJob(d.Jobs, training.ReplayJobKind))
 }
 
 // addStatusRoutes serves the status pages for people.

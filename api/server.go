@@ -65,6 +65,12 @@ type Deps struct {
 	Ready    Readiness
 	Metrics  *metrics.Metrics
 	Gatherer prometheus.Gatherer
+
+	// Snapshots, Tables and Jobs serve snapshots, table rewrites and
+	// background evaluations and replays.
+	Snapshots Snapshots
+	Tables    TableWriter
+	Jobs      Jobs
 }
 
 // NewServer returns the HTTP handler of an API process.

@@ -12,13 +12,13 @@ import (
 )
 
 const policyColumns = `policy_id, name, actions, gamma, alpha, epsilon, epsilon_min,
-	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at`
+	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at, table_epoch`
 
 func scanPolicy(row pgx.Row) (training.Policy, error) {
 	var p training.Policy
 	var visit string
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
-		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt)
+		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch)
 	p.Visit = training.VisitRule(visit)
 	return p, err
 }
@@ -138,7 +138,7 @@ func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
 	var visit string
 	p := &st.Policy
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
-		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt,
+		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch,
 		&st.Episodes, &st.Backlog, &st.OldestUntrained, &st.States, &st.Pairs, &st.LastTrainedAt)
 	p.Visit = training.VisitRule(visit)
 	return st, err

@@ -63,6 +63,10 @@ type Policy struct {
 	Revision  int64     `json:"revision"`
 	CreatedAt time.Time `json:"created_at"`
 	UpdatedAt time.Time `json:"updated_at"`
+
+	// TableEpoch counts restores and imports, which replace the whole table:
+	// a copy of an older epoch must be reloaded, not patched.
+	TableEpoch int64 `json:"-"`
 }
 
 // EpsilonFor is the exploration rate in a state visited n times in all.

@@ -54,6 +54,8 @@ type replicaTable struct {
 	// so that a scrape reads the visit distribution in time proportional to
 	// the number of distinct counts, not the number of pairs.
 	pairsByVisits map[int64]int64
+	// epoch is the policy's table epoch the copy holds.
+	epoch int64
 
 	syncedAt atomic.Int64 // unix nanoseconds of the last successful check
 }
@@ -186,6 +188,9 @@ func (r *Replica) sync(ctx context.Context, t *replicaTable, p Policy) error {
 	defer t.loadMu.Unlock()
 	t.mu.RLock()
 	after := t.revision
+	if p.TableEpoch != t.epoch {
+		after = 0 // the table was replaced: read it whole
+	}
 	t.mu.RUnlock()
 	var rows []QRow
 	if err := r.source.QRowsSince(ctx, p.ID, after, func(row QRow) { rows = append(rows, row) }); err != nil {
@@ -201,9 +206,14 @@ func (r *Replica) sync(ctx context.Context, t *replicaTable, p Policy) error {
 func (t *replicaTable) apply(p Policy, rows []QRow) {
 	if len(p.Actions) != len(t.policy.Actions) {
 		// Actions only change while nothing is stored, so there is nothing to keep.
-		t.states = map[string]*stateValues{}
-		t.pairs, t.visits = 0, 0
-		clear(t.pairsByVisits)
+		t.clear()
+	}
+	if p.TableEpoch != t.epoch {
+		// A restore or import replaced the table and rows were read whole:
+		// drop rows it no longer has. Every row up to p's revision was
+		// committed before p was read, so the rows hold at least that.
+		t.clear()
+		t.epoch, t.revision = p.TableEpoch, p.Revision
 	}
 	t.policy, t.index = p, p.ActionIndex()
 	n := len(p.Actions)
@@ -229,6 +239,13 @@ func (t *replicaTable) apply(p Policy, rows []QRow) {
 		sv.visits[row.Action] = row.Visits
 		t.revision = max(t.revision, row.Revision)
 	}
+}
+
+// clear empties the table and its visit counts.
+func (t *replicaTable) clear() {
+	t.states = map[string]*stateValues{}
+	t.pairs, t.visits = 0, 0
+	clear(t.pairsByVisits)
 }
 
 // Refresh brings one policy's table up to date, if this process holds it.
@@ -274,7 +291,7 @@ func (r *Replica) RefreshAll(ctx context.Context) error {
 			continue
 		}
 		t.mu.RLock()
-		current := t.revision >= p.Revision && t.policy.UpdatedAt.Equal(p.UpdatedAt)
+		current := t.revision >= p.Revision && t.policy.UpdatedAt.Equal(p.UpdatedAt) && t.epoch == p.TableEpoch
 		t.mu.RUnlock()
 		if current {
 			t.syncedAt.Store(time.Now().UnixNano())

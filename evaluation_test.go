@@ -1,0 +1,239 @@
+package main
+
+import (
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"reflect"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/qtally/qtally/internal/cardgame"
+	"github.com/qtally/qtally/storage/pgtest"
+)
+
+type interval struct {
+	Low  float64 `json:"low"`
+	High float64 `json:"high"`
+}
+
+type evaluationResult struct {
+	Ordinary struct {
+		Estimate float64  `json:"estimate"`
+		Interval interval `json:"interval"`
+	} `json:"ordinary"`
+	Weighted struct {
+		Estimate float64  `json:"estimate"`
+		Interval interval `json:"interval"`
+	} `json:"weighted"`
+	EffectiveSampleSize          float64  `json:"effective_sample_size"`
+	BehaviourMeanReturn          float64  `json:"behaviour_mean_return"`
+	EpisodesRead                 int64    `json:"episodes_read"`
+	EpisodesUsed                 int64    `json:"episodes_used"`
+	EpisodesWithoutProbabilities int64    `json:"episodes_without_probabilities"`
+	ZeroWeightEpisodes           int64    `json:"zero_weight_episodes"`
+	Seed                         int64    `json:"seed"`
+	Notes                        []string `json:"notes"`
+}
+
+type progress struct {
+	Phase string `json:"phase"`
+	Done  int64  `json:"done"`
+	Total int64  `json:"total"`
+}
+
+type jobView[R any] struct {
+	ID       int64    `json:"id"`
+	Status   string   `json:"status"`
+	Progress progress `json:"progress"`
+	Result   *R       `json:"result"`
+	Error    string   `json:"error"`
+	Episodes struct {
+		Episodes int64 `json:"episodes"`
+	} `json:"episodes"`
+}
+
+// startJob posts a job and follows it to its end, returning the final view
+// and every progress report seen on the way.
+func startJob[R any](s *service, path string, body any, within time.Duration) (jobView[R], []progress) {
+	s.t.Helper()
+	r := s.call("POST", path, body, 202)
+	var job jobView[R]
+	r.decode(s.t, &job)
+	loc := r.Header.Get("Location")
+	if want := fmt.Sprintf("%s/%d", path, job.ID); loc != want {
+		s.t.Fatalf("Location %q, want %q", loc, want)
+	}
+	var seen []progress
+	waitFor(s.t, within, "job "+loc+" to end", func() bool {
+		s.call("GET", loc, nil, 200).decode(s.t, &job)
+		if len(seen) == 0 || seen[len(seen)-1] != job.Progress {
+			seen = append(seen, job.Progress)
+		}
+		return job.Status == "succeeded" || job.Status == "failed"
+	})
+	return job, seen
+}
+
+// cardGameTable is a CSV table whose greedy policy is the target of the
+// book's Example 5.4, "stick only on 20 or 21", on every reachable state.
+func cardGameTable() string {
+	var b strings.Builder
+	b.WriteString("state,action,q,visits\n")
+	for player := 12; player <= 21; player++ {
+		for _, ace := range []bool{false, true} {
+			for dealer := 1; dealer <= 10; dealer++ {
+				key := cardgame.State{Player: player, UsableAce: ace, Dealer: dealer}.Key()
+				stick := 0
+				if player >= 20 {
+					stick = 1
+				}
+				fmt.Fprintf(&b, "%s,stick,%d,1\n%s,hit,%d,1\n", key, stick, key, 1-stick)
+			}
+		}
+	}
+	return b.String()
+}
+
+// cardGameEpisodes plays n games from the Example 5.4 state with the
+// uniformly random behaviour, each step carrying its probability 0.5.
+func cardGameEpisodes(rng *rand.Rand, prefix string, n int) []episodeJSON {
+	half := cardgame.BehaviourProbability
+	eps := make([]episodeJSON, n)
+	for i := range eps {
+		steps := cardgame.PlayFrom(cardgame.ExampleStart, cardgame.Random(rng), rng)
+		ep := episodeJSON{ID: fmt.Sprintf("%s-%d", prefix, i)}
+		for _, st := range steps {
+			ep.Steps = append(ep.Steps, stepJSON{State: st.State.Key(), Action: st.Action, Reward: st.Reward, Probability: &half})
+		}
+		eps[i] = ep
+	}
+	return eps
+}
+
+// Sutton & Barto, Reinforcement Learning: An Introduction, 2nd ed.,
+// Example 5.4: the card game state "player sum 13 with a usable ace, dealer
+// showing 2" has value -0.27726 under "stick only on 20 or 21" (the book's
+// figure). From 100,000 episodes of the uniformly random behaviour, posted
+// with their probabilities, the weighted importance-sampling estimate must
+// be within 0.02 of it and the ordinary estimate's 95% interval must cover
+// it. The target is made the greedy policy of an imported table, frozen as
+// a snapshot while training changes the live table; after restoring the
+// snapshot the live table must evaluate identically.
+func TestOffPolicyEvaluationReproducesTheBooksExample(t *testing.T) {
+	const episodes, perRequest = 100_000, 25_000
+	s := startService(t, pgtest.NewDatabase(t), "serve",
+		"--max-episodes-per-request", fmt.Sprint(perRequest), "--batch-episodes", "5000")
+	s.call("PUT", "/v1/policies/cards", map[string]any{"actions": cardgame.Actions, "gamma": 1, "alpha": 0.05}, 201)
+	s.send("PUT", "/v1/policies/cards/table", "text/csv", []byte(cardGameTable()), false)
+	s.call("POST", "/v1/policies/cards/snapshots", map[string]any{"name": "stick-on-20"}, 201)
+
+	rng := rand.New(rand.NewPCG(5, 4))
+	start := time.Now()
+	for b := range episodes / perRequest {
+		r := s.send("POST", "/v1/policies/cards/episodes", "application/x-ndjson", ndjson(t, cardGameEpisodes(rng, fmt.Sprint(b), perRequest)), false)
+		if r.Status != 202 {
+			t.Fatalf("batch %d: %d %s", b, r.Status, r.Body)
+		}
+	}
+	t.Logf("posted %d episodes in %v", episodes, time.Since(start))
+
+	start = time.Now()
+	job, seen := startJob[evaluationResult](s, "/v1/policies/cards/evaluations",
+		map[string]any{"target": map[string]any{"table": "stick-on-20"}, "seed": 2024}, 2*time.Minute)
+	if job.Status != "succeeded" {
+		t.Fatalf("evaluation %s: %s", job.Status, job.Error)
+	}
+	res := *job.Result
+	t.Logf("evaluated in %v; progress seen: %v", time.Since(start), seen)
+	t.Logf("weighted %.5f [%.5f, %.5f]; ordinary %.5f [%.5f, %.5f]; book %.5f; ESS %.1f; zero-weight %d of %d; behaviour's mean return %.4f",
+		res.Weighted.Estimate, res.Weighted.Interval.Low, res.Weighted.Interval.High,
+		res.Ordinary.Estimate, res.Ordinary.Interval.Low, res.Ordinary.Interval.High, cardgame.ExampleStartValue,
+		res.EffectiveSampleSize, res.ZeroWeightEpisodes, res.EpisodesUsed, res.BehaviourMeanReturn)
+	if math.Abs(res.Weighted.Estimate-cardgame.ExampleStartValue) > 0.02 {
+		t.Errorf("weighted estimate %.5f is not within 0.02 of the book's %.5f", res.Weighted.Estimate, cardgame.ExampleStartValue)
+	}
+	if !(res.Ordinary.Interval.Low <= cardgame.ExampleStartValue && cardgame.ExampleStartValue <= res.Ordinary.Interval.High) {
+		t.Errorf("ordinary interval [%.5f, %.5f] misses the book's %.5f", res.Ordinary.Interval.Low, res.Ordinary.Interval.High, cardgame.ExampleStartValue)
+	}
+	if res.EpisodesRead != episodes || res.EpisodesUsed != episodes || res.EpisodesWithoutProbabilities != 0 || job.Episodes.Episodes != episodes {
+		t.Errorf("episode counts: %+v, window %d", res, job.Episodes.Episodes)
+	}
+	// Only games whose every random choice matched the target count: far
+	// fewer than all, far more than none; the weights' worth is below that.
+	if res.ZeroWeightEpisodes < episodes/2 || res.ZeroWeightEpisodes > episodes-episodes/20 ||
+		!(res.EffectiveSampleSize > 100 && res.EffectiveSampleSize < float64(episodes-res.ZeroWeightEpisodes)) {
+		t.Errorf("zero-weight episodes %d, effective sample size %.1f", res.ZeroWeightEpisodes, res.EffectiveSampleSize)
+	}
+	if last := seen[len(seen)-1]; last.Phase != "done" || last.Done != 1000 || last.Total != 1000 {
+		t.Errorf("final progress %+v, want done 1000 of 1000 resamples", last)
+	}
+
+	// Training has moved the live table away; the restored snapshot, now
+	// live, must give exactly the same answer with the same seed.
+	s.waitTrained("cards", episodes)
+	s.call("POST", "/v1/policies/cards/snapshots/stick-on-20/restore", nil, 200)
+	again, _ := startJob[evaluationResult](s, "/v1/policies/cards/evaluations",
+		map[string]any{"target": map[string]any{"table": "live", "mode": "greedy"}, "seed": 2024, "window": map[string]any{"last": episodes}}, 2*time.Minute)
+	if again.Status != "succeeded" || !reflect.DeepEqual(*again.Result, res) {
+		t.Fatalf("live table after restore: %s %s %+v, snapshot gave %+v", again.Status, again.Error, again.Result, res)
+	}
+}
+
+// Episodes without behaviour probabilities are counted and left out, a
+// window with none usable is refused with a message saying why, and
+// windows select the episodes they name.
+func TestEvaluationWindowsAndUnusableEpisodes(t *testing.T) {
+	s := startService(t, pgtest.NewDatabase(t))
+	s.call("PUT", "/v1/policies/nudges", map[string]any{"actions": []string{"remind", "skip"}, "gamma": 0.5}, 201)
+	s.call("PUT", "/v1/policies/nudges/table", map[string]any{"rows": []tableRow{{"cart", "remind", 1, 1}, {"cart", "skip", 0, 1}}}, 200)
+	// Three episodes without probabilities first.
+	s.post("nudges", oneStep("plain-1", "cart", "remind", 1), oneStep("plain-2", "cart", "skip", 1), oneStep("plain-3", "cart", "remind", 0))
+	r := s.call("POST", "/v1/policies/nudges/evaluations", map[string]any{}, 400)
+	if !strings.Contains(string(r.Body), "none of its 3 episodes carries behaviour probabilities") {
+		t.Fatalf("no usable episodes: %s", r.Body)
+	}
+	p := func(x float64) *float64 { return &x }
+	s.post("nudges",
+		episodeJSON{ID: "p-1", Steps: []stepJSON{{State: "cart", Action: "remind", Reward: 1, Probability: p(0.8)}, {State: "cart", Action: "remind", Reward: 2, Probability: p(0.5)}}},
+		episodeJSON{ID: "p-2", Steps: []stepJSON{{State: "cart", Action: "skip", Reward: 4, Probability: p(0.2)}}},
+		// A step without its probability leaves the whole episode out.
+		episodeJSON{ID: "p-3", Steps: []stepJSON{{State: "cart", Action: "remind", Reward: 1, Probability: p(0.8)}, {State: "cart", Action: "remind", Reward: 9}}})
+
+	job, _ := startJob[evaluationResult](s, "/v1/policies/nudges/evaluations", map[string]any{"seed": 1, "resamples": 200}, 30*time.Second)
+	res := job.Result
+	// Greedy target: remind with probability 1. p-1: rho = (1/0.8)(1/0.5) =
+	// 2.5, G0 = 1 + 0.5*2 = 2; p-2: rho = 0, G0 = 4. Ordinary = (2.5*2 + 0)/2
+	// = 2.5; weighted = 5/2.5 = 2; ESS = 2.5^2/2.5^2 = 1; behaviour mean 3.
+	if job.Status != "succeeded" || res.EpisodesRead != 6 || res.EpisodesUsed != 2 || res.EpisodesWithoutProbabilities != 4 ||
+		res.ZeroWeightEpisodes != 1 || res.Ordinary.Estimate != 2.5 || res.Weighted.Estimate != 2 || res.EffectiveSampleSize != 1 ||
+		res.BehaviourMeanReturn != 3 || len(res.Notes) != 1 || !strings.Contains(res.Notes[0], "4 episodes lack a behaviour probability") {
+		t.Fatalf("evaluation: %s %s %+v", job.Status, job.Error, res)
+	}
+	// An epsilon-soft target with epsilon 0.5: remind 0.75, skip 0.25.
+	// p-1: rho = (0.75/0.8)(0.75/0.5) = 1.40625, G0 = 2; p-2: 0.25/0.2 = 1.25, G0 = 4.
+	job, _ = startJob[evaluationResult](s, "/v1/policies/nudges/evaluations",
+		map[string]any{"target": map[string]any{"mode": "explore", "epsilon": 0.5}, "seed": 1, "resamples": 200}, 30*time.Second)
+	if res := job.Result; job.Status != "succeeded" || math.Abs(res.Ordinary.Estimate-(1.40625*2+1.25*4)/2) > 1e-12 ||
+		math.Abs(res.Weighted.Estimate-(1.40625*2+1.25*4)/(1.40625+1.25)) > 1e-12 {
+		t.Fatalf("epsilon-soft evaluation: %s %+v", job.Status, job.Result)
+	}
+	// The last two episodes: p-2 is usable, p-3 is not.
+	job, _ = startJob[evaluationResult](s, "/v1/policies/nudges/evaluations", map[string]any{"window": map[string]any{"last": 2}, "seed": 1}, 30*time.Second)
+	if res := job.Result; job.Status != "succeeded" || res.EpisodesRead != 2 || res.EpisodesUsed != 1 || res.ZeroWeightEpisodes != 1 || len(res.Notes) != 2 {
+		t.Fatalf("last 2: %s %+v", job.Status, res)
+	}
+	// A time range before anything was stored holds nothing.
+	r = s.call("POST", "/v1/policies/nudges/evaluations", map[string]any{"window": map[string]any{"until": "2001-01-01T00:00:00Z"}}, 400)
+	if !strings.Contains(string(r.Body), "holds no stored episodes") {
+		t.Fatalf("empty window: %s", r.Body)
+	}
+	s.call("POST", "/v1/policies/nudges/evaluations", map[string]any{"window": map[string]any{"last": 2, "since": "2001-01-01T00:00:00Z"}}, 400)
+	s.call("POST", "/v1/policies/nudges/evaluations", map[string]any{"target": map[string]any{"table": "gone"}}, 404)
+	s.call("POST", "/v1/policies/nudges/evaluations", map[string]any{"target": map[string]any{"epsilon": 0.1}}, 400)
+	s.call("PUT", "/v1/policies/other", map[string]any{"actions": []string{"a", "b"}}, 201)
+	s.call("POST", "/v1/policies/nudges/evaluations", map[string]any{"target": map[string]any{"policy": "other"}}, 409)
+	s.call("GET", "/v1/policies/nudges/evaluations/999", nil, 404)
+	s.call("GET", "/v1/policies/nudges/replays/1", nil, 404) // job 1 is an evaluation
+}

@@ -1,0 +1,50 @@
+package main
+
+import (
+	"context"
+	"log/slog"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+
+	"github.com/qtally/qtally/metrics"
+	"github.com/qtally/qtally/storage"
+	"github.com/qtally/qtally/training"
+)
+
+// Job runner pacing: progress is written (and the runner shows it is
+// alive) every jobReportInterval; a job not heard of for --job-stale-after
+// is taken over by another runner, up to jobMaxAttempts claims in all.
+const (
+	jobReportInterval = time.Second
+	jobMaxAttempts    = 3
+)
+
+// startHousekeeping starts the worker role's background work besides
+// training: the job runner (evaluations, replays) and episode pruning.
+func startHousekeeping(cfg serviceConfig, db *storage.DB, reg prometheus.Registerer, logger *slog.Logger,
+	subs map[string]storage.Subscription, goBackground func(string, func(context.Context) error)) {
+	jobWake := make(chan struct{}, 1)
+	subs[storage.ChannelJobs] = storage.Subscription{Notify: func(int32) { nudge(jobWake) }, CatchUp: func() { nudge(jobWake) }}
+	runner := &training.JobRunner{
+		Jobs: db, Evaluations: db, Replays: db, BatchEpisodes: cfg.BatchEpisodes,
+		Wake: jobWake, PollInterval: cfg.PollInterval,
+		ReportInterval: jobReportInterval, StaleAfter: cfg.JobStaleAfter, MaxAttempts: jobMaxAttempts,
+		Logger: logger,
+	}
+	goBackground("job runner", runner.Run)
+
+	if cfg.EpisodeRetention <= 0 {
+		return
+	}
+	retention := metrics.NewRetention(reg)
+	goBackground("episode pruning", func(ctx context.Context) error {
+		return every(ctx, cfg.PruneInterval, func() {
+			pruned, err := db.PruneEpisodes(ctx, cfg.EpisodeRetention, cfg.PruneBatch)
+			retention.ObservePruned(pruned)
+			if err != nil && ctx.Err() == nil {
+				logger.Warn("pruning episodes", "error", err)
+			}
+		})
+	})
+}

@@ -1,0 +1,341 @@
+package storage
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"slices"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/qtally/qtally/training"
+)
+
+// ChannelJobs is notified when a job is queued; the payload is its policy id.
+const ChannelJobs = "qtally_jobs"
+
+// resolveSpan turns a window into the sequence numbers it covers now, and
+// counts its episodes and those carrying behaviour probabilities.
+func resolveSpan(ctx context.Context, q pgx.Tx, policyID int32, w training.EpisodeWindow) (training.EpisodeSpan, int64, error) {
+	span := training.EpisodeSpan{Since: w.Since, Until: w.Until}
+	var withProbabilities int64
+	var row pgx.Row
+	if w.Last > 0 {
+		row = q.QueryRow(ctx, `
+			SELECT coalesce(min(seq), 0), coalesce(max(seq), 0), count(*), count(*) FILTER (WHERE has_probabilities)
+			FROM (SELECT seq, probabilities IS NOT NULL AS has_probabilities FROM episodes
+			      WHERE policy_id = $1 ORDER BY seq DESC LIMIT $2) last`, policyID, w.Last)
+	} else {
+		row = q.QueryRow(ctx, `
+			SELECT coalesce(min(seq), 0), coalesce(max(seq), 0), count(*), count(*) FILTER (WHERE probabilities IS NOT NULL)
+			FROM episodes WHERE policy_id = $1
+			  AND ($2::timestamptz IS NULL OR received_at >= $2) AND ($3::timestamptz IS NULL OR received_at < $3)`,
+			policyID, w.Since, w.Until)
+	}
+	if err := row.Scan(&span.FirstSeq, &span.LastSeq, &span.Episodes, &withProbabilities); err != nil {
+		return span, 0, fmt.Errorf("resolve episode window: %w", err)
+	}
+	if span.Episodes == 0 {
+		return span, 0, training.Invalid(-1, -1, "window", "holds no stored episodes")
+	}
+	return span, withProbabilities, nil
+}
+
+// queueJob stores a job and wakes the runners.
+func queueJob(ctx context.Context, tx pgx.Tx, policyID int32, kind training.JobKind, spec any) (int64, error) {
+	doc, err := json.Marshal(spec)
+	if err != nil {
+		return 0, fmt.Errorf("encode job: %w", err)
+	}
+	var id int64
+	if err := tx.QueryRow(ctx, `INSERT INTO jobs (policy_id, kind, spec) VALUES ($1, $2, $3) RETURNING job_id`,
+		policyID, string(kind), doc).Scan(&id); err != nil {
+		return 0, fmt.Errorf("queue job: %w", err)
+	}
+	if _, err := tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelJobs, policyID); err != nil {
+		return 0, fmt.Errorf("notify: %w", err)
+	}
+	return id, nil
+}
+
+// StartEvaluation checks an evaluation request against what is stored,
+// resolves its window and queues it.
+func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (training.JobView, error) {
+	var id int64
+	err := db.WithTx(ctx, func(tx pgx.Tx) error {
+		p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1`, policy))
+		if errors.Is(err, pgx.ErrNoRows) {
+			return training.NotFoundf("no policy named %q", policy)
+		}
+		if err != nil {
+			return fmt.Errorf("read policy: %w", err)
+		}
+		tp := p
+		if name := req.Target.Policy; name != "" && name != policy {
+			tp, err = scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1`, name))
+			if errors.Is(err, pgx.ErrNoRows) {
+				return training.NotFoundf("no target policy named %q", name)
+			}
+			if err != nil {
+				return fmt.Errorf("read target policy: %w", err)
+			}
+		}
+		h, err := readTableHeader(ctx, tx, tp, req.Target.Table)
+		if err != nil {
+			return err
+		}
+		if !slices.Equal(h.actions, p.Actions) {
+			return training.Conflictf("the target table lists the actions %q, policy %q's episodes %q: a target must have the same actions in the same order", h.actions, p.Name, p.Actions)
+		}
+		span, usable, err := resolveSpan(ctx, tx, p.ID, req.Window)
+		if err != nil {
+			return err
+		}
+		if usable == 0 {
+			return training.Invalid(-1, -1, "window", "none of its %d episodes carries behaviour probabilities, so none says anything about another policy; post steps with \"probability\" (the chance the behaviour gave the action taken)", span.Episodes)
+		}
+		id, err = queueJob(ctx, tx, p.ID, training.EvaluationJobKind,
+			training.EvaluationJob{Request: req, PolicyID: p.ID, TargetPolicyID: tp.ID, Episodes: span})
+		return err
+	})
+	if err != nil {
+		return training.JobView{}, err
+	}
+	return db.Job(ctx, policy, training.EvaluationJobKind, id)
+}
+
+// StartReplay creates the replay's target policy and queues the replay, in
+// one transaction.
+func (db *DB) StartReplay(ctx context.Context, policy string, req training.ReplayRequest) (training.JobView, error) {
+	var id int64
+	err := db.WithTx(ctx, func(tx pgx.Tx) error {
+		p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1 FOR KEY SHARE`, policy))
+		if errors.Is(err, pgx.ErrNoRows) {
+			return training.NotFoundf("no policy named %q", policy)
+		}
+		if err != nil {
+			return fmt.Errorf("read policy: %w", err)
+		}
+		s, err := req.TargetSettings(p.Settings)
+		if err != nil {
+			return err
+		}
+		span, _, err := resolveSpan(ctx, tx, p.ID, req.Window)
+		if err != nil {
+			return err
+		}
+		var targetID int32
+		err = tx.QueryRow(ctx, `
+			INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q)
+			VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9) RETURNING policy_id`,
+			req.Target, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ).
+			Scan(&targetID)
+		if isUniqueViolation(err) {
+			return training.Conflictf("a policy named %q exists already; a replay creates a new policy", req.Target)
+		}
+		if err != nil {
+			return fmt.Errorf("create target policy: %w", err)
+		}
+		id, err = queueJob(ctx, tx, p.ID, training.ReplayJobKind,
+			training.ReplayJob{Request: req, PolicyID: p.ID, TargetPolicyID: targetID, Episodes: span})
+		return err
+	})
+	if err != nil {
+		return training.JobView{}, err
+	}
+	return db.Job(ctx, policy, training.ReplayJobKind, id)
+}
+
+// Job reads a job of a policy.
+func (db *DB) Job(ctx context.Context, policy string, kind training.JobKind, id int64) (training.JobView, error) {
+	p, err := db.PolicyByName(ctx, policy)
+	if err != nil {
+		return training.JobView{}, err
+	}
+	v := training.JobView{Policy: p.Name}
+	var status, kindName string
+	var progress, episodes []byte
+	var errText *string
+	err = db.pool.QueryRow(ctx, `
+		SELECT job_id, kind, status, progress, spec->'request', spec->'episodes', result, error, created_at, started_at, finished_at
+		FROM jobs WHERE policy_id = $1 AND job_id = $2 AND kind = $3`, p.ID, id, string(kind)).
+		Scan(&v.ID, &kindName, &status, &progress, &v.Request, &episodes, &v.Result, &errText, &v.CreatedAt, &v.StartedAt, &v.FinishedAt)
+	if errors.Is(err, pgx.ErrNoRows) {
+		return v, training.NotFoundf("policy %q has no %s job %d", policy, kind, id)
+	}
+	if err != nil {
+		return v, mapError(fmt.Errorf("read job: %w", err))
+	}
+	v.Kind, v.Status = training.JobKind(kindName), training.JobStatus(status)
+	if errText != nil {
+		v.Error = *errText
+	}
+	if err := json.Unmarshal(progress, &v.Progress); err != nil {
+		return v, fmt.Errorf("decode job progress: %w", err)
+	}
+	if err := json.Unmarshal(episodes, &v.Episodes); err != nil {
+		return v, fmt.Errorf("decode job window: %w", err)
+	}
+	return v, nil
+}
+
+// ClaimJob implements training.JobStore.
+func (db *DB) ClaimJob(ctx context.Context, staleAfter time.Duration, maxAttempts int) (training.Job, bool, error) {
+	var job training.Job
+	found := false
+	err := db.WithTx(ctx, func(tx pgx.Tx) error {
+		if _, err := tx.Exec(ctx, `
+			UPDATE jobs SET status = 'failed', finished_at = now(),
+			       error = format('the job was started %s times and its runner stopped each time; post it again', attempts)
+			WHERE status = 'running' AND heartbeat_at < now() - make_interval(secs => $1) AND attempts >= $2`,
+			staleAfter.Seconds(), maxAttempts); err != nil {
+			return fmt.Errorf("fail abandoned jobs: %w", err)
+		}
+		var kind string
+		err := tx.QueryRow(ctx, `
+			UPDATE jobs j SET status = 'running', attempts = j.attempts + 1, progress = '{"phase": "starting", "done": 0, "total": 0}',
+			       started_at = coalesce(j.started_at, now()), heartbeat_at = now()
+			FROM (SELECT policy_id, job_id FROM jobs
+			      WHERE status = 'queued' OR (status = 'running' AND heartbeat_at < now() - make_interval(secs => $1))
+			      ORDER BY job_id LIMIT 1 FOR UPDATE SKIP LOCKED) next
+			WHERE j.policy_id = next.policy_id AND j.job_id = next.job_id
+			RETURNING j.job_id, j.policy_id, j.kind, j.spec, j.attempts`, staleAfter.Seconds()).
+			Scan(&job.ID, &job.PolicyID, &kind, &job.Spec, &job.Attempts)
+		if errors.Is(err, pgx.ErrNoRows) {
+			return nil
+		}
+		if err != nil {
+			return fmt.Errorf("claim job: %w", err)
+		}
+		job.Kind, found = training.JobKind(kind), true
+		return nil
+	})
+	return job, found, err
+}
+
+// ReportProgress implements training.JobStore. A runner whose job was
+// claimed again by another (it looked dead) changes nothing.
+func (db *DB) ReportProgress(ctx context.Context, job training.Job, p training.Progress) error {
+	doc, err := json.Marshal(p)
+	if err != nil {
+		return fmt.Errorf("encode progress: %w", err)
+	}
+	_, err = db.pool.Exec(ctx, `UPDATE jobs SET progress = $3, heartbeat_at = now()
+		WHERE policy_id = $1 AND job_id = $2 AND attempts = $4 AND status = 'running'`, job.PolicyID, job.ID, doc, job.Attempts)
+	return mapError(err)
+}
+
+// FinishJob implements training.JobStore.
+func (db *DB) FinishJob(ctx context.Context, job training.Job, p training.Progress, result any, failure string) error {
+	progress, err := json.Marshal(p)
+	if err != nil {
+		return fmt.Errorf("encode progress: %w", err)
+	}
+	status, doc := training.JobFailed, []byte(nil)
+	if failure == "" {
+		status = training.JobSucceeded
+		if doc, err = json.Marshal(result); err != nil {
+			return fmt.Errorf("encode result: %w", err)
+		}
+	}
+	_, err = db.pool.Exec(ctx, `UPDATE jobs SET status = $3, progress = $4, result = $5, error = nullif($6, ''), finished_at = now(), heartbeat_at = now()
+		WHERE policy_id = $1 AND job_id = $2 AND attempts = $7 AND status = 'running'`,
+		job.PolicyID, job.ID, string(status), progress, doc, failure, job.Attempts)
+	return mapError(err)
+}
+
+// ReleaseJob implements training.JobStore; the claim does not count as an
+// attempt.
+func (db *DB) ReleaseJob(ctx context.Context, job training.Job) error {
+	_, err := db.pool.Exec(ctx, `UPDATE jobs SET status = 'queued', attempts = attempts - 1, heartbeat_at = NULL
+		WHERE policy_id = $1 AND job_id = $2 AND attempts = $3 AND status = 'running'`, job.PolicyID, job.ID, job.Attempts)
+	if err == nil {
+		_, err = db.pool.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelJobs, job.PolicyID)
+	}
+	return mapError(err)
+}
+
+// readPage is how many episodes ReadEpisodes fetches at a time.
+const readPage = 2000
+
+// ReadEpisodes implements training.EpisodeReader. A cursor in one
+// read-only transaction serves the pages: one ordered scan for the whole
+// span whatever the table's statistics say (a fresh bulk load can make
+// re-planned per-page queries sort the whole span for every page), one
+// consistent view, and no result set open while fn runs.
+func (db *DB) ReadEpisodes(ctx context.Context, policyID int32, span training.EpisodeSpan, fn func(training.StoredEpisode) error) error {
+	return db.readTx(ctx, func(tx pgx.Tx) error {
+		_, err := tx.Exec(ctx, `
+			DECLARE window_episodes NO SCROLL CURSOR FOR
+			SELECT seq, received_at, episode_id, states, actions, rewards, probabilities FROM episodes
+			WHERE policy_id = $1 AND seq >= $2 AND seq <= $3
+			  AND ($4::timestamptz IS NULL OR received_at >= $4) AND ($5::timestamptz IS NULL OR received_at < $5)
+			ORDER BY seq`, policyID, span.FirstSeq, span.LastSeq, span.Since, span.Until)
+		if err != nil {
+			return fmt.Errorf("read episodes: %w", err)
+		}
+		for {
+			rows, err := tx.Query(ctx, fmt.Sprintf(`FETCH %d FROM window_episodes`, readPage))
+			if err != nil {
+				return fmt.Errorf("read episodes: %w", err)
+			}
+			page, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.StoredEpisode, error) {
+				var ep training.StoredEpisode
+				err := r.Scan(&ep.Seq, &ep.ReceivedAt, &ep.ID, &ep.States, &ep.Actions, &ep.Rewards, &ep.Probabilities)
+				return ep, err
+			})
+			if err != nil {
+				return fmt.Errorf("read episodes: %w", err)
+			}
+			for _, ep := range page {
+				if err := fn(ep); err != nil {
+					return err
+				}
+			}
+			if len(page) < readPage {
+				return nil
+			}
+		}
+	})
+}
+
+// ClearTable implements training.ReplayStore.
+func (db *DB) ClearTable(ctx context.Context, policyID int32) error {
+	return db.WithTx(ctx, func(tx pgx.Tx) error {
+		if err := lockTraining(ctx, tx, policyID); err != nil {
+			return err
+		}
+		if _, _, err := replaceTable(ctx, tx, policyID); err != nil {
+			return err
+		}
+		return notifyPolicy(ctx, tx, policyID)
+	})
+}
+
+// LearnBatch implements training.ReplayStore with the worker's own reads
+// and writes; it waits for the policy's training lock rather than skipping.
+func (db *DB) LearnBatch(ctx context.Context, policyID int32, episodes []training.StoredEpisode, learn func(training.BatchInput) training.BatchResult) (int64, training.BatchResult, error) {
+	var revision int64
+	var result training.BatchResult
+	err := db.WithTx(ctx, func(tx pgx.Tx) error {
+		if err := lockTraining(ctx, tx, policyID); err != nil {
+			return err
+		}
+		p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE policy_id = $1`, policyID))
+		if err != nil {
+			return fmt.Errorf("read policy %d: %w", policyID, err)
+		}
+		current, err := estimatesOfStates(ctx, tx, policyID, training.TouchedStates(episodes))
+		if err != nil {
+			return err
+		}
+		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}
+		result = learn(in)
+		// No episodes of this policy to mark: they belong to the source.
+		revision, err = writeBatch(ctx, tx, policyID, nil, result, db.history, training.SummarizeBatch(in, result))
+		return err
+	})
+	return revision, result, err
+}

@@ -1,0 +1,285 @@
+package training
+
+import (
+	"context"
+	"fmt"
+	"math/rand/v2"
+	"slices"
+	"time"
+)
+
+// EpisodeWindow selects a policy's stored episodes: the last Last of them,
+// or those received in [Since, Until) (either end may be open). The zero
+// window is every stored episode.
+type EpisodeWindow struct {
+	Last  int64      `json:"last,omitempty"`
+	Since *time.Time `json:"since,omitempty"`
+	Until *time.Time `json:"until,omitempty"`
+}
+
+// MaxWindowEpisodes bounds the "last" count of a window.
+const MaxWindowEpisodes = 100_000_000
+
+// Validate checks the window's fields.
+func (w EpisodeWindow) Validate() error {
+	var l problemList
+	w.check(&l)
+	return l.err()
+}
+
+func (w EpisodeWindow) check(l *problemList) {
+	if w.Last < 0 || w.Last > MaxWindowEpisodes {
+		l.add(-1, -1, "window.last", "must be between 1 and %d", MaxWindowEpisodes)
+	}
+	if w.Last > 0 && (w.Since != nil || w.Until != nil) {
+		l.add(-1, -1, "window", "give either last or since/until, not both")
+	}
+	if w.Since != nil && w.Until != nil && !w.Since.Before(*w.Until) {
+		l.add(-1, -1, "window.until", "must be later than since")
+	}
+}
+
+// EpisodeSpan is a window resolved, when a job is posted, to the arrival
+// sequence numbers it covers, so that a job run again reads the same
+// episodes (less any pruned meanwhile) however many arrived since.
+type EpisodeSpan struct {
+	FirstSeq int64      `json:"first_seq"`
+	LastSeq  int64      `json:"last_seq"`
+	Since    *time.Time `json:"since,omitempty"`
+	Until    *time.Time `json:"until,omitempty"`
+	// Episodes is how many the span held when it was resolved.
+	Episodes int64 `json:"episodes"`
+}
+
+// EvaluationTarget names the policy to evaluate: greedy (or epsilon-soft)
+// with respect to a Q table.
+type EvaluationTarget struct {
+	// Policy owns the table; empty means the policy whose episodes are read.
+	// Its actions must be the same, in the same order.
+	Policy string `json:"policy,omitempty"`
+	// Table is LiveTable or a snapshot's name.
+	Table string `json:"table"`
+	// Mode is Greedy, or Explore for the epsilon-soft version.
+	Mode Mode `json:"mode"`
+	// Epsilon fixes explore mode's rate; without it the target policy's
+	// own rule applies per state, as choose uses it.
+	Epsilon *float64 `json:"epsilon,omitempty"`
+}
+
+// Bootstrap resample counts.
+const (
+	DefaultResamples = 1000
+	MaxResamples     = 20_000
+	// IntervalLevel is the coverage of reported intervals.
+	IntervalLevel = 0.95
+	// maxSeed keeps seeds exact in JSON numbers (IEEE doubles).
+	maxSeed = 1<<53 - 1
+)
+
+// EvaluationRequest asks for an off-policy estimate of a target policy's
+// expected return from stored episodes.
+type EvaluationRequest struct {
+	Target EvaluationTarget `json:"target"`
+	Window EpisodeWindow    `json:"window"`
+	// Resamples of the percentile bootstrap.
+	Resamples int `json:"resamples"`
+	// Seed makes the bootstrap repeatable; one is drawn when not given.
+	Seed *int64 `json:"seed,omitempty"`
+}
+
+// WithDefaults fills in what the client left out.
+func (r EvaluationRequest) WithDefaults() EvaluationRequest {
+	if r.Target.Table == "" {
+		r.Target.Table = LiveTable
+	}
+	if r.Target.Mode == "" {
+		r.Target.Mode = Greedy
+	}
+	if r.Resamples == 0 {
+		r.Resamples = DefaultResamples
+	}
+	if r.Seed == nil {
+		seed := rand.Int64N(maxSeed)
+		r.Seed = &seed
+	}
+	return r
+}
+
+// Validate checks a request with its defaults filled in.
+func (r EvaluationRequest) Validate() error {
+	var l problemList
+	if r.Target.Policy != "" {
+		if ValidatePolicyName(r.Target.Policy) != nil {
+			l.add(-1, -1, "target.policy", "is not a valid policy name")
+		}
+	}
+	if err := ValidateTableName("target.table", r.Target.Table); err != nil {
+		l.add(-1, -1, "target.table", "must be %q or a snapshot name", LiveTable)
+	}
+	switch r.Target.Mode {
+	case Greedy:
+		if r.Target.Epsilon != nil {
+			l.add(-1, -1, "target.epsilon", "applies to explore mode only")
+		}
+	case Explore:
+		if e := r.Target.Epsilon; e != nil && !(*e >= 0 && *e <= 1) {
+			l.add(-1, -1, "target.epsilon", "must be between 0 and 1")
+		}
+	default:
+		l.add(-1, -1, "target.mode", "must be %q or %q", Greedy, Explore)
+	}
+	if r.Resamples < 1 || r.Resamples > MaxResamples {
+		l.add(-1, -1, "resamples", "must be between 1 and %d", MaxResamples)
+	}
+	if r.Seed != nil && (*r.Seed < 0 || *r.Seed > maxSeed) {
+		l.add(-1, -1, "seed", "must be between 0 and %d", int64(maxSeed))
+	}
+	r.Window.check(&l)
+	return l.err()
+}
+
+// EvaluationJob is an evaluation as queued: the request with the policies
+// and episodes it was resolved to when posted.
+type EvaluationJob struct {
+	Request        EvaluationRequest `json:"request"`
+	PolicyID       int32             `json:"policy_id"`
+	TargetPolicyID int32             `json:"target_policy_id"`
+	Episodes       EpisodeSpan       `json:"episodes"`
+}
+
+// IntervalEstimate is one estimator's value and its bootstrap interval.
+type IntervalEstimate struct {
+	Estimate float64  `json:"estimate"`
+	Interval Interval `json:"interval"`
+}
+
+// EvaluationResult is the answer of an evaluation.
+type EvaluationResult struct {
+	// Ordinary and Weighted are the two importance-sampling estimates of
+	// the target's expected return G0.
+	Ordinary IntervalEstimate `json:"ordinary"`
+	Weighted IntervalEstimate `json:"weighted"`
+	// EffectiveSampleSize is (sum rho)^2 / sum rho^2.
+	EffectiveSampleSize float64 `json:"effective_sample_size"`
+	// BehaviourMeanReturn is the mean G0 of the episodes used: what the
+	// behaviour itself got.
+	BehaviourMeanReturn float64 `json:"behaviour_mean_return"`
+	// EpisodesRead were in the window; EpisodesUsed carried a behaviour
+	// probability at every step; ZeroWeightEpisodes (among those used) took
+	// an action the target never takes.
+	EpisodesRead                 int64    `json:"episodes_read"`
+	EpisodesUsed                 int64    `json:"episodes_used"`
+	EpisodesWithoutProbabilities int64    `json:"episodes_without_probabilities"`
+	ZeroWeightEpisodes           int64    `json:"zero_weight_episodes"`
+	Level                        float64  `json:"level"`
+	Resamples                    int      `json:"resamples"`
+	Seed                         int64    `json:"seed"`
+	Notes                        []string `json:"notes"`
+}
+
+// Progress says how far a job is.
+type Progress struct {
+	Phase string `json:"phase"`
+	Done  int64  `json:"done"`
+	Total int64  `json:"total"`
+}
+
+// EpisodeReader reads a policy's stored episodes in a span, in arrival
+// order, calling fn for each; it holds no connection while fn runs.
+type EpisodeReader interface {
+	ReadEpisodes(ctx context.Context, policyID int32, span EpisodeSpan, fn func(StoredEpisode) error) error
+}
+
+// EvaluationSource is what an evaluation reads.
+type EvaluationSource interface {
+	EpisodeReader
+	PolicyByID(ctx context.Context, id int32) (Policy, error)
+	// LoadTable reads a policy's live table or one of its snapshots.
+	LoadTable(ctx context.Context, policyID int32, table string) (*QTable, error)
+}
+
+// Evaluate estimates the target's expected return from the episodes of the
+// job's span by ordinary and weighted importance sampling, with percentile
+// bootstrap intervals, reporting progress as it goes.
+func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, progress func(Progress)) (EvaluationResult, error) {
+	req := job.Request
+	p, err := src.PolicyByID(ctx, job.PolicyID)
+	if err != nil {
+		return EvaluationResult{}, err
+	}
+	tp := p
+	if job.TargetPolicyID != job.PolicyID {
+		if tp, err = src.PolicyByID(ctx, job.TargetPolicyID); err != nil {
+			return EvaluationResult{}, err
+		}
+	}
+	table, err := src.LoadTable(ctx, tp.ID, req.Target.Table)
+	if err != nil {
+		return EvaluationResult{}, err
+	}
+	if !slices.Equal(table.Actions, p.Actions) {
+		return EvaluationResult{}, Conflictf("the target table's actions %q differ from the actions %q of policy %q's episodes", table.Actions, p.Actions, p.Name)
+	}
+	target := NewTargetPolicy(table, req.Target.Mode, req.Target.Epsilon, tp.Settings)
+	res := EvaluationResult{Level: IntervalLevel, Resamples: req.Resamples, Seed: *req.Seed, Notes: []string{}}
+	var samples []WeightedReturn
+	var returns []float64
+	err = src.ReadEpisodes(ctx, p.ID, job.Episodes, func(ep StoredEpisode) error {
+		res.EpisodesRead++
+		if res.EpisodesRead%1000 == 0 {
+			progress(Progress{Phase: "reading episodes", Done: res.EpisodesRead, Total: job.Episodes.Episodes})
+		}
+		rho, ok := ImportanceRatio(ep.EpisodeRecord, target.Probability)
+		if !ok {
+			res.EpisodesWithoutProbabilities++
+			return nil
+		}
+		if !finite(rho) {
+			return Invalid(-1, -1, "window", "episode %q has an importance ratio too large to represent (%d steps); evaluate a window of shorter episodes", ep.ID, len(ep.States))
+		}
+		returns = Returns(ep.Rewards, p.Gamma, returns)
+		samples = append(samples, WeightedReturn{Ratio: rho, Return: returns[0]})
+		if rho == 0 {
+			res.ZeroWeightEpisodes++
+		}
+		return nil
+	})
+	if err != nil {
+		return EvaluationResult{}, err
+	}
+	res.EpisodesUsed = int64(len(samples))
+	switch {
+	case res.EpisodesRead == 0:
+		return res, Invalid(-1, -1, "window", "holds no stored episodes of policy %q", p.Name)
+	case len(samples) == 0:
+		return res, Invalid(-1, -1, "window", "none of its %d episodes carries a behaviour probability at every step, so none says anything about another policy; post steps with \"probability\" (the chance the behaviour gave the action taken)", res.EpisodesRead)
+	}
+	if res.EpisodesWithoutProbabilities > 0 {
+		res.Notes = append(res.Notes, fmt.Sprintf("%d episodes lack a behaviour probability on some step and were left out", res.EpisodesWithoutProbabilities))
+	}
+	if res.ZeroWeightEpisodes == res.EpisodesUsed {
+		res.Notes = append(res.Notes, "every episode used took some action the target never takes, so all weights are 0: the estimates are 0 by convention and say nothing; widen the window or evaluate an epsilon-soft target")
+	}
+	res.BehaviourMeanReturn = behaviourMean(samples)
+	res.Ordinary.Estimate = OrdinaryIS(samples)
+	res.Weighted.Estimate = WeightedIS(samples)
+	res.EffectiveSampleSize = EffectiveSampleSize(samples)
+	rng := rand.New(rand.NewPCG(uint64(*req.Seed), bootstrapStream))
+	total := int64(req.Resamples)
+	progress(Progress{Phase: "bootstrap", Done: 0, Total: total})
+	res.Ordinary.Interval, res.Weighted.Interval, err = BootstrapIS(ctx, samples, req.Resamples, IntervalLevel, rng, func(done int) {
+		progress(Progress{Phase: "bootstrap", Done: int64(done), Total: total})
+	})
+	if err != nil {
+		return EvaluationResult{}, err
+	}
+	if !finite(res.Ordinary.Estimate) || !finite(res.Ordinary.Interval.High) || !finite(res.Ordinary.Interval.Low) {
+		return EvaluationResult{}, Invalid(-1, -1, "window", "the importance-weighted returns overflow; evaluate a window of shorter episodes")
+	}
+	progress(Progress{Phase: "done", Done: total, Total: total})
+	return res, nil
+}
+
+// bootstrapStream is the second PCG word of the bootstrap generator; the
+// seed is the first.
+const bootstrapStream = 0x626f6f74

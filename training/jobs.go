@@ -1,0 +1,216 @@
+package training
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"log/slog"
+	"sync"
+	"time"
+)
+
+// JobKind names a kind of background job.
+type JobKind string
+
+// Kinds of jobs.
+const (
+	EvaluationJobKind JobKind = "evaluation"
+	ReplayJobKind     JobKind = "replay"
+)
+
+// JobStatus is where a job stands.
+type JobStatus string
+
+// Job statuses.
+const (
+	JobQueued    JobStatus = "queued"
+	JobRunning   JobStatus = "running"
+	JobSucceeded JobStatus = "succeeded"
+	JobFailed    JobStatus = "failed"
+)
+
+// Job is a claimed job: what a runner needs to do it.
+type Job struct {
+	ID       int64
+	PolicyID int32
+	Kind     JobKind
+	// Spec is the kind's job document (EvaluationJob or ReplayJob).
+	Spec     json.RawMessage
+	Attempts int
+}
+
+// JobView is a job as clients see it.
+type JobView struct {
+	ID       int64     `json:"id"`
+	Kind     JobKind   `json:"kind"`
+	Policy   string    `json:"policy"`
+	Status   JobStatus `json:"status"`
+	Progress Progress  `json:"progress"`
+	// Request is the request as normalised when posted (defaults filled in).
+	Request json.RawMessage `json:"request"`
+	// Episodes is the request's window as resolved when posted.
+	Episodes EpisodeSpan `json:"episodes"`
+	// Result is the kind's result once the job succeeded.
+	Result     json.RawMessage `json:"result,omitempty"`
+	Error      string          `json:"error,omitempty"`
+	CreatedAt  time.Time       `json:"created_at"`
+	StartedAt  *time.Time      `json:"started_at,omitempty"`
+	FinishedAt *time.Time      `json:"finished_at,omitempty"`
+}
+
+// JobStore keeps jobs in the database, so that any process can report on a
+// job any other runs.
+type JobStore interface {
+	// ClaimJob marks the oldest queued job, or a running one whose runner
+	// has not reported for staleAfter, as running by this caller. Jobs
+	// claimed maxAttempts times already are failed instead.
+	ClaimJob(ctx context.Context, staleAfter time.Duration, maxAttempts int) (Job, bool, error)
+	// ReportProgress records progress and that the runner is alive.
+	ReportProgress(ctx context.Context, job Job, p Progress) error
+	// FinishJob records a result (failure empty) or a failure message.
+	FinishJob(ctx context.Context, job Job, p Progress, result any, failure string) error
+	// ReleaseJob puts a job back in the queue for another runner.
+	ReleaseJob(ctx context.Context, job Job) error
+}
+
+// JobRunner runs queued jobs, one at a time, until its context ends.
+type JobRunner struct {
+	Jobs        JobStore
+	Evaluations EvaluationSource
+	Replays     ReplayStore
+	// BatchEpisodes is the most episodes one replay transaction learns.
+	BatchEpisodes int
+	// Wake receives a value when a job is queued; PollInterval is the
+	// fallback for missed notifications.
+	Wake         <-chan struct{}
+	PollInterval time.Duration
+	// ReportInterval paces progress writes, which double as heartbeats;
+	// a job not heard of for StaleAfter is claimed again, at most
+	// MaxAttempts times in all.
+	ReportInterval time.Duration
+	StaleAfter     time.Duration
+	MaxAttempts    int
+	Logger         *slog.Logger
+}
+
+// Run claims and runs jobs until ctx ends. A job cut short by the end of
+// ctx goes back to the queue.
+func (r *JobRunner) Run(ctx context.Context) error {
+	poll := time.NewTimer(0)
+	defer poll.Stop()
+	backoff := time.Duration(0)
+	for ctx.Err() == nil {
+		job, found, err := r.Jobs.ClaimJob(ctx, r.StaleAfter, r.MaxAttempts)
+		switch {
+		case err != nil && ctx.Err() == nil:
+			backoff = min(max(2*backoff, 100*time.Millisecond), 10*time.Second)
+			r.Logger.Warn("claiming a job failed; retrying", "error", err, "retry_in", backoff)
+			sleep(ctx, backoff)
+			continue
+		case found:
+			backoff = 0
+			r.run(ctx, job)
+			continue
+		}
+		backoff = 0
+		poll.Reset(r.PollInterval)
+		select {
+		case <-ctx.Done():
+		case <-r.Wake:
+		case <-poll.C:
+		}
+	}
+	return nil
+}
+
+// run does one job, reporting its progress every ReportInterval.
+func (r *JobRunner) run(ctx context.Context, job Job) {
+	log := r.Logger.With("job", job.ID, "kind", job.Kind, "attempt", job.Attempts)
+	log.Info("job started")
+	var mu sync.Mutex
+	latest := Progress{Phase: "starting"}
+	progress := func(p Progress) {
+		mu.Lock()
+		latest = p
+		mu.Unlock()
+	}
+	current := func() Progress {
+		mu.Lock()
+		defer mu.Unlock()
+		return latest
+	}
+	jobCtx, cancel := context.WithCancel(ctx)
+	reporterDone := make(chan struct{})
+	go func() {
+		defer close(reporterDone)
+		t := time.NewTicker(r.ReportInterval)
+		defer t.Stop()
+		for {
+			select {
+			case <-jobCtx.Done():
+				return
+			case <-t.C:
+				if err := r.Jobs.ReportProgress(jobCtx, job, current()); err != nil && jobCtx.Err() == nil {
+					log.Warn("reporting job progress", "error", err)
+				}
+			}
+		}
+	}()
+	result, err := r.do(jobCtx, job, progress)
+	cancel()
+	<-reporterDone
+
+	// The outcome is written even as the process stops.
+	finishCtx, done := context.WithTimeout(context.WithoutCancel(ctx), 10*time.Second)
+	defer done()
+	switch {
+	case err != nil && (ctx.Err() != nil || errors.Is(err, ErrUnavailable)):
+		log.Info("job interrupted; returning it to the queue", "error", err)
+		if rerr := r.Jobs.ReleaseJob(finishCtx, job); rerr != nil {
+			log.Warn("returning a job to the queue", "error", rerr)
+		}
+		if ctx.Err() == nil {
+			sleep(ctx, time.Second) // the database is away: do not spin on the job
+		}
+		return
+	case err != nil:
+		log.Warn("job failed", "error", err)
+		err = r.Jobs.FinishJob(finishCtx, job, current(), nil, failureMessage(err))
+	default:
+		log.Info("job succeeded")
+		err = r.Jobs.FinishJob(finishCtx, job, current(), result, "")
+	}
+	if err != nil {
+		log.Warn("recording a job's outcome", "error", err)
+	}
+}
+
+func (r *JobRunner) do(ctx context.Context, job Job, progress func(Progress)) (any, error) {
+	switch job.Kind {
+	case EvaluationJobKind:
+		var spec EvaluationJob
+		if err := json.Unmarshal(job.Spec, &spec); err != nil {
+			return nil, fmt.Errorf("decode evaluation job %d: %w", job.ID, err)
+		}
+		return Evaluate(ctx, r.Evaluations, spec, progress)
+	case ReplayJobKind:
+		var spec ReplayJob
+		if err := json.Unmarshal(job.Spec, &spec); err != nil {
+			return nil, fmt.Errorf("decode replay job %d: %w", job.ID, err)
+		}
+		return Replay(ctx, r.Replays, spec, r.BatchEpisodes, progress)
+	default:
+		return nil, fmt.Errorf("job %d has unknown kind %q", job.ID, job.Kind)
+	}
+}
+
+// failureMessage is what clients are told of a failed job: the domain's
+// own message, or a pointer to the log for anything else.
+func failureMessage(err error) string {
+	var verr *ValidationError
+	if errors.As(err, &verr) || errors.Is(err, ErrNotFound) || errors.Is(err, ErrConflict) {
+		return err.Error()
+	}
+	return "the job failed on the server; see its log"
+}
