@@ -91,6 +91,7 @@ type serviceConfig struct {
 	RunWorker     bool
 	ShutdownGrace time.Duration
 	DBMaxConns    int32
+	Auth          authConfig
 }
 
 func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {

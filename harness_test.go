@@ -35,6 +35,10 @@ type service struct {
 	router routers.Router
 	client *http.Client
 	stop   func()
+	// token is the secret sent as a bearer token ("" for none); the
+	// harness creates one with every scope, as an operator would.
+	token       string
+	databaseURL string
 }
 
 type lockedBuffer struct {
@@ -62,6 +66,7 @@ func startService(t testing.TB, databaseURL string, args ...string) *service {
 	if len(args) == 0 {
 		args = []string{"serve"}
 	}
+	token := createToken(t, databaseURL, "--label", "test harness", "--scope", "ingest,choose,admin")
 	ctx, cancel := context.WithCancel(context.Background())
 	outR, outW := io.Pipe()
 	stderr := &lockedBuffer{}
@@ -79,7 +84,8 @@ func startService(t testing.TB, databaseURL string, args ...string) *service {
 			}
 		}
 	}()
-	s := &service{t: t, stderr: stderr, router: openAPIRouter(t), client: &http.Client{Timeout: 30 * time.Second}}
+	s := &service{t: t, stderr: stderr, router: openAPIRouter(t), client: &http.Client{Timeout: 30 * time.Second},
+		token: token, databaseURL: databaseURL}
 	select {
 	case s.URL = <-addr:
 	case err := <-done:
@@ -149,12 +155,15 @@ func (s *service) send(method, path, contentType string, body []byte, raw bool) 
 	if contentType != "" {
 		req.Header.Set("Content-Type", contentType)
 	}
+	if s.token != "" {
+		req.Header.Set("Authorization", "Bearer "+s.token)
+	}
 	route, params, err := s.router.FindRoute(req)
 	if err != nil {
 		s.t.Fatalf("%s %s is not in the OpenAPI document: %v", method, path, err)
 	}
 	in := &openapi3filter.RequestValidationInput{Request: req, PathParams: params, Route: route,
-		Options: &openapi3filter.Options{MultiError: true}}
+		Options: &openapi3filter.Options{MultiError: true, AuthenticationFunc: checkBearer}}
 	if !raw {
 		if err := openapi3filter.ValidateRequest(context.Background(), in); err != nil {
 			s.t.Fatalf("request %s %s does not match the OpenAPI document: %v", method, path, err)
@@ -177,6 +186,37 @@ func (s *service) send(method, path, contentType string, body []byte, raw bool) 
 		s.t.Fatalf("answer to %s %s (%d %s) does not match the OpenAPI document: %v", method, path, resp.StatusCode, data, err)
 	}
 	return reply{Status: resp.StatusCode, Header: resp.Header, Body: data}
+}
+
+// checkBearer holds when a request carries what the document's security
+// scheme asks for; whether the token is good is the service's to say.
+func checkBearer(_ context.Context, in *openapi3filter.AuthenticationInput) error {
+	if in.SecurityScheme.Type != "http" || in.SecurityScheme.Scheme != "bearer" {
+		return fmt.Errorf("unexpected security scheme %q", in.SecuritySchemeName)
+	}
+	if !strings.HasPrefix(in.RequestValidationInput.Request.Header.Get("Authorization"), "Bearer ") {
+		return fmt.Errorf("no bearer token")
+	}
+	return nil
+}
+
+// createToken runs `qtally token create flags...` against databaseURL and
+// returns the secret it prints.
+func createToken(t testing.TB, databaseURL string, flags ...string) string {
+	t.Helper()
+	var out bytes.Buffer
+	args := append([]string{"qtally", "token", "create"}, flags...)
+	env := map[string]string{"DATABASE_URL": databaseURL}
+	if err := run(context.Background(), args, func(k string) string { return env[k] }, &out, io.Discard); err != nil {
+		t.Fatalf("%v: %v", args, err)
+	}
+	for _, line := range strings.Split(out.String(), "\n") {
+		if secret, ok := strings.CutPrefix(line, "secret: "); ok {
+			return secret
+		}
+	}
+	t.Fatalf("%v printed no secret:\n%s", args, out.String())
+	return ""
 }
 
 // call sends a JSON body (nil for none) and checks the status.

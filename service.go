@@ -63,6 +63,10 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 			})
 		})
 	}
+	var auth api.Authenticator
+	if cfg.RunAPI {
+		auth = startKeyring(ctx, cfg.Auth, db, handlers, goBackground, logger, stdout)
+	}
 	if cfg.RunWorker {
 		handlers[storage.ChannelEpisodes] = func(int32) { nudge(wake) }
 		reg.MustRegister(metrics.NewTableCollector(db, 5*time.Second, logger))
@@ -89,7 +93,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	var handler http.Handler
 	if cfg.RunAPI {
 		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, Episodes: db, States: db,
-			Chooser: replica, Ready: db, Metrics: m, Gatherer: reg})
+			Chooser: replica, Ready: db, Metrics: m, Gatherer: reg, Auth: auth})
 	} else {
 		handler = api.NewHealthServer(api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})
 	}

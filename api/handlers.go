@@ -6,6 +6,7 @@ import (
 	"io"
 	"net/http"
 	"net/url"
+	"slices"
 	"strconv"
 
 	"github.com/labstack/echo/v4"
@@ -53,6 +54,10 @@ func handleListPolicies(p Policies) echo.HandlerFunc {
 		list, err := p.ListPolicyStatus(c.Request().Context())
 		if err != nil {
 			return err
+		}
+		// A token limited to some policies sees only those.
+		if tok := requestToken(c); tok != nil {
+			list = slices.DeleteFunc(list, func(st training.PolicyStatus) bool { return !tok.CoversPolicy(st.Name) })
 		}
 		if list == nil {
 			list = []training.PolicyStatus{}

@@ -48,6 +48,8 @@ type Config struct {
 	MaxBodyBytes int64
 	// MaxStateLength bounds a state name in choose requests.
 	MaxStateLength int
+	// TokenRate limits each token's requests unless the token sets its own.
+	TokenRate RateConfig
 }
 
 // Deps are what the server calls.
@@ -60,13 +62,17 @@ type Deps struct {
 	Ready    Readiness
 	Metrics  *metrics.Metrics
 	Gatherer prometheus.Gatherer
+	// Auth verifies tokens; nil turns authentication off.
+	Auth Authenticator
 }
 
 // NewServer returns the HTTP handler of an API process.
 func NewServer(cfg Config, d Deps) http.Handler {
 	e := newEcho(d)
+	g := newGuard(d.Auth, cfg.TokenRate)
+	e.Use(g.authenticate)
 	addHealthRoutes(e, d)
-	addAPIRoutes(e, cfg, d)
+	addAPIRoutes(e, cfg, d, g)
 	return e
 }
 
