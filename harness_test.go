@@ -31,14 +31,15 @@ func TestMain(m *testing.M) {
 type service struct {
 	t      testing.TB
 	URL    string
+	stdout *lockedBuffer
 	stderr *lockedBuffer
 	router routers.Router
 	client *http.Client
 	stop   func()
-	// token is the secret sent as a bearer token ("" for none); the
-	// harness creates one with every scope, as an operator would.
-	token       string
-	databaseURL string
+	// authorization is the Authorization header sent ("" for none): a
+	// token with every scope that the harness creates, as an operator would.
+	authorization string
+	databaseURL   string
 }
 
 type lockedBuffer struct {
@@ -69,7 +70,7 @@ func startService(t testing.TB, databaseURL string, args ...string) *service {
 	token := createToken(t, databaseURL, "--label", "test harness", "--scope", "ingest,choose,admin")
 	ctx, cancel := context.WithCancel(context.Background())
 	outR, outW := io.Pipe()
-	stderr := &lockedBuffer{}
+	stdout, stderr := &lockedBuffer{}, &lockedBuffer{}
 	done := make(chan error, 1)
 	go func() {
 		done <- run(ctx, append([]string{"qtally"}, args...), func(k string) string { return env[k] }, outW, stderr)
@@ -79,13 +80,14 @@ func startService(t testing.TB, databaseURL string, args ...string) *service {
 	go func() {
 		sc := bufio.NewScanner(outR)
 		for sc.Scan() {
+			fmt.Fprintln(stdout, sc.Text())
 			if u, ok := strings.CutPrefix(sc.Text(), "qtally: listening on "); ok {
 				addr <- u
 			}
 		}
 	}()
-	s := &service{t: t, stderr: stderr, router: openAPIRouter(t), client: &http.Client{Timeout: 30 * time.Second},
-		token: token, databaseURL: databaseURL}
+	s := &service{t: t, stdout: stdout, stderr: stderr, router: openAPIRouter(t), client: &http.Client{Timeout: 30 * time.Second},
+		authorization: "Bearer " + token, databaseURL: databaseURL}
 	select {
 	case s.URL = <-addr:
 	case err := <-done:
@@ -155,8 +157,8 @@ func (s *service) send(method, path, contentType string, body []byte, raw bool) 
 	if contentType != "" {
 		req.Header.Set("Content-Type", contentType)
 	}
-	if s.token != "" {
-		req.Header.Set("Authorization", "Bearer "+s.token)
+	if s.authorization != "" {
+		req.Header.Set("Authorization", s.authorization)
 	}
 	route, params, err := s.router.FindRoute(req)
 	if err != nil {

@@ -58,7 +58,7 @@ func (t *Token) CoversPolicy(name string) bool {
 // request names none), as an ErrForbidden error when it may not.
 func (t *Token) Authorize(s Scope, policy string) error {
 	if !t.HasScope(s) {
-		return Forbiddenf("token %d lacks the %q scope this request needs", t.ID, s)
+		return Forbiddenf("token %d lacks the %s scope that this request needs", t.ID, s)
 	}
 	if policy != "" && !t.CoversPolicy(policy) {
 		return Forbiddenf("token %d is limited to other policies than %q", t.ID, truncate(policy, 64))
