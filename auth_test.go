@@ -72,7 +72,9 @@ func TestTokensScopesAndPolicies(t *testing.T) {
 		forged = ingestAlpha[:len(ingestAlpha)-4] + "BBBB"
 	}
 
-	episodes := func(p, id string) (string, string, any) { return "POST", "/v1/policies/" + p + "/episodes", oneStep(id) }
+	episodes := func(p, id string) (string, string, any) {
+		return "POST", "/v1/policies/" + p + "/episodes", oneStep(id)
+	}
 	choose := func(p string) (string, string, any) {
 		return "POST", "/v1/policies/" + p + "/choose", map[string]any{"state": "s"}
 	}
