@@ -187,11 +187,10 @@ func handleChoose(ch Chooser, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
 }
 
 func validateChoose(req chooseRequest, cfg Config) error {
+	if err := training.ValidateStateName(req.State, cfg.MaxStateLength); err != nil {
+		return err
+	}
 	switch {
-	case req.State == "":
-		return training.Invalid(-1, -1, "state", "is missing")
-	case len(req.State) > cfg.MaxStateLength:
-		return training.Invalid(-1, -1, "state", "is %d bytes, longer than the limit of %d", len(req.State), cfg.MaxStateLength)
 	case req.Mode != training.Explore && req.Mode != training.Greedy:
 		return training.Invalid(-1, -1, "mode", "must be %q or %q", training.Explore, training.Greedy)
 	case req.Allowed != nil && len(req.Allowed) == 0:
@@ -200,7 +199,7 @@ func validateChoose(req chooseRequest, cfg Config) error {
 	return nil
 }
 
-func handleGetState(s States) echo.HandlerFunc {
+func handleGetState(s States, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
@@ -209,6 +208,9 @@ func handleGetState(s States) echo.HandlerFunc {
 		state, err := url.PathUnescape(c.Param("state"))
 		if err != nil || state == "" {
 			return training.Invalid(-1, -1, "state", "is not a valid path-escaped state name")
+		}
+		if err := training.ValidateStateName(state, cfg.MaxStateLength); err != nil {
+			return err
 		}
 		view, err := s.State(c.Request().Context(), name, state)
 		if err != nil {

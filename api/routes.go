@@ -25,5 +25,5 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 	e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg), admin)
 	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg), ingest)
 	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg), choose)
-	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States), choose)
+	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States, cfg), choose)
 }
