@@ -98,7 +98,7 @@ func jsonProblem(err error, data []byte, episode int) error {
 		got, _, _ := strings.Cut(typeErr.Value, " ")
 		return training.Invalid(episode, -1, field, "expected %s, got %s", want, jsonKind(got))
 	case strings.HasPrefix(err.Error(), "json: unknown field "):
-		return training.Invalid(episode, -1, "", "%s is not a field of this request", strings.TrimPrefix(err.Error(), "json: unknown field "))
+		return training.Invalid(episode, -1, "", "%s is not a field of this request", truncateBytes(strings.TrimPrefix(err.Error(), "json: unknown field "), 64))
 	default:
 		return training.Invalid(episode, -1, "", "the JSON could not be decoded: %s", err.Error())
 	}
@@ -179,9 +179,14 @@ func invalidUTF8Field(data []byte) string {
 	return bad[0]
 }
 
+// truncateBytes shortens what a message echoes of a request to about n
+// bytes, at a character boundary.
 func truncateBytes(s string, n int) string {
 	if len(s) <= n {
 		return s
+	}
+	for n > 0 && !utf8.RuneStart(s[n]) {
+		n--
 	}
 	return s[:n] + "..."
 }
