@@ -74,6 +74,7 @@ func TestBadInputIsRefusedAndChangesNothing(t *testing.T) {
 
 		// Structure and content.
 		{"unknown top-level field", "POST", base + "/episodes", js, `{"episodes":[],"priority":"high"}`, 400, []string{"priority", "not a field"}},
+		{"huge unknown field name", "POST", base + "/episodes", js, `{"episodes":[],"` + strings.Repeat("k", 100_000) + `":1}`, 400, []string{"kkkk...", "is not a field"}},
 		{"unknown step field", "POST", base + "/episodes", js, step(`{"state":"s","action":"truck","rewrd":1}`), 400, []string{`"step":0`, "rewrd", "not a field"}},
 		{"no episodes", "POST", base + "/episodes", js, `{"episodes":[]}`, 400, []string{"at least one episode"}},
 		{"no steps", "POST", base + "/episodes", js, `{"episodes":[{"id":"e1","steps":[]}]}`, 400, []string{`"field":"steps"`, "at least one step"}},
@@ -132,6 +133,9 @@ func TestBadInputIsRefusedAndChangesNothing(t *testing.T) {
 			r := s.withT(t).send(c.method, c.path, c.ctype, []byte(c.body), true)
 			if r.Status != c.status {
 				t.Fatalf("status %d, want %d: %.600s", r.Status, c.status, r.Body)
+			}
+			if len(r.Body) > 2048 {
+				t.Errorf("the answer is %d bytes: refusals must not echo what they refuse", len(r.Body))
 			}
 			for _, w := range c.want {
 				if !strings.Contains(string(r.Body), w) {
