@@ -2,6 +2,8 @@ package main
 
 import (
 	"fmt"
+	"net/url"
+	"slices"
 	"strings"
 	"testing"
 
@@ -157,4 +159,50 @@ func (s *service) withT(t testing.TB) *service {
 	c := *s
 	c.t = t
 	return &c
+}
+
+// Names that look like SQL, markup, paths or escapes are data: they are
+// stored, learned and shown back exactly, and harm nothing.
+func TestHostileNamesAreStoredAndShownAsSent(t *testing.T) {
+	db := pgtest.NewDatabase(t)
+	s := startService(t, db)
+	actions := []string{"a'); DROP TABLE policies; --", "<img src=x onerror=alert(1)>", `back\slash "quoted"`}
+	states := []string{
+		"'; DELETE FROM q_values; --", "<script>alert(1)</script>", "../../etc/passwd", "..%2F..%2Fetc",
+		"50% off/now?x=1#top", "ünïcødé 🚚 ﷽", `{"json":"inside"}`, "$1 $2 ::text",
+	}
+	s.call("PUT", "/v1/policies/hostile-names", map[string]any{"actions": actions, "alpha": 1}, 201)
+	var eps []episodeJSON
+	for i, st := range states {
+		eps = append(eps, episodeJSON{ID: st, Steps: []stepJSON{{State: st, Action: actions[i%len(actions)], Reward: float64(i + 1)}}})
+	}
+	s.call("POST", "/v1/policies/hostile-names/episodes", map[string]any{"episodes": eps}, 202)
+	s.waitTrained("hostile-names", int64(len(eps)))
+	for i, st := range states {
+		var v struct {
+			State        string `json:"state"`
+			Known        bool   `json:"known"`
+			GreedyAction string `json:"greedy_action"`
+		}
+		s.call("GET", "/v1/policies/hostile-names/states/"+url.PathEscape(st), nil, 200).decode(t, &v)
+		if v.State != st || !v.Known || v.GreedyAction != actions[i%len(actions)] {
+			t.Errorf("state %q reads back as %+v", st, v)
+		}
+	}
+	var list struct {
+		Policies []struct {
+			Actions []string `json:"actions"`
+			Pairs   int      `json:"pairs"`
+		} `json:"policies"`
+	}
+	s.call("GET", "/v1/policies", nil, 200).decode(t, &list)
+	if len(list.Policies) != 1 || !slices.Equal(list.Policies[0].Actions, actions) || list.Policies[0].Pairs != len(states) {
+		t.Fatalf("policies read back as %+v", list.Policies)
+	}
+	// A repeat of the same ids is recognised as duplicates, byte for byte.
+	var res struct{ Accepted, Duplicates int }
+	s.call("POST", "/v1/policies/hostile-names/episodes", map[string]any{"episodes": eps}, 202).decode(t, &res)
+	if res.Accepted != 0 || res.Duplicates != len(eps) {
+		t.Fatalf("re-post: %+v", res)
+	}
 }

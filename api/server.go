@@ -88,6 +88,19 @@ func newEcho(d Deps) *echo.Echo {
 	e.HideBanner = true
 	e.HidePort = true
 	e.HTTPErrorHandler = errorHandler(d.Logger)
+	e.Pre(routeOnEscapedPath)
 	e.Use(observe(d.Metrics))
 	return e
+}
+
+// routeOnEscapedPath makes echo route on the escaped path always, so that
+// path parameters arrive escaped exactly once. By default echo routes on
+// the decoded path unless the escaped one differs from its canonical form,
+// and a state named "a%2Fb" would be decoded twice.
+func routeOnEscapedPath(next echo.HandlerFunc) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		u := c.Request().URL
+		u.RawPath = u.EscapedPath()
+		return next(c)
+	}
 }
