@@ -6,7 +6,6 @@ import (
 	"crypto/sha256"
 	"encoding/base64"
 	"hash"
-	"io"
 	"math"
 	"slices"
 	"strconv"
@@ -169,30 +168,40 @@ type TokenHasher struct {
 	pool *sync.Pool
 }
 
+// macScratch is a keyed MAC with buffers, reused across requests so that
+// checking a secret allocates nothing.
+type macScratch struct {
+	mac hash.Hash
+	in  []byte
+	sum [sha256.Size]byte
+}
+
 // NewTokenHasher returns a hasher keyed with pepper.
 func NewTokenHasher(pepper string) TokenHasher {
 	key := []byte(pepper)
-	return TokenHasher{pool: &sync.Pool{New: func() any { return hmac.New(sha256.New, key) }}}
+	return TokenHasher{pool: &sync.Pool{New: func() any { return &macScratch{mac: hmac.New(sha256.New, key)} }}}
 }
 
-// Digest hashes the random part of a secret. Keyed hashers are reused, as
-// verification runs on every request.
+// Digest hashes the random part of a secret.
 func (h TokenHasher) Digest(random string) []byte {
-	return h.sum(make([]byte, 0, sha256.Size), random)
+	var out []byte
+	h.with(random, func(sum []byte) { out = append([]byte(nil), sum...) })
+	return out
 }
 
 // Matches compares a stored digest with the one of a presented random part
 // in constant time.
 func (h TokenHasher) Matches(stored []byte, random string) bool {
-	var buf [sha256.Size]byte
-	return hmac.Equal(stored, h.sum(buf[:0], random))
+	var ok bool
+	h.with(random, func(sum []byte) { ok = hmac.Equal(stored, sum) })
+	return ok
 }
 
-func (h TokenHasher) sum(dst []byte, random string) []byte {
-	mac := h.pool.Get().(hash.Hash)
-	mac.Reset()
-	_, _ = io.WriteString(mac, random)
-	dst = mac.Sum(dst)
-	h.pool.Put(mac)
-	return dst
+func (h TokenHasher) with(random string, use func(sum []byte)) {
+	s := h.pool.Get().(*macScratch)
+	s.mac.Reset()
+	s.in = append(s.in[:0], random...)
+	s.mac.Write(s.in)
+	use(s.mac.Sum(s.sum[:0]))
+	h.pool.Put(s)
 }
