@@ -2,11 +2,14 @@ package main
 
 import (
 	"bytes"
+	"context"
 	"io"
 	"net/http"
 	"testing"
 
+	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/storage/pgtest"
+	"github.com/qtally/qtally/training"
 )
 
 // What checking tokens costs on the hottest route: choose with a token
@@ -49,6 +52,41 @@ func BenchmarkChooseTokenCheck(b *testing.B) {
 				}
 			})
 			b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "req/s")
+		})
+	}
+}
+
+// What one token check costs in the keyring an API process holds: a
+// remembered secret (every request after the first), and a wrong secret
+// for a real id (a full MAC each time).
+func BenchmarkTokenVerify(b *testing.B) {
+	url := pgtest.NewDatabase(b)
+	secret := createToken(b, url, "--label", "bench", "--scope", "choose")
+	db, err := storage.Open(context.Background(), url, 2, training.DefaultLimits())
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer db.Close()
+	keyring := training.NewKeyring(db, "")
+	if err := keyring.Reload(context.Background()); err != nil {
+		b.Fatal(err)
+	}
+	wrong := secret[:len(secret)-1] + "A"
+	if wrong == secret {
+		wrong = secret[:len(secret)-1] + "B"
+	}
+	for _, c := range []struct {
+		name, secret string
+		ok           bool
+	}{{"remembered", secret, true}, {"wrong-secret", wrong, false}} {
+		b.Run(c.name, func(b *testing.B) {
+			ctx := context.Background()
+			b.ReportAllocs()
+			for b.Loop() {
+				if _, err := keyring.Verify(ctx, c.secret); (err == nil) != c.ok {
+					b.Fatalf("verify: %v", err)
+				}
+			}
 		})
 	}
 }
