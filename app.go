@@ -21,11 +21,14 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 			{
 				Name:  "serve",
 				Usage: "run the HTTP API (and, unless --no-worker, the training worker); applies migrations first",
-				Flags: append(serviceFlags(env, ":8080"), databaseFlag(env, true),
-					&cli.BoolFlag{Name: flagNoWorker, Usage: "do not train in this process", Sources: env("QTALLY_NO_WORKER")}),
+				Flags: append(append(serviceFlags(env, ":8080"), databaseFlag(env, true),
+					&cli.BoolFlag{Name: flagNoWorker, Usage: "do not train in this process", Sources: env("QTALLY_NO_WORKER")}), authFlags(env)...),
 				Action: func(ctx context.Context, cmd *cli.Command) error {
 					cfg, err := readServiceConfig(cmd)
 					if err != nil {
+						return err
+					}
+					if err := readAuthConfig(cmd, &cfg); err != nil {
 						return err
 					}
 					cfg.RunAPI, cfg.RunWorker = true, !cmd.Bool(flagNoWorker)
@@ -74,6 +77,7 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 			demoCommand(env, stdout),
 			exportCommand(env, stdout),
 			importCommand(env, stdout),
+			tokenCommand(env, stdout),
 		},
 	}
 }

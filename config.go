@@ -122,6 +122,7 @@ type serviceConfig struct {
 	PruneInterval    time.Duration
 	PruneBatch       int
 	JobStaleAfter    time.Duration
+	Auth             authConfig
 }
 
 func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {

@@ -34,6 +34,8 @@ func devCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 				return err
 			}
 			cfg.RunAPI, cfg.RunWorker = true, true
+			// dev is for a first look on one machine: no tokens, and it says so.
+			cfg.Auth.Off = true
 			if cmd.String(flagLogFormat) == "json" && !cmd.IsSet(flagLogFormat) {
 				_ = cmd.Set(flagLogFormat, "text")
 			}

@@ -57,7 +57,7 @@ func withAppName(t testing.TB, databaseURL, name string) string {
 // api is the OpenAPI-checked client of startService, pointed at a process.
 func (p *process) api() *service {
 	return &service{t: p.t, URL: p.URL, stderr: p.stderr, router: openAPIRouter(p.t),
-		client: &http.Client{Timeout: 30 * time.Second}}
+		client: &http.Client{Timeout: 30 * time.Second}, authorization: p.authorization}
 }
 
 // signal sends sig to the process.

@@ -16,6 +16,7 @@ require (
 	github.com/tsenart/vegeta/v12 v12.13.0
 	github.com/urfave/cli/v3 v3.14.0
 	golang.org/x/sync v0.25.0
+	golang.org/x/time v0.16.0
 	gonum.org/v1/gonum v0.17.0
 )
 

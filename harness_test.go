@@ -32,10 +32,15 @@ func TestMain(m *testing.M) {
 type service struct {
 	t      testing.TB
 	URL    string
+	stdout *lockedBuffer
 	stderr *lockedBuffer
 	router routers.Router
 	client *http.Client
 	stop   func()
+	// authorization is the Authorization header sent ("" for none): a
+	// token with every scope that the harness creates, as an operator would.
+	authorization string
+	databaseURL   string
 }
 
 type lockedBuffer struct {
@@ -63,9 +68,10 @@ func startService(t testing.TB, databaseURL string, args ...string) *service {
 	if len(args) == 0 {
 		args = []string{"serve"}
 	}
+	token := createToken(t, databaseURL, "--label", "test harness", "--scope", "ingest,choose,admin")
 	ctx, cancel := context.WithCancel(context.Background())
 	outR, outW := io.Pipe()
-	stderr := &lockedBuffer{}
+	stdout, stderr := &lockedBuffer{}, &lockedBuffer{}
 	done := make(chan error, 1)
 	go func() {
 		done <- run(ctx, append([]string{"qtally"}, args...), func(k string) string { return env[k] }, outW, stderr)
@@ -75,12 +81,14 @@ func startService(t testing.TB, databaseURL string, args ...string) *service {
 	go func() {
 		sc := bufio.NewScanner(outR)
 		for sc.Scan() {
+			fmt.Fprintln(stdout, sc.Text())
 			if u, ok := strings.CutPrefix(sc.Text(), "qtally: listening on "); ok {
 				addr <- u
 			}
 		}
 	}()
-	s := &service{t: t, stderr: stderr, router: openAPIRouter(t), client: &http.Client{Timeout: 30 * time.Second}}
+	s := &service{t: t, stdout: stdout, stderr: stderr, router: openAPIRouter(t), client: &http.Client{Timeout: 30 * time.Second},
+		authorization: "Bearer " + token, databaseURL: databaseURL}
 	select {
 	case s.URL = <-addr:
 	case err := <-done:
@@ -150,12 +158,15 @@ func (s *service) send(method, path, contentType string, body []byte, raw bool) 
 	if contentType != "" {
 		req.Header.Set("Content-Type", contentType)
 	}
+	if s.authorization != "" {
+		req.Header.Set("Authorization", s.authorization)
+	}
 	route, params, err := s.router.FindRoute(req)
 	if err != nil {
 		s.t.Fatalf("%s %s is not in the OpenAPI document: %v", method, path, err)
 	}
 	in := &openapi3filter.RequestValidationInput{Request: req, PathParams: params, Route: route,
-		Options: &openapi3filter.Options{MultiError: true}}
+		Options: &openapi3filter.Options{MultiError: true, AuthenticationFunc: checkBearer}}
 	if !raw {
 		if err := openapi3filter.ValidateRequest(context.Background(), in); err != nil {
 			s.t.Fatalf("request %s %s does not match the OpenAPI document: %v", method, path, err)
@@ -178,6 +189,37 @@ func (s *service) send(method, path, contentType string, body []byte, raw bool) 
 		s.t.Fatalf("answer to %s %s (%d %s) does not match the OpenAPI document: %v", method, path, resp.StatusCode, data, err)
 	}
 	return reply{Status: resp.StatusCode, Header: resp.Header, Body: data}
+}
+
+// checkBearer holds when a request carries what the document's security
+// scheme asks for; whether the token is good is the service's to say.
+func checkBearer(_ context.Context, in *openapi3filter.AuthenticationInput) error {
+	if in.SecurityScheme.Type != "http" || in.SecurityScheme.Scheme != "bearer" {
+		return fmt.Errorf("unexpected security scheme %q", in.SecuritySchemeName)
+	}
+	if !strings.HasPrefix(in.RequestValidationInput.Request.Header.Get("Authorization"), "Bearer ") {
+		return fmt.Errorf("no bearer token")
+	}
+	return nil
+}
+
+// createToken runs `qtally token create flags...` against databaseURL and
+// returns the secret it prints.
+func createToken(t testing.TB, databaseURL string, flags ...string) string {
+	t.Helper()
+	var out bytes.Buffer
+	args := append([]string{"qtally", "token", "create"}, flags...)
+	env := map[string]string{"DATABASE_URL": databaseURL}
+	if err := run(context.Background(), args, func(k string) string { return env[k] }, &out, io.Discard); err != nil {
+		t.Fatalf("%v: %v", args, err)
+	}
+	for _, line := range strings.Split(out.String(), "\n") {
+		if secret, ok := strings.CutPrefix(line, "secret: "); ok {
+			return secret
+		}
+	}
+	t.Fatalf("%v printed no secret:\n%s", args, out.String())
+	return ""
 }
 
 // call sends a JSON body (nil for none) and checks the status.

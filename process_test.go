@@ -25,17 +25,21 @@ func buildBinary(t testing.TB) string {
 
 // process is a qtally running as its own OS process.
 type process struct {
-	t      testing.TB
-	cmd    *exec.Cmd
-	URL    string
-	stderr *lockedBuffer
-	exited chan struct{}
-	err    error
+	t   testing.TB
+	cmd *exec.Cmd
+	URL string
+	// authorization is a token with every scope for the process's database
+	// (empty when the process runs without auth).
+	authorization string
+	stderr        *lockedBuffer
+	exited        chan struct{}
+	err           error
 }
 
 // startProcess runs `bin args...` with env added to this process's
 // environment and waits until it listens (pass QTALLY_LISTEN=127.0.0.1:0).
-// The process is killed when the test ends.
+// With a DATABASE_URL it creates a token for the process's API. The
+// process is killed when the test ends.
 func startProcess(t testing.TB, bin string, env map[string]string, args ...string) *process {
 	t.Helper()
 	cmd := exec.Command(bin, args...)
@@ -44,6 +48,9 @@ func startProcess(t testing.TB, bin string, env map[string]string, args ...strin
 		cmd.Env = append(cmd.Env, k+"="+v)
 	}
 	p := &process{t: t, cmd: cmd, stderr: &lockedBuffer{}, exited: make(chan struct{})}
+	if env["DATABASE_URL"] != "" && env["QTALLY_NO_AUTH"] == "" {
+		p.authorization = "Bearer " + createToken(t, env["DATABASE_URL"], "--label", "test process", "--scope", "ingest,choose,admin")
+	}
 	cmd.Stderr = p.stderr
 	stdout, err := cmd.StdoutPipe()
 	if err != nil {

@@ -74,6 +74,10 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 			})
 		})
 	}
+	var auth api.Authenticator
+	if cfg.RunAPI {
+		auth = startKeyring(ctx, cfg.Auth, db, subs, goBackground, logger, stdout)
+	}
 	if cfg.RunWorker {
 		subs[storage.ChannelEpisodes] = storage.Subscription{Notify: func(int32) { nudge(wake) }, CatchUp: func() { nudge(wake) }}
 		reg.MustRegister(metrics.NewTableCollector(db, 5*time.Second, logger))
@@ -101,7 +105,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	var handler http.Handler
 	if cfg.RunAPI {
 		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, Episodes: db, States: db,
-			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg,
+			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth,
 			Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db})
 	} else {
 		handler = api.NewHealthServer(api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})

@@ -8,7 +8,10 @@ import (
 	"io"
 	"mime"
 	"net/http"
+	"reflect"
+	"slices"
 	"strings"
+	"unicode/utf8"
 
 	"github.com/labstack/echo/v4"
 
@@ -52,10 +55,15 @@ func contains(list []string, s string) bool {
 // decodeStrict decodes exactly one JSON value into v, refusing unknown
 // fields and trailing data, and explains any failure in client terms.
 func decodeStrict(data []byte, v any, episode int) error {
+	// The decoder would silently turn invalid UTF-8 into U+FFFD, storing a
+	// name other than the one the client sent.
+	if !utf8.Valid(data) {
+		return training.Invalid(episode, -1, invalidUTF8Field(data), "contains bytes that are not valid UTF-8")
+	}
 	dec := json.NewDecoder(bytes.NewReader(data))
 	dec.DisallowUnknownFields()
 	if err := dec.Decode(v); err != nil {
-		return jsonProblem(err, episode)
+		return jsonProblem(err, data, episode)
 	}
 	if _, err := dec.Token(); !errors.Is(err, io.EOF) {
 		return training.Invalid(episode, -1, "", "unexpected data after the JSON value at byte offset %d", dec.InputOffset())
@@ -65,11 +73,14 @@ func decodeStrict(data []byte, v any, episode int) error {
 
 // jsonProblem turns a decoding error into a validation error located at
 // an episode (or -1) and a field where the decoder says which.
-func jsonProblem(err error, episode int) error {
+func jsonProblem(err error, data []byte, episode int) error {
 	var syntax *json.SyntaxError
 	var typeErr *json.UnmarshalTypeError
 	switch {
 	case errors.As(err, &syntax):
+		if word, ok := nonFiniteLiteral(data, syntax.Offset); ok {
+			return training.Invalid(episode, -1, "", "%s at byte offset %d: NaN and infinities are not numbers in JSON; send finite numbers", word, syntax.Offset)
+		}
 		return training.Invalid(episode, -1, "", "malformed JSON at byte offset %d: %s", syntax.Offset, syntax.Error())
 	case errors.Is(err, io.EOF):
 		return training.Invalid(episode, -1, "", "the body is empty")
@@ -80,12 +91,104 @@ func jsonProblem(err error, episode int) error {
 		if i := strings.LastIndexByte(field, '.'); i >= 0 {
 			field = field[i+1:]
 		}
-		return training.Invalid(episode, -1, field, "expected %s, got JSON %s", typeErr.Type, typeErr.Value)
+		want := jsonKind(typeErr.Type)
+		if number, ok := strings.CutPrefix(typeErr.Value, "number "); ok && want == "a number" {
+			return training.Invalid(episode, -1, field, "the number %s is out of range", truncateBytes(number, 64))
+		}
+		got, _, _ := strings.Cut(typeErr.Value, " ")
+		return training.Invalid(episode, -1, field, "expected %s, got %s", want, jsonKind(got))
 	case strings.HasPrefix(err.Error(), "json: unknown field "):
-		return training.Invalid(episode, -1, "", "%s is not a field of this request", strings.TrimPrefix(err.Error(), "json: unknown field "))
+		return training.Invalid(episode, -1, "", "%s is not a field of this request", truncateBytes(strings.TrimPrefix(err.Error(), "json: unknown field "), 64))
 	default:
 		return training.Invalid(episode, -1, "", "the JSON could not be decoded: %s", err.Error())
 	}
+}
+
+// jsonKind names, in JSON's terms, a Go type or a kind of JSON value as
+// the decoder reports them.
+func jsonKind(t any) string {
+	var kind string
+	switch t := t.(type) {
+	case reflect.Type:
+		for t.Kind() == reflect.Pointer {
+			t = t.Elem()
+		}
+		kind = t.Kind().String()
+	case string:
+		kind = t
+	}
+	switch kind {
+	case "float32", "float64", "number":
+		return "a number"
+	case "int", "int8", "int16", "int32", "int64", "uint", "uint8", "uint16", "uint32", "uint64":
+		return "an integer"
+	case "string":
+		return "a string"
+	case "bool":
+		return "true or false"
+	case "slice", "array":
+		return "an array"
+	case "struct", "map", "object":
+		return "an object"
+	}
+	return kind
+}
+
+// nonFiniteLiteral finds the word around a syntax error's offset and says
+// whether it spells NaN or an infinity, as some encoders write non-finite
+// floats.
+func nonFiniteLiteral(data []byte, offset int64) (string, bool) {
+	isWordByte := func(b byte) bool { return b == '-' || b == '+' || (b|0x20 >= 'a' && b|0x20 <= 'z') }
+	start := int(min(max(offset, 0), int64(len(data))))
+	for start > 0 && isWordByte(data[start-1]) {
+		start--
+	}
+	end := start
+	for end < len(data) && isWordByte(data[end]) {
+		end++
+	}
+	if end-start > len("-Infinity") {
+		return "", false
+	}
+	word := string(data[start:end])
+	switch strings.ToLower(strings.TrimLeft(word, "+-")) {
+	case "nan", "inf", "infinity":
+		return word, true
+	}
+	return "", false
+}
+
+// invalidUTF8Field names the first member (in name order) of a JSON object
+// whose value holds invalid UTF-8; "" when data is no object or the bytes
+// are in a member's name.
+func invalidUTF8Field(data []byte) string {
+	var members map[string]json.RawMessage
+	if json.Unmarshal(data, &members) != nil {
+		return ""
+	}
+	var bad []string
+	for name, value := range members {
+		if !utf8.Valid(value) {
+			bad = append(bad, name)
+		}
+	}
+	slices.Sort(bad)
+	if len(bad) == 0 {
+		return ""
+	}
+	return bad[0]
+}
+
+// truncateBytes shortens what a message echoes of a request to about n
+// bytes, at a character boundary.
+func truncateBytes(s string, n int) string {
+	if len(s) <= n {
+		return s
+	}
+	for n > 0 && !utf8.RuneStart(s[n]) {
+		n--
+	}
+	return s[:n] + "..."
 }
 
 // locateEpisodeError decodes one episode again, step by step, to say which

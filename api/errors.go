@@ -40,8 +40,12 @@ func errorHandler(logger *slog.Logger) echo.HTTPErrorHandler {
 		if p.Status >= 500 {
 			logger.Error("request failed", "method", c.Request().Method, "path", c.Request().URL.Path, "error", err)
 		}
-		if p.Status == http.StatusServiceUnavailable || p.Status == http.StatusTooManyRequests {
-			c.Response().Header().Set("Retry-After", "1")
+		h := c.Response().Header()
+		if (p.Status == http.StatusServiceUnavailable || p.Status == http.StatusTooManyRequests) && h.Get("Retry-After") == "" {
+			h.Set("Retry-After", "1")
+		}
+		if p.Status == http.StatusUnauthorized && h.Get(echo.HeaderWWWAuthenticate) == "" {
+			h.Set(echo.HeaderWWWAuthenticate, bearerRealm)
 		}
 		c.Response().Header().Set(echo.HeaderContentType, problemContentType)
 		c.Response().WriteHeader(p.Status)
@@ -75,6 +79,10 @@ func toProblem(err error) Problem {
 		return Problem{Type: "urn:qtally:problem:not-found", Title: "Not found", Status: http.StatusNotFound, Detail: err.Error()}
 	case errors.Is(err, training.ErrConflict):
 		return Problem{Type: "urn:qtally:problem:conflict", Title: "Conflict", Status: http.StatusConflict, Detail: err.Error()}
+	case errors.Is(err, training.ErrUnauthenticated):
+		return Problem{Type: "urn:qtally:problem:unauthenticated", Title: "Unauthenticated", Status: http.StatusUnauthorized, Detail: err.Error()}
+	case errors.Is(err, training.ErrForbidden):
+		return Problem{Type: "urn:qtally:problem:forbidden", Title: "Forbidden", Status: http.StatusForbidden, Detail: err.Error()}
 	case errors.Is(err, training.ErrUnavailable):
 		return Problem{Type: "urn:qtally:problem:unavailable", Title: "Temporarily unavailable", Status: http.StatusServiceUnavailable,
 			Detail: "the database cannot be reached; retry later"}

@@ -6,6 +6,7 @@ import (
 	"io"
 	"net/http"
 	"net/url"
+	"slices"
 	"strconv"
 
 	"github.com/labstack/echo/v4"
@@ -71,6 +72,10 @@ func handleListPolicies(p Policies) echo.HandlerFunc {
 		list, err := p.ListPolicyStatus(c.Request().Context())
 		if err != nil {
 			return err
+		}
+		// A token limited to some policies sees only those.
+		if tok := requestToken(c); tok != nil {
+			list = slices.DeleteFunc(list, func(st training.PolicyStatus) bool { return !tok.CoversPolicy(st.Name) })
 		}
 		if list == nil {
 			list = []training.PolicyStatus{}
@@ -200,11 +205,10 @@ func handleChoose(ch Chooser, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
 }
 
 func validateChoose(req chooseRequest, cfg Config) error {
+	if err := training.ValidateStateName(req.State, cfg.MaxStateLength); err != nil {
+		return err
+	}
 	switch {
-	case req.State == "":
-		return training.Invalid(-1, -1, "state", "is missing")
-	case len(req.State) > cfg.MaxStateLength:
-		return training.Invalid(-1, -1, "state", "is %d bytes, longer than the limit of %d", len(req.State), cfg.MaxStateLength)
 	case req.Mode != training.Explore && req.Mode != training.Greedy:
 		return training.Invalid(-1, -1, "mode", "must be %q or %q", training.Explore, training.Greedy)
 	case req.Allowed != nil && len(req.Allowed) == 0:
@@ -213,7 +217,7 @@ func validateChoose(req chooseRequest, cfg Config) error {
 	return nil
 }
 
-func handleGetState(s States) echo.HandlerFunc {
+func handleGetState(s States, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
@@ -221,6 +225,9 @@ func handleGetState(s States) echo.HandlerFunc {
 		}
 		state, err := pathParam(c, "state")
 		if err != nil {
+			return err
+		}
+		if err := training.ValidateStateName(state, cfg.MaxStateLength); err != nil {
 			return err
 		}
 		view, err := s.State(c.Request().Context(), name, state)

@@ -14,36 +14,40 @@ func addHealthRoutes(e *echo.Echo, d Deps) {
 	e.GET("/metrics", echo.WrapHandler(promhttp.HandlerFor(d.Gatherer, promhttp.HandlerOpts{})))
 }
 
-// addAPIRoutes serves the policy API.
-func addAPIRoutes(e *echo.Echo, cfg Config, d Deps) {
+// addAPIRoutes serves the policy API. Every route needs a valid token (g
+// checks that for all requests); each names the scope it needs on top.
+func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 	e.GET("/v1/openapi.json", handleOpenAPI())
 
-	e.GET("/v1/policies", handleListPolicies(d.Policies))
-	e.GET("/v1/policies/:policy", handleGetPolicy(d.Policies))
-	e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg))
-	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg))
-	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg))
-	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect))
-	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States))
+	admin, ingest, choose := g.requireScope(training.ScopeAdmin), g.requireScope(training.ScopeIngest), g.requireScope(training.ScopeChoose)
+	e.GET("/v1/policies", handleListPolicies(d.Policies), admin)
+	e.GET("/v1/policies/:policy", handleGetPolicy(d.Policies), admin)
+	e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg), admin)
+	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg), ingest)
+	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg), choose)
+	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect), choose)
+	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States, cfg), choose)
 
-	e.GET("/v1/policies/:policy/table", handleExportTable(d.Snapshots, false))
-	e.PUT("/v1/policies/:policy/table", handleImportTable(d.Tables, cfg))
-	e.GET("/v1/policies/:policy/diff", handleDiffTables(d.Snapshots))
-	e.GET("/v1/policies/:policy/snapshots", handleListSnapshots(d.Snapshots))
-	e.POST("/v1/policies/:policy/snapshots", handleCreateSnapshot(d.Snapshots, cfg))
-	e.GET("/v1/policies/:policy/snapshots/:snapshot", handleGetSnapshot(d.Snapshots))
-	e.DELETE("/v1/policies/:policy/snapshots/:snapshot", handleDeleteSnapshot(d.Snapshots))
-	e.GET("/v1/policies/:policy/snapshots/:snapshot/table", handleExportTable(d.Snapshots, true))
-	e.POST("/v1/policies/:policy/snapshots/:snapshot/restore", handleRestoreSnapshot(d.Tables))
-	e.POST("/v1/policies/:policy/evaluations", handleStartEvaluation(d.Jobs, cfg))
-	e.GET("/v1/policies/:policy/evaluations/:id", handleGetJob(d.Jobs, training.EvaluationJobKind))
-	e.POST("/v1/policies/:policy/replays", handleStartReplay(d.Jobs, cfg))
-	e.GET("/v1/policies/:policy/replays/:id", handleGetJob(d.Jobs, training.ReplayJobKind))
+	e.GET("/v1/policies/:policy/table", handleExportTable(d.Snapshots, false), admin)
+	e.PUT("/v1/policies/:policy/table", handleImportTable(d.Tables, cfg), admin)
+	e.GET("/v1/policies/:policy/diff", handleDiffTables(d.Snapshots), admin)
+	e.GET("/v1/policies/:policy/snapshots", handleListSnapshots(d.Snapshots), admin)
+	e.POST("/v1/policies/:policy/snapshots", handleCreateSnapshot(d.Snapshots, cfg), admin)
+	e.GET("/v1/policies/:policy/snapshots/:snapshot", handleGetSnapshot(d.Snapshots), admin)
+	e.DELETE("/v1/policies/:policy/snapshots/:snapshot", handleDeleteSnapshot(d.Snapshots), admin)
+	e.GET("/v1/policies/:policy/snapshots/:snapshot/table", handleExportTable(d.Snapshots, true), admin)
+	e.POST("/v1/policies/:policy/snapshots/:snapshot/restore", handleRestoreSnapshot(d.Tables), admin)
+	e.POST("/v1/policies/:policy/evaluations", handleStartEvaluation(d.Jobs, cfg), admin)
+	e.GET("/v1/policies/:policy/evaluations/:id", handleGetJob(d.Jobs, training.EvaluationJobKind), admin)
+	e.POST("/v1/policies/:policy/replays", handleStartReplay(d.Jobs, cfg), admin)
+	e.GET("/v1/policies/:policy/replays/:id", handleGetJob(d.Jobs, training.ReplayJobKind), admin)
 }
 
-// addStatusRoutes serves the status pages for people.
-func addStatusRoutes(e *echo.Echo, cfg Config, d Deps) {
-	e.GET("/", handleOverview(d.Policies))
-	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, cfg))
-	e.GET("/policies/:policy/states", handleStatesPage(d.Inspect))
+// addStatusRoutes serves the status pages for people; they show every
+// policy's figures, so they need the admin scope.
+func addStatusRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
+	admin := g.requireScope(training.ScopeAdmin)
+	e.GET("/", handleOverview(d.Policies), admin)
+	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, cfg), admin)
+	e.GET("/policies/:policy/states", handleStatesPage(d.Inspect), admin)
 }

@@ -52,6 +52,8 @@ type Config struct {
 	// HistoryWindow is how much training history is kept: the status
 	// page's charts reach back at most this far.
 	HistoryWindow time.Duration
+	// TokenRate limits each token's requests unless the token sets its own.
+	TokenRate RateConfig
 }
 
 // Deps are what the server calls.
@@ -71,14 +73,18 @@ type Deps struct {
 	Snapshots Snapshots
 	Tables    TableWriter
 	Jobs      Jobs
+	// Auth verifies tokens; nil turns authentication off.
+	Auth Authenticator
 }
 
 // NewServer returns the HTTP handler of an API process.
 func NewServer(cfg Config, d Deps) http.Handler {
 	e := newEcho(d)
+	g := newGuard(d.Auth, cfg.TokenRate)
+	e.Use(g.authenticate)
 	addHealthRoutes(e, d)
-	addAPIRoutes(e, cfg, d)
-	addStatusRoutes(e, cfg, d)
+	addAPIRoutes(e, cfg, d, g)
+	addStatusRoutes(e, cfg, d, g)
 	return e
 }
 
@@ -94,6 +100,19 @@ func newEcho(d Deps) *echo.Echo {
 	e.HideBanner = true
 	e.HidePort = true
 	e.HTTPErrorHandler = errorHandler(d.Logger)
+	e.Pre(routeOnEscapedPath)
 	e.Use(observe(d.Metrics))
 	return e
+}
+
+// routeOnEscapedPath makes echo route on the escaped path always, so that
+// path parameters arrive escaped exactly once. By default echo routes on
+// the decoded path unless the escaped one differs from its canonical form,
+// and a state named "a%2Fb" would be decoded twice.
+func routeOnEscapedPath(next echo.HandlerFunc) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		u := c.Request().URL
+		u.RawPath = u.EscapedPath()
+		return next(c)
+	}
 }

@@ -1,6 +1,7 @@
 package training
 
 import (
+	"fmt"
 	"math"
 	"time"
 	"unicode/utf8"
@@ -34,6 +35,36 @@ type Limits struct {
 // DefaultLimits are the limits unless configured otherwise.
 func DefaultLimits() Limits {
 	return Limits{MaxEpisodes: 10_000, MaxSteps: 10_000, MaxIDLength: 128, MaxStateLength: 256}
+}
+
+// MaxAbsReward bounds a reward's magnitude so that returns and Q stay
+// finite: a return sums at most MaxSteps rewards, and a float64 overflows
+// near 1.8e308. 1e15 is below 2^53, where float64 still tells apart rewards
+// that differ by one unit.
+const MaxAbsReward = 1e15
+
+// stateProblem says what is wrong with a state name, or "" when nothing is.
+// States are stored and shown as text, so control characters (NUL among
+// them, which PostgreSQL text cannot hold) are refused.
+func stateProblem(state string, maxLen int) string {
+	switch {
+	case state == "":
+		return "is missing"
+	case len(state) > maxLen:
+		return fmt.Sprintf("is %d bytes, longer than the limit of %d", len(state), maxLen)
+	case !printableName(state):
+		return "must be valid UTF-8 without control characters"
+	}
+	return ""
+}
+
+// ValidateStateName checks a state name given on its own (to choose, or to
+// read a state), not inside an episode.
+func ValidateStateName(state string, maxLen int) error {
+	if problem := stateProblem(state, maxLen); problem != "" {
+		return Invalid(-1, -1, "state", "%s", problem)
+	}
+	return nil
 }
 
 // EpisodeRecord is a validated episode in the form it is stored and
@@ -93,13 +124,8 @@ func EncodeEpisodes(p Settings, actionIndex map[string]int16, episodes []Episode
 		}
 		totalSteps += len(ep.Steps)
 		for j, st := range ep.Steps {
-			switch {
-			case st.State == "":
-				l.add(i, j, "state", "is missing")
-			case len(st.State) > lim.MaxStateLength:
-				l.add(i, j, "state", "is %d bytes, longer than the limit of %d", len(st.State), lim.MaxStateLength)
-			case !utf8.ValidString(st.State):
-				l.add(i, j, "state", "is not valid UTF-8")
+			if problem := stateProblem(st.State, lim.MaxStateLength); problem != "" {
+				l.add(i, j, "state", "%s", problem)
 			}
 			if _, ok := actionIndex[st.Action]; !ok {
 				if st.Action == "" {
@@ -110,6 +136,8 @@ func EncodeEpisodes(p Settings, actionIndex map[string]int16, episodes []Episode
 			}
 			if math.IsNaN(st.Reward) || math.IsInf(st.Reward, 0) {
 				l.add(i, j, "reward", "must be a finite number")
+			} else if math.Abs(st.Reward) > MaxAbsReward {
+				l.add(i, j, "reward", "%g is larger in magnitude than the limit of %g", st.Reward, MaxAbsReward)
 			}
 			if pr := st.Probability; pr != nil && !(*pr > 0 && *pr <= 1) {
 				l.add(i, j, "probability", "must be in (0, 1], got %v", *pr)

@@ -43,6 +43,7 @@ func TestEncodeEpisodesReportsEveryProblemWithItsPlace(t *testing.T) {
 		{ID: "ok", Steps: []Step{{State: "toolong", Action: "left", Probability: ptr(0)}, {State: "", Action: "", Reward: math.Inf(1), Probability: ptr(1.5)}}},
 		{ID: "ok", Steps: []Step{{State: "s", Action: "left"}, {State: "s", Action: "left"}, {State: "s", Action: "left"}, {State: "s", Action: "left"}}},
 		{ID: "bad\x00id", Steps: []Step{{State: "\xff", Action: "left"}}},
+		{ID: "big", Steps: []Step{{State: "a\x00", Action: "right", Reward: -2e15}, {State: "b", Action: "right", Reward: 1e15}}},
 	}, lim)
 	var verr *ValidationError
 	if !errors.As(err, &verr) {
@@ -63,7 +64,9 @@ func TestEncodeEpisodesReportsEveryProblemWithItsPlace(t *testing.T) {
 		"episode 3, id: repeats the id of episode 2 in this request",
 		"episode 3, steps: holds 4 steps, more than the limit of 3",
 		"episode 4, id: must be valid UTF-8 without control characters",
-		"episode 4, step 0, state: is not valid UTF-8",
+		"episode 4, step 0, state: must be valid UTF-8 without control characters",
+		"episode 5, step 0, state: must be valid UTF-8 without control characters",
+		"episode 5, step 0, reward: -2e+15 is larger in magnitude than the limit of 1e+15",
 	}
 	var got []string
 	for _, p := range verr.Problems {

@@ -11,6 +11,10 @@ var (
 	ErrNotFound    = errors.New("not found")
 	ErrConflict    = errors.New("conflict")
 	ErrUnavailable = errors.New("temporarily unavailable")
+	// ErrUnauthenticated: the request carries no valid token.
+	ErrUnauthenticated = errors.New("unauthenticated")
+	// ErrForbidden: the token may not do what the request asks.
+	ErrForbidden = errors.New("forbidden")
 )
 
 // kindError is a domain error with a message fit to show a client.
@@ -35,6 +39,16 @@ func Conflictf(format string, args ...any) error {
 // Unavailablef returns an error that is ErrUnavailable with the given message.
 func Unavailablef(format string, args ...any) error {
 	return &kindError{ErrUnavailable, fmt.Sprintf(format, args...)}
+}
+
+// Unauthenticatedf returns an error that is ErrUnauthenticated with the given message.
+func Unauthenticatedf(format string, args ...any) error {
+	return &kindError{ErrUnauthenticated, fmt.Sprintf(format, args...)}
+}
+
+// Forbiddenf returns an error that is ErrForbidden with the given message.
+func Forbiddenf(format string, args ...any) error {
+	return &kindError{ErrForbidden, fmt.Sprintf(format, args...)}
 }
 
 // FieldError locates one problem in a request: the episode and step it is

@@ -41,8 +41,9 @@ type Settings struct {
 	Epsilon float64   `json:"epsilon" validate:"gte=0,lte=1"`
 	Visit   VisitRule `json:"visit" validate:"oneof=first every"`
 	// InitialQ is the value of pairs never updated; a high value makes the
-	// greedy policy try every action (optimistic start).
-	InitialQ   float64 `json:"initial_q" validate:"finite"`
+	// greedy policy try every action (optimistic start). It is bounded like
+	// rewards (MaxAbsReward), so that updates stay finite.
+	InitialQ   float64 `json:"initial_q" validate:"finite,gte=-1e15,lte=1e15"`
 	EpsilonMin float64 `json:"epsilon_min" validate:"gte=0,ltefield=Epsilon"`
 	// EpsilonDecayVisits is k in epsilon(s) = max(epsilon_min, epsilon*k/(k+N(s)));
 	// 0 turns the decay off.
