@@ -47,8 +47,9 @@ const (
 	bearerRealm = `Bearer realm="qtally"`
 )
 
-// openRoutes answer without a token: probes and scrapers carry none.
-var openRoutes = map[string]bool{"/livez": true, "/readyz": true, "/metrics": true}
+// openRoutes answer without a token: probes and scrapers carry none, and
+// the sign-in page is how a browser gets one.
+var openRoutes = map[string]bool{"/livez": true, "/readyz": true, "/metrics": true, signInPath: true}
 
 // authenticate runs for every request, matched route or not, so that a
 // route added without a scope still needs a valid token.
@@ -62,6 +63,15 @@ func (g *guard) authenticate(next echo.HandlerFunc) echo.HandlerFunc {
 		}
 		header := c.Request().Header.Get(echo.HeaderAuthorization)
 		scheme, secret, found := strings.Cut(header, " ")
+		if !found && isPageRequest(c) {
+			// A browser cannot send a bearer header: status pages take the
+			// token from the cookie that signing in set.
+			if ck, err := c.Cookie(pageCookie); err == nil {
+				scheme, secret, found = "Bearer", ck.Value, true
+			} else {
+				return c.Redirect(http.StatusSeeOther, signInPath)
+			}
+		}
 		if !found || !strings.EqualFold(scheme, "Bearer") || secret == "" {
 			c.Response().Header().Set(echo.HeaderWWWAuthenticate, bearerRealm)
 			return training.Unauthenticatedf("this request needs a token: send Authorization: Bearer <secret>")

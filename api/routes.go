@@ -47,6 +47,10 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 // policy's figures, so they need the admin scope.
 func addStatusRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 	admin := g.requireScope(training.ScopeAdmin)
+	if g != nil {
+		e.GET(signInPath, handleSignInPage())
+		e.POST(signInPath, handleSignIn(g.auth))
+	}
 	e.GET("/", handleOverview(d.Policies), admin)
 	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, cfg), admin)
 	e.GET("/policies/:policy/states", handleStatesPage(d.Inspect), admin)

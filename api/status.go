@@ -23,7 +23,7 @@ import (
 //go:embed pages/*.html
 var pageFiles embed.FS
 
-var pages = parsePages("overview.html", "policy.html", "states.html")
+var pages = parsePages("overview.html", "policy.html", "states.html", "signin.html")
 
 func parsePages(names ...string) map[string]*template.Template {
 	funcs := template.FuncMap{"num": formatNumber, "count": formatCount, "ago": formatAgo, "stamp": formatStamp}
