@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"io"
+	"strings"
 	"testing"
 	"time"
 
@@ -18,6 +19,7 @@ func TestDemoLearnsNearTheOptimum(t *testing.T) {
 	s := startService(t, pgtest.NewDatabase(t), "serve", "--batch-episodes", "500")
 	cfg := demo.DefaultConfig()
 	cfg.BaseURL, cfg.Rate, cfg.Episodes = s.URL, 0, 30_000
+	cfg.Token = strings.TrimPrefix(s.authorization, "Bearer ")
 	cfg.SettleTimeout = 2 * time.Minute
 	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Minute)
 	defer cancel()

@@ -110,9 +110,10 @@ func (ps policySpec) create(s *service) {
 // ledger records, per policy, every episode the service answered 202 for,
 // and counts what else it answered. Safe for concurrent clients.
 type ledger struct {
-	mu       sync.Mutex
-	accepted map[string]map[string]episodeJSON
-	requests int
+	authorization string
+	mu            sync.Mutex
+	accepted      map[string]map[string]episodeJSON
+	requests      int
 	// unavailable counts 503 answers (each then retried with the same ids);
 	// inDoubt counts episodes a 202 reported as duplicates after a 503 for
 	// the same batch: stored by the attempt whose answer was lost.
@@ -120,7 +121,11 @@ type ledger struct {
 	failures             []string
 }
 
-func newLedger() *ledger { return &ledger{accepted: map[string]map[string]episodeJSON{}} }
+// newLedger keeps account of posts made with authorization (an
+// Authorization header value).
+func newLedger(authorization string) *ledger {
+	return &ledger{accepted: map[string]map[string]episodeJSON{}, authorization: authorization}
+}
 
 func (l *ledger) fail(format string, args ...any) {
 	l.mu.Lock()
@@ -219,7 +224,7 @@ func (l *ledger) post(ctx context.Context, client *http.Client, baseURL, policy 
 // through (n = 0: no limit).
 func (l *ledger) postUntil(ctx context.Context, seed uint64, name string, n int, urls []string, policies []policySpec) {
 	rng := rand.New(rand.NewPCG(seed, seed+1))
-	client := &http.Client{Timeout: 30 * time.Second}
+	client := tokenClient(l.authorization, 30*time.Second)
 	for i := 0; (n == 0 || i < n) && ctx.Err() == nil; i++ {
 		ps := policies[i%len(policies)]
 		batch := randomBatch(rng, fmt.Sprintf("%s-%d", name, i), 1+rng.IntN(8), faultActions)

@@ -30,7 +30,7 @@ func TestWorkerKilledMidBatch(t *testing.T) {
 
 	ctx, stopClients := context.WithCancel(context.Background())
 	defer stopClients()
-	l := newLedger()
+	l := newLedger(s.authorization)
 	var clients sync.WaitGroup
 	for c := range 2 {
 		clients.Go(func() {
@@ -116,7 +116,7 @@ func TestSeveralProcessesShareOneDatabase(t *testing.T) {
 	}
 	urls := []string{apis[0].URL, apis[1].URL}
 
-	l := newLedger()
+	l := newLedger(s.authorization)
 	var clients sync.WaitGroup
 	for c := range clientsPerPolicy * len(policies) {
 		clients.Go(func() {
@@ -128,7 +128,7 @@ func TestSeveralProcessesShareOneDatabase(t *testing.T) {
 	var chooser sync.WaitGroup
 	chooses := 0
 	chooser.Go(func() {
-		client := &http.Client{Timeout: 30 * time.Second}
+		client := tokenClient(s.authorization, 30*time.Second)
 		states := faultStates()
 		for i := 0; ctx.Err() == nil; i++ {
 			if _, err := choose(client, urls[i%2], policies[i%2].name, states[i%len(states)]); err != nil {
@@ -203,8 +203,8 @@ func TestIngestCommitsInArrivalOrder(t *testing.T) {
 		SELECT policy_id, 'early-2', '{x}', '{0}', '{0}' FROM policies WHERE name = $1`, ps.name); err != nil {
 		t.Fatal(err)
 	}
-	l := newLedger()
-	client := &http.Client{Timeout: 30 * time.Second}
+	l := newLedger(s.authorization)
+	client := tokenClient(s.authorization, 30*time.Second)
 	var posts sync.WaitGroup
 	posts.Go(func() { l.post(ctx, client, s.URL, ps.name, early) })
 	watch, err := pgx.Connect(ctx, databaseURL)

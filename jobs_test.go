@@ -3,7 +3,6 @@ package main
 import (
 	"fmt"
 	"math"
-	"net/http"
 	"testing"
 	"time"
 
@@ -20,10 +19,7 @@ func TestAJobWhoseRunnerDiesIsTakenOver(t *testing.T) {
 		"QTALLY_JOB_STALE_AFTER": "3s", "QTALLY_MAX_EPISODES_PER_REQUEST": "20000"}
 	first := startProcess(t, bin, env, "serve")
 	reader := startProcess(t, bin, env, "serve", "--no-worker")
-	api := func(p *process) *service {
-		return &service{t: t, URL: p.URL, router: openAPIRouter(t), client: &http.Client{Timeout: 30 * time.Second}}
-	}
-	s, r := api(first), api(reader)
+	s, r := first.api(), reader.api()
 
 	// The target is the empty table's greedy policy: it ties both actions,
 	// so every ratio is 0.5 / 0.5 = 1 and the bootstrap has no shortcut.

@@ -15,11 +15,12 @@ import (
 // probe watches one process's /readyz and choose answers while PostgreSQL
 // comes and goes.
 type probe struct {
-	mu         sync.Mutex
-	readyCodes map[int]int
-	lastReady  int
-	chooses    int
-	failures   []string
+	authorization string
+	mu            sync.Mutex
+	readyCodes    map[int]int
+	lastReady     int
+	chooses       int
+	failures      []string
 }
 
 func (p *probe) record(f func(p *probe)) {
@@ -36,7 +37,7 @@ func (p *probe) ready() int {
 
 // run asks /readyz and choose every few milliseconds until ctx ends.
 func (p *probe) run(ctx context.Context, baseURL, policy string) {
-	client := &http.Client{Timeout: 10 * time.Second}
+	client := tokenClient(p.authorization, 10*time.Second)
 	for ctx.Err() == nil {
 		resp, err := client.Get(baseURL + "/readyz")
 		if err != nil {
@@ -84,7 +85,7 @@ func TestDatabaseOutage(t *testing.T) {
 
 	ctx, stop := context.WithCancel(context.Background())
 	defer stop()
-	l := newLedger()
+	l := newLedger(s.authorization)
 	var clients sync.WaitGroup
 	for c := range 2 {
 		clients.Go(func() {
@@ -92,7 +93,7 @@ func TestDatabaseOutage(t *testing.T) {
 		})
 	}
 	waitFor(t, 10*time.Second, "some episodes to be trained", func() bool { return s.status(ps.name).Revision > 2 })
-	pr := &probe{readyCodes: map[int]int{}}
+	pr := &probe{readyCodes: map[int]int{}, authorization: s.authorization}
 	clients.Go(func() { pr.run(ctx, api.URL, ps.name) })
 	waitFor(t, 10*time.Second, "choose to answer", func() bool { return pr.ready() == http.StatusOK })
 

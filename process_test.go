@@ -2,6 +2,7 @@ package main
 
 import (
 	"bufio"
+	"net/http"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -84,6 +85,27 @@ func startProcess(t testing.TB, bin string, env map[string]string, args ...strin
 		t.Fatalf("%v did not start listening\n%s", args, p.stderr)
 	}
 	return p
+}
+
+// client returns an HTTP client that sends the process's token.
+func (p *process) client(timeout time.Duration) *http.Client {
+	return tokenClient(p.authorization, timeout)
+}
+
+// tokenClient sends authorization (an Authorization header value) with
+// every request that has none.
+func tokenClient(authorization string, timeout time.Duration) *http.Client {
+	return &http.Client{Timeout: timeout, Transport: authorizing{authorization}}
+}
+
+type authorizing struct{ authorization string }
+
+func (a authorizing) RoundTrip(req *http.Request) (*http.Response, error) {
+	if a.authorization != "" && req.Header.Get("Authorization") == "" {
+		req = req.Clone(req.Context())
+		req.Header.Set("Authorization", a.authorization)
+	}
+	return http.DefaultTransport.RoundTrip(req)
 }
 
 // kill ends the process at once, as a crash would.

@@ -62,11 +62,11 @@ func (h *heldUp) release() {
 
 // postAsync posts a batch in the background and returns its answer: the
 // status, or an error when the connection broke.
-func postAsync(baseURL, policy string, eps []episodeJSON) <-chan error {
+func postAsync(client *http.Client, baseURL, policy string, eps []episodeJSON) <-chan error {
 	done := make(chan error, 1)
 	go func() {
 		body := must(json.Marshal(map[string]any{"episodes": eps}))
-		resp, err := http.Post(baseURL+"/v1/policies/"+policy+"/episodes", "application/json", bytes.NewReader(body))
+		resp, err := client.Post(baseURL+"/v1/policies/"+policy+"/episodes", "application/json", bytes.NewReader(body))
 		if err != nil {
 			done <- err
 			return
@@ -117,7 +117,7 @@ func TestSIGTERM(t *testing.T) {
 		postNow(s, batch...)
 		waitFor(t, 10*time.Second, "the worker to wait for the locked rows", func() bool { return lockWaits(t, watch) == 1 })
 		post := []episodeJSON{episode(name+"-post-1", 5), episode(name+"-post-2", 7)}
-		answer := postAsync(p.URL, ps.name, post)
+		answer := postAsync(p.client(30*time.Second), p.URL, ps.name, post)
 		waitFor(t, 10*time.Second, "the post to wait for the held id", func() bool { return lockWaits(t, watch) == 2 })
 		p.signal(syscall.SIGTERM)
 		return p, h, answer, batch, post

@@ -177,7 +177,7 @@ func TestSnapshotDiffAndRestoreRollBack(t *testing.T) {
 	}
 	restored := make(chan *http.Response, 1)
 	go func() {
-		resp, err := http.Post(s.URL+"/v1/policies/routing/snapshots/before-promo/restore", "", nil)
+		resp, err := tokenClient(s.authorization, 30*time.Second).Post(s.URL+"/v1/policies/routing/snapshots/before-promo/restore", "", nil)
 		if err != nil {
 			resp = nil
 		}
@@ -332,7 +332,9 @@ func TestExportImportCommands(t *testing.T) {
 	for _, name := range []string{"table.csv", "table.json"} {
 		file := filepath.Join(dir, name)
 		var out strings.Builder
-		env := func(k string) string { return map[string]string{"QTALLY_URL": s.URL}[k] }
+		env := func(k string) string {
+			return map[string]string{"QTALLY_URL": s.URL, "QTALLY_TOKEN": strings.TrimPrefix(s.authorization, "Bearer ")}[k]
+		}
 		if err := run(context.Background(), []string{"qtally", "export", "--policy", "pricing", "--snapshot", "v1", "-o", file}, env, &out, &out); err != nil {
 			t.Fatalf("export: %v\n%s", err, out.String())
 		}
@@ -359,11 +361,12 @@ func TestExportImportCommands(t *testing.T) {
 		t.Fatal(err)
 	}
 	var out strings.Builder
-	err := run(context.Background(), []string{"qtally", "import", "--url", s.URL, "--policy", "pricing-eu", "--input", bad}, os.Getenv, &out, &out)
+	token := "--token=" + strings.TrimPrefix(s.authorization, "Bearer ")
+	err := run(context.Background(), []string{"qtally", "import", "--url", s.URL, token, "--policy", "pricing-eu", "--input", bad}, os.Getenv, &out, &out)
 	if err == nil || !strings.Contains(err.Error(), "rows[0].action") || !strings.Contains(err.Error(), `"free" is not one of the policy's actions`) {
 		t.Fatalf("bad import: %v", err)
 	}
-	if err := run(context.Background(), []string{"qtally", "export", "--url", s.URL, "--policy", "nobody"}, os.Getenv, &out, &out); err == nil || !strings.Contains(err.Error(), "404") {
+	if err := run(context.Background(), []string{"qtally", "export", "--url", s.URL, token, "--policy", "nobody"}, os.Getenv, &out, &out); err == nil || !strings.Contains(err.Error(), "404") {
 		t.Fatalf("export of a missing policy: %v", err)
 	}
 }

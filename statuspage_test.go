@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -143,6 +144,24 @@ const readPage = `((scope) => {
 	};
 })(%s)`
 
+// signIn does what a person does: opens the overview, is sent to the
+// sign-in form, and pastes the harness's admin token.
+func (s *service) signIn(t *testing.T, ctx context.Context) {
+	t.Helper()
+	secret := strings.TrimPrefix(s.authorization, "Bearer ")
+	err := chromedp.Do(ctx, chromedp.Navigate(s.URL+"/"), chromedp.WaitVisible(chromedp.CSS("#token")))
+	location, lerr := chromedp.Run(ctx, chromedp.Location())
+	if err = errors.Join(err, lerr); err != nil || !strings.HasSuffix(location, "/sign-in") {
+		t.Fatalf("the overview without a token led to %q (%v), want the sign-in form", location, err)
+	}
+	err = chromedp.Do(ctx, chromedp.SendKeys(chromedp.CSS("#token"), secret), chromedp.Submit(chromedp.CSS("#token")),
+		chromedp.WaitReady(chromedp.CSS("table")))
+	location, lerr = chromedp.Run(ctx, chromedp.Location())
+	if err = errors.Join(err, lerr); err != nil || strings.HasSuffix(location, "/sign-in") {
+		t.Fatalf("signing in left the browser at %q (%v)", location, err)
+	}
+}
+
 // open loads a page and reads it, taking the figures within figuresIn.
 func (s *service) open(t *testing.T, ctx context.Context, path, figuresIn string) pageData {
 	t.Helper()
@@ -206,6 +225,7 @@ func TestStatusPageInBrowser(t *testing.T) {
 	const gamma = 0.9
 	s.call("PUT", "/v1/policies/"+policy, map[string]any{"actions": actions, "alpha": 0.25, "gamma": gamma}, 201)
 	s.call("PUT", "/v1/policies/idle-one", map[string]any{"actions": []string{"a", "b"}}, 201)
+	s.signIn(t, ctx)
 
 	rng := rand.New(rand.NewPCG(11, 12))
 	const batches = 5

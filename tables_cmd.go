@@ -23,6 +23,7 @@ const (
 	flagOutput   = "output"
 	flagInput    = "input"
 	flagTimeout  = "timeout"
+	flagToken    = "token"
 )
 
 // tableFlags are shared by export and import.
@@ -30,6 +31,7 @@ func tableFlags(env flagEnv) []cli.Flag {
 	return []cli.Flag{
 		&cli.StringFlag{Name: flagAPIURL, Value: "http://127.0.0.1:8080", Usage: "the qtally API to talk to", Sources: env("QTALLY_URL")},
 		&cli.StringFlag{Name: flagPolicy, Usage: "policy name", Required: true},
+		&cli.StringFlag{Name: flagToken, Usage: "API token with the admin scope", Sources: env("QTALLY_TOKEN")},
 		&cli.StringFlag{Name: flagFormat, Usage: "json or csv (default: from the file name's extension, else json)"},
 		&cli.DurationFlag{Name: flagTimeout, Value: 5 * time.Minute, Usage: "give up on the API after this long"},
 	}
@@ -72,7 +74,7 @@ func exportCommand(env flagEnv, stdout io.Writer) *cli.Command {
 				}
 				w = file
 			}
-			client := apiclient.New(cmd.String(flagAPIURL), cmd.Duration(flagTimeout))
+			client := apiclient.New(cmd.String(flagAPIURL), cmd.String(flagToken), cmd.Duration(flagTimeout))
 			err = client.ExportTable(ctx, cmd.String(flagPolicy), cmd.String(flagSnapshot), format, w)
 			if file != nil {
 				if cerr := file.Close(); err == nil {
@@ -109,7 +111,7 @@ func importCommand(env flagEnv, stdout io.Writer) *cli.Command {
 				defer file.Close()
 				r = file
 			}
-			client := apiclient.New(cmd.String(flagAPIURL), cmd.Duration(flagTimeout))
+			client := apiclient.New(cmd.String(flagAPIURL), cmd.String(flagToken), cmd.Duration(flagTimeout))
 			res, err := client.ImportTable(ctx, cmd.String(flagPolicy), format, r)
 			if err != nil {
 				return err

@@ -50,6 +50,9 @@ func handleSignInPage() echo.HandlerFunc {
 func handleSignIn(auth Authenticator) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		secret := strings.TrimSpace(c.FormValue("token"))
+		if secret == "" {
+			return renderSignIn(c, http.StatusBadRequest, "Paste a token to sign in.")
+		}
 		tok, err := auth.Verify(c.Request().Context(), secret)
 		if err != nil {
 			return renderSignIn(c, http.StatusUnauthorized, "That token is not valid, or it was revoked.")

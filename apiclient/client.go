@@ -19,12 +19,14 @@ import (
 type Client struct {
 	// BaseURL is the API's root, e.g. http://127.0.0.1:8080.
 	BaseURL string
-	HTTP    *http.Client
+	// Token is the API token sent as a bearer token; empty for none.
+	Token string
+	HTTP  *http.Client
 }
 
 // New returns a client of the API at baseURL.
-func New(baseURL string, timeout time.Duration) *Client {
-	return &Client{BaseURL: strings.TrimRight(baseURL, "/"), HTTP: &http.Client{Timeout: timeout}}
+func New(baseURL, token string, timeout time.Duration) *Client {
+	return &Client{BaseURL: strings.TrimRight(baseURL, "/"), Token: token, HTTP: &http.Client{Timeout: timeout}}
 }
 
 // Format is a table's exchange format.
@@ -99,6 +101,9 @@ func (c *Client) do(ctx context.Context, method, path, contentType string, body 
 	}
 	if contentType != "" {
 		req.Header.Set("Content-Type", contentType)
+	}
+	if c.Token != "" {
+		req.Header.Set("Authorization", "Bearer "+c.Token)
 	}
 	resp, err := c.HTTP.Do(req)
 	if err != nil {
