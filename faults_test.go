@@ -4,7 +4,6 @@ import (
 	"context"
 	"fmt"
 	"math/rand/v2"
-	"net/http"
 	"sync"
 	"syscall"
 	"testing"
@@ -150,7 +149,7 @@ func TestSeveralProcessesShareOneDatabase(t *testing.T) {
 		final := s.status(ps.name).Revision
 		for i, a := range apis {
 			waitFor(t, 5*time.Second, fmt.Sprintf("API %d to choose from revision %d of %s", i, final, ps.name), func() bool {
-				c, err := choose(http.DefaultClient, a.URL, ps.name, "day 0/bucket")
+				c, err := choose(a.client(30*time.Second), a.URL, ps.name, "day 0/bucket")
 				return err == nil && c.Revision == final
 			})
 		}

@@ -114,7 +114,7 @@ func TestDatabaseOutage(t *testing.T) {
 	// The copy was last confirmed before the halt, so it is at least as old
 	// as the outage.
 	down := time.Since(halted)
-	c, err := choose(http.DefaultClient, api.URL, ps.name, "day 2/bucket")
+	c, err := choose(api.client(30*time.Second), api.URL, ps.name, "day 2/bucket")
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -158,7 +158,7 @@ func TestDatabaseOutage(t *testing.T) {
 	verifyLearnedOnce(t, s, databaseURL, ps, l.episodes(ps.name))
 	final := s.status(ps.name).Revision
 	waitFor(t, 5*time.Second, fmt.Sprintf("choose to see the final revision %d", final), func() bool {
-		c, err := choose(http.DefaultClient, api.URL, ps.name, "day 1/bucket")
+		c, err := choose(api.client(30*time.Second), api.URL, ps.name, "day 1/bucket")
 		return err == nil && c.Revision == final && c.CopyAge < 1
 	})
 	// The worker retried with a doubling backoff.
