@@ -1,4 +1,4 @@
-.PHONY: test build fmt-check
+.PHONY: test build fmt-check image
 
 # Installs what the tests need when missing, then vets and tests everything.
 test:
@@ -11,3 +11,10 @@ build:
 
 fmt-check:
 	@out=$$(gofmt -l .); if [ -n "$$out" ]; then echo "gofmt needed:"; echo "$$out"; exit 1; fi
+
+# Container image (deploy/Dockerfile); needs a Docker engine.
+IMAGE ?= qtally:dev
+VERSION ?= $(shell git describe --tags --always --dirty 2>/dev/null || echo dev)
+GO_VERSION ?= $(shell go env GOVERSION | sed 's/^go//')
+image:
+	docker build -f deploy/Dockerfile --build-arg GO_VERSION=$(GO_VERSION) --build-arg VERSION=$(VERSION) -t $(IMAGE) .
