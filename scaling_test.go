@@ -18,6 +18,7 @@ import (
 	"time"
 
 	"github.com/jackc/pgx/v5"
+	dto "github.com/prometheus/client_model/go"
 	"github.com/prometheus/common/expfmt"
 	"github.com/prometheus/common/model"
 
@@ -368,7 +369,8 @@ func greedyOf(table map[pair]estimate, state string, actions []string) (string, 
 	return best, unique
 }
 
-// metricSum adds up a counter over its labels on a process's /metrics.
+// metricSum adds up a counter, or a histogram's _sum or _count, over its
+// labels on a process's /metrics.
 func metricSum(t testing.TB, base, name string) float64 {
 	t.Helper()
 	resp, err := http.Get(base + "/metrics")
@@ -385,6 +387,17 @@ func metricSum(t testing.TB, base, name string) float64 {
 	if f, ok := families[name]; ok {
 		for _, m := range f.GetMetric() {
 			sum += m.GetCounter().GetValue()
+		}
+	}
+	// A histogram's _sum and _count are fields of its one family.
+	for suffix, field := range map[string]func(*dto.Histogram) float64{
+		"_sum":   (*dto.Histogram).GetSampleSum,
+		"_count": func(h *dto.Histogram) float64 { return float64(h.GetSampleCount()) },
+	} {
+		if base, ok := strings.CutSuffix(name, suffix); ok {
+			for _, m := range families[base].GetMetric() {
+				sum += field(m.GetHistogram())
+			}
 		}
 	}
 	return sum
