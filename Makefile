@@ -1,4 +1,4 @@
-.PHONY: test build fmt-check dev
+.PHONY: test build fmt-check dev image
 
 # Installs what the tests need when missing, then vets and tests everything.
 test:
@@ -17,3 +17,10 @@ fmt-check:
 dev:
 	scripts/setup-test-machine.sh postgresql
 	go run . dev --demo
+
+# Container image (deploy/Dockerfile); needs a Docker engine.
+IMAGE ?= qtally:dev
+VERSION ?= $(shell git describe --tags --always --dirty 2>/dev/null || echo dev)
+GO_VERSION ?= $(shell go env GOVERSION | sed 's/^go//')
+image:
+	docker build -f deploy/Dockerfile --build-arg GO_VERSION=$(GO_VERSION) --build-arg VERSION=$(VERSION) -t $(IMAGE) .

@@ -15,6 +15,7 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 	return &cli.Command{
 		Name:      "qtally",
 		Usage:     "learn which action to take from the outcomes of past decisions",
+		Version:   version,
 		Writer:    stdout,
 		ErrWriter: stderr,
 		Commands: []*cli.Command{
@@ -78,6 +79,7 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 			exportCommand(env, stdout),
 			importCommand(env, stdout),
 			tokenCommand(env, stdout),
+			healthcheckCommand(env, stdout),
 		},
 	}
 }
