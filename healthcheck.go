@@ -35,7 +35,9 @@ func healthcheckCommand(env flagEnv, stdout io.Writer) *cli.Command {
 			if err != nil {
 				return fmt.Errorf("healthcheck: --%s: %w", flagHealthURL, err)
 			}
-			resp, err := http.DefaultClient.Do(req)
+			// A redirect is not health: answer for the URL as given.
+			client := &http.Client{CheckRedirect: func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }}
+			resp, err := client.Do(req)
 			if err != nil {
 				return fmt.Errorf("healthcheck: %w", err)
 			}

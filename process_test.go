@@ -95,17 +95,25 @@ func (p *process) client(timeout time.Duration) *http.Client {
 // tokenClient sends authorization (an Authorization header value) with
 // every request that has none.
 func tokenClient(authorization string, timeout time.Duration) *http.Client {
-	return &http.Client{Timeout: timeout, Transport: authorizing{authorization}}
+	return &http.Client{Timeout: timeout, Transport: authorizing{authorization: authorization}}
 }
 
-type authorizing struct{ authorization string }
+// authorizing adds an Authorization header to requests through base
+// (http.DefaultTransport when nil).
+type authorizing struct {
+	authorization string
+	base          http.RoundTripper
+}
 
 func (a authorizing) RoundTrip(req *http.Request) (*http.Response, error) {
 	if a.authorization != "" && req.Header.Get("Authorization") == "" {
 		req = req.Clone(req.Context())
 		req.Header.Set("Authorization", a.authorization)
 	}
-	return http.DefaultTransport.RoundTrip(req)
+	if a.base == nil {
+		return http.DefaultTransport.RoundTrip(req)
+	}
+	return a.base.RoundTrip(req)
 }
 
 // kill ends the process at once, as a crash would.

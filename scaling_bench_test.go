@@ -55,8 +55,9 @@ func BenchmarkOnePostgres(b *testing.B) {
 	}
 	bin := buildBinary(b)
 	env := map[string]string{"DATABASE_URL": srv.URL(), "QTALLY_LISTEN": "127.0.0.1:0", "QTALLY_LOG_FORMAT": "json"}
-	api := processService(b, startProcess(b, bin, env, "serve", "--"+flagNoWorker))
-	client := &http.Client{Timeout: time.Minute, Transport: &http.Transport{MaxIdleConnsPerHost: 64}}
+	api := startProcess(b, bin, env, "serve", "--"+flagNoWorker).api()
+	client := &http.Client{Timeout: time.Minute,
+		Transport: authorizing{authorization: api.authorization, base: &http.Transport{MaxIdleConnsPerHost: 64}}}
 
 	actions := []string{"keep", "call", "mail", "skip"}
 	names := make([]string, benchPolicies)

@@ -112,12 +112,6 @@ func TestEveryKeyLeadsWithPolicy(t *testing.T) {
 	}
 }
 
-// processService lets the HTTP helpers of the harness talk to a process.
-func processService(t testing.TB, p *process) *service {
-	return &service{t: t, URL: p.URL, stderr: p.stderr, router: openAPIRouter(t),
-		client: &http.Client{Timeout: 30 * time.Second}, stop: func() {}}
-}
-
 // sighting is a revision seen at a time.
 type sighting struct {
 	revision int64
@@ -143,7 +137,7 @@ func TestSeveralAPIsAndWorkersShareOneDatabase(t *testing.T) {
 	}
 	var apis []*service
 	for range 2 {
-		apis = append(apis, processService(t, startProcess(t, bin, env, "serve", "--"+flagNoWorker)))
+		apis = append(apis, startProcess(t, bin, env, "serve", "--"+flagNoWorker).api())
 	}
 	var workers []*process
 	for range 3 {
@@ -186,7 +180,7 @@ func TestSeveralAPIsAndWorkersShareOneDatabase(t *testing.T) {
 		defer mu.Unlock()
 		failures = append(failures, fmt.Sprintf(format, args...))
 	}
-	client := &http.Client{Timeout: 10 * time.Second}
+	client := tokenClient(apis[0].authorization, 10*time.Second)
 	var polling sync.WaitGroup
 
 	// Choosers: each API, each policy, one request after another.
