@@ -1,10 +1,12 @@
 .PHONY: test build fmt-check
 
-# Installs what the tests need when missing, then vets and tests everything.
+# Installs what the tests need when missing, vets and tests everything, then
+# runs every benchmark once so that none of them rots.
 test:
 	scripts/setup-test-machine.sh
 	go vet ./...
 	go test -count=1 ./...
+	go test -count=1 -run '^$$' -bench . -benchtime=1x ./...
 
 build:
 	go build -o bin/qtally .
