@@ -51,6 +51,7 @@ const (
 	flagShutdownGrace  = "shutdown-grace"
 	flagDBMaxConns     = "db-max-conns"
 	flagLogFormat      = "log-format"
+	flagPprofListen    = "pprof-listen"
 )
 
 func databaseFlag(env flagEnv, required bool) cli.Flag {
@@ -75,6 +76,7 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 		&cli.IntFlag{Name: flagMaxStateLength, Value: lim.MaxStateLength, Usage: "longest state name (bytes)", Sources: env("QTALLY_MAX_STATE_LENGTH")},
 		&cli.DurationFlag{Name: flagShutdownGrace, Value: 15 * time.Second, Usage: "time in-flight work gets to finish on shutdown", Sources: env("QTALLY_SHUTDOWN_GRACE")},
 		&cli.Int32Flag{Name: flagDBMaxConns, Value: 20, Usage: "most PostgreSQL connections of this process", Sources: env("QTALLY_DB_MAX_CONNS")},
+		&cli.StringFlag{Name: flagPprofListen, Usage: "serve Go profiles (net/http/pprof) on this loopback address, e.g. 127.0.0.1:6060; off when empty", Sources: env("QTALLY_PPROF_LISTEN")},
 		logFlag(env),
 	}
 }
@@ -91,6 +93,7 @@ type serviceConfig struct {
 	RunWorker     bool
 	ShutdownGrace time.Duration
 	DBMaxConns    int32
+	PprofListen   string
 }
 
 func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
@@ -107,6 +110,7 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		},
 		ShutdownGrace: cmd.Duration(flagShutdownGrace),
 		DBMaxConns:    cmd.Int32(flagDBMaxConns),
+		PprofListen:   cmd.String(flagPprofListen),
 	}
 	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength}
 	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,

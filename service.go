@@ -48,6 +48,14 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		}()
 	}
 
+	if cfg.PprofListen != "" {
+		l, err := listenProfiling(cfg.PprofListen)
+		if err != nil {
+			return err
+		}
+		goBackground("profiling server", func(ctx context.Context) error { return serveProfiling(ctx, l, stdout) })
+	}
+
 	handlers := map[string]func(int32){}
 	if cfg.RunAPI {
 		handlers[storage.ChannelPolicy] = func(id int32) {
