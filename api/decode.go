@@ -10,6 +10,7 @@ import (
 	"net/http"
 	"strings"
 
+	jsonv2 "github.com/go-json-experiment/json"
 	"github.com/labstack/echo/v4"
 
 	"github.com/qtally/qtally/training"
@@ -61,6 +62,25 @@ func decodeStrict(data []byte, v any, episode int) error {
 		return training.Invalid(episode, -1, "", "unexpected data after the JSON value at byte offset %d", dec.InputOffset())
 	}
 	return nil
+}
+
+// fastOptions make the faster decoder as strict as decodeStrict.
+var fastOptions = jsonv2.RejectUnknownMembers(true)
+
+// decodeFast is decodeStrict for the hot paths (episodes, choose): it tries
+// a decoder about twice as fast first. That decoder refuses duplicate
+// names, names in another letter case and invalid UTF-8, which
+// encoding/json accepts, and on null it zeroes a field where encoding/json
+// keeps the field's default. So it is used only on bodies without a null,
+// and anything it refuses is decoded afresh by decodeStrict, whose result or
+// error is the answer: for every body, the outcome is decodeStrict's.
+func decodeFast[T any](data []byte, v *T, episode int) error {
+	initial := *v
+	if !bytes.Contains(data, []byte("null")) && jsonv2.Unmarshal(data, v, fastOptions) == nil {
+		return nil
+	}
+	*v = initial
+	return decodeStrict(data, v, episode)
 }
 
 // jsonProblem turns a decoding error into a validation error located at
@@ -139,7 +159,7 @@ type episodesBody struct {
 func decodeEpisodes(body []byte, media string) ([]training.Episode, error) {
 	if media == mediaJSON {
 		var b episodesBody
-		if err := decodeStrict(body, &b, -1); err != nil {
+		if err := decodeFast(body, &b, -1); err != nil {
 			return nil, locateBatchError(body, err)
 		}
 		if b.Episodes == nil {
@@ -159,7 +179,7 @@ func decodeEpisodes(body []byte, media string) ([]training.Episode, error) {
 			continue
 		}
 		var ep training.Episode
-		if err := decodeStrict(line, &ep, len(episodes)); err != nil {
+		if err := decodeFast(line, &ep, len(episodes)); err != nil {
 			return nil, locateEpisodeError(line, len(episodes))
 		}
 		episodes = append(episodes, ep)
