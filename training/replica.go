@@ -180,8 +180,24 @@ func (r *Replica) sync(ctx context.Context, t *replicaTable, p Policy) error {
 	t.loadMu.Lock()
 	defer t.loadMu.Unlock()
 	t.mu.RLock()
-	after := t.revision
+	after, empty := t.revision, len(t.states) == 0
 	t.mu.RUnlock()
+	if empty {
+		// A first load builds the copy outside the lock straight from the
+		// rows, keeping no list of them: a large policy then costs its
+		// table and little more, even for a moment.
+		fresh := &replicaTable{states: map[string]*stateValues{}}
+		fresh.setPolicy(p)
+		if err := r.source.QRowsSince(ctx, p.ID, after, func(row QRow) { fresh.applyRow(row) }); err != nil {
+			return fmt.Errorf("refresh policy %q: %w", p.Name, err)
+		}
+		t.mu.Lock()
+		t.policy, t.index, t.states, t.pairs = fresh.policy, fresh.index, fresh.states, fresh.pairs
+		t.revision = max(t.revision, fresh.revision)
+		t.mu.Unlock()
+		t.syncedAt.Store(time.Now().UnixNano())
+		return nil
+	}
 	var rows []QRow
 	if err := r.source.QRowsSince(ctx, p.ID, after, func(row QRow) { rows = append(rows, row) }); err != nil {
 		return fmt.Errorf("refresh policy %q: %w", p.Name, err)
@@ -194,30 +210,38 @@ func (r *Replica) sync(ctx context.Context, t *replicaTable, p Policy) error {
 }
 
 func (t *replicaTable) apply(p Policy, rows []QRow) {
+	t.setPolicy(p)
+	for _, row := range rows {
+		t.applyRow(row)
+	}
+}
+
+func (t *replicaTable) setPolicy(p Policy) {
 	if len(p.Actions) != len(t.policy.Actions) {
 		// Actions only change while nothing is stored, so there is nothing to keep.
 		t.states = map[string]*stateValues{}
 		t.pairs = 0
 	}
 	t.policy, t.index = p, p.ActionIndex()
-	n := len(p.Actions)
-	for _, row := range rows {
-		sv, ok := t.states[row.State]
-		if !ok {
-			sv = &stateValues{q: make([]float64, n), visits: make([]int64, n)}
-			for i := range sv.q {
-				sv.q[i] = p.InitialQ
-			}
-			t.states[row.State] = sv
+}
+
+func (t *replicaTable) applyRow(row QRow) {
+	sv, ok := t.states[row.State]
+	if !ok {
+		n := len(t.policy.Actions)
+		sv = &stateValues{q: make([]float64, n), visits: make([]int64, n)}
+		for i := range sv.q {
+			sv.q[i] = t.policy.InitialQ
 		}
-		if sv.visits[row.Action] == 0 {
-			t.pairs++
-		}
-		sv.total += row.Visits - sv.visits[row.Action]
-		sv.q[row.Action] = row.Q
-		sv.visits[row.Action] = row.Visits
-		t.revision = max(t.revision, row.Revision)
+		t.states[row.State] = sv
 	}
+	if sv.visits[row.Action] == 0 {
+		t.pairs++
+	}
+	sv.total += row.Visits - sv.visits[row.Action]
+	sv.q[row.Action] = row.Q
+	sv.visits[row.Action] = row.Visits
+	t.revision = max(t.revision, row.Revision)
 }
 
 // Refresh brings one policy's table up to date, if this process holds it.
