@@ -40,21 +40,31 @@ func Choose(ctx context.Context, cfg Config) (Figures, error) {
 // carries fresh episode ids without re-encoding the body.
 const idPlaceholder = "RUNxxxxxxxxxxxxx"
 
+// postTemplates is how many different bodies the post scenario cycles.
+const postTemplates = 32
+
 // Post attacks the episodes route with batches of fresh episodes.
 func Post(ctx context.Context, cfg Config) (Figures, error) {
 	c, err := prepare(ctx, cfg)
 	if err != nil {
 		return Figures{}, err
 	}
-	template := newGenerator(cfg, idPlaceholder).batchBody(cfg.EpisodesPerPost)
+	// Bodies cycle through postTemplates different batches, so the
+	// traffic covers its states the way varied clients would.
+	g := newGenerator(cfg, idPlaceholder)
+	templates := make([][]byte, postTemplates)
+	for i := range templates {
+		templates[i] = g.batchBody(cfg.EpisodesPerPost)
+	}
 	target := c.base + "/v1/policies/" + cfg.Policy + "/episodes"
 	header := jsonHeader(cfg.Token)
 	run := time.Now().UnixNano()
 	var n atomic.Uint64
 	next := func(t *vegeta.Target) error {
-		prefix := fmt.Sprintf("%016x", uint64(run)+n.Add(1)<<20)
+		i := n.Add(1)
+		prefix := fmt.Sprintf("%016x", uint64(run)+i<<20)
 		t.Method, t.URL, t.Header = http.MethodPost, target, header
-		t.Body = bytes.ReplaceAll(template, []byte(idPlaceholder), []byte(prefix[len(prefix)-len(idPlaceholder):]))
+		t.Body = bytes.ReplaceAll(templates[i%postTemplates], []byte(idPlaceholder), []byte(prefix[len(prefix)-len(idPlaceholder):]))
 		return nil
 	}
 	return attack(ctx, cfg, "post", next, cfg.EpisodesPerPost*cfg.StepsPerEpisode), nil
