@@ -11,6 +11,10 @@
 #   --record   write the table into BENCHMARKS.md
 #   --out DIR  keep every result file there (default: bench-results/<time>)
 #
+# Environment: QTALLY_CEILINGS (the ceilings script, when it is not at
+# ../shared/ceilings/run.sh), POST_WORKERS (posting clients, default 16),
+# DRAIN_BATCH (the drain worker's --batch-episodes, default the worker's).
+#
 # It runs the ceilings script (--json) against a private durable PostgreSQL,
 # then a fresh qtally on the same PostgreSQL: the API pinned to the first
 # CPU like the ceilings' echo server, the load generator (qtally load, wrk)
@@ -42,6 +46,7 @@ else
 fi
 [ "$LONG" = 1 ] && MIXED_S=600
 POST_WORKERS=${POST_WORKERS:-16}   # concurrent posting clients
+DRAIN_BATCH=${DRAIN_BATCH:-}       # the drain worker's --batch-episodes (empty: its default)
 DRAIN_STATES=25000                 # x 4 actions: about 100k distinct pairs
 STATES=10000                       # states of the post, choose and mixed traffic
 
@@ -169,8 +174,8 @@ profile() {
 # 1. Training drain: a backlog stored with no worker, then one worker process
 #    (started by qtally load, not pinned) trains it.
 say "drain: $DRAIN_EPISODES episodes over $DRAIN_STATES states ..."
-"$QT" load drain --url "$API" --json --database-url "$DB_URL" --states "$DRAIN_STATES" \
-  --episodes "$DRAIN_EPISODES" >"$OUT/drain.json"
+QTALLY_BATCH_EPISODES=$DRAIN_BATCH "$QT" load drain --url "$API" --json --database-url "$DB_URL" \
+  --states "$DRAIN_STATES" --episodes "$DRAIN_EPISODES" >"$OUT/drain.json"
 
 # 2. Posting episodes at the most the service takes, no worker running.
 say "post: ${LOAD_S}s at the maximum, $POST_WORKERS clients ..."
