@@ -132,9 +132,14 @@ func loadCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 					databaseFlag(env, true)),
 				Action: func(ctx context.Context, cmd *cli.Command) error {
 					databaseURL := cmd.String(flagDatabaseURL)
+					obs, err := openObserver(ctx, databaseURL, stderr)
+					if err != nil {
+						return err
+					}
+					defer obs.Close()
 					r, err := load.Drain(ctx, config(cmd), cmd.Int("episodes"), func() (func(), error) {
 						return startWorkerProcess(databaseURL)
-					})
+					}, obs)
 					if err != nil {
 						return err
 					}
