@@ -13,7 +13,8 @@
 #
 # Environment: QTALLY_CEILINGS (the ceilings script, when it is not at
 # ../shared/ceilings/run.sh), POST_WORKERS (posting clients, default 16),
-# DRAIN_BATCH (the drain worker's --batch-episodes, default the worker's).
+# DRAIN_BATCH (the drain worker's --batch-episodes, default the worker's),
+# MIXED_BASIS (post or drain: the figure the mixed rate is 80% of; post).
 #
 # It runs the ceilings script (--json) against a private durable PostgreSQL,
 # then a fresh qtally on the same PostgreSQL: the API pinned to the first
@@ -47,6 +48,7 @@ fi
 [ "$LONG" = 1 ] && MIXED_S=600
 POST_WORKERS=${POST_WORKERS:-16}   # concurrent posting clients
 DRAIN_BATCH=${DRAIN_BATCH:-}       # the drain worker's --batch-episodes (empty: its default)
+MIXED_BASIS=${MIXED_BASIS:-post}   # mixed runs at 80% of this figure: post or drain
 DRAIN_STATES=25000                 # x 4 actions: about 100k distinct pairs
 STATES=10000                       # states of the post, choose and mixed traffic
 
@@ -215,11 +217,16 @@ fi
 say "memory: $MEMORY_PAIRS pairs ..."
 qtally_load memory --pairs "$MEMORY_PAIRS" --pprof-url "$PPROF" >"$OUT/memory.json"
 
-# 6. Mixed: 80% of the measured posting rate, one choose per episode.
-POST_STEPS=$(json_field "$OUT/post.json" units_per_s)
-RATE=$(awk -v s="$POST_STEPS" 'BEGIN { r = int(0.8 * s / 20); print (r < 1 ? 1 : r) }')
-say "mixed: ${MIXED_S}s at $RATE episodes/s ..."
-qtally_load mixed --policy bench --states "$STATES" --rate "$RATE" --choose-every 20 --workers 64 \
+# 6. Mixed: 80% of the measured posting rate (or drain rate), one choose per
+#    episode, 256 simulated clients (mostly waiting on their answers).
+case $MIXED_BASIS in
+  post) BASIS_STEPS=$(json_field "$OUT/post.json" units_per_s) ;;
+  drain) BASIS_STEPS=$(json_field "$OUT/drain.json" steps_per_s) ;;
+  *) say "MIXED_BASIS must be post or drain"; exit 2 ;;
+esac
+RATE=$(awk -v s="$BASIS_STEPS" 'BEGIN { r = int(0.8 * s / 20); print (r < 1 ? 1 : r) }')
+say "mixed: ${MIXED_S}s at $RATE episodes/s (80% of the $MIXED_BASIS figure) ..."
+qtally_load mixed --policy bench --states "$STATES" --rate "$RATE" --choose-every 20 --workers 256 \
   --duration "${MIXED_S}s" --database-url "$DB_URL" --pprof-url "$PPROF" >"$OUT/mixed.json"
 
 stop_pid "$WORKER_PID"; WORKER_PID=
