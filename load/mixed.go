@@ -31,6 +31,10 @@ type MixedOptions struct {
 	// Process, when set, reads the API process's memory at the start and
 	// end of the run.
 	Process *Process
+	// Posters is how many posts of finished episodes may be under way at
+	// once: a post waits for a durable commit, and clients must not wait
+	// for it.
+	Posters int
 }
 
 // MixedReport is what the mixed scenario saw.
@@ -72,8 +76,8 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	if err != nil {
 		return MixedReport{}, err
 	}
-	if cfg.Rate < 1 || opt.ChooseEvery < 1 {
-		return MixedReport{}, fmt.Errorf("load: mixed needs a positive episode rate and choose interval")
+	if cfg.Rate < 1 || opt.ChooseEvery < 1 || opt.Posters < 1 {
+		return MixedReport{}, fmt.Errorf("load: mixed needs a positive episode rate, choose interval and number of posters")
 	}
 	obs, source := opt.Observer, "notifications"
 	if obs == nil {
@@ -95,7 +99,7 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	wg.Add(3)
 	go func() {
 		defer wg.Done()
-		postFinished(runCtx, c, cfg, finished, &episodes, &errs)
+		postFinished(runCtx, c, cfg, opt.Posters, finished, &episodes, &errs)
 	}()
 	go func() {
 		defer wg.Done()
@@ -196,13 +200,9 @@ loop:
 	wg.Wait()
 }
 
-// posters is how many posts of finished episodes may be under way at
-// once: a post waits for a durable commit, and clients must not wait for it.
-const posters = 8
-
 // postFinished batches finished episodes by cfg.EpisodesPerPost (or what
 // finished in 200 ms) and posts the batches from up to posters clients.
-func postFinished(ctx context.Context, c *client, cfg Config, finished <-chan episode, posted, errs *atomic.Int64) {
+func postFinished(ctx context.Context, c *client, cfg Config, posters int, finished <-chan episode, posted, errs *atomic.Int64) {
 	batches := make(chan []episode, posters)
 	var wg sync.WaitGroup
 	for range posters {

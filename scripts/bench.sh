@@ -226,7 +226,7 @@ case $MIXED_BASIS in
 esac
 RATE=$(awk -v s="$BASIS_STEPS" 'BEGIN { r = int(0.8 * s / 20); print (r < 1 ? 1 : r) }')
 say "mixed: ${MIXED_S}s at $RATE episodes/s (80% of the $MIXED_BASIS figure) ..."
-qtally_load mixed --policy bench --states "$STATES" --rate "$RATE" --choose-every 20 --workers 256 \
+qtally_load mixed --policy bench --states "$STATES" --rate "$RATE" --choose-every 20 --workers 256 --posters "$POST_WORKERS" \
   --duration "${MIXED_S}s" --database-url "$DB_URL" --pprof-url "$PPROF" >"$OUT/mixed.json"
 
 stop_pid "$WORKER_PID"; WORKER_PID=

@@ -22,8 +22,10 @@ func (db *DB) Listen(ctx context.Context, logger *slog.Logger, handlers map[stri
 			}
 			return conn, err
 		},
-		LogError: func(_ context.Context, err error) {
-			logger.Warn("notification listener", "error", err)
+		LogError: func(ctx context.Context, err error) {
+			if ctx.Err() == nil { // an ending listen is not a failure
+				logger.Warn("notification listener", "error", err)
+			}
 		},
 	}
 	for channel, handle := range handlers {
