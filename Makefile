@@ -1,10 +1,12 @@
-.PHONY: test build fmt-check dev image
+.PHONY: test build fmt-check dev image bench
 
-# Installs what the tests need when missing, then vets and tests everything.
+# Installs what the tests need when missing, vets and tests everything, then
+# runs every benchmark once so that none of them rots.
 test:
 	scripts/setup-test-machine.sh
 	go vet ./...
 	go test -count=1 ./...
+	go test -count=1 -run '^$$' -bench . -benchtime=1x ./...
 
 build:
 	go build -o bin/qtally .
@@ -24,3 +26,8 @@ VERSION ?= $(shell git describe --tags --always --dirty 2>/dev/null || echo dev)
 GO_VERSION ?= $(shell go env GOVERSION | sed 's/^go//')
 image:
 	docker build -f deploy/Dockerfile --build-arg GO_VERSION=$(GO_VERSION) --build-arg VERSION=$(VERSION) -t $(IMAGE) .
+
+# Measures the service against this machine's ceilings (BENCHMARKS.md).
+# Options go in BENCH_ARGS, e.g. make bench BENCH_ARGS="--quick".
+bench:
+	scripts/bench.sh $(BENCH_ARGS)

@@ -74,7 +74,7 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 				},
 			},
 			devCommand(env, stdout, stderr),
-			loadCommand(env, stdout),
+			loadCommand(env, stdout, stderr),
 			demoCommand(env, stdout),
 			exportCommand(env, stdout),
 			importCommand(env, stdout),

@@ -56,6 +56,7 @@ const (
 	flagCoverageVisits = "coverage-visits"
 	flagHistoryBucket  = "history-bucket"
 	flagHistoryWindow  = "history-window"
+	flagPprofListen    = "pprof-listen"
 )
 
 // Flags of episode retention.
@@ -91,6 +92,7 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 		&cli.Int64Flag{Name: flagCoverageVisits, Value: 10, Usage: "visits a state-action pair needs to count as covered in the coverage metric", Sources: env("QTALLY_COVERAGE_VISITS")},
 		&cli.DurationFlag{Name: flagHistoryBucket, Value: storage.DefaultHistory().Bucket, Usage: "stretch of time one row of training history sums up", Sources: env("QTALLY_HISTORY_BUCKET")},
 		&cli.DurationFlag{Name: flagHistoryWindow, Value: storage.DefaultHistory().Window, Usage: "how long training history is kept", Sources: env("QTALLY_HISTORY_WINDOW")},
+		&cli.StringFlag{Name: flagPprofListen, Usage: "serve Go profiles (net/http/pprof) on this loopback address, e.g. 127.0.0.1:6060; off when empty", Sources: env("QTALLY_PPROF_LISTEN")},
 		logFlag(env),
 		&cli.DurationFlag{Name: flagEpisodeRetention, Usage: "keep trained episodes this long for evaluation and replay, then delete them (0 keeps them forever; untrained episodes are always kept)", Sources: env("QTALLY_EPISODE_RETENTION")},
 		&cli.DurationFlag{Name: flagPruneInterval, Value: time.Minute, Usage: "how often the worker deletes episodes older than the retention", Sources: env("QTALLY_PRUNE_INTERVAL")},
@@ -123,6 +125,7 @@ type serviceConfig struct {
 	PruneBatch       int
 	JobStaleAfter    time.Duration
 	Auth             authConfig
+	PprofListen      string
 }
 
 func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
@@ -145,6 +148,7 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		PruneInterval:    cmd.Duration(flagPruneInterval),
 		PruneBatch:       cmd.Int(flagPruneBatch),
 		JobStaleAfter:    cmd.Duration(flagJobStaleAfter),
+		PprofListen:      cmd.String(flagPprofListen),
 	}
 	cfg.CoverageVisits = cmd.Int64(flagCoverageVisits)
 	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength,

@@ -16,8 +16,9 @@ import (
 )
 
 // loadCommand drives a running qtally on this machine with bounded load.
-func loadCommand(env flagEnv, stdout io.Writer) *cli.Command {
+func loadCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 	def := load.DefaultConfig()
+	pprofURLFlag := &cli.StringFlag{Name: "pprof-url", Usage: "profiling server of the API process (its --pprof-listen), to read its memory"}
 	common := []cli.Flag{
 		&cli.StringFlag{Name: "url", Value: def.BaseURL, Usage: "base URL of the qtally to load (loopback only)", Sources: env("QTALLY_LOAD_URL")},
 		&cli.StringFlag{Name: "policy", Value: def.Policy, Usage: "policy to create and load"},
@@ -66,23 +67,80 @@ func loadCommand(env flagEnv, stdout io.Writer) *cli.Command {
 					}
 					return show(cmd, f)
 				}},
-			{Name: "mixed", Usage: "simulated clients choose during episodes and post them as they end, at --rate episodes/s",
-				Flags: append(common, &cli.IntFlag{Name: "choose-every", Value: 1, Usage: "choose at every n-th step (1: every step)"}),
+			{Name: "mixed", Usage: "simulated clients choose during episodes and post them as they end, at --rate episodes/s (a worker must run)",
+				Flags: append(common, &cli.IntFlag{Name: "choose-every", Value: 1, Usage: "choose at every n-th step (1: every step)"},
+					&cli.IntFlag{Name: "posters", Value: 16, Usage: "posts of finished episodes under way at once"},
+					databaseFlag(env, false), pprofURLFlag),
 				Action: func(ctx context.Context, cmd *cli.Command) error {
-					r, err := load.Mixed(ctx, config(cmd), cmd.Int("choose-every"))
+					opt := load.MixedOptions{ChooseEvery: cmd.Int("choose-every"), Posters: cmd.Int("posters")}
+					if u := cmd.String(flagDatabaseURL); u != "" {
+						obs, err := openObserver(ctx, u, stderr)
+						if err != nil {
+							return err
+						}
+						defer obs.Close()
+						opt.Observer = obs
+					}
+					if u := cmd.String(pprofURLFlag.Name); u != "" {
+						proc, err := load.NewProcess(u, cmd.String("url"))
+						if err != nil {
+							return err
+						}
+						opt.Process = proc
+					}
+					r, err := load.Mixed(ctx, config(cmd), opt)
 					if err != nil {
 						return err
 					}
 					return show(cmd, r)
+				}},
+			{Name: "memory", Usage: "fill a fresh policy with --pairs trained pairs (a worker must run), then measure what loading it into the API process costs",
+				Flags: append(common, &cli.IntFlag{Name: "pairs", Value: 1_000_000, Usage: "distinct pairs to train"}, pprofURLFlag),
+				Action: func(ctx context.Context, cmd *cli.Command) error {
+					if cmd.String(pprofURLFlag.Name) == "" {
+						return fmt.Errorf("--%s is required: the address the API process serves profiles on (its --pprof-listen)", pprofURLFlag.Name)
+					}
+					proc, err := load.NewProcess(cmd.String(pprofURLFlag.Name), cmd.String("url"))
+					if err != nil {
+						return err
+					}
+					r, err := load.Memory(ctx, config(cmd), cmd.Int("pairs"), proc)
+					if err != nil {
+						return err
+					}
+					return show(cmd, r)
+				}},
+			{Name: "wait", Usage: "wait until the policy has no untrained episodes (at most --duration)", Flags: common,
+				Action: func(ctx context.Context, cmd *cli.Command) error {
+					r, err := load.Wait(ctx, config(cmd), cmd.Duration("duration"))
+					if err != nil {
+						return err
+					}
+					return show(cmd, r)
+				}},
+			{Name: "report", Usage: "print the table of figures, ceilings and ratios of a scripts/bench.sh run directory",
+				Flags: []cli.Flag{&cli.StringFlag{Name: "dir", Required: true, Usage: "the run directory"}},
+				Action: func(ctx context.Context, cmd *cli.Command) error {
+					table, err := load.Report(cmd.String("dir"))
+					if err != nil {
+						return err
+					}
+					_, err = io.WriteString(stdout, table)
+					return err
 				}},
 			{Name: "drain", Usage: "store --episodes with training paused (the service runs --no-worker), then start a worker and time the drain",
 				Flags: append(common, &cli.IntFlag{Name: "episodes", Value: 50_000, Usage: "backlog to store"},
 					databaseFlag(env, true)),
 				Action: func(ctx context.Context, cmd *cli.Command) error {
 					databaseURL := cmd.String(flagDatabaseURL)
+					obs, err := openObserver(ctx, databaseURL, stderr)
+					if err != nil {
+						return err
+					}
+					defer obs.Close()
 					r, err := load.Drain(ctx, config(cmd), cmd.Int("episodes"), func() (func(), error) {
 						return startWorkerProcess(databaseURL)
-					})
+					}, obs)
 					if err != nil {
 						return err
 					}

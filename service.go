@@ -51,6 +51,14 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		}()
 	}
 
+	if cfg.PprofListen != "" {
+		l, err := listenProfiling(cfg.PprofListen)
+		if err != nil {
+			return err
+		}
+		goBackground("profiling server", func(ctx context.Context) error { return serveProfiling(ctx, l, stdout) })
+	}
+
 	subs := map[string]storage.Subscription{}
 	if cfg.RunAPI {
 		reg.MustRegister(metrics.NewReplicaCollector(replica, cfg.CoverageVisits))

@@ -13,6 +13,7 @@ import (
 	"strings"
 	"unicode/utf8"
 
+	jsonv2 "github.com/go-json-experiment/json"
 	"github.com/labstack/echo/v4"
 
 	"github.com/qtally/qtally/training"
@@ -26,7 +27,7 @@ const (
 // readBody reads a request body of an accepted media type, within limit.
 func readBody(c echo.Context, limit int64, accepted ...string) ([]byte, string, error) {
 	req := c.Request()
-	media, _, err := mime.ParseMediaType(req.Header.Get(echo.HeaderContentType))
+	media, err := mediaType(req.Header.Get(echo.HeaderContentType))
 	if err != nil || !contains(accepted, media) {
 		return nil, "", echo.NewHTTPError(http.StatusUnsupportedMediaType,
 			fmt.Sprintf("Content-Type must be %s", strings.Join(accepted, " or ")))
@@ -41,6 +42,16 @@ func readBody(c echo.Context, limit int64, accepted ...string) ([]byte, string, 
 		return nil, "", echo.NewHTTPError(http.StatusBadRequest, "the body could not be read: "+err.Error())
 	}
 	return body, media, nil
+}
+
+// mediaType is mime.ParseMediaType's media type, without parsing the two
+// plain values clients send on nearly every request.
+func mediaType(header string) (string, error) {
+	if header == mediaJSON || header == mediaNDJSON {
+		return header, nil
+	}
+	media, _, err := mime.ParseMediaType(header)
+	return media, err
 }
 
 func contains(list []string, s string) bool {
@@ -69,6 +80,25 @@ func decodeStrict(data []byte, v any, episode int) error {
 		return training.Invalid(episode, -1, "", "unexpected data after the JSON value at byte offset %d", dec.InputOffset())
 	}
 	return nil
+}
+
+// fastOptions make the faster decoder as strict as decodeStrict.
+var fastOptions = jsonv2.RejectUnknownMembers(true)
+
+// decodeFast is decodeStrict for the hot paths (episodes, choose): it tries
+// a decoder about twice as fast first. That decoder refuses duplicate
+// names, names in another letter case and invalid UTF-8, which
+// encoding/json accepts, and on null it zeroes a field where encoding/json
+// keeps the field's default. So it is used only on bodies without a null,
+// and anything it refuses is decoded afresh by decodeStrict, whose result or
+// error is the answer: for every body, the outcome is decodeStrict's.
+func decodeFast[T any](data []byte, v *T, episode int) error {
+	initial := *v
+	if !bytes.Contains(data, []byte("null")) && jsonv2.Unmarshal(data, v, fastOptions) == nil {
+		return nil
+	}
+	*v = initial
+	return decodeStrict(data, v, episode)
 }
 
 // jsonProblem turns a decoding error into a validation error located at
@@ -242,7 +272,7 @@ type episodesBody struct {
 func decodeEpisodes(body []byte, media string) ([]training.Episode, error) {
 	if media == mediaJSON {
 		var b episodesBody
-		if err := decodeStrict(body, &b, -1); err != nil {
+		if err := decodeFast(body, &b, -1); err != nil {
 			return nil, locateBatchError(body, err)
 		}
 		if b.Episodes == nil {
@@ -262,7 +292,7 @@ func decodeEpisodes(body []byte, media string) ([]training.Episode, error) {
 			continue
 		}
 		var ep training.Episode
-		if err := decodeStrict(line, &ep, len(episodes)); err != nil {
+		if err := decodeFast(line, &ep, len(episodes)); err != nil {
 			return nil, locateEpisodeError(line, len(episodes))
 		}
 		episodes = append(episodes, ep)

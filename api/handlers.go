@@ -185,7 +185,7 @@ func handleChoose(ch Chooser, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
 			return err
 		}
 		req := chooseRequest{Mode: training.Greedy}
-		if err := decodeStrict(body, &req, -1); err != nil {
+		if err := decodeFast(body, &req, -1); err != nil {
 			return err
 		}
 		if err := validateChoose(req, cfg); err != nil {

@@ -32,10 +32,16 @@ type generator struct {
 func newGenerator(cfg Config, run string) *generator {
 	states := make([]string, cfg.States)
 	for i := range states {
-		states[i] = fmt.Sprintf("tier=%d|day=%d|reason=%d", i%7, (i/7)%30, i/210)
+		states[i] = stateName(i)
 	}
 	return &generator{rng: rand.New(rand.NewPCG(cfg.Seed, uint64(len(run)))), states: states,
 		actions: cfg.Actions, steps: cfg.StepsPerEpisode, run: run}
+}
+
+// stateName is the i-th state of generated traffic; scripts/bench/choose.lua
+// builds the same names.
+func stateName(i int) string {
+	return fmt.Sprintf("tier=%d|day=%d|reason=%d", i%7, (i/7)%30, i/210)
 }
 
 func (g *generator) state() string { return g.states[g.rng.IntN(len(g.states))] }

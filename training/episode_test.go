@@ -3,6 +3,7 @@ package training
 import (
 	"errors"
 	"math"
+	"regexp"
 	"strings"
 	"testing"
 )
@@ -122,6 +123,21 @@ func TestSettingsValidation(t *testing.T) {
 	if one.Validate() == nil {
 		t.Error("a single action was accepted")
 	}
+}
+
+// The rule for policy names, as a regular expression: the check must agree
+// with it on every name.
+var policyNameRule = regexp.MustCompile(`^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$`)
+
+func FuzzPolicyNameFollowsTheRule(f *testing.F) {
+	for _, s := range []string{"checkout", "a", "retry-v2.1_b", "", "../etc", "-x", "a b", "caf\u00e9", "x\n", strings.Repeat("y", 64), strings.Repeat("y", 65), "A.", "9-_"} {
+		f.Add(s)
+	}
+	f.Fuzz(func(t *testing.T, name string) {
+		if got, want := ValidatePolicyName(name) == nil, policyNameRule.MatchString(name); got != want {
+			t.Fatalf("%q: accepted %v, the rule says %v", name, got, want)
+		}
+	})
 }
 
 func TestPolicyNames(t *testing.T) {

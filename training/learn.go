@@ -88,82 +88,172 @@ func TouchedStates(episodes []StoredEpisode) []string {
 // for bit, so a batch can be written with one set-based statement.
 func Learn(in BatchInput) BatchResult {
 	p := in.Policy
-	work := make(map[PairKey]*Estimate, len(in.Current))
-	get := func(k PairKey) *Estimate {
-		if e, ok := work[k]; ok {
-			return e
-		}
-		e := &Estimate{Q: p.InitialQ}
-		if cur, ok := in.Current[k]; ok {
-			*e = cur
-		}
-		work[k] = e
-		return e
-	}
-	var res BatchResult
-	var order []PairKey
-	updated := make(map[PairKey]bool)
-	firstSeen := make(map[PairKey]int)
+	ix := indexBatch(in)
+	res := BatchResult{EpisodeReturns: make([]float64, 0, len(in.Episodes)), AbsDeltas: make([]float64, 0, len(ix.stepPair))}
+	// The replay touches only slices: every step's pair was numbered once.
+	est := ix.before()
+	order := make([]int32, 0, len(ix.pairs))
+	updated := make([]bool, len(ix.pairs))
+	firstStep := make([]int32, len(ix.pairs))
+	off := 0
 	for _, ep := range in.Episodes {
 		n := len(ep.States)
+		steps := ix.stepPair[off : off+n]
+		off += n
 		res.Steps += n
 		if p.Visit == FirstVisit {
-			clear(firstSeen)
 			for t := n - 1; t >= 0; t-- {
-				firstSeen[PairKey{ep.States[t], ep.Actions[t]}] = t
+				firstStep[steps[t]] = int32(t)
 			}
 		}
 		g := 0.0
 		for t := n - 1; t >= 0; t-- {
 			g = ep.Rewards[t] + p.Gamma*g
-			k := PairKey{ep.States[t], ep.Actions[t]}
-			if p.Visit == FirstVisit && firstSeen[k] != t {
+			i := steps[t]
+			if p.Visit == FirstVisit && firstStep[i] != int32(t) {
 				continue
 			}
-			e := get(k)
+			e := &est[i]
 			var delta float64
 			e.Q, delta = ConstantStep(e.Q, g, p.Alpha)
 			e.Visits++
 			e.LastDelta = delta
 			res.AbsDeltas = append(res.AbsDeltas, math.Abs(delta))
-			if !updated[k] {
-				updated[k] = true
-				order = append(order, k)
+			if !updated[i] {
+				updated[i] = true
+				order = append(order, i)
 			}
 		}
 		res.EpisodeReturns = append(res.EpisodeReturns, g)
 	}
 	res.Pairs = make([]PairResult, len(order))
-	for i, k := range order {
-		res.Pairs[i] = PairResult{PairKey: k, Estimate: *work[k]}
+	for j, i := range order {
+		pr := ix.pairs[i]
+		res.Pairs[j] = PairResult{PairKey: PairKey{ix.states[pr.state], pr.action}, Estimate: est[i]}
 	}
-	res.GreedyChanges = countGreedyChanges(p, in.Current, work, order)
+	res.GreedyChanges = ix.countGreedyChanges(p, est, order)
 	return res
+}
+
+// batchIndex numbers a batch's states and pairs so that learning works on
+// slices. A state's pairs, and its stored estimates, are chained lists
+// through index slices: a state has a few of each, and chains need no
+// allocation per state.
+type batchIndex struct {
+	states   []string
+	pairs    []batchPair
+	stepPair []int32 // the pair of every step, episodes one after another
+	// firstPair and firstStored head each state's chains (-1: none).
+	firstPair, firstStored []int32
+	stored                 []storedPair
+	initialQ               float64
+}
+
+type batchPair struct {
+	state  int32
+	action int16
+	next   int32 // next pair of the same state, -1 at the end
+}
+
+type storedPair struct {
+	action int16
+	est    Estimate
+	next   int32
+}
+
+func indexBatch(in BatchInput) *batchIndex {
+	total := 0
+	for _, ep := range in.Episodes {
+		total += len(ep.States)
+	}
+	// Sized for about two steps per state, so growing is rare.
+	ix := &batchIndex{stepPair: make([]int32, 0, total), initialQ: in.Policy.InitialQ,
+		states: make([]string, 0, total/2), firstPair: make([]int32, 0, total/2),
+		pairs: make([]batchPair, 0, total/2), stored: make([]storedPair, 0, len(in.Current))}
+	stateOf := make(map[string]int32, total/2)
+	for _, ep := range in.Episodes {
+		for t, s := range ep.States {
+			si, ok := stateOf[s]
+			if !ok {
+				si = int32(len(ix.states))
+				stateOf[s] = si
+				ix.states = append(ix.states, s)
+				ix.firstPair = append(ix.firstPair, -1)
+			}
+			ix.stepPair = append(ix.stepPair, ix.pair(si, ep.Actions[t]))
+		}
+	}
+	ix.firstStored = make([]int32, len(ix.states))
+	for i := range ix.firstStored {
+		ix.firstStored[i] = -1
+	}
+	for k, e := range in.Current {
+		if si, ok := stateOf[k.State]; ok {
+			ix.stored = append(ix.stored, storedPair{action: k.Action, est: e, next: ix.firstStored[si]})
+			ix.firstStored[si] = int32(len(ix.stored) - 1)
+		}
+	}
+	return ix
+}
+
+// pair returns the number of (state si, action a), numbering it if new.
+func (ix *batchIndex) pair(si int32, a int16) int32 {
+	for i := ix.firstPair[si]; i >= 0; i = ix.pairs[i].next {
+		if ix.pairs[i].action == a {
+			return i
+		}
+	}
+	ix.pairs = append(ix.pairs, batchPair{state: si, action: a, next: ix.firstPair[si]})
+	ix.firstPair[si] = int32(len(ix.pairs) - 1)
+	return ix.firstPair[si]
+}
+
+// before returns every pair's estimate before the batch: stored, or
+// unseen at the policy's initial value.
+func (ix *batchIndex) before() []Estimate {
+	est := make([]Estimate, len(ix.pairs))
+	for i := range est {
+		est[i] = Estimate{Q: ix.initialQ}
+	}
+	for si := range ix.states {
+		for j := ix.firstStored[si]; j >= 0; j = ix.stored[j].next {
+			sp := ix.stored[j]
+			for i := ix.firstPair[si]; i >= 0; i = ix.pairs[i].next {
+				if ix.pairs[i].action == sp.action {
+					est[i] = sp.est
+				}
+			}
+		}
+	}
+	return est
 }
 
 // countGreedyChanges compares, for each updated state, the set of greedy
 // actions before and after the batch.
-func countGreedyChanges(p Policy, before map[PairKey]Estimate, after map[PairKey]*Estimate, updated []PairKey) int {
+func (ix *batchIndex) countGreedyChanges(p Policy, after []Estimate, updated []int32) int {
 	nActions := len(p.Actions)
 	qBefore := make([]float64, nActions)
 	qAfter := make([]float64, nActions)
-	done := make(map[string]bool)
+	done := make([]bool, len(ix.states))
 	changes := 0
-	for _, k := range updated {
-		if done[k.State] {
+	for _, i := range updated {
+		si := ix.pairs[i].state
+		if done[si] {
 			continue
 		}
-		done[k.State] = true
-		for a := range nActions {
-			key := PairKey{k.State, int16(a)}
-			qBefore[a], qAfter[a] = p.InitialQ, p.InitialQ
-			if e, ok := before[key]; ok {
-				qBefore[a] = e.Q
+		done[si] = true
+		for a := range qBefore {
+			qBefore[a] = p.InitialQ
+		}
+		for j := ix.firstStored[si]; j >= 0; j = ix.stored[j].next {
+			if a := int(ix.stored[j].action); a >= 0 && a < nActions {
+				qBefore[a] = ix.stored[j].est.Q
 			}
-			if e, ok := after[key]; ok {
-				qAfter[a] = e.Q
-			} else if e, ok := before[key]; ok {
-				qAfter[a] = e.Q
+		}
+		copy(qAfter, qBefore)
+		for k := ix.firstPair[si]; k >= 0; k = ix.pairs[k].next {
+			if a := int(ix.pairs[k].action); a >= 0 && a < nActions {
+				qAfter[a] = after[k].Q
 			}
 		}
 		if !sameGreedySet(qBefore, qAfter) {

@@ -1,8 +1,10 @@
 package training
 
 import (
+	"maps"
 	"math"
 	"math/rand/v2"
+	"slices"
 	"testing"
 
 	"gonum.org/v1/gonum/floats"
@@ -213,4 +215,113 @@ func pairsByKey(res BatchResult) map[PairKey]Estimate {
 		m[pr.PairKey] = pr.Estimate
 	}
 	return m
+}
+
+// referenceBatch computes everything Learn reports the plain way, one
+// update at a time on a map: the order pairs were first updated, every
+// |delta Q|, each episode's G0, and the states whose set of greedy actions
+// (over the policy's actions, unseen pairs at the initial value) differs
+// between the table before and after.
+func referenceBatch(p Policy, current map[PairKey]Estimate, episodes []StoredEpisode) (order []PairKey, deltas, returns []float64, greedyChanges int) {
+	table := maps.Clone(current)
+	seen := map[PairKey]bool{}
+	for _, ep := range episodes {
+		n := len(ep.States)
+		for tt := n - 1; tt >= 0; tt-- {
+			k := PairKey{ep.States[tt], ep.Actions[tt]}
+			if p.Visit == FirstVisit {
+				first := -1
+				for j := 0; j < n && first < 0; j++ {
+					if ep.States[j] == k.State && ep.Actions[j] == k.Action {
+						first = j
+					}
+				}
+				if first != tt {
+					continue
+				}
+			}
+			g := 0.0
+			for j := n - 1; j >= tt; j-- {
+				g = ep.Rewards[j] + p.Gamma*g
+			}
+			e, ok := table[k]
+			if !ok {
+				e.Q = p.InitialQ
+			}
+			e.LastDelta = p.Alpha * (g - e.Q)
+			e.Q += e.LastDelta
+			e.Visits++
+			table[k] = e
+			deltas = append(deltas, math.Abs(e.LastDelta))
+			if !seen[k] {
+				seen[k] = true
+				order = append(order, k)
+			}
+		}
+		g := 0.0
+		for j := n - 1; j >= 0; j-- {
+			g = ep.Rewards[j] + p.Gamma*g
+		}
+		returns = append(returns, g)
+	}
+	greedy := func(t map[PairKey]Estimate, s string) []bool {
+		q := make([]float64, len(p.Actions))
+		for a := range q {
+			q[a] = p.InitialQ
+			if e, ok := t[PairKey{s, int16(a)}]; ok {
+				q[a] = e.Q
+			}
+		}
+		top := slices.Max(q)
+		set := make([]bool, len(q))
+		for a := range q {
+			set[a] = q[a] == top
+		}
+		return set
+	}
+	counted := map[string]bool{}
+	for _, k := range order {
+		if !counted[k.State] {
+			counted[k.State] = true
+			if !slices.Equal(greedy(current, k.State), greedy(table, k.State)) {
+				greedyChanges++
+			}
+		}
+	}
+	return order, deltas, returns, greedyChanges
+}
+
+// Everything a batch reports, not only the final estimates, matches the
+// plain computation, including which states changed their greedy actions.
+func TestLearnReportsWhatSequentialUpdatesDo(t *testing.T) {
+	for _, visit := range []VisitRule{FirstVisit, EveryVisit} {
+		t.Run(string(visit), func(t *testing.T) {
+			rng := rand.New(rand.NewPCG(9, 10))
+			p := Policy{Settings: Settings{Actions: []string{"x", "y", "z"}, Gamma: 0.8, Alpha: 0.5, Visit: visit, InitialQ: 0.25}}
+			for batch := range 50 {
+				episodes := randomEpisodes(rng, 1+rng.IntN(20), 6, 3)
+				current := map[PairKey]Estimate{}
+				for range rng.IntN(12) {
+					// Integer values make ties, so greedy sets change both ways.
+					k := PairKey{string(rune('a' + rng.IntN(8))), int16(rng.IntN(3))}
+					current[k] = Estimate{Q: float64(rng.IntN(5)), Visits: 1 + rng.Int64N(9), LastDelta: rng.NormFloat64()}
+				}
+				order, deltas, returns, changes := referenceBatch(p, current, episodes)
+				res := Learn(BatchInput{Policy: p, Episodes: episodes, Current: current})
+				got := make([]PairKey, len(res.Pairs))
+				for i, pr := range res.Pairs {
+					got[i] = pr.PairKey
+				}
+				if !slices.Equal(got, order) {
+					t.Fatalf("batch %d: pairs in order %v, reference %v", batch, got, order)
+				}
+				if !floats.EqualApprox(res.AbsDeltas, deltas, 1e-12) || !floats.EqualApprox(res.EpisodeReturns, returns, 1e-12) {
+					t.Fatalf("batch %d: deltas %v returns %v, reference %v %v", batch, res.AbsDeltas, res.EpisodeReturns, deltas, returns)
+				}
+				if res.GreedyChanges != changes {
+					t.Fatalf("batch %d: %d greedy changes, reference %d", batch, res.GreedyChanges, changes)
+				}
+			}
+		})
+	}
 }

@@ -5,7 +5,6 @@ import (
 	"fmt"
 	"math"
 	"reflect"
-	"regexp"
 	"time"
 	"unicode"
 	"unicode/utf8"
@@ -88,11 +87,9 @@ func (s Settings) ActionIndex() map[string]int16 {
 	return index
 }
 
-var policyName = regexp.MustCompile(`^[A-Za-z0-9][A-Za-z0-9._-]*$`)
-
 // ValidatePolicyName accepts names that are safe in a URL path segment.
 func ValidatePolicyName(name string) error {
-	if len(name) == 0 || len(name) > MaxPolicyNameLen || !policyName.MatchString(name) {
+	if !isPolicyName(name) {
 		return Invalid(-1, -1, "policy", "policy names are 1 to %d characters of letters, digits, '.', '_' and '-', starting with a letter or digit", MaxPolicyNameLen)
 	}
 	return nil
@@ -111,6 +108,24 @@ func newSettingsValidator() *validator.Validate {
 		return printableName(fl.Field().String())
 	}))
 	return v
+}
+
+// isPolicyName holds for 1 to MaxPolicyNameLen ASCII letters, digits, '.',
+// '_' and '-', the first a letter or digit. Every request checks its
+// policy name, so this is a loop rather than a regular expression.
+func isPolicyName(name string) bool {
+	if len(name) == 0 || len(name) > MaxPolicyNameLen {
+		return false
+	}
+	for i := 0; i < len(name); i++ {
+		switch c := name[i]; {
+		case 'a' <= c && c <= 'z', 'A' <= c && c <= 'Z', '0' <= c && c <= '9':
+		case i > 0 && (c == '.' || c == '_' || c == '-'):
+		default:
+			return false
+		}
+	}
+	return true
 }
 
 func must(err error) {

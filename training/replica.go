@@ -187,58 +187,71 @@ func (r *Replica) sync(ctx context.Context, t *replicaTable, p Policy) error {
 	t.loadMu.Lock()
 	defer t.loadMu.Unlock()
 	t.mu.RLock()
-	after := t.revision
-	if p.TableEpoch != t.epoch {
-		after = 0 // the table was replaced: read it whole
-	}
+	after, whole := t.revision, len(t.states) == 0 || p.TableEpoch != t.epoch
 	t.mu.RUnlock()
+	if whole {
+		// A first load, or a table that a restore or import replaced, is
+		// built outside the lock straight from the rows, keeping no list of
+		// them: a large policy then costs its table and little more, even
+		// for a moment. Rows that a replaced table no longer has are gone.
+		fresh := &replicaTable{pairsByVisits: map[int64]int64{}}
+		fresh.setPolicy(p)
+		if err := r.source.QRowsSince(ctx, p.ID, 0, fresh.applyRow); err != nil {
+			return fmt.Errorf("refresh policy %q: %w", p.Name, err)
+		}
+		t.mu.Lock()
+		t.policy, t.index, t.states = fresh.policy, fresh.index, fresh.states
+		t.pairs, t.visits, t.pairsByVisits = fresh.pairs, fresh.visits, fresh.pairsByVisits
+		// p was read before the rows, so they hold at least its revision.
+		t.epoch, t.revision = p.TableEpoch, max(fresh.revision, p.Revision)
+		t.mu.Unlock()
+		t.syncedAt.Store(time.Now().UnixNano())
+		return nil
+	}
 	var rows []QRow
 	if err := r.source.QRowsSince(ctx, p.ID, after, func(row QRow) { rows = append(rows, row) }); err != nil {
 		return fmt.Errorf("refresh policy %q: %w", p.Name, err)
 	}
 	t.mu.Lock()
-	t.apply(p, rows)
+	t.setPolicy(p)
+	for _, row := range rows {
+		t.applyRow(row)
+	}
 	t.mu.Unlock()
 	t.syncedAt.Store(time.Now().UnixNano())
 	return nil
 }
 
-func (t *replicaTable) apply(p Policy, rows []QRow) {
-	if len(p.Actions) != len(t.policy.Actions) {
+func (t *replicaTable) setPolicy(p Policy) {
+	if t.states == nil || len(p.Actions) != len(t.policy.Actions) {
 		// Actions only change while nothing is stored, so there is nothing to keep.
 		t.clear()
 	}
-	if p.TableEpoch != t.epoch {
-		// A restore or import replaced the table and rows were read whole:
-		// drop rows it no longer has. Every row up to p's revision was
-		// committed before p was read, so the rows hold at least that.
-		t.clear()
-		t.epoch, t.revision = p.TableEpoch, p.Revision
-	}
 	t.policy, t.index = p, p.ActionIndex()
-	n := len(p.Actions)
-	for _, row := range rows {
-		sv, ok := t.states[row.State]
-		if !ok {
-			sv = &stateValues{q: make([]float64, n), visits: make([]int64, n)}
-			for i := range sv.q {
-				sv.q[i] = p.InitialQ
-			}
-			t.states[row.State] = sv
+}
+
+func (t *replicaTable) applyRow(row QRow) {
+	sv, ok := t.states[row.State]
+	if !ok {
+		n := len(t.policy.Actions)
+		sv = &stateValues{q: make([]float64, n), visits: make([]int64, n)}
+		for i := range sv.q {
+			sv.q[i] = t.policy.InitialQ
 		}
-		old := sv.visits[row.Action]
-		if old == 0 {
-			t.pairs++
-		} else if t.pairsByVisits[old]--; t.pairsByVisits[old] == 0 {
-			delete(t.pairsByVisits, old)
-		}
-		t.pairsByVisits[row.Visits]++
-		t.visits += row.Visits - old
-		sv.total += row.Visits - old
-		sv.q[row.Action] = row.Q
-		sv.visits[row.Action] = row.Visits
-		t.revision = max(t.revision, row.Revision)
+		t.states[row.State] = sv
 	}
+	old := sv.visits[row.Action]
+	if old == 0 {
+		t.pairs++
+	} else if t.pairsByVisits[old]--; t.pairsByVisits[old] == 0 {
+		delete(t.pairsByVisits, old)
+	}
+	t.pairsByVisits[row.Visits]++
+	t.visits += row.Visits - old
+	sv.total += row.Visits - old
+	sv.q[row.Action] = row.Q
+	sv.visits[row.Action] = row.Visits
+	t.revision = max(t.revision, row.Revision)
 }
 
 // clear empties the table and its visit counts.

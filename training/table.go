@@ -17,7 +17,7 @@ const LiveTable = "live"
 // ValidateSnapshotName accepts names that are safe in a URL path segment
 // and are not the name of the live table.
 func ValidateSnapshotName(name string) error {
-	if len(name) == 0 || len(name) > MaxPolicyNameLen || !policyName.MatchString(name) {
+	if !isPolicyName(name) {
 		return Invalid(-1, -1, "name", "snapshot names are 1 to %d characters of letters, digits, '.', '_' and '-', starting with a letter or digit", MaxPolicyNameLen)
 	}
 	if name == LiveTable {

@@ -162,21 +162,7 @@ func AdminURL() string {
 // migrated. The server stops, and its files go, when t ends.
 func NewServer(t testing.TB) *localpg.Server {
 	t.Helper()
-	ctx, cancel := context.WithTimeout(context.Background(), setupTimeout)
-	defer cancel()
-	srv, err := localpg.Start(ctx, localpg.Options{})
-	if err != nil {
-		t.Fatalf("pgtest: %v", err)
-	}
-	t.Cleanup(func() {
-		if err := srv.Stop(); err != nil {
-			t.Errorf("pgtest: %v", err)
-		}
-	})
-	if _, err := storage.Migrate(ctx, srv.URL()); err != nil {
-		t.Fatalf("pgtest: migrate: %v", err)
-	}
-	return srv
+	return startServer(t, localpg.Options{})
 }
 
 // databaseURL points adminURL at another database on the same server.

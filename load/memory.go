@@ -1,0 +1,187 @@
+package load
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"fmt"
+	"net/http"
+	"strconv"
+	"sync"
+	"time"
+)
+
+// MemoryReport is what the in-memory copy of one policy costs the API
+// process.
+type MemoryReport struct {
+	Policy string `json:"policy"`
+	Pairs  int64  `json:"pairs"`
+	// Before is read once the policy's episodes are trained and before
+	// any choose on it; After once one choose has loaded it.
+	Before MemoryReading `json:"before"`
+	After  MemoryReading `json:"after"`
+	// HeapAddedBytes and RSSAddedBytes are After minus Before.
+	HeapAddedBytes int64         `json:"heap_added_bytes"`
+	RSSAddedBytes  int64         `json:"rss_added_bytes"`
+	HeapPerPair    float64       `json:"heap_bytes_per_pair"`
+	LoadTime       time.Duration `json:"load_time"`
+	FillTime       time.Duration `json:"fill_time"`
+}
+
+// Memory fills a fresh policy with pairs distinct pairs (episodes that
+// visit each pair exactly once, cfg.StepsPerEpisode pairs per episode),
+// waits until a worker has trained them all, then measures how much the API
+// process grows when its first choose loads the policy into memory.
+func Memory(ctx context.Context, cfg Config, pairs int, proc *Process) (MemoryReport, error) {
+	if pairs < 1 {
+		return MemoryReport{}, fmt.Errorf("load: memory needs a positive number of pairs")
+	}
+	cfg.Policy = cfg.Policy + "-memory-" + strconv.FormatInt(time.Now().Unix(), 36)
+	cfg.States = (pairs + len(cfg.Actions) - 1) / len(cfg.Actions)
+	c, err := prepare(ctx, cfg)
+	if err != nil {
+		return MemoryReport{}, err
+	}
+	rep := MemoryReport{Policy: cfg.Policy}
+	start := time.Now()
+	if err := fillPairs(ctx, c, cfg, pairs); err != nil {
+		return rep, err
+	}
+	st, err := waitTrained(ctx, c, cfg.Policy, 30*time.Minute)
+	if err != nil {
+		return rep, err
+	}
+	rep.Pairs, rep.FillTime = st.Pairs, time.Since(start)
+	if rep.Before, err = proc.Read(ctx); err != nil {
+		return rep, err
+	}
+	start = time.Now()
+	var r struct {
+		KnownState bool `json:"known_state"`
+	}
+	if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/choose",
+		map[string]string{"state": stateName(0), "mode": "greedy"}, &r); err != nil {
+		return rep, err
+	}
+	rep.LoadTime = time.Since(start)
+	if !r.KnownState {
+		return rep, fmt.Errorf("the first state is unknown after training: the policy was not loaded")
+	}
+	if rep.After, err = proc.Read(ctx); err != nil {
+		return rep, err
+	}
+	rep.HeapAddedBytes = int64(rep.After.HeapBytes) - int64(rep.Before.HeapBytes)
+	rep.RSSAddedBytes = int64(rep.After.RSSBytes) - int64(rep.Before.RSSBytes)
+	rep.HeapPerPair = float64(rep.HeapAddedBytes) / float64(max(rep.Pairs, 1))
+	return rep, nil
+}
+
+// fillPairs posts episodes that together visit pair i = (state i/|A|,
+// action i mod |A|) once for every i < pairs, from four clients.
+func fillPairs(ctx context.Context, c *client, cfg Config, pairs int) error {
+	perPost := cfg.EpisodesPerPost * cfg.StepsPerEpisode
+	posts := make(chan int)
+	errs := make(chan error, 4)
+	var wg sync.WaitGroup
+	for range 4 {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for first := range posts {
+				if err := c.postRaw(ctx, cfg.Policy, coveringBody(cfg, first, min(first+perPost, pairs))); err != nil {
+					errs <- err
+					return
+				}
+			}
+		}()
+	}
+	var err error
+send:
+	for first := 0; first < pairs; first += perPost {
+		select {
+		case posts <- first:
+		case err = <-errs:
+			break send
+		case <-ctx.Done():
+			err = ctx.Err()
+			break send
+		}
+	}
+	close(posts)
+	wg.Wait()
+	if err == nil && len(errs) > 0 {
+		err = <-errs
+	}
+	return err
+}
+
+// coveringBody is a batch of episodes visiting pairs [first, end) in order.
+func coveringBody(cfg Config, first, end int) []byte {
+	var eps []episode
+	for i := first; i < end; i += cfg.StepsPerEpisode {
+		ep := episode{ID: "cover-" + strconv.Itoa(i)}
+		for j := i; j < min(i+cfg.StepsPerEpisode, end); j++ {
+			ep.Steps = append(ep.Steps, step{State: stateName(j / len(cfg.Actions)),
+				Action: cfg.Actions[j%len(cfg.Actions)], Reward: float64(j%13) / 4, Probability: 0.25})
+		}
+		eps = append(eps, ep)
+	}
+	data, err := json.Marshal(map[string]any{"episodes": eps})
+	if err != nil {
+		panic(err) // plain structs always marshal
+	}
+	return data
+}
+
+func (c *client) postRaw(ctx context.Context, policy string, body []byte) error {
+	req, err := http.NewRequestWithContext(ctx, http.MethodPost, c.base+"/v1/policies/"+policy+"/episodes", bytes.NewReader(body))
+	if err != nil {
+		return err
+	}
+	req.Header = jsonHeader(c.token)
+	resp, err := c.http.Do(req)
+	if err != nil {
+		return fmt.Errorf("post episodes: %w", err)
+	}
+	resp.Body.Close()
+	if resp.StatusCode != http.StatusAccepted {
+		return fmt.Errorf("post episodes: status %d", resp.StatusCode)
+	}
+	return nil
+}
+
+// waitTrained polls the policy's status until nothing is left to train.
+func waitTrained(ctx context.Context, c *client, policy string, within time.Duration) (policyStatus, error) {
+	deadline := time.Now().Add(within)
+	for {
+		st, err := c.status(ctx, policy)
+		if err != nil || st.Backlog == 0 {
+			return st, err
+		}
+		if time.Now().After(deadline) {
+			return st, fmt.Errorf("%d episodes of policy %s still untrained after %v: is a worker running?", st.Backlog, policy, within)
+		}
+		select {
+		case <-ctx.Done():
+			return st, ctx.Err()
+		case <-time.After(250 * time.Millisecond):
+		}
+	}
+}
+
+// WaitReport says how long a policy's backlog took to be trained.
+type WaitReport struct {
+	Policy  string        `json:"policy"`
+	Elapsed time.Duration `json:"elapsed"`
+	Pairs   int64         `json:"pairs"`
+}
+
+// Wait returns once the policy has no untrained episodes.
+func Wait(ctx context.Context, cfg Config, within time.Duration) (WaitReport, error) {
+	if err := checkLoopback(cfg.BaseURL); err != nil {
+		return WaitReport{}, err
+	}
+	start := time.Now()
+	st, err := waitTrained(ctx, newClient(cfg), cfg.Policy, within)
+	return WaitReport{Policy: cfg.Policy, Elapsed: time.Since(start), Pairs: st.Pairs}, err
+}

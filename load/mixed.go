@@ -1,0 +1,354 @@
+package load
+
+import (
+	"context"
+	"fmt"
+	"net/http"
+	"slices"
+	"sync"
+	"sync/atomic"
+	"time"
+)
+
+// Observer follows a policy's training. The status route can do it (see
+// statusObserver), but its counts cost the database a scan of the policy's
+// episodes on every call, which under a long run is load of its own; the
+// load command reads the database directly when it is given its URL.
+type Observer interface {
+	// Backlog is the number of the policy's untrained episodes.
+	Backlog(ctx context.Context, policy string) (int64, error)
+	// WatchCommits calls fn with the policy's revision and the time the
+	// commit became known, for every training commit, until ctx ends.
+	WatchCommits(ctx context.Context, policy string, fn func(revision int64, at time.Time)) error
+}
+
+// MixedOptions shape the mixed scenario.
+type MixedOptions struct {
+	// ChooseEvery: the simulated clients choose at every n-th step.
+	ChooseEvery int
+	// Observer reads the backlog and commits; nil polls the status route.
+	Observer Observer
+	// Process, when set, reads the API process's memory at the start and
+	// end of the run.
+	Process *Process
+	// Posters is how many posts of finished episodes may be under way at
+	// once: a post waits for a durable commit, and clients must not wait
+	// for it.
+	Posters int
+}
+
+// MixedReport is what the mixed scenario saw.
+type MixedReport struct {
+	OfferedPerSec  float64 `json:"episodes_offered_per_s"`
+	Episodes       int64   `json:"episodes_posted"`
+	Chooses        int64   `json:"chooses"`
+	Errors         int64   `json:"errors"`
+	EpisodesPerSec float64 `json:"episodes_per_s"`
+	StepsPerSec    float64 `json:"steps_per_s"`
+	ChoosesPerSec  float64 `json:"chooses_per_s"`
+	// Skipped counts episode starts dropped because every client was busy:
+	// the offered rate was more than the clients could keep up with.
+	Skipped int64 `json:"episodes_skipped"`
+	// Backlog is the untrained episode count sampled once a second.
+	Backlog         []int64 `json:"backlog_each_second"`
+	BacklogMax      int64   `json:"backlog_max"`
+	BacklogSlopePer float64 `json:"backlog_slope_per_s"`
+	// Visibility is, for each training commit, the time from the commit
+	// becoming known to choose answering from its revision.
+	Visibility       []time.Duration `json:"commit_to_choose"`
+	VisibilityP50    time.Duration   `json:"commit_to_choose_p50"`
+	VisibilityP99    time.Duration   `json:"commit_to_choose_p99"`
+	VisibilityMax    time.Duration   `json:"commit_to_choose_max"`
+	VisibilitySource string          `json:"commit_to_choose_source"`
+	// MemoryStart and MemoryEnd are the API process's memory, when read.
+	MemoryStart *MemoryReading `json:"memory_start,omitempty"`
+	MemoryEnd   *MemoryReading `json:"memory_end,omitempty"`
+	DurationSec float64        `json:"duration_s"`
+}
+
+// Mixed simulates clients that choose at every ChooseEvery-th step of their
+// episodes and post each episode when it ends, batched by EpisodesPerPost,
+// starting cfg.Rate episodes per second. It samples the backlog every
+// second and measures how long a training commit takes to show in choose.
+// A worker must be running.
+func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, error) {
+	c, err := prepare(ctx, cfg)
+	if err != nil {
+		return MixedReport{}, err
+	}
+	if cfg.Rate < 1 || opt.ChooseEvery < 1 || opt.Posters < 1 {
+		return MixedReport{}, fmt.Errorf("load: mixed needs a positive episode rate, choose interval and number of posters")
+	}
+	obs, source := opt.Observer, "notifications"
+	if obs == nil {
+		obs, source = statusObserver{c}, "status poll (20 ms)"
+	}
+	rep := MixedReport{OfferedPerSec: float64(cfg.Rate), VisibilitySource: source}
+	if opt.Process != nil {
+		m, err := opt.Process.Read(ctx)
+		if err != nil {
+			return rep, err
+		}
+		rep.MemoryStart = &m
+	}
+	runCtx, cancel := context.WithTimeout(ctx, cfg.Duration)
+	defer cancel()
+	var chooses, episodes, errs, skipped atomic.Int64
+	finished := make(chan episode, 4*cfg.EpisodesPerPost)
+	var wg sync.WaitGroup
+	wg.Add(3)
+	go func() {
+		defer wg.Done()
+		postFinished(runCtx, c, cfg, opt.Posters, finished, &episodes, &errs)
+	}()
+	go func() {
+		defer wg.Done()
+		rep.Backlog = sampleBacklog(runCtx, obs, cfg.Policy)
+	}()
+	go func() {
+		defer wg.Done()
+		rep.Visibility = probeVisibility(runCtx, c, obs, cfg.Policy)
+	}()
+	start := time.Now()
+	simulate(runCtx, c, cfg, opt.ChooseEvery, finished, &chooses, &errs, &skipped)
+	close(finished)
+	wg.Wait()
+	secs := time.Since(start).Seconds()
+	rep.DurationSec = secs
+	rep.Episodes, rep.Chooses, rep.Errors, rep.Skipped = episodes.Load(), chooses.Load(), errs.Load(), skipped.Load()
+	rep.EpisodesPerSec = float64(rep.Episodes) / secs
+	rep.StepsPerSec = rep.EpisodesPerSec * float64(cfg.StepsPerEpisode)
+	rep.ChoosesPerSec = float64(rep.Chooses) / secs
+	rep.VisibilityP50, rep.VisibilityP99 = percentile(rep.Visibility, 0.5), percentile(rep.Visibility, 0.99)
+	rep.VisibilityMax = percentile(rep.Visibility, 1)
+	rep.BacklogSlopePer = slope(rep.Backlog)
+	if len(rep.Backlog) > 0 {
+		rep.BacklogMax = slices.Max(rep.Backlog)
+	}
+	if opt.Process != nil {
+		m, err := opt.Process.Read(ctx)
+		if err != nil {
+			return rep, err
+		}
+		rep.MemoryEnd = &m
+	}
+	return rep, nil
+}
+
+// simulate starts episodes at cfg.Rate per second on cfg.Workers clients.
+// Starts are counted against the clock, so a late tick catches up instead
+// of lowering the rate.
+func simulate(ctx context.Context, c *client, cfg Config, chooseEvery int, finished chan<- episode, chooses, errs, skipped *atomic.Int64) {
+	starts := make(chan struct{}, cfg.Workers)
+	var wg sync.WaitGroup
+	run := time.Now().UnixNano()
+	for w := range cfg.Workers {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			g := newGenerator(Config{States: cfg.States, Actions: cfg.Actions, StepsPerEpisode: cfg.StepsPerEpisode, Seed: cfg.Seed + uint64(w)},
+				fmt.Sprintf("mixed-%d-%d", run, w))
+			for range starts {
+				ep := g.episode()
+				for i := range ep.Steps {
+					if i%chooseEvery != 0 {
+						continue
+					}
+					var r struct {
+						Action      string  `json:"action"`
+						Probability float64 `json:"probability"`
+					}
+					if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/choose",
+						map[string]string{"state": ep.Steps[i].State, "mode": "explore"}, &r); err != nil {
+						if ctx.Err() != nil {
+							return // the run is over: this episode is not posted
+						}
+						errs.Add(1)
+						continue
+					}
+					chooses.Add(1)
+					ep.Steps[i].Action, ep.Steps[i].Probability = r.Action, r.Probability
+				}
+				select {
+				case finished <- ep:
+				case <-ctx.Done():
+					return
+				}
+			}
+		}()
+	}
+	tick := time.NewTicker(5 * time.Millisecond)
+	defer tick.Stop()
+	begin, started := time.Now(), int64(0)
+loop:
+	for {
+		select {
+		case <-ctx.Done():
+			break loop
+		case now := <-tick.C:
+			due := int64(now.Sub(begin).Seconds() * float64(cfg.Rate))
+			for ; started < due; started++ {
+				select {
+				case starts <- struct{}{}:
+				default: // every client busy: the offered rate is above what they manage
+					skipped.Add(1)
+				}
+			}
+		}
+	}
+	close(starts)
+	wg.Wait()
+}
+
+// postFinished batches finished episodes by cfg.EpisodesPerPost (or what
+// finished in 200 ms) and posts the batches from up to posters clients.
+func postFinished(ctx context.Context, c *client, cfg Config, posters int, finished <-chan episode, posted, errs *atomic.Int64) {
+	batches := make(chan []episode, posters)
+	var wg sync.WaitGroup
+	for range posters {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for batch := range batches {
+				// Episodes finished before the end are posted even after it.
+				if _, err := c.do(context.WithoutCancel(ctx), http.MethodPost, "/v1/policies/"+cfg.Policy+"/episodes",
+					map[string]any{"episodes": batch}, nil); err != nil {
+					errs.Add(1)
+				} else {
+					posted.Add(int64(len(batch)))
+				}
+			}
+		}()
+	}
+	defer wg.Wait()
+	defer close(batches)
+	batch := make([]episode, 0, cfg.EpisodesPerPost)
+	flush := func() {
+		if len(batch) > 0 {
+			batches <- batch
+			batch = make([]episode, 0, cfg.EpisodesPerPost)
+		}
+	}
+	tick := time.NewTicker(200 * time.Millisecond)
+	defer tick.Stop()
+	for {
+		select {
+		case ep, ok := <-finished:
+			if !ok {
+				flush()
+				return
+			}
+			batch = append(batch, ep)
+			if len(batch) == cfg.EpisodesPerPost {
+				flush()
+			}
+		case <-tick.C:
+			flush()
+		}
+	}
+}
+
+func sampleBacklog(ctx context.Context, obs Observer, policy string) []int64 {
+	var out []int64
+	tick := time.NewTicker(time.Second)
+	defer tick.Stop()
+	for {
+		select {
+		case <-ctx.Done():
+			return out
+		case <-tick.C:
+			if n, err := obs.Backlog(ctx, policy); err == nil {
+				out = append(out, n)
+			}
+		}
+	}
+}
+
+type commit struct {
+	revision int64
+	at       time.Time
+}
+
+// probeVisibility measures, for each training commit the observer
+// reports, how long until choose answers from that revision or a later one.
+// While it waits, later commits queue; one already visible when its turn
+// comes counts from its own commit, so every figure is an upper bound.
+func probeVisibility(ctx context.Context, c *client, obs Observer, policy string) []time.Duration {
+	commits := make(chan commit, 1024)
+	go func() {
+		_ = obs.WatchCommits(ctx, policy, func(revision int64, at time.Time) {
+			select {
+			case commits <- commit{revision, at}:
+			default: // the probe is far behind; later commits still come
+			}
+		})
+	}()
+	var out []time.Duration
+	for {
+		var cm commit
+		select {
+		case <-ctx.Done():
+			return out
+		case cm = <-commits:
+		}
+		for ctx.Err() == nil {
+			var r struct {
+				Revision int64 `json:"revision"`
+			}
+			if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+policy+"/choose",
+				map[string]string{"state": "visibility-probe", "mode": "greedy"}, &r); err == nil && r.Revision >= cm.revision {
+				out = append(out, time.Since(cm.at))
+				break
+			}
+			time.Sleep(time.Millisecond)
+		}
+	}
+}
+
+// statusObserver follows training through the status route: no database
+// access needed, but each call counts the policy's episodes, and commits
+// are seen only at the next 20 ms poll (not counted in the figure).
+type statusObserver struct{ c *client }
+
+func (o statusObserver) Backlog(ctx context.Context, policy string) (int64, error) {
+	st, err := o.c.status(ctx, policy)
+	return st.Backlog, err
+}
+
+func (o statusObserver) WatchCommits(ctx context.Context, policy string, fn func(int64, time.Time)) error {
+	seen := int64(-1)
+	for ctx.Err() == nil {
+		if st, err := o.c.status(ctx, policy); err == nil && st.Revision > seen {
+			if seen >= 0 {
+				fn(st.Revision, time.Now())
+			}
+			seen = st.Revision
+		}
+		time.Sleep(20 * time.Millisecond)
+	}
+	return nil
+}
+
+func percentile(ds []time.Duration, q float64) time.Duration {
+	if len(ds) == 0 {
+		return 0
+	}
+	s := slices.Clone(ds)
+	slices.Sort(s)
+	return s[min(len(s)-1, int(q*float64(len(s))))]
+}
+
+// slope is the least-squares trend of a series sampled once a second: a
+// bounded backlog has a slope near zero.
+func slope(ys []int64) float64 {
+	n := float64(len(ys))
+	if n < 2 {
+		return 0
+	}
+	var sx, sy, sxx, sxy float64
+	for i, y := range ys {
+		x := float64(i)
+		sx, sy, sxx, sxy = sx+x, sy+float64(y), sxx+x*x, sxy+x*float64(y)
+	}
+	return (n*sxy - sx*sy) / (n*sxx - sx*sx)
+}

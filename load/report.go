@@ -1,0 +1,315 @@
+package load
+
+import (
+	"bufio"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io/fs"
+	"math"
+	"os"
+	"path/filepath"
+	"strconv"
+	"strings"
+	"time"
+)
+
+// Files of a bench run directory that Report reads; scripts/bench.sh
+// writes them.
+const (
+	FileCeilings  = "ceilings.json" // run.sh --json
+	FileChooseWrk = "choose-wrk.txt"
+	FileChoose    = "choose.json"
+	FilePost      = "post.json"
+	FileDrain     = "drain.json"
+	FileMixed     = "mixed.json"
+	FileMemory    = "memory.json"
+)
+
+// Ceiling is one figure of the ceilings script's JSON output.
+type Ceiling struct {
+	Median float64 `json:"median"`
+	Min    float64 `json:"min"`
+	Max    float64 `json:"max"`
+	Unit   string  `json:"unit"`
+	Runs   int     `json:"runs"`
+}
+
+// WrkFigures are what a wrk run printed.
+type WrkFigures struct {
+	Requests  float64
+	P50, P99  time.Duration
+	BadStatus int // non-2xx or 3xx answers
+	Errors    int // socket errors
+}
+
+// Targets of the figures (BENCHMARKS.md says where each comes from).
+const (
+	targetChooseRatio   = 0.8
+	targetChooseP99     = 2 * time.Millisecond
+	targetPostRatio     = 0.5
+	targetDrainRatio    = 0.5
+	targetDrainVsNaive  = 20
+	targetVisibilityP99 = time.Second
+	targetMemory1M      = 200e6
+	// A backlog is bounded when its trend is below this share of the
+	// posting rate, and a run's heap does not grow when it grows by less
+	// than memoryGrowthLimit.
+	boundedSlopeShare = 0.02
+	memoryGrowthLimit = 10e6
+)
+
+// Report reads a bench run directory and returns its table of figures,
+// ceilings, ratios and targets, in markdown.
+func Report(dir string) (string, error) {
+	var ceilings map[string]Ceiling
+	if err := readJSON(filepath.Join(dir, FileCeilings), &ceilings); err != nil {
+		return "", fmt.Errorf("ceilings: %w", err)
+	}
+	t := &table{ceilings: ceilings}
+
+	if wrk, err := readWrk(filepath.Join(dir, FileChooseWrk)); t.ok("choose (wrk -t1 -c64)", err) {
+		t.ratio("choose, wrk -t1 -c64", wrk.Requests, "req/s", "echo_get_lookup_rps", targetChooseRatio, wrk.BadStatus+wrk.Errors)
+		t.max("choose p99, wrk", wrk.P99, "echo_get_p99_ms", targetChooseP99)
+		t.info("choose p50, wrk", fmtDuration(wrk.P50), "echo_get_p50_ms", float64(wrk.P50)/1e6)
+	}
+	var choose Figures
+	if err := readJSON(filepath.Join(dir, FileChoose), &choose); t.ok("choose (vegeta, 64 connections)", err) {
+		t.info("choose, vegeta 64 connections", fmt.Sprintf("%s req/s (success %.4f)", human(choose.Throughput), choose.Success),
+			"echo_get_lookup_rps", choose.Throughput)
+		t.info("choose p99, vegeta", fmtDuration(choose.P99), "echo_get_p99_ms", float64(choose.P99)/1e6)
+	}
+	var post Figures
+	if err := readJSON(filepath.Join(dir, FilePost), &post); t.ok("post", err) {
+		t.ratio("post episodes (20 steps, 100 per request)", post.UnitsPerSec, "steps/s", "episode_copy_steps_per_s", targetPostRatio,
+			int(math.Round(float64(post.Requests)*(1-post.Success))))
+		t.info("post p99 per request", fmtDuration(post.P99), "", 0)
+	}
+	var drain DrainReport
+	if err := readJSON(filepath.Join(dir, FileDrain), &drain); t.ok("drain", err) {
+		label := fmt.Sprintf("training drain (%s episodes, %s pairs)", human(float64(drain.Episodes)), human(float64(drain.Pairs)))
+		t.ratio(label, drain.StepsPerSec, "steps/s", "episode_copy_steps_per_s", targetDrainRatio, 0)
+		t.ratio("training drain vs one statement per update", drain.StepsPerSec, "steps/s", "q_naive_upsert_rows_per_s", targetDrainVsNaive, 0)
+	}
+	var mixed MixedReport
+	if err := readJSON(filepath.Join(dir, FileMixed), &mixed); t.ok("mixed", err) {
+		t.info(fmt.Sprintf("mixed: posted (offered %s episodes/s, %.0f s)", human(mixed.OfferedPerSec), mixed.DurationSec),
+			fmt.Sprintf("%s episodes/s, %s chooses/s, %d errors, %d skipped", human(mixed.EpisodesPerSec), human(mixed.ChoosesPerSec), mixed.Errors, mixed.Skipped), "", 0)
+		bound := boundedSlopeShare * mixed.EpisodesPerSec
+		t.verdict("mixed: backlog trend (max "+human(float64(mixed.BacklogMax))+")",
+			fmt.Sprintf("%.1f episodes/s", mixed.BacklogSlopePer), fmt.Sprintf("< %.1f /s (2%% of posting)", bound),
+			mixed.BacklogSlopePer < bound && mixed.Errors == 0 && len(mixed.Backlog) > 1)
+		t.verdict(fmt.Sprintf("mixed: commit to choose p99 (%d commits, %s)", len(mixed.Visibility), mixed.VisibilitySource),
+			fmtDuration(mixed.VisibilityP99)+" (p50 "+fmtDuration(mixed.VisibilityP50)+", max "+fmtDuration(mixed.VisibilityMax)+")",
+			"<= "+fmtDuration(targetVisibilityP99), len(mixed.Visibility) > 0 && mixed.VisibilityP99 <= targetVisibilityP99)
+		if mixed.MemoryStart != nil && mixed.MemoryEnd != nil {
+			growth := float64(mixed.MemoryEnd.HeapBytes) - float64(mixed.MemoryStart.HeapBytes)
+			t.verdict("mixed: live heap growth over the run",
+				fmt.Sprintf("%s (%s to %s; RSS %s to %s)", signedMB(growth), mb(float64(mixed.MemoryStart.HeapBytes)), mb(float64(mixed.MemoryEnd.HeapBytes)),
+					mb(float64(mixed.MemoryStart.RSSBytes)), mb(float64(mixed.MemoryEnd.RSSBytes))),
+				"< "+mb(memoryGrowthLimit), growth < memoryGrowthLimit)
+		}
+	}
+	var mem MemoryReport
+	if err := readJSON(filepath.Join(dir, FileMemory), &mem); t.ok("memory", err) {
+		scale := 1e6 / float64(max(mem.Pairs, 1))
+		t.verdict(fmt.Sprintf("in-memory Q copy: live heap added by %s pairs (per 1M)", human(float64(mem.Pairs))),
+			fmt.Sprintf("%s (%.0f bytes/pair)", mb(float64(mem.HeapAddedBytes)*scale), mem.HeapPerPair),
+			"<= "+mb(targetMemory1M), float64(mem.HeapAddedBytes)*scale <= targetMemory1M)
+		t.verdict("in-memory Q copy: RSS added (per 1M pairs)", mb(float64(mem.RSSAddedBytes)*scale),
+			"<= "+mb(targetMemory1M), float64(mem.RSSAddedBytes)*scale <= targetMemory1M)
+		t.info("in-memory Q copy: first choose (loads the policy)", fmtDuration(mem.LoadTime), "", 0)
+	}
+	return t.String(), nil
+}
+
+type table struct {
+	ceilings map[string]Ceiling
+	rows     [][6]string
+	missing  []string
+}
+
+func (t *table) ok(what string, err error) bool {
+	if err != nil {
+		t.missing = append(t.missing, fmt.Sprintf("%s: not measured (%v)", what, err))
+	}
+	return err == nil
+}
+
+func (t *table) ceiling(name string) (Ceiling, string, bool) {
+	c, ok := t.ceilings[name]
+	if !ok {
+		return c, "`" + name + "` missing", false
+	}
+	return c, fmt.Sprintf("`%s` %s", name, humanUnit(c.Median, c.Unit)), true
+}
+
+// ratio adds a throughput row: value / ceiling, which must reach target;
+// failures (error answers) fail it too.
+func (t *table) ratio(label string, value float64, unit, ceiling string, target float64, failures int) {
+	c, cText, ok := t.ceiling(ceiling)
+	row := [6]string{label, humanUnit(value, unit), cText, "", fmt.Sprintf(">= %gx", target), "no"}
+	if ok && c.Median > 0 {
+		r := value / c.Median
+		row[3] = fmt.Sprintf("%.2fx", r)
+		if r >= target && failures == 0 {
+			row[5] = "yes"
+		}
+	}
+	if failures > 0 {
+		row[1] += fmt.Sprintf(" (%d failed)", failures)
+	}
+	t.rows = append(t.rows, row)
+}
+
+// max adds a latency row with an absolute bound, shown beside its ceiling.
+func (t *table) max(label string, value time.Duration, ceiling string, bound time.Duration) {
+	c, cText, ok := t.ceiling(ceiling)
+	row := [6]string{label, fmtDuration(value), cText, "", "<= " + fmtDuration(bound), "no"}
+	if ok && c.Median > 0 {
+		row[3] = fmt.Sprintf("%.2fx", float64(value)/1e6/c.Median)
+	}
+	if value <= bound {
+		row[5] = "yes"
+	}
+	t.rows = append(t.rows, row)
+}
+
+// info adds a row without a target; the ratio is shown when a ceiling is
+// named.
+func (t *table) info(label, value, ceiling string, raw float64) {
+	row := [6]string{label, value, "", "", "", ""}
+	if ceiling != "" {
+		c, cText, ok := t.ceiling(ceiling)
+		row[2] = cText
+		if ok && c.Median > 0 {
+			row[3] = fmt.Sprintf("%.2fx", raw/c.Median)
+		}
+	}
+	t.rows = append(t.rows, row)
+}
+
+func (t *table) verdict(label, value, target string, met bool) {
+	row := [6]string{label, value, "", "", target, "no"}
+	if met {
+		row[5] = "yes"
+	}
+	t.rows = append(t.rows, row)
+}
+
+func (t *table) String() string {
+	var b strings.Builder
+	b.WriteString("| figure | service | ceiling (median, same run) | ratio | target | met |\n|---|---|---|---|---|---|\n")
+	for _, r := range t.rows {
+		b.WriteString("| " + strings.Join(r[:], " | ") + " |\n")
+	}
+	for _, m := range t.missing {
+		b.WriteString("\n" + m + "\n")
+	}
+	return b.String()
+}
+
+func readJSON(path string, v any) error {
+	data, err := os.ReadFile(path)
+	if errors.Is(err, fs.ErrNotExist) {
+		return fmt.Errorf("no %s", filepath.Base(path))
+	}
+	if err != nil {
+		return err
+	}
+	return json.Unmarshal(data, v)
+}
+
+// readWrk parses the summary wrk --latency prints.
+func readWrk(path string) (WrkFigures, error) {
+	f, err := os.Open(path)
+	if errors.Is(err, fs.ErrNotExist) {
+		return WrkFigures{}, fmt.Errorf("no %s", filepath.Base(path))
+	}
+	if err != nil {
+		return WrkFigures{}, err
+	}
+	defer f.Close()
+	var w WrkFigures
+	seen := 0
+	sc := bufio.NewScanner(f)
+	for sc.Scan() {
+		fields := strings.Fields(sc.Text())
+		if len(fields) < 2 {
+			continue
+		}
+		switch {
+		case fields[0] == "Requests/sec:":
+			w.Requests, err = strconv.ParseFloat(fields[1], 64)
+			seen++
+		case fields[0] == "50%":
+			w.P50, err = parseWrkDuration(fields[1])
+			seen++
+		case fields[0] == "99%":
+			w.P99, err = parseWrkDuration(fields[1])
+			seen++
+		case fields[0] == "Non-2xx":
+			w.BadStatus, err = strconv.Atoi(fields[len(fields)-1])
+		case fields[0] == "Socket" && len(fields) > 3:
+			// Socket errors: connect 0, read 0, write 0, timeout 0
+			for _, n := range fields[3:] {
+				k, _ := strconv.Atoi(strings.TrimSuffix(n, ","))
+				w.Errors += k
+			}
+		}
+		if err != nil {
+			return w, fmt.Errorf("%s: %q: %w", filepath.Base(path), sc.Text(), err)
+		}
+	}
+	if seen < 3 {
+		return w, fmt.Errorf("%s: no wrk --latency summary in it", filepath.Base(path))
+	}
+	return w, sc.Err()
+}
+
+// parseWrkDuration reads wrk's latencies: 812.00us, 1.93ms, 1.02s, 1.50m.
+func parseWrkDuration(s string) (time.Duration, error) {
+	for _, u := range []struct {
+		suffix string
+		unit   time.Duration
+	}{{"us", time.Microsecond}, {"ms", time.Millisecond}, {"s", time.Second}, {"m", time.Minute}} {
+		if v, ok := strings.CutSuffix(s, u.suffix); ok {
+			f, err := strconv.ParseFloat(v, 64)
+			return time.Duration(f * float64(u.unit)), err
+		}
+	}
+	return 0, fmt.Errorf("unknown duration %q", s)
+}
+
+func human(v float64) string {
+	switch a := math.Abs(v); {
+	case a >= 1e6:
+		return fmt.Sprintf("%.2fM", v/1e6)
+	case a >= 1e4:
+		return fmt.Sprintf("%.1fk", v/1e3)
+	case a >= 100:
+		return fmt.Sprintf("%.0f", v)
+	default:
+		return fmt.Sprintf("%.3g", v)
+	}
+}
+
+func humanUnit(v float64, unit string) string {
+	if unit == "ms" {
+		return fmt.Sprintf("%.2f ms", v)
+	}
+	return human(v) + " " + unit
+}
+
+func fmtDuration(d time.Duration) string {
+	switch {
+	case d >= time.Second:
+		return fmt.Sprintf("%.2f s", d.Seconds())
+	default:
+		return fmt.Sprintf("%.2f ms", float64(d)/1e6)
+	}
+}
+
+func mb(b float64) string { return fmt.Sprintf("%.1f MB", b/1e6) }
+
+func signedMB(b float64) string { return fmt.Sprintf("%+.1f MB", b/1e6) }

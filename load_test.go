@@ -1,0 +1,126 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"net"
+	"net/http"
+	"os/exec"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/qtally/qtally/load"
+	"github.com/qtally/qtally/storage/pgtest"
+)
+
+// freeLoopbackAddr is a TCP address on 127.0.0.1 that was free a moment ago.
+func freeLoopbackAddr(t *testing.T) string {
+	t.Helper()
+	l, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer l.Close()
+	return l.Addr().String()
+}
+
+// runLoad runs `qtally load args...` and decodes its JSON output into v.
+func runLoad(t *testing.T, v any, args ...string) {
+	t.Helper()
+	var out, errOut bytes.Buffer
+	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
+	defer cancel()
+	if err := run(ctx, append([]string{"qtally", "load"}, args...), func(string) string { return "" }, &out, &errOut); err != nil {
+		t.Fatalf("qtally load %s: %v\n%s", strings.Join(args, " "), err, errOut.String())
+	}
+	if err := json.Unmarshal(out.Bytes(), v); err != nil {
+		t.Fatalf("qtally load %s printed %q: %v", args[0], out.String(), err)
+	}
+}
+
+// The load scenarios drive a real service and count exactly what they
+// sent: every posted episode is stored once, every choose answered.
+func TestLoadScenariosAgainstService(t *testing.T) {
+	databaseURL := pgtest.NewDatabase(t)
+	pprofAddr := freeLoopbackAddr(t)
+	s := startService(t, databaseURL, "serve", "--pprof-listen", pprofAddr)
+	common := []string{"--url", s.URL, "--json", "--policy", "loadtest", "--states", "200"}
+
+	var post load.Figures
+	runLoad(t, &post, append([]string{"post", "--duration", "1s", "--workers", "4", "--episodes-per-post", "10"}, common...)...)
+	if post.Requests == 0 || post.Success != 1 || post.StatusCodes["202"] != int(post.Requests) {
+		t.Fatalf("post: %+v", post)
+	}
+	var wait load.WaitReport
+	runLoad(t, &wait, append([]string{"wait", "--duration", "1m"}, common...)...)
+	var st struct {
+		Episodes int64 `json:"episodes"`
+		Backlog  int64 `json:"backlog"`
+	}
+	s.call(http.MethodGet, "/v1/policies/loadtest", nil, http.StatusOK).decode(t, &st)
+	if st.Episodes != int64(post.Requests)*10 || st.Backlog != 0 {
+		t.Fatalf("after %d posts of 10 episodes the policy holds %d episodes, %d untrained", post.Requests, st.Episodes, st.Backlog)
+	}
+
+	var choose load.Figures
+	runLoad(t, &choose, append([]string{"choose", "--duration", "1s", "--workers", "4"}, common...)...)
+	if choose.Requests == 0 || choose.Success != 1 {
+		t.Fatalf("choose: %+v", choose)
+	}
+
+	var mixed load.MixedReport
+	runLoad(t, &mixed, append([]string{"mixed", "--duration", "3s", "--rate", "100", "--choose-every", "5", "--workers", "8",
+		"--episodes-per-post", "20", "--database-url", databaseURL, "--pprof-url", "http://" + pprofAddr}, common...)...)
+	// Four chooses per episode; a client's episode under way at the end is
+	// not posted.
+	if mixed.Episodes == 0 || mixed.Chooses < mixed.Episodes*4 || mixed.Chooses > (mixed.Episodes+8)*4 || mixed.Errors != 0 {
+		t.Fatalf("mixed: %d episodes of 20 steps posted, %d chooses (want 4 each), %d errors", mixed.Episodes, mixed.Chooses, mixed.Errors)
+	}
+	if len(mixed.Visibility) == 0 || len(mixed.Backlog) == 0 || mixed.MemoryStart == nil || mixed.MemoryEnd == nil {
+		t.Fatalf("mixed saw %d commits, %d backlog samples, memory %v and %v",
+			len(mixed.Visibility), len(mixed.Backlog), mixed.MemoryStart, mixed.MemoryEnd)
+	}
+
+	var mem load.MemoryReport
+	runLoad(t, &mem, append([]string{"memory", "--pairs", "4000", "--pprof-url", "http://" + pprofAddr}, common...)...)
+	if mem.Pairs != 4000 || mem.Before.HeapBytes == 0 || mem.After.RSSBytes == 0 {
+		t.Fatalf("memory: %+v", mem)
+	}
+}
+
+// A drain stores its backlog while no worker runs, then starts a worker
+// process of the same binary and times it.
+func TestLoadDrainStartsAWorker(t *testing.T) {
+	bin := buildBinary(t)
+	databaseURL := pgtest.NewDatabase(t)
+	api := startProcess(t, bin, map[string]string{"DATABASE_URL": databaseURL, "QTALLY_LISTEN": "127.0.0.1:0"}, "serve", "--no-worker")
+	out, err := runBinary(bin, "load", "drain", "--url", api.URL, "--json", "--database-url", databaseURL,
+		"--episodes", "300", "--states", "50")
+	if err != nil {
+		t.Fatalf("drain: %v\n%s", err, out)
+	}
+	var d load.DrainReport
+	if err := json.Unmarshal(out, &d); err != nil {
+		t.Fatalf("drain printed %q: %v", out, err)
+	}
+	// 50 states x 4 actions over 6,000 steps: every pair is seen.
+	if d.Episodes != 300 || d.Steps != 300*20 || d.Pairs != 200 || d.StepsPerSec <= 0 {
+		t.Fatalf("drain: %+v", d)
+	}
+}
+
+// runBinary runs bin to completion and returns its standard output, or
+// its standard error with the failure.
+func runBinary(bin string, args ...string) ([]byte, error) {
+	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
+	defer cancel()
+	var out, errOut bytes.Buffer
+	cmd := exec.CommandContext(ctx, bin, args...)
+	cmd.Stdout, cmd.Stderr = &out, &errOut
+	if err := cmd.Run(); err != nil {
+		return errOut.Bytes(), err
+	}
+	return out.Bytes(), nil
+}
