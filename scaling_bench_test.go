@@ -28,11 +28,9 @@ const (
 	benchStates       = 25_000 // per policy
 	benchStepsPerEp   = 10
 	benchPerRequest   = 100 // episodes per POST
-	benchRequests     = 2000
 	benchPosters      = 8
 	benchWorkers      = 2
 	benchChoosers     = 16
-	benchChooseFor    = 5 * time.Second
 	benchPhaseTimeout = 5 * time.Minute
 )
 
@@ -44,6 +42,13 @@ const (
 //
 //	go test -run '^$' -bench OnePostgres -benchtime 1x -timeout 30m .
 func BenchmarkOnePostgres(b *testing.B) {
+	// -short (make test runs every benchmark once) keeps the shape and
+	// shrinks the volume, so the benchmark is exercised without the minutes
+	// a measurement takes.
+	benchRequests, benchChooseFor := 2000, 5*time.Second
+	if testing.Short() {
+		benchRequests, benchChooseFor = 20, time.Second
+	}
 	ctx := context.Background()
 	srv, err := localpg.Start(ctx, localpg.Options{Durable: true, Port: -1})
 	if err != nil {
