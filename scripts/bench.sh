@@ -144,8 +144,14 @@ cat "$OUT/ceilings.txt" >&2
 [ -s "$OUT/ceilings.json" ] || { say "the ceilings script wrote no figures"; exit 1; }
 
 # --- the service -----------------------------------------------------------------
+# The service runs as in production, with tokens checked on every request;
+# the per-token rate limit is off so that it does not cap the figures.
+QTALLY_TOKEN=$("$QT" token create --database-url "$DB_URL" --label bench --scope ingest,choose,admin |
+  sed -n 's/^secret: //p')
+[ -n "$QTALLY_TOKEN" ] || { say "could not create an API token"; exit 1; }
+export QTALLY_TOKEN
 say "starting qtally serve --no-worker ($PLACEMENT) ..."
-"${API_PIN[@]}" "$QT" serve --no-worker --database-url "$DB_URL" --listen 127.0.0.1:0 \
+"${API_PIN[@]}" "$QT" serve --no-worker --database-url "$DB_URL" --listen 127.0.0.1:0 --token-rate 0 \
   --pprof-listen 127.0.0.1:0 --log-format text >"$OUT/api.out" 2>"$OUT/api.log" &
 API_PID=$!
 API=$(wait_line "$OUT/api.out" "qtally: listening on ")

@@ -10,11 +10,36 @@ import (
 	"github.com/qtally/qtally/training"
 )
 
-// QRowsSince implements training.ReplicaSource.
+// QRowsSince implements training.ReplicaSource. After 0 it reads the whole
+// table; otherwise it reads the pairs that the batches after that revision
+// changed, as q_changes lists them, or the whole table when q_changes no
+// longer covers every revision since (a copy far behind, or a table
+// rewrite): a superset is always a correct answer.
 func (db *DB) QRowsSince(ctx context.Context, policyID int32, after int64, fn func(training.QRow)) error {
-	rows, err := db.pool.Query(ctx, `
-		SELECT state, action, q, visits, revision FROM q_values
-		WHERE policy_id = $1 AND revision > $2`, policyID, after)
+	whole := after == 0
+	if !whole {
+		var covered bool
+		err := db.pool.QueryRow(ctx, `
+			SELECT p.revision - $2 = (SELECT count(*) FROM q_changes c
+			                          WHERE c.policy_id = $1 AND c.revision > $2 AND c.revision <= p.revision)
+			FROM policies p WHERE p.policy_id = $1`, policyID, after).Scan(&covered)
+		if err != nil {
+			return mapError(fmt.Errorf("read changed estimates: %w", err))
+		}
+		whole = !covered
+	}
+	query := `SELECT state, action, q, visits, revision FROM q_values WHERE policy_id = $1`
+	args := []any{policyID}
+	if !whole {
+		query = `
+			SELECT q.state, q.action, q.q, q.visits, q.revision
+			FROM (SELECT DISTINCT u.state, u.action
+			      FROM q_changes c, unnest(c.states, c.actions) AS u(state, action)
+			      WHERE c.policy_id = $1 AND c.revision > $2) k
+			JOIN q_values q ON q.policy_id = $1 AND q.state = k.state AND q.action = k.action`
+		args = append(args, after)
+	}
+	rows, err := db.pool.Query(ctx, query, args...)
 	if err != nil {
 		return mapError(fmt.Errorf("read changed estimates: %w", err))
 	}

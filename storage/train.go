@@ -129,6 +129,10 @@ func estimatesOfStates(ctx context.Context, tx pgx.Tx, policyID int32, states []
 	return current, nil
 }
 
+// changesKept is how many revisions of changed keys stay in q_changes: an
+// API process further behind than that reloads its copy whole.
+const changesKept = 1000
+
 // writeBatch writes every updated pair with one upsert, marks the episodes
 // trained, adds the batch to the training history and announces the new
 // revision, in one round trip.
@@ -148,16 +152,24 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []train
 	batch := &pgx.Batch{}
 	batch.Queue(`UPDATE policies SET revision = revision + 1, last_trained_at = now() WHERE policy_id = $1 RETURNING revision`, policyID).
 		QueryRow(func(row pgx.Row) error { return row.Scan(&revision) })
+	// One statement records the changed keys for readers (q_changes) and
+	// upserts the pairs, so the key arrays cross the wire once.
 	batch.Queue(`
+		WITH rev AS (SELECT revision FROM policies WHERE policy_id = $1),
+		changes AS (
+			INSERT INTO q_changes (policy_id, revision, states, actions)
+			SELECT $1, rev.revision, $2::text[], $3::int2[] FROM rev
+		)
 		INSERT INTO q_values (policy_id, state, action, q, visits, last_delta, updated_at, revision)
-		SELECT $1, u.state, u.action, u.q, u.visits, u.last_delta, now(),
-		       (SELECT revision FROM policies WHERE policy_id = $1)
+		SELECT $1, u.state, u.action, u.q, u.visits, u.last_delta, now(), rev.revision
 		FROM unnest($2::text[], $3::int2[], $4::float8[], $5::int8[], $6::float8[])
-		     AS u(state, action, q, visits, last_delta)
+		     AS u(state, action, q, visits, last_delta), rev
 		ON CONFLICT (policy_id, state, action) DO UPDATE
 		SET q = excluded.q, visits = excluded.visits, last_delta = excluded.last_delta,
 		    updated_at = excluded.updated_at, revision = excluded.revision`,
 		policyID, states, actions, qs, visits, deltas)
+	batch.Queue(`DELETE FROM q_changes WHERE policy_id = $1
+		AND revision <= (SELECT revision FROM policies WHERE policy_id = $1) - $2`, policyID, changesKept)
 	batch.Queue(`UPDATE episodes SET trained_at = now() WHERE policy_id = $1 AND seq = ANY($2)`, policyID, seqs)
 	queueHistory(batch, policyID, history, summary)
 	batch.Queue(`SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, policyID)

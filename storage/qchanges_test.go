@@ -1,0 +1,83 @@
+package storage_test
+
+import (
+	"context"
+	"slices"
+	"testing"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/qtally/qtally/storage"
+	"github.com/qtally/qtally/storage/pgtest"
+	"github.com/qtally/qtally/training"
+)
+
+// API processes read only what batches after their revision changed; when
+// the record of changes no longer reaches back that far, they get the
+// whole table instead.
+func TestRowsSinceFollowsTheRecordOfChanges(t *testing.T) {
+	ctx := context.Background()
+	url := pgtest.NewDatabase(t)
+	db, err := storage.Open(ctx, url, 4, training.DefaultLimits())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer db.Close()
+	p, _, err := db.PutPolicy(ctx, "reminders", training.Settings{Actions: []string{"now", "later"}, Gamma: 1, Alpha: 0.5, Visit: training.EveryVisit})
+	if err != nil {
+		t.Fatal(err)
+	}
+	trainOne := func(id, state, action string) {
+		t.Helper()
+		eps := []training.Episode{{ID: id, Steps: []training.Step{{State: state, Action: action, Reward: 1}}}}
+		if _, err := db.Ingest(ctx, "reminders", eps); err != nil {
+			t.Fatal(err)
+		}
+		if _, trained, err := db.TrainBatch(ctx, 10, training.Learn); err != nil || !trained {
+			t.Fatalf("train %s: trained=%v %v", id, trained, err)
+		}
+	}
+	keys := func(after int64) []string {
+		t.Helper()
+		var out []string
+		if err := db.QRowsSince(ctx, p.ID, after, func(r training.QRow) {
+			out = append(out, r.State+"/"+p.Actions[r.Action])
+		}); err != nil {
+			t.Fatal(err)
+		}
+		slices.Sort(out)
+		return out
+	}
+	trainOne("1", "a", "now")   // revision 1
+	trainOne("2", "b", "later") // revision 2
+	trainOne("3", "a", "now")   // revision 3
+	if got := keys(0); !slices.Equal(got, []string{"a/now", "b/later"}) {
+		t.Fatalf("whole table: %v", got)
+	}
+	if got := keys(1); !slices.Equal(got, []string{"a/now", "b/later"}) {
+		t.Fatalf("after revision 1: %v", got)
+	}
+	if got := keys(2); !slices.Equal(got, []string{"a/now"}) {
+		t.Fatalf("after revision 2: %v, want only the pair revision 3 changed", got)
+	}
+	if got := keys(3); len(got) != 0 {
+		t.Fatalf("after the latest revision: %v, want nothing", got)
+	}
+	// Forget the record of revision 2, as pruning does for copies far
+	// behind: a copy at revision 1 must now be given everything.
+	conn, err := pgx.Connect(ctx, url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close(ctx)
+	if _, err := conn.Exec(ctx, `DELETE FROM q_changes WHERE revision = 2`); err != nil {
+		t.Fatal(err)
+	}
+	if got := keys(2); !slices.Equal(got, []string{"a/now"}) {
+		t.Fatalf("after revision 2, with its own record gone: %v", got)
+	}
+	trainOne("4", "c", "later") // revision 4
+	if got := keys(1); !slices.Equal(got, []string{"a/now", "b/later", "c/later"}) {
+		t.Fatalf("after revision 1 with a gap in the record: %v, want the whole table", got)
+	}
+}
