@@ -80,7 +80,7 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 	lim := training.DefaultLimits()
 	return []cli.Flag{
 		&cli.StringFlag{Name: flagListen, Value: listenDefault, Usage: "HTTP listen address", Sources: env("QTALLY_LISTEN")},
-		&cli.IntFlag{Name: flagBatchEpisodes, Value: 2000, Usage: "most episodes one training transaction takes", Sources: env("QTALLY_BATCH_EPISODES")},
+		&cli.IntFlag{Name: flagBatchEpisodes, Value: 10_000, Usage: "most episodes one training transaction takes (a batch takes what is waiting, up to this)", Sources: env("QTALLY_BATCH_EPISODES")},
 		&cli.DurationFlag{Name: flagPollInterval, Value: 2 * time.Second, Usage: "fallback poll for work and changes when notifications are missed", Sources: env("QTALLY_POLL_INTERVAL")},
 		&cli.Int64Flag{Name: flagMaxBodyBytes, Value: 16 << 20, Usage: "largest request body accepted (bytes)", Sources: env("QTALLY_MAX_BODY_BYTES")},
 		&cli.IntFlag{Name: flagMaxEpisodes, Value: lim.MaxEpisodes, Usage: "most episodes in one request", Sources: env("QTALLY_MAX_EPISODES_PER_REQUEST")},
