@@ -46,7 +46,7 @@ func TestLoadScenariosAgainstService(t *testing.T) {
 	databaseURL := pgtest.NewDatabase(t)
 	pprofAddr := freeLoopbackAddr(t)
 	s := startService(t, databaseURL, "serve", "--pprof-listen", pprofAddr)
-	common := []string{"--url", s.URL, "--json", "--policy", "loadtest", "--states", "200"}
+	common := []string{"--url", s.URL, "--token", strings.TrimPrefix(s.authorization, "Bearer "), "--json", "--policy", "loadtest", "--states", "200"}
 
 	var post load.Figures
 	runLoad(t, &post, append([]string{"post", "--duration", "1s", "--workers", "4", "--episodes-per-post", "10"}, common...)...)
@@ -96,7 +96,8 @@ func TestLoadDrainStartsAWorker(t *testing.T) {
 	bin := buildBinary(t)
 	databaseURL := pgtest.NewDatabase(t)
 	api := startProcess(t, bin, map[string]string{"DATABASE_URL": databaseURL, "QTALLY_LISTEN": "127.0.0.1:0"}, "serve", "--no-worker")
-	out, err := runBinary(bin, "load", "drain", "--url", api.URL, "--json", "--database-url", databaseURL,
+	out, err := runBinary(bin, "load", "drain", "--url", api.URL, "--token", strings.TrimPrefix(api.authorization, "Bearer "),
+		"--json", "--database-url", databaseURL,
 		"--episodes", "300", "--states", "50")
 	if err != nil {
 		t.Fatalf("drain: %v\n%s", err, out)

@@ -63,6 +63,16 @@ func contains(list []string, s string) bool {
 	return false
 }
 
+// bindJSON reads a JSON body within limit and decodes it strictly into v,
+// which may hold defaults for the fields a client leaves out.
+func bindJSON(c echo.Context, limit int64, v any) error {
+	body, _, err := readBody(c, limit, mediaJSON)
+	if err != nil {
+		return err
+	}
+	return decodeStrict(body, v, -1)
+}
+
 // decodeStrict decodes exactly one JSON value into v, refusing unknown
 // fields and trailing data, and explains any failure in client terms.
 func decodeStrict(data []byte, v any, episode int) error {

@@ -104,13 +104,9 @@ func handlePutPolicy(p Policies, cfg Config) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
-		body, _, err := readBody(c, cfg.MaxBodyBytes, mediaJSON)
-		if err != nil {
-			return err
-		}
 		// Fields the client leaves out keep their defaults.
 		settings := training.DefaultSettings()
-		if err := decodeStrict(body, &settings, -1); err != nil {
+		if err := bindJSON(c, cfg.MaxBodyBytes, &settings); err != nil {
 			return err
 		}
 		if err := settings.Validate(); err != nil {

@@ -36,12 +36,8 @@ func handleStartEvaluation(j Jobs, cfg Config) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
-		body, _, err := readBody(c, cfg.MaxBodyBytes, mediaJSON)
-		if err != nil {
-			return err
-		}
 		var req training.EvaluationRequest
-		if err := decodeStrict(body, &req, -1); err != nil {
+		if err := bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
 			return err
 		}
 		req = req.WithDefaults()
@@ -62,12 +58,8 @@ func handleStartReplay(j Jobs, cfg Config) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
-		body, _, err := readBody(c, cfg.MaxBodyBytes, mediaJSON)
-		if err != nil {
-			return err
-		}
 		var req training.ReplayRequest
-		if err := decodeStrict(body, &req, -1); err != nil {
+		if err := bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
 			return err
 		}
 		if err := req.Validate(); err != nil {

@@ -52,6 +52,16 @@ func snapshotParam(c echo.Context) (string, error) {
 	return name, nil
 }
 
+// snapshotParams reads the policy and snapshot names of the path.
+func snapshotParams(c echo.Context) (string, string, error) {
+	policy, err := policyParam(c)
+	if err != nil {
+		return "", "", err
+	}
+	name, err := snapshotParam(c)
+	return policy, name, err
+}
+
 func truncateParam(s string) string {
 	if len(s) > 64 {
 		return s[:64] + "..."
@@ -68,12 +78,8 @@ func handleCreateSnapshot(s Snapshots, cfg Config) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
-		body, _, err := readBody(c, cfg.MaxBodyBytes, mediaJSON)
-		if err != nil {
-			return err
-		}
 		var req request
-		if err := decodeStrict(body, &req, -1); err != nil {
+		if err := bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
 			return err
 		}
 		if err := training.ValidateSnapshotName(req.Name); err != nil {
@@ -110,11 +116,7 @@ func handleListSnapshots(s Snapshots) echo.HandlerFunc {
 
 func handleGetSnapshot(s Snapshots) echo.HandlerFunc {
 	return func(c echo.Context) error {
-		policy, err := policyParam(c)
-		if err != nil {
-			return err
-		}
-		name, err := snapshotParam(c)
+		policy, name, err := snapshotParams(c)
 		if err != nil {
 			return err
 		}
@@ -128,11 +130,7 @@ func handleGetSnapshot(s Snapshots) echo.HandlerFunc {
 
 func handleDeleteSnapshot(s Snapshots) echo.HandlerFunc {
 	return func(c echo.Context) error {
-		policy, err := policyParam(c)
-		if err != nil {
-			return err
-		}
-		name, err := snapshotParam(c)
+		policy, name, err := snapshotParams(c)
 		if err != nil {
 			return err
 		}
@@ -248,11 +246,7 @@ func decodeTable(body []byte, media string) ([]training.TableRow, error) {
 
 func handleRestoreSnapshot(t TableWriter) echo.HandlerFunc {
 	return func(c echo.Context) error {
-		policy, err := policyParam(c)
-		if err != nil {
-			return err
-		}
-		name, err := snapshotParam(c)
+		policy, name, err := snapshotParams(c)
 		if err != nil {
 			return err
 		}
