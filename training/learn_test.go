@@ -88,8 +88,9 @@ func TestStepOneOverNGivesSampleMean(t *testing.T) {
 
 // referenceLearn is a deliberately plain sequential reading of Monte Carlo
 // prediction with constant step: returns as explicit discounted sums, a
-// linear search for first occurrences, one update at a time.
-func referenceLearn(p Policy, table map[PairKey]Estimate, episodes []StoredEpisode) {
+// linear search for first occurrences, one update at a time. It updates
+// table in place and calls updated, when given, after each update.
+func referenceLearn(p Policy, table map[PairKey]Estimate, episodes []StoredEpisode, updated func(PairKey, Estimate)) {
 	for _, ep := range episodes {
 		n := len(ep.States)
 		for tt := n - 1; tt >= 0; tt-- {
@@ -117,6 +118,9 @@ func referenceLearn(p Policy, table map[PairKey]Estimate, episodes []StoredEpiso
 			e.Q += e.LastDelta
 			e.Visits++
 			table[k] = e
+			if updated != nil {
+				updated(k, e)
+			}
 		}
 	}
 }
@@ -145,7 +149,7 @@ func TestLearnEqualsSequentialUpdates(t *testing.T) {
 			stored := map[PairKey]Estimate{}
 			for batch := range 20 {
 				episodes := randomEpisodes(rng, 1+rng.IntN(30), 4, 3)
-				referenceLearn(p, reference, episodes)
+				referenceLearn(p, reference, episodes, nil)
 				current := map[PairKey]Estimate{}
 				for _, s := range TouchedStates(episodes) {
 					for a := range 3 {
@@ -225,41 +229,16 @@ func pairsByKey(res BatchResult) map[PairKey]Estimate {
 func referenceBatch(p Policy, current map[PairKey]Estimate, episodes []StoredEpisode) (order []PairKey, deltas, returns []float64, greedyChanges int) {
 	table := maps.Clone(current)
 	seen := map[PairKey]bool{}
-	for _, ep := range episodes {
-		n := len(ep.States)
-		for tt := n - 1; tt >= 0; tt-- {
-			k := PairKey{ep.States[tt], ep.Actions[tt]}
-			if p.Visit == FirstVisit {
-				first := -1
-				for j := 0; j < n && first < 0; j++ {
-					if ep.States[j] == k.State && ep.Actions[j] == k.Action {
-						first = j
-					}
-				}
-				if first != tt {
-					continue
-				}
-			}
-			g := 0.0
-			for j := n - 1; j >= tt; j-- {
-				g = ep.Rewards[j] + p.Gamma*g
-			}
-			e, ok := table[k]
-			if !ok {
-				e.Q = p.InitialQ
-			}
-			e.LastDelta = p.Alpha * (g - e.Q)
-			e.Q += e.LastDelta
-			e.Visits++
-			table[k] = e
-			deltas = append(deltas, math.Abs(e.LastDelta))
-			if !seen[k] {
-				seen[k] = true
-				order = append(order, k)
-			}
+	referenceLearn(p, table, episodes, func(k PairKey, e Estimate) {
+		deltas = append(deltas, math.Abs(e.LastDelta))
+		if !seen[k] {
+			seen[k] = true
+			order = append(order, k)
 		}
+	})
+	for _, ep := range episodes {
 		g := 0.0
-		for j := n - 1; j >= 0; j-- {
+		for j := len(ep.Rewards) - 1; j >= 0; j-- {
 			g = ep.Rewards[j] + p.Gamma*g
 		}
 		returns = append(returns, g)
