@@ -1,4 +1,4 @@
-.PHONY: test build fmt-check dev image bench
+.PHONY: test build fmt-check dev image bench release
 
 # Installs what the tests need when missing, vets and tests everything, then
 # runs every benchmark once (-short: smaller volumes) so that none of them
@@ -24,9 +24,18 @@ dev:
 # Container image (deploy/Dockerfile); needs a Docker engine.
 IMAGE ?= qtally:dev
 VERSION ?= $(shell git describe --tags --always --dirty 2>/dev/null || echo dev)
+COMMIT ?= $(shell git rev-parse HEAD 2>/dev/null || echo unknown)
 GO_VERSION ?= $(shell go env GOVERSION | sed 's/^go//')
 image:
-	docker build -f deploy/Dockerfile --build-arg GO_VERSION=$(GO_VERSION) --build-arg VERSION=$(VERSION) -t $(IMAGE) .
+	docker build -f deploy/Dockerfile --build-arg GO_VERSION=$(GO_VERSION) --build-arg VERSION=$(VERSION) --build-arg COMMIT=$(COMMIT) -t $(IMAGE) .
+
+# Release binaries and archives in $(DIST), with sha256sums; reproducible
+# from the same commit and Go toolchain (docs/operations.md, "Releases").
+DIST ?= dist
+RELEASE_PLATFORMS ?= linux/amd64 linux/arm64
+SOURCE_DATE_EPOCH ?= $(shell git log -1 --format=%ct 2>/dev/null || echo 0)
+release:
+	DIST='$(DIST)' VERSION='$(VERSION)' COMMIT='$(COMMIT)' SOURCE_DATE_EPOCH='$(SOURCE_DATE_EPOCH)' PLATFORMS='$(RELEASE_PLATFORMS)' scripts/release.sh
 
 # Measures the service against this machine's ceilings (BENCHMARKS.md).
 # Options go in BENCH_ARGS, e.g. make bench BENCH_ARGS="--quick".

@@ -15,7 +15,7 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 	return &cli.Command{
 		Name:      "qtally",
 		Usage:     "learn which action to take from the outcomes of past decisions",
-		Version:   version,
+		Version:   versionLine(),
 		Writer:    stdout,
 		ErrWriter: stderr,
 		Commands: []*cli.Command{

@@ -25,7 +25,7 @@ const imageBinary = "/usr/local/bin/qtally"
 // TestDockerfileBuildsStaticNonRootImage checks deploy/Dockerfile as far as
 // a machine without a container engine can: it runs the build stage's own
 // go install command and checks the result is a static binary that carries
-// the version passed in, and that the image runs that binary as non-root
+// the version and commit passed in, and that the image runs that binary as non-root
 // with a health check and default command the binary accepts.
 func TestDockerfileBuildsStaticNonRootImage(t *testing.T) {
 	commands := qtallyCommands(t)
@@ -52,14 +52,14 @@ func TestDockerfileBuildsStaticNonRootImage(t *testing.T) {
 		t.Fatal("the build stage has no RUN go install")
 	}
 	outDir := t.TempDir()
-	const testVersion = "v0.0.0-imagetest"
+	const testVersion, testCommit = "v0.0.0-imagetest", "0123456789abcdef0123456789abcdef01234567"
 	cmd := exec.Command("sh", "-c", install)
 	cmd.Env = os.Environ()
 	for k, v := range env {
 		cmd.Env = append(cmd.Env, k+"="+v)
 	}
 	// GOBIN last: the image's /out becomes a temporary folder here.
-	cmd.Env = append(cmd.Env, "VERSION="+testVersion, "GOBIN="+outDir)
+	cmd.Env = append(cmd.Env, "VERSION="+testVersion, "COMMIT="+testCommit, "GOBIN="+outDir)
 	if out, err := cmd.CombinedOutput(); err != nil {
 		t.Fatalf("the build stage's %q failed: %v\n%s", install, err, out)
 	}
@@ -78,8 +78,8 @@ func TestDockerfileBuildsStaticNonRootImage(t *testing.T) {
 		t.Errorf("the binary needs shared libraries %v: it is not static", libs)
 	}
 	out, err := exec.Command(bin, "--version").CombinedOutput()
-	if err != nil || !strings.Contains(string(out), testVersion) {
-		t.Errorf("qtally --version of the built binary says %q (%v), want the VERSION build argument %q", out, err, testVersion)
+	if want := testVersion + " (commit " + testCommit + ")"; err != nil || !strings.Contains(string(out), want) {
+		t.Errorf("qtally --version of the built binary says %q (%v), want the VERSION and COMMIT build arguments: %q", out, err, want)
 	}
 
 	// The image stage.

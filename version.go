@@ -1,5 +1,15 @@
 package main
 
-// version is set at build time (-ldflags "-X main.version=..."); see
-// deploy/Dockerfile and the Makefile's image target.
-var version = "dev"
+// version and commit are stamped at build time (-ldflags "-X main.version=...
+// -X main.commit=..."): `make release` takes them from `git describe --tags`
+// and the commit, and deploy/Dockerfile from its VERSION and COMMIT build
+// arguments. A plain `go build` leaves these defaults.
+var (
+	version = "dev"
+	commit  = "unknown"
+)
+
+// versionLine is what `qtally --version` prints after the program's name.
+func versionLine() string {
+	return version + " (commit " + commit + ")"
+}
