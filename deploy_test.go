@@ -286,7 +286,10 @@ func TestComposeFileRunsRealCommands(t *testing.T) {
 	}
 	// The dashboards' files live beside compose.yaml, written with the dashboards.
 	wantMounts := map[string]map[string]string{
-		"prometheus": {filepath.Join(root, "deploy/prometheus/prometheus.yml"): "/etc/prometheus/prometheus.yml"},
+		"prometheus": {
+			filepath.Join(root, "deploy/prometheus/prometheus.yml"): "/etc/prometheus/prometheus.yml",
+			filepath.Join(root, "deploy/prometheus/alerts.yml"):     "/etc/prometheus/alerts.yml",
+		},
 		"grafana": {
 			filepath.Join(root, "deploy/grafana/provisioning"): "/etc/grafana/provisioning",
 			filepath.Join(root, "deploy/grafana/dashboards"):   "/var/lib/grafana/dashboards",

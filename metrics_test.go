@@ -99,7 +99,8 @@ func feedLearningWork(t *testing.T, s *service, policy string, rng *rand.Rand, r
 
 // The exposition of a fed service must pass promtool's checks, and each
 // role must export its own figures: the in-memory copy's from API
-// processes, the database's table-wide figures from the worker only.
+// processes, the database's table-wide figures from the worker only. Every
+// metric the alerting rules query must be exported by one of them.
 func TestMetricsPassPromtoolAndFollowRoles(t *testing.T) {
 	tool := promtool(t)
 	db := pgtest.NewDatabase(t)
@@ -115,6 +116,14 @@ func TestMetricsPassPromtoolAndFollowRoles(t *testing.T) {
 		return gaugeOf(f, "qtally_q_copy_revision", policy) >= float64(st.Revision)
 	})
 
+	exported := map[string]bool{}
+	defer func() {
+		for _, name := range alertRuleMetrics(t) {
+			if !exported[name] {
+				t.Errorf("%s alerts on %s, which no role exports", alertRules, name)
+			}
+		}
+	}()
 	for _, proc := range []struct {
 		name     string
 		s        *service
@@ -136,6 +145,9 @@ func TestMetricsPassPromtoolAndFollowRoles(t *testing.T) {
 	} {
 		t.Run(proc.name, func(t *testing.T) {
 			text, families := proc.s.scrape()
+			for name := range families {
+				exported[name] = true
+			}
 			for _, name := range proc.has {
 				if families[name] == nil {
 					t.Errorf("%s does not export %s", proc.name, name)
