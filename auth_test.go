@@ -57,8 +57,9 @@ var oneStepBody = func(id string) map[string]any {
 	return map[string]any{"episodes": []episodeJSON{{ID: id, Steps: []stepJSON{{State: "s", Action: "a", Reward: 1}}}}}
 }
 
-// Each scope opens its routes and no others; a token limited to policies
-// opens only those; missing and bad tokens get 401 with a challenge.
+// Each scope opens its routes and no others (a policy's status is open to
+// every scope, since applications need its backlog and revision); a token
+// limited to policies opens only those; missing and bad tokens get 401 with a challenge.
 func TestTokensScopesAndPolicies(t *testing.T) {
 	s := startService(t, pgtest.NewDatabase(t))
 	for _, p := range []string{"alpha", "beta"} {
@@ -95,9 +96,14 @@ func TestTokensScopesAndPolicies(t *testing.T) {
 		{"ingest token posts to its policy", ingestAlpha, func() (string, string, any) { return episodes("alpha", "e1") }, 202, ""},
 		{"ingest token, other policy", ingestAlpha, func() (string, string, any) { return episodes("beta", "e2") }, 403, "limited to other policies"},
 		{"ingest token cannot choose", ingestAlpha, func() (string, string, any) { return choose("alpha") }, 403, "lacks the choose scope"},
-		{"ingest token cannot read policy", ingestAlpha, func() (string, string, any) { return getPolicy("alpha") }, 403, "lacks the admin scope"},
+		{"ingest token reads its policy's status", ingestAlpha, func() (string, string, any) { return getPolicy("alpha") }, 200, `"backlog"`},
+		{"ingest token, other policy's status", ingestAlpha, func() (string, string, any) { return getPolicy("beta") }, 403, "limited to other policies"},
+		{"ingest token cannot list policies", ingestAlpha, func() (string, string, any) { return "GET", "/v1/policies", nil }, 403, "lacks the admin scope"},
+		{"ingest token cannot change its policy", ingestAlpha, func() (string, string, any) { return putPolicy("alpha") }, 403, "lacks the admin scope"},
 		{"choose token chooses anywhere", chooser, func() (string, string, any) { return choose("beta") }, 200, ""},
 		{"choose token reads states", chooser, func() (string, string, any) { return state("alpha") }, 200, ""},
+		{"choose token reads a policy's status", chooser, func() (string, string, any) { return getPolicy("beta") }, 200, `"revision"`},
+		{"choose token cannot list policies", chooser, func() (string, string, any) { return "GET", "/v1/policies", nil }, 403, "lacks the admin scope"},
 		{"choose token cannot post episodes", chooser, func() (string, string, any) { return episodes("alpha", "e3") }, 403, "lacks the ingest scope"},
 		{"choose token cannot change policies", chooser, func() (string, string, any) { return putPolicy("alpha") }, 403, "lacks the admin scope"},
 		{"limited admin changes its policy", adminAlpha, func() (string, string, any) { return putPolicy("alpha") }, 200, ""},

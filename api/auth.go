@@ -115,9 +115,10 @@ func (g *guard) allow(tok *training.Token) (time.Duration, bool) {
 	return 0, true
 }
 
-// requireScope lets a request through only when its token has the scope
-// and covers the policy the path names, if any.
-func (g *guard) requireScope(s training.Scope) echo.MiddlewareFunc {
+// requireScope lets a request through only when its token has one of the
+// scopes (the first is the one a refusal names) and covers the policy the
+// path names, if any.
+func (g *guard) requireScope(scopes ...training.Scope) echo.MiddlewareFunc {
 	return func(next echo.HandlerFunc) echo.HandlerFunc {
 		if g == nil {
 			return next
@@ -126,6 +127,12 @@ func (g *guard) requireScope(s training.Scope) echo.MiddlewareFunc {
 			tok, _ := c.Get(tokenKey).(*training.Token)
 			if tok == nil {
 				return training.Unauthenticatedf("this request needs a token")
+			}
+			s := scopes[0]
+			for _, other := range scopes[1:] {
+				if !tok.HasScope(s) && tok.HasScope(other) {
+					s = other
+				}
 			}
 			if err := tok.Authorize(s, c.Param("policy")); err != nil {
 				c.Response().Header().Set(echo.HeaderWWWAuthenticate,

@@ -21,7 +21,10 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 
 	admin, ingest, choose := g.requireScope(training.ScopeAdmin), g.requireScope(training.ScopeIngest), g.requireScope(training.ScopeChoose)
 	e.GET("/v1/policies", handleListPolicies(d.Policies), admin)
-	e.GET("/v1/policies/:policy", handleGetPolicy(d.Policies), admin)
+	// Applications read their policy's backlog and revision with the
+	// scopes they have.
+	e.GET("/v1/policies/:policy", handleGetPolicy(d.Policies),
+		g.requireScope(training.ScopeAdmin, training.ScopeChoose, training.ScopeIngest))
 	e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg), admin)
 	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg), ingest)
 	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg), choose)
