@@ -2,6 +2,8 @@ package api
 
 import (
 	"context"
+	"encoding/base64"
+	"errors"
 	"fmt"
 	"net/http"
 	"strconv"
@@ -16,6 +18,7 @@ type Jobs interface {
 	StartEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (training.JobView, error)
 	StartReplay(ctx context.Context, policy string, req training.ReplayRequest) (training.JobView, error)
 	Job(ctx context.Context, policy string, kind training.JobKind, id int64) (training.JobView, error)
+	ListJobs(ctx context.Context, policy string, kind training.JobKind, q training.JobQuery) (training.JobPage, error)
 }
 
 // jobPaths are the collection paths of each kind of job.
@@ -87,9 +90,80 @@ func handleGetJob(j Jobs, kind training.JobKind) echo.HandlerFunc {
 			return training.Invalid(-1, -1, "id", "must be a job number")
 		}
 		job, err := j.Job(c.Request().Context(), policy, kind, id)
+		var missing *training.JobNotFoundError
+		if errors.As(err, &missing) {
+			return jobNotFound(missing)
+		}
 		if err != nil {
 			return err
 		}
 		return c.JSON(http.StatusOK, job)
 	}
+}
+
+// jobNotFound says where to look instead: the job's own path when the id
+// is the policy's job of the other kind, else the policy's listing (an id
+// from another policy's path is not found under this one).
+func jobNotFound(e *training.JobNotFoundError) error {
+	if e.OtherKind != "" {
+		return training.NotFoundf("%s; read it at GET /v1/policies/%s/%s/%d", e, e.Policy, jobPaths[e.OtherKind], e.ID)
+	}
+	return training.NotFoundf("%s; job ids are numbered across all policies, so a job posted under another policy is read under that policy's path; GET /v1/policies/%s/%s lists this policy's",
+		e, e.Policy, jobPaths[e.Kind])
+}
+
+type jobsResponse struct {
+	Jobs []training.JobView `json:"jobs"`
+	// NextCursor continues the listing; absent on its last page.
+	NextCursor string `json:"next_cursor,omitempty"`
+}
+
+// handleListJobs lists a policy's jobs of a kind, newest first, a page at
+// a time.
+func handleListJobs(j Jobs, kind training.JobKind) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		policy, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		q := training.JobQuery{Limit: training.DefaultJobPage}
+		if s := c.QueryParam("limit"); s != "" {
+			n, err := strconv.Atoi(s)
+			if err != nil || n < 1 || n > training.MaxJobPage {
+				return training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", training.MaxJobPage)
+			}
+			q.Limit = n
+		}
+		if s := c.QueryParam("cursor"); s != "" {
+			if q.Before = decodeJobCursor(s); q.Before < 1 {
+				return training.Invalid(-1, -1, "cursor", "is not a cursor this service handed out; start the listing again without it")
+			}
+		}
+		page, err := j.ListJobs(c.Request().Context(), policy, kind, q)
+		if err != nil {
+			return err
+		}
+		res := jobsResponse{Jobs: page.Jobs}
+		if res.Jobs == nil {
+			res.Jobs = []training.JobView{}
+		}
+		if page.Next > 0 {
+			res.NextCursor = base64.RawURLEncoding.EncodeToString([]byte(strconv.FormatInt(page.Next, 10)))
+		}
+		return c.JSON(http.StatusOK, res)
+	}
+}
+
+// decodeJobCursor reads the job id a cursor continues before; 0 when the
+// cursor is not one.
+func decodeJobCursor(s string) int64 {
+	data, err := base64.RawURLEncoding.DecodeString(s)
+	if err != nil {
+		return 0
+	}
+	id, err := strconv.ParseInt(string(data), 10, 64)
+	if err != nil {
+		return 0
+	}
+	return id
 }

@@ -41,8 +41,10 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 	e.GET("/v1/policies/:policy/snapshots/:snapshot/table", handleExportTable(d.Snapshots, true), admin)
 	e.POST("/v1/policies/:policy/snapshots/:snapshot/restore", handleRestoreSnapshot(d.Tables), admin)
 	e.POST("/v1/policies/:policy/evaluations", handleStartEvaluation(d.Jobs, cfg), admin)
+	e.GET("/v1/policies/:policy/evaluations", handleListJobs(d.Jobs, training.EvaluationJobKind), admin)
 	e.GET("/v1/policies/:policy/evaluations/:id", handleGetJob(d.Jobs, training.EvaluationJobKind), admin)
 	e.POST("/v1/policies/:policy/replays", handleStartReplay(d.Jobs, cfg), admin)
+	e.GET("/v1/policies/:policy/replays", handleListJobs(d.Jobs, training.ReplayJobKind), admin)
 	e.GET("/v1/policies/:policy/replays/:id", handleGetJob(d.Jobs, training.ReplayJobKind), admin)
 }
 

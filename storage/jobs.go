@@ -148,25 +148,17 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 	return db.Job(ctx, policy, training.ReplayJobKind, id)
 }
 
-// Job reads a job of a policy.
-func (db *DB) Job(ctx context.Context, policy string, kind training.JobKind, id int64) (training.JobView, error) {
-	p, err := db.PolicyByName(ctx, policy)
-	if err != nil {
-		return training.JobView{}, err
-	}
-	v := training.JobView{Policy: p.Name}
+// jobColumns are what scanJob reads, in its order.
+const jobColumns = `job_id, kind, status, progress, spec->'request', spec->'episodes', result, error, created_at, started_at, finished_at`
+
+// scanJob reads a row of jobColumns into a view of a job of the policy.
+func scanJob(row pgx.Row, policy string) (training.JobView, error) {
+	v := training.JobView{Policy: policy}
 	var status, kindName string
 	var progress, episodes []byte
 	var errText *string
-	err = db.pool.QueryRow(ctx, `
-		SELECT job_id, kind, status, progress, spec->'request', spec->'episodes', result, error, created_at, started_at, finished_at
-		FROM jobs WHERE policy_id = $1 AND job_id = $2 AND kind = $3`, p.ID, id, string(kind)).
-		Scan(&v.ID, &kindName, &status, &progress, &v.Request, &episodes, &v.Result, &errText, &v.CreatedAt, &v.StartedAt, &v.FinishedAt)
-	if errors.Is(err, pgx.ErrNoRows) {
-		return v, training.NotFoundf("policy %q has no %s job %d", policy, kind, id)
-	}
-	if err != nil {
-		return v, mapError(fmt.Errorf("read job: %w", err))
+	if err := row.Scan(&v.ID, &kindName, &status, &progress, &v.Request, &episodes, &v.Result, &errText, &v.CreatedAt, &v.StartedAt, &v.FinishedAt); err != nil {
+		return v, err
 	}
 	v.Kind, v.Status = training.JobKind(kindName), training.JobStatus(status)
 	if errText != nil {
@@ -179,6 +171,63 @@ func (db *DB) Job(ctx context.Context, policy string, kind training.JobKind, id 
 		return v, fmt.Errorf("decode job window: %w", err)
 	}
 	return v, nil
+}
+
+// Job reads one of a policy's jobs of a kind.
+func (db *DB) Job(ctx context.Context, policy string, kind training.JobKind, id int64) (training.JobView, error) {
+	p, err := db.PolicyByName(ctx, policy)
+	if err != nil {
+		return training.JobView{}, err
+	}
+	v, err := scanJob(db.pool.QueryRow(ctx, `SELECT `+jobColumns+` FROM jobs WHERE policy_id = $1 AND job_id = $2 AND kind = $3`,
+		p.ID, id, string(kind)), p.Name)
+	if errors.Is(err, pgx.ErrNoRows) {
+		missing := &training.JobNotFoundError{Policy: p.Name, Kind: kind, ID: id}
+		var other string
+		err = db.pool.QueryRow(ctx, `SELECT kind FROM jobs WHERE policy_id = $1 AND job_id = $2`, p.ID, id).Scan(&other)
+		if err != nil && !errors.Is(err, pgx.ErrNoRows) {
+			return v, mapError(fmt.Errorf("read job: %w", err))
+		}
+		missing.OtherKind = training.JobKind(other)
+		return v, missing
+	}
+	if err != nil {
+		return v, mapError(fmt.Errorf("read job: %w", err))
+	}
+	return v, nil
+}
+
+// ListJobs reads one page of a policy's jobs of a kind, newest first.
+func (db *DB) ListJobs(ctx context.Context, policy string, kind training.JobKind, q training.JobQuery) (training.JobPage, error) {
+	var page training.JobPage
+	p, err := db.PolicyByName(ctx, policy)
+	if err != nil {
+		return page, err
+	}
+	// One more than a page says whether another page follows.
+	rows, err := db.pool.Query(ctx, `
+		SELECT `+jobColumns+` FROM jobs
+		WHERE policy_id = $1 AND kind = $2 AND ($3 = 0 OR job_id < $3)
+		ORDER BY job_id DESC LIMIT $4`, p.ID, string(kind), q.Before, q.Limit+1)
+	if err != nil {
+		return page, mapError(fmt.Errorf("list jobs: %w", err))
+	}
+	defer rows.Close()
+	for rows.Next() {
+		v, err := scanJob(rows, p.Name)
+		if err != nil {
+			return page, mapError(fmt.Errorf("list jobs: %w", err))
+		}
+		page.Jobs = append(page.Jobs, v)
+	}
+	if err := rows.Err(); err != nil {
+		return page, mapError(fmt.Errorf("list jobs: %w", err))
+	}
+	if len(page.Jobs) > q.Limit {
+		page.Jobs = page.Jobs[:q.Limit]
+		page.Next = page.Jobs[q.Limit-1].ID
+	}
+	return page, nil
 }
 
 // ClaimJob implements training.JobStore.

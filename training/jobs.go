@@ -59,6 +59,45 @@ type JobView struct {
 	FinishedAt *time.Time      `json:"finished_at,omitempty"`
 }
 
+// Sizes of a page of jobs.
+const (
+	DefaultJobPage = 50
+	MaxJobPage     = 500
+)
+
+// JobQuery asks for one page of a policy's jobs of a kind, newest first.
+type JobQuery struct {
+	Limit int
+	// Before continues a listing with the jobs older than this id; 0
+	// starts it.
+	Before int64
+}
+
+// JobPage is one page of jobs; Next, when not 0, continues the listing.
+type JobPage struct {
+	Jobs []JobView
+	Next int64
+}
+
+// JobNotFoundError says a policy has no job of a kind with an id. Job ids
+// are numbered across all policies, so an id may be another policy's, or
+// this policy's job of the other kind (OtherKind).
+type JobNotFoundError struct {
+	Policy    string
+	Kind      JobKind
+	ID        int64
+	OtherKind JobKind
+}
+
+func (e *JobNotFoundError) Error() string {
+	if e.OtherKind != "" {
+		return fmt.Sprintf("policy %q has no %s job %d: job %d is its %s", e.Policy, e.Kind, e.ID, e.ID, e.OtherKind)
+	}
+	return fmt.Sprintf("policy %q has no %s job %d", e.Policy, e.Kind, e.ID)
+}
+
+func (e *JobNotFoundError) Unwrap() error { return ErrNotFound }
+
 // JobStore keeps jobs in the database, so that any process can report on a
 // job any other runs.
 type JobStore interface {
