@@ -22,10 +22,10 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 			{
 				Name:  "serve",
 				Usage: "run the HTTP API (and, unless --no-worker, the training worker); applies migrations first",
-				Flags: append(append(serviceFlags(env, ":8080"), databaseFlag(env, true),
+				Flags: append(append(serviceFlags(env, ":8080", serviceRoles{api: true, worker: true}), databaseFlag(env, true),
 					&cli.BoolFlag{Name: flagNoWorker, Usage: "do not train in this process", Sources: env("QTALLY_NO_WORKER")}), authFlags(env)...),
 				Action: func(ctx context.Context, cmd *cli.Command) error {
-					cfg, err := readServiceConfig(cmd)
+					cfg, err := readServiceConfig(cmd, serviceRoles{api: true, worker: true})
 					if err != nil {
 						return err
 					}
@@ -46,9 +46,9 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 			{
 				Name:  "worker",
 				Usage: "run the training worker only (health and metrics on --listen)",
-				Flags: append(serviceFlags(env, ":8081"), databaseFlag(env, true)),
+				Flags: append(serviceFlags(env, ":8081", serviceRoles{worker: true}), databaseFlag(env, true)),
 				Action: func(ctx context.Context, cmd *cli.Command) error {
-					cfg, err := readServiceConfig(cmd)
+					cfg, err := readServiceConfig(cmd, serviceRoles{worker: true})
 					if err != nil {
 						return err
 					}

@@ -75,30 +75,45 @@ func logFlag(env flagEnv) cli.Flag {
 	return &cli.StringFlag{Name: flagLogFormat, Value: "json", Usage: "log format: json or text", Sources: env("QTALLY_LOG_FORMAT")}
 }
 
-// serviceFlags configure the API and the worker.
-func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
-	lim := training.DefaultLimits()
-	return []cli.Flag{
+// serviceRoles are the roles a command's process may take; each reads its
+// own flags, so that a command's --help lists only what it reads.
+type serviceRoles struct {
+	api, worker bool
+}
+
+// serviceFlags configure the API and the worker, as the roles call for.
+func serviceFlags(env flagEnv, listenDefault string, roles serviceRoles) []cli.Flag {
+	flags := []cli.Flag{
 		&cli.StringFlag{Name: flagListen, Value: listenDefault, Usage: "HTTP listen address", Sources: env("QTALLY_LISTEN")},
-		&cli.IntFlag{Name: flagBatchEpisodes, Value: 10_000, Usage: "most episodes one training transaction takes (a batch takes what is waiting, up to this)", Sources: env("QTALLY_BATCH_EPISODES")},
 		&cli.DurationFlag{Name: flagPollInterval, Value: 2 * time.Second, Usage: "fallback poll for work and changes when notifications are missed", Sources: env("QTALLY_POLL_INTERVAL")},
-		&cli.Int64Flag{Name: flagMaxBodyBytes, Value: 16 << 20, Usage: "largest request body accepted (bytes)", Sources: env("QTALLY_MAX_BODY_BYTES")},
-		&cli.IntFlag{Name: flagMaxEpisodes, Value: lim.MaxEpisodes, Usage: "most episodes in one request", Sources: env("QTALLY_MAX_EPISODES_PER_REQUEST")},
-		&cli.IntFlag{Name: flagMaxSteps, Value: lim.MaxSteps, Usage: "most steps in one episode", Sources: env("QTALLY_MAX_STEPS")},
-		&cli.IntFlag{Name: flagMaxIDLength, Value: lim.MaxIDLength, Usage: "longest episode id (bytes)", Sources: env("QTALLY_MAX_ID_LENGTH")},
-		&cli.IntFlag{Name: flagMaxStateLength, Value: lim.MaxStateLength, Usage: "longest state name (bytes)", Sources: env("QTALLY_MAX_STATE_LENGTH")},
 		&cli.DurationFlag{Name: flagShutdownGrace, Value: 15 * time.Second, Usage: "time in-flight work gets to finish on shutdown", Sources: env("QTALLY_SHUTDOWN_GRACE")},
 		&cli.Int32Flag{Name: flagDBMaxConns, Value: 20, Usage: "most PostgreSQL connections of this process", Sources: env("QTALLY_DB_MAX_CONNS")},
-		&cli.Int64Flag{Name: flagCoverageVisits, Value: 10, Usage: "visits a state-action pair needs to count as covered in the coverage metric", Sources: env("QTALLY_COVERAGE_VISITS")},
 		&cli.DurationFlag{Name: flagHistoryBucket, Value: storage.DefaultHistory().Bucket, Usage: "stretch of time one row of training history sums up", Sources: env("QTALLY_HISTORY_BUCKET")},
 		&cli.DurationFlag{Name: flagHistoryWindow, Value: storage.DefaultHistory().Window, Usage: "how long training history is kept", Sources: env("QTALLY_HISTORY_WINDOW")},
 		&cli.StringFlag{Name: flagPprofListen, Usage: "serve Go profiles (net/http/pprof) on this loopback address, e.g. 127.0.0.1:6060; off when empty", Sources: env("QTALLY_PPROF_LISTEN")},
 		logFlag(env),
-		&cli.DurationFlag{Name: flagEpisodeRetention, Usage: "keep trained episodes this long for evaluation and replay, then delete them (0 keeps them forever; untrained episodes are always kept)", Sources: env("QTALLY_EPISODE_RETENTION")},
-		&cli.DurationFlag{Name: flagPruneInterval, Value: time.Minute, Usage: "how often the worker deletes episodes older than the retention", Sources: env("QTALLY_PRUNE_INTERVAL")},
-		&cli.IntFlag{Name: flagPruneBatch, Value: 1000, Usage: "most episodes one pruning transaction deletes", Sources: env("QTALLY_PRUNE_BATCH")},
-		&cli.DurationFlag{Name: flagJobStaleAfter, Value: 30 * time.Second, Usage: "a background job whose runner has not reported for this long is taken over by another worker", Sources: env("QTALLY_JOB_STALE_AFTER")},
 	}
+	if roles.api {
+		lim := training.DefaultLimits()
+		flags = append(flags,
+			&cli.Int64Flag{Name: flagMaxBodyBytes, Value: 16 << 20, Usage: "largest request body accepted (bytes)", Sources: env("QTALLY_MAX_BODY_BYTES")},
+			&cli.IntFlag{Name: flagMaxEpisodes, Value: lim.MaxEpisodes, Usage: "most episodes in one request", Sources: env("QTALLY_MAX_EPISODES_PER_REQUEST")},
+			&cli.IntFlag{Name: flagMaxSteps, Value: lim.MaxSteps, Usage: "most steps in one episode", Sources: env("QTALLY_MAX_STEPS")},
+			&cli.IntFlag{Name: flagMaxIDLength, Value: lim.MaxIDLength, Usage: "longest episode id (bytes)", Sources: env("QTALLY_MAX_ID_LENGTH")},
+			&cli.IntFlag{Name: flagMaxStateLength, Value: lim.MaxStateLength, Usage: "longest state name (bytes)", Sources: env("QTALLY_MAX_STATE_LENGTH")},
+			&cli.Int64Flag{Name: flagCoverageVisits, Value: 10, Usage: "visits a state-action pair needs to count as covered in the coverage metric", Sources: env("QTALLY_COVERAGE_VISITS")},
+		)
+	}
+	if roles.worker {
+		flags = append(flags,
+			&cli.IntFlag{Name: flagBatchEpisodes, Value: 10_000, Usage: "most episodes one training transaction takes (a batch takes what is waiting, up to this)", Sources: env("QTALLY_BATCH_EPISODES")},
+			&cli.DurationFlag{Name: flagEpisodeRetention, Usage: "keep trained episodes this long for evaluation and replay, then delete them (0 keeps them forever; untrained episodes are always kept)", Sources: env("QTALLY_EPISODE_RETENTION")},
+			&cli.DurationFlag{Name: flagPruneInterval, Value: time.Minute, Usage: "how often the worker deletes episodes older than the retention", Sources: env("QTALLY_PRUNE_INTERVAL")},
+			&cli.IntFlag{Name: flagPruneBatch, Value: 1000, Usage: "most episodes one pruning transaction deletes", Sources: env("QTALLY_PRUNE_BATCH")},
+			&cli.DurationFlag{Name: flagJobStaleAfter, Value: 30 * time.Second, Usage: "a background job whose runner has not reported for this long is taken over by another worker", Sources: env("QTALLY_JOB_STALE_AFTER")},
+		)
+	}
+	return flags
 }
 
 // serviceConfig is what serve, worker and dev run with.
@@ -128,55 +143,61 @@ type serviceConfig struct {
 	PprofListen      string
 }
 
-func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
+func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, error) {
 	cfg := serviceConfig{
 		DatabaseURL:   cmd.String(flagDatabaseURL),
 		Listen:        cmd.String(flagListen),
-		BatchEpisodes: cmd.Int(flagBatchEpisodes),
 		PollInterval:  cmd.Duration(flagPollInterval),
-		Limits: training.Limits{
+		Limits:        training.DefaultLimits(),
+		ShutdownGrace: cmd.Duration(flagShutdownGrace),
+		DBMaxConns:    cmd.Int32(flagDBMaxConns),
+		History:       storage.HistorySettings{Bucket: cmd.Duration(flagHistoryBucket), Window: cmd.Duration(flagHistoryWindow)},
+		PprofListen:   cmd.String(flagPprofListen),
+	}
+	atLeastOne := map[string]int{}
+	if roles.api {
+		cfg.Limits = training.Limits{
 			MaxEpisodes:    cmd.Int(flagMaxEpisodes),
 			MaxSteps:       cmd.Int(flagMaxSteps),
 			MaxIDLength:    cmd.Int(flagMaxIDLength),
 			MaxStateLength: cmd.Int(flagMaxStateLength),
-		},
-		ShutdownGrace: cmd.Duration(flagShutdownGrace),
-		DBMaxConns:    cmd.Int32(flagDBMaxConns),
-		History:       storage.HistorySettings{Bucket: cmd.Duration(flagHistoryBucket), Window: cmd.Duration(flagHistoryWindow)},
-
-		EpisodeRetention: cmd.Duration(flagEpisodeRetention),
-		PruneInterval:    cmd.Duration(flagPruneInterval),
-		PruneBatch:       cmd.Int(flagPruneBatch),
-		JobStaleAfter:    cmd.Duration(flagJobStaleAfter),
-		PprofListen:      cmd.String(flagPprofListen),
+		}
+		cfg.CoverageVisits = cmd.Int64(flagCoverageVisits)
+		cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength,
+			HistoryWindow: cfg.History.Window}
+		atLeastOne[flagMaxEpisodes], atLeastOne[flagMaxSteps] = cfg.Limits.MaxEpisodes, cfg.Limits.MaxSteps
+		atLeastOne[flagMaxIDLength], atLeastOne[flagMaxStateLength] = cfg.Limits.MaxIDLength, cfg.Limits.MaxStateLength
+		if cfg.CoverageVisits < 1 {
+			return cfg, fmt.Errorf("--%s must be at least 1, got %d", flagCoverageVisits, cfg.CoverageVisits)
+		}
+		if cfg.HTTP.MaxBodyBytes < 1024 {
+			return cfg, fmt.Errorf("--%s must be at least 1024", flagMaxBodyBytes)
+		}
 	}
-	cfg.CoverageVisits = cmd.Int64(flagCoverageVisits)
-	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength,
-		HistoryWindow: cfg.History.Window}
-	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,
-		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength,
-		flagPruneBatch: cfg.PruneBatch} {
+	if roles.worker {
+		cfg.BatchEpisodes = cmd.Int(flagBatchEpisodes)
+		cfg.EpisodeRetention = cmd.Duration(flagEpisodeRetention)
+		cfg.PruneInterval = cmd.Duration(flagPruneInterval)
+		cfg.PruneBatch = cmd.Int(flagPruneBatch)
+		cfg.JobStaleAfter = cmd.Duration(flagJobStaleAfter)
+		atLeastOne[flagBatchEpisodes], atLeastOne[flagPruneBatch] = cfg.BatchEpisodes, cfg.PruneBatch
+		if cfg.EpisodeRetention < 0 || cfg.PruneInterval <= 0 {
+			return cfg, fmt.Errorf("--%s must not be negative and --%s must be positive", flagEpisodeRetention, flagPruneInterval)
+		}
+		if cfg.JobStaleAfter < 2*jobReportInterval {
+			return cfg, fmt.Errorf("--%s must be at least %v (twice the progress report interval)", flagJobStaleAfter, 2*jobReportInterval)
+		}
+	}
+	for name, v := range atLeastOne {
 		if v < 1 {
 			return cfg, fmt.Errorf("--%s must be at least 1, got %d", name, v)
 		}
-	}
-	if cfg.CoverageVisits < 1 {
-		return cfg, fmt.Errorf("--%s must be at least 1, got %d", flagCoverageVisits, cfg.CoverageVisits)
-	}
-	if cfg.HTTP.MaxBodyBytes < 1024 {
-		return cfg, fmt.Errorf("--%s must be at least 1024", flagMaxBodyBytes)
 	}
 	if cfg.PollInterval <= 0 {
 		return cfg, fmt.Errorf("--%s must be positive", flagPollInterval)
 	}
 	if err := cfg.History.Validate(); err != nil {
 		return cfg, fmt.Errorf("--%s, --%s: %w", flagHistoryBucket, flagHistoryWindow, err)
-	}
-	if cfg.EpisodeRetention < 0 || cfg.PruneInterval <= 0 {
-		return cfg, fmt.Errorf("--%s must not be negative and --%s must be positive", flagEpisodeRetention, flagPruneInterval)
-	}
-	if cfg.JobStaleAfter < 2*jobReportInterval {
-		return cfg, fmt.Errorf("--%s must be at least %v (twice the progress report interval)", flagJobStaleAfter, 2*jobReportInterval)
 	}
 	return cfg, nil
 }

@@ -20,7 +20,7 @@ const flagDataDir = "data-dir"
 // devCommand runs everything on one machine for a first look: a private
 // PostgreSQL (unless DATABASE_URL is set), the API and the worker.
 func devCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
-	flags := append(serviceFlags(env, "127.0.0.1:8080"), databaseFlag(env, false),
+	flags := append(serviceFlags(env, "127.0.0.1:8080", serviceRoles{api: true, worker: true}), databaseFlag(env, false),
 		&cli.BoolFlag{Name: "demo", Usage: "also run the demo's simulated customers against this service"},
 		&cli.StringFlag{Name: flagDataDir, Value: defaultDataDir(), Usage: "where the private PostgreSQL keeps its data", Sources: env("QTALLY_DATA_DIR")})
 	flags = append(flags, demoFlags(env)...)
@@ -29,7 +29,7 @@ func devCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 		Usage: "run API and worker on a private local PostgreSQL (started from the installed server binaries when DATABASE_URL is unset)",
 		Flags: flags,
 		Action: func(ctx context.Context, cmd *cli.Command) error {
-			cfg, err := readServiceConfig(cmd)
+			cfg, err := readServiceConfig(cmd, serviceRoles{api: true, worker: true})
 			if err != nil {
 				return err
 			}
