@@ -40,7 +40,9 @@ func TestWorkerHelpListsOnlyWhatTheWorkerReads(t *testing.T) {
 
 	// The worker refuses what it does not read, rather than ignoring it.
 	err := run(context.Background(), []string{"qtally", "worker", "--" + flagMaxBodyBytes, "2048"},
-		func(k string) string { return map[string]string{"DATABASE_URL": "postgres://127.0.0.1:1/unreachable"}[k] }, io.Discard, io.Discard)
+		func(k string) string {
+			return map[string]string{"DATABASE_URL": "postgres://127.0.0.1:1/unreachable"}[k]
+		}, io.Discard, io.Discard)
 	if err == nil || !strings.Contains(err.Error(), "not defined") {
 		t.Errorf("qtally worker --%s: %v, want the flag refused as not defined", flagMaxBodyBytes, err)
 	}
