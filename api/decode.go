@@ -231,47 +231,33 @@ func truncateBytes(s string, n int) string {
 	return s[:n] + "..."
 }
 
-// locateEpisodeError decodes one episode again, step by step, to say which
-// step a decoding error is in. It runs only on the error path.
-func locateEpisodeError(raw []byte, episode int) error {
-	var ep training.Episode
-	err := decodeStrict(raw, &ep, episode)
+// undecodedBatch is an episode batch that did not decode: every problem
+// found in it, and the episodes as far as they decoded (nil when the body
+// has no list of episodes), so that the policy's checks can add the
+// problems of the rest.
+type undecodedBatch struct {
+	problems []training.FieldError
+	episodes []training.Episode
+	err      error
+}
+
+func (b *undecodedBatch) Error() string { return b.err.Error() }
+func (b *undecodedBatch) Unwrap() error { return b.err }
+
+func newUndecodedBatch(problems []training.FieldError, episodes []training.Episode) *undecodedBatch {
+	return &undecodedBatch{problems: problems, episodes: episodes, err: training.Refuse(problems)}
+}
+
+// problemsOf lists the located problems of a refusal; none for nil.
+func problemsOf(err error) []training.FieldError {
 	if err == nil {
 		return nil
 	}
-	var loose struct {
-		Steps []json.RawMessage `json:"steps"`
+	var verr *training.ValidationError
+	if errors.As(err, &verr) {
+		return verr.Problems
 	}
-	if json.Unmarshal(raw, &loose) != nil {
-		return err
-	}
-	for j, rawStep := range loose.Steps {
-		var st training.Step
-		if serr := decodeStrict(rawStep, &st, episode); serr != nil {
-			var verr *training.ValidationError
-			if errors.As(serr, &verr) {
-				verr.Problems[0].Step = j
-			}
-			return serr
-		}
-	}
-	return err
-}
-
-// locateBatchError finds the episode (and step) a batch decoding error is in.
-func locateBatchError(body []byte, err error) error {
-	var loose struct {
-		Episodes []json.RawMessage `json:"episodes"`
-	}
-	if json.Unmarshal(body, &loose) != nil {
-		return err
-	}
-	for i, raw := range loose.Episodes {
-		if eerr := locateEpisodeError(raw, i); eerr != nil {
-			return eerr
-		}
-	}
-	return err
+	return []training.FieldError{{Episode: -1, Step: -1, Message: err.Error()}}
 }
 
 type episodesBody struct {
@@ -279,11 +265,15 @@ type episodesBody struct {
 }
 
 // decodeEpisodes reads a JSON batch or NDJSON (one episode object a line).
+// A body that does not decode whole is decoded again member by member (the
+// error path only), so that the refusal, an *undecodedBatch, lists every
+// problem with its episode, step and field, and says so when the body is
+// in the other format or is a single episode.
 func decodeEpisodes(body []byte, media string) ([]training.Episode, error) {
 	if media == mediaJSON {
 		var b episodesBody
 		if err := decodeFast(body, &b, -1); err != nil {
-			return nil, locateBatchError(body, err)
+			return nil, undecodableBatch(body, err)
 		}
 		if b.Episodes == nil {
 			return nil, training.Invalid(-1, -1, "episodes", "is missing")
@@ -291,21 +281,230 @@ func decodeEpisodes(body []byte, media string) ([]training.Episode, error) {
 		return b.Episodes, nil
 	}
 	var episodes []training.Episode
-	for len(body) > 0 {
-		line := body
-		if i := bytes.IndexByte(body, '\n'); i >= 0 {
-			line, body = body[:i], body[i+1:]
+	var problems []training.FieldError
+	for rest := body; len(rest) > 0; {
+		line := rest
+		if i := bytes.IndexByte(rest, '\n'); i >= 0 {
+			line, rest = rest[:i], rest[i+1:]
 		} else {
-			body = nil
+			rest = nil
 		}
 		if len(bytes.TrimSpace(line)) == 0 {
 			continue
 		}
 		var ep training.Episode
 		if err := decodeFast(line, &ep, len(episodes)); err != nil {
-			return nil, locateEpisodeError(line, len(episodes))
+			if len(episodes) == 0 && isBatchObject(body) {
+				return nil, training.Invalid(-1, -1, "", `the body is a JSON batch {"episodes": [...]}, not NDJSON; send it with Content-Type: application/json`)
+			}
+			ep = decodeEpisodeMembers(line, len(episodes), err, &problems)
 		}
 		episodes = append(episodes, ep)
 	}
+	if len(problems) > 0 {
+		return nil, newUndecodedBatch(problems, episodes)
+	}
 	return episodes, nil
+}
+
+// undecodableBatch explains why a JSON batch did not decode.
+func undecodableBatch(body []byte, err error) error {
+	if !json.Valid(body) {
+		if n, ok := ndjsonValues(body); ok {
+			return training.Invalid(-1, -1, "", "the body holds %d JSON values, one a line: that is NDJSON; send it with Content-Type: application/x-ndjson, or post one JSON object {\"episodes\": [...]}", n)
+		}
+		return err
+	}
+	trimmed := bytes.TrimLeft(body, " \t\r\n")
+	if len(trimmed) > 0 && trimmed[0] == '[' {
+		return training.Invalid(-1, -1, "", `the body is a JSON array; post the episodes inside an object: {"episodes": [...]}`)
+	}
+	members, ok := objectMembers(body)
+	if !ok {
+		return err
+	}
+	var batch, episode bool
+	for _, m := range members {
+		batch = batch || strings.EqualFold(m.name, "episodes")
+		episode = episode || strings.EqualFold(m.name, "id") || strings.EqualFold(m.name, "steps")
+	}
+	if episode && !batch {
+		return training.Invalid(-1, -1, "", `the body is one episode, not a batch: post {"episodes": [ ...the episode... ]}, or send episodes one a line as application/x-ndjson`)
+	}
+	var problems []training.FieldError
+	var episodes []training.Episode
+	listed := false
+	for _, m := range members {
+		if !strings.EqualFold(m.name, "episodes") {
+			problems = append(problems, unknownMember(m.name, -1, -1))
+			continue
+		}
+		items, ok := arrayItems(m.value)
+		if !ok {
+			derr := decodeStrict(m.value, new([]training.Episode), -1)
+			if derr == nil { // null
+				derr = training.Invalid(-1, -1, "episodes", "is missing")
+			}
+			problems = append(problems, locate(problemsOf(derr), -1, "episodes")...)
+			continue
+		}
+		listed = true
+		episodes = make([]training.Episode, len(items))
+		for i, raw := range items {
+			if derr := decodeStrict(raw, &episodes[i], i); derr != nil {
+				episodes[i] = decodeEpisodeMembers(raw, i, derr, &problems)
+			}
+		}
+	}
+	if len(problems) == 0 {
+		return err
+	}
+	if !listed {
+		episodes = nil
+	}
+	return newUndecodedBatch(problems, episodes)
+}
+
+// decodeEpisodeMembers decodes an episode that failed to decode whole, one
+// member at a time, adding a located problem for each member that does not
+// decode, and returns the episode as far as it did. err is the episode's
+// own decoding error, reported when the members say nothing more.
+func decodeEpisodeMembers(raw []byte, episode int, err error, problems *[]training.FieldError) training.Episode {
+	var ep training.Episode
+	before := len(*problems)
+	decodeMembers(raw, reflect.ValueOf(&ep).Elem(), episode, -1, problems)
+	if len(*problems) == before {
+		// Every member decoded alone (a repeated member, say).
+		*problems = append(*problems, problemsOf(err)...)
+	}
+	return ep
+}
+
+// decodeMembers decodes a JSON object into the struct v, member by member,
+// adding a located problem for each member that does not decode or names
+// no field of v. Members match fields by JSON name, ignoring case, as the
+// decoder does. A list of objects (an episode's steps) is decoded item by
+// item, each item's problems located at its index as the step.
+func decodeMembers(raw []byte, v reflect.Value, episode, step int, problems *[]training.FieldError) {
+	members, ok := objectMembers(raw)
+	if !ok {
+		*problems = append(*problems, locate(problemsOf(decodeStrict(raw, v.Addr().Interface(), episode)), step, "")...)
+		return
+	}
+	for _, m := range members {
+		field, name := jsonField(v, m.name)
+		if !field.IsValid() {
+			*problems = append(*problems, unknownMember(m.name, episode, step))
+			continue
+		}
+		if items, ok := arrayItems(m.value); ok && step < 0 && field.Kind() == reflect.Slice && field.Type().Elem().Kind() == reflect.Struct {
+			field.Set(reflect.MakeSlice(field.Type(), len(items), len(items)))
+			for j, item := range items {
+				decodeMembers(item, field.Index(j), episode, j, problems)
+			}
+			continue
+		}
+		*problems = append(*problems, locate(problemsOf(decodeStrict(m.value, field.Addr().Interface(), episode)), step, name)...)
+	}
+}
+
+// jsonField finds the field of a struct value a JSON member decodes into,
+// and its JSON name.
+func jsonField(v reflect.Value, member string) (reflect.Value, string) {
+	t := v.Type()
+	for i := range t.NumField() {
+		name, _, _ := strings.Cut(t.Field(i).Tag.Get("json"), ",")
+		if name != "" && name != "-" && strings.EqualFold(name, member) {
+			return v.Field(i), name
+		}
+	}
+	return reflect.Value{}, ""
+}
+
+// locate places problems of a member's value at the step and field they
+// are in; problems that were errors of the whole body say nothing about
+// where, and the member does.
+func locate(problems []training.FieldError, step int, field string) []training.FieldError {
+	out := slices.Clone(problems)
+	for i := range out {
+		if step >= 0 {
+			out[i].Step = step
+		}
+		if out[i].Field == "" {
+			out[i].Field = field
+		}
+	}
+	return out
+}
+
+// unknownMember is the problem of a member that names no field; it is
+// located at the member's own name.
+func unknownMember(name string, episode, step int) training.FieldError {
+	return training.FieldError{Episode: episode, Step: step, Field: truncateBytes(name, 61),
+		Message: truncateBytes(`"`+name+`"`, 64) + " is not a field of this request"}
+}
+
+// jsonMember is one member of a JSON object, in the order sent.
+type jsonMember struct {
+	name  string
+	value json.RawMessage
+}
+
+// objectMembers splits a JSON object into its members; false when raw is
+// not one.
+func objectMembers(raw []byte) ([]jsonMember, bool) {
+	dec := json.NewDecoder(bytes.NewReader(raw))
+	if tok, err := dec.Token(); err != nil || tok != json.Delim('{') {
+		return nil, false
+	}
+	var members []jsonMember
+	for dec.More() {
+		tok, err := dec.Token()
+		name, isName := tok.(string)
+		if err != nil || !isName {
+			return nil, false
+		}
+		var value json.RawMessage
+		if err := dec.Decode(&value); err != nil {
+			return nil, false
+		}
+		members = append(members, jsonMember{name, value})
+	}
+	return members, true
+}
+
+// arrayItems splits a JSON array into its items; false when raw is not one.
+func arrayItems(raw []byte) ([]json.RawMessage, bool) {
+	var items []json.RawMessage
+	trimmed := bytes.TrimSpace(raw)
+	if len(trimmed) == 0 || trimmed[0] != '[' || json.Unmarshal(trimmed, &items) != nil {
+		return nil, false
+	}
+	return items, true
+}
+
+// ndjsonValues counts the lines of a body that each hold a JSON value; ok
+// when there are at least two and every non-blank line holds one.
+func ndjsonValues(body []byte) (int, bool) {
+	n := 0
+	for _, line := range bytes.Split(body, []byte("\n")) {
+		if len(bytes.TrimSpace(line)) == 0 {
+			continue
+		}
+		if !json.Valid(line) {
+			return 0, false
+		}
+		n++
+	}
+	return n, n >= 2
+}
+
+// isBatchObject reports whether a body is one JSON object with an episodes
+// member: a JSON batch.
+func isBatchObject(body []byte) bool {
+	if !json.Valid(body) {
+		return false
+	}
+	members, _ := objectMembers(body)
+	return slices.ContainsFunc(members, func(m jsonMember) bool { return strings.EqualFold(m.name, "episodes") })
 }

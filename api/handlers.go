@@ -1,6 +1,8 @@
 package api
 
 import (
+	"cmp"
+	"context"
 	"encoding/json"
 	"errors"
 	"io"
@@ -135,6 +137,14 @@ func handlePostEpisodes(e Episodes, m *metrics.Metrics, cfg Config) echo.Handler
 			return err
 		}
 		episodes, err := decodeEpisodes(body, media)
+		var undecoded *undecodedBatch
+		if errors.As(err, &undecoded) && undecoded.episodes != nil {
+			err = refuseUndecoded(c.Request().Context(), e, name, undecoded)
+			var verr *training.ValidationError
+			if errors.As(err, &verr) {
+				m.EpisodesRejected.WithLabelValues(name).Add(float64(len(undecoded.episodes)))
+			}
+		}
 		if err != nil {
 			return err
 		}
@@ -149,6 +159,46 @@ func handlePostEpisodes(e Episodes, m *metrics.Metrics, cfg Config) echo.Handler
 		m.EpisodesReceived.WithLabelValues(name).Add(float64(res.Accepted))
 		m.EpisodesDuplicate.WithLabelValues(name).Add(float64(res.Duplicates))
 		return c.JSON(http.StatusAccepted, res)
+	}
+}
+
+// refuseUndecoded adds to the problems of a batch that did not decode those
+// the policy finds in the rest of it, leaving out what it says of values
+// that did not decode (a field that failed to decode is not also missing).
+func refuseUndecoded(ctx context.Context, e Episodes, policy string, b *undecodedBatch) error {
+	err := e.CheckEpisodes(ctx, policy, b.episodes)
+	var verr *training.ValidationError
+	if err != nil && !errors.As(err, &verr) {
+		return err
+	}
+	problems := slices.Clone(b.problems)
+	if verr != nil {
+		for _, p := range verr.Problems {
+			if !slices.ContainsFunc(b.problems, func(d training.FieldError) bool { return undecodedAt(d, p) }) {
+				problems = append(problems, p)
+			}
+		}
+	}
+	// In the order of the batch: its episodes, their steps.
+	slices.SortStableFunc(problems, func(a, b training.FieldError) int {
+		return cmp.Or(cmp.Compare(a.Episode, b.Episode), cmp.Compare(a.Step, b.Step))
+	})
+	return training.Refuse(problems)
+}
+
+// undecodedAt reports whether a decoding problem d left the value p is
+// about undecoded: the same field, or the whole step, steps or episode
+// holding it.
+func undecodedAt(d, p training.FieldError) bool {
+	switch {
+	case d.Episode != p.Episode || d.Episode < 0:
+		return false
+	case d.Step < 0 && d.Field == "":
+		return true
+	case d.Step < 0 && d.Field == "steps":
+		return p.Step >= 0 || p.Field == "steps"
+	default:
+		return d.Step == p.Step && (d.Field == "" || d.Field == p.Field)
 	}
 }
 

@@ -26,6 +26,9 @@ type Policies interface {
 // Episodes stores posted episodes.
 type Episodes interface {
 	Ingest(ctx context.Context, policy string, episodes []training.Episode) (training.IngestResult, error)
+	// CheckEpisodes validates episodes against the policy as Ingest does,
+	// storing nothing.
+	CheckEpisodes(ctx context.Context, policy string, episodes []training.Episode) error
 }
 
 // States reads one state's estimates.

@@ -14,6 +14,17 @@ import (
 // ingest commits (the two-key form: class, policy id).
 const ingestLockClass = 0x71746c6a
 
+// CheckEpisodes validates episodes against a policy as Ingest does, and
+// stores nothing: refusals list the policy's problems beside others.
+func (db *DB) CheckEpisodes(ctx context.Context, policy string, episodes []training.Episode) error {
+	p, err := db.PolicyByName(ctx, policy)
+	if err != nil {
+		return err
+	}
+	_, err = training.EncodeEpisodes(p.Settings, p.ActionIndex(), episodes, db.limits)
+	return err
+}
+
 // Ingest validates a batch against its policy and stores the episodes whose
 // ids the policy has not stored yet, in one transaction: all or nothing.
 func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Episode) (training.IngestResult, error) {

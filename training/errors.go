@@ -116,6 +116,16 @@ func (l *problemList) err() error {
 	return &ValidationError{Problems: l.problems}
 }
 
+// Refuse returns a ValidationError listing problems, bounded as every
+// refusal is; nil when there are none.
+func Refuse(problems []FieldError) error {
+	var l problemList
+	for _, p := range problems {
+		l.add(p.Episode, p.Step, p.Field, "%s", p.Message)
+	}
+	return l.err()
+}
+
 // Invalid returns a ValidationError with a single problem.
 func Invalid(episode, step int, field, format string, args ...any) error {
 	var l problemList
