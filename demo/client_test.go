@@ -42,12 +42,12 @@ func TestConfigValidationRefusesNonsense(t *testing.T) {
 
 func TestReportFractionAndText(t *testing.T) {
 	r := Report{Episodes: 30_000, Window: 1000, MeanReturn: 6.5, Optimal: 8, Learned: 7.5, Random: 0.5,
-		FirstDay: []FirstAction{{State: State{Reason: ExpiredCard}, Learned: []Action{EmailReminder}, Optimal: []Action{TextReminder}, Shortfall: 0.031}}}
+		FirstDay: []FirstAction{{State: State{Reason: CardOutOfDate}, Learned: []Action{EmailReminder}, Optimal: []Action{TextReminder}, Shortfall: 0.031}}}
 	if got := r.Fraction(); math.Abs(got-7.0/7.5) > 1e-15 {
 		t.Errorf("fraction %v, want %v", got, 7.0/7.5)
 	}
 	text := r.String()
-	for _, want := range []string{"30000", "93.3% of the way", "expired_card", "email_reminder / text_reminder  (0.031 less)"} {
+	for _, want := range []string{"30000", "93.3% of the way", "card_out_of_date", "email_reminder / text_reminder  (0.031 less)"} {
 		if !strings.Contains(text, want) {
 			t.Errorf("report lacks %q:\n%s", want, text)
 		}

@@ -154,25 +154,25 @@ func TestOptimalBeatsRandomClearly(t *testing.T) {
 }
 
 // The optimum follows the decline reason the way the scenario intends:
-// wait for payday after insufficient funds, get an expired card replaced
-// before retrying, retry a generic decline at once, and retry as soon as
-// the customer has entered new details.
+// wait for payday after a low balance, get an out-of-date card replaced
+// before retrying, retry at once when the bank refused without saying
+// why, and retry as soon as the customer has entered new details.
 func TestOptimalFirstActionsFollowTheReason(t *testing.T) {
 	opt := Optimal(0.99)
 	for p := range numPlans {
-		funds := opt.BestActions(State{Reason: InsufficientFunds, Plan: p})
-		if slices.Contains(funds, RetryCard) {
-			t.Errorf("%s, insufficient funds, day 0: optimal %v includes retry_card", p, funds)
+		lowBalance := opt.BestActions(State{Reason: LowBalance, Plan: p})
+		if slices.Contains(lowBalance, RetryCard) {
+			t.Errorf("%s, low balance, day 0: optimal %v includes retry_card", p, lowBalance)
 		}
-		expired := opt.BestActions(State{Reason: ExpiredCard, Plan: p})
-		for _, a := range expired {
+		outOfDate := opt.BestActions(State{Reason: CardOutOfDate, Plan: p})
+		for _, a := range outOfDate {
 			if a != EmailReminder && a != TextReminder {
-				t.Errorf("%s, expired card, day 0: optimal %v, want a reminder", p, expired)
+				t.Errorf("%s, card out of date, day 0: optimal %v, want a reminder", p, outOfDate)
 			}
 		}
-		generic := opt.BestActions(State{Reason: GenericDecline, Plan: p})
-		if !slices.Equal(generic, []Action{RetryCard}) {
-			t.Errorf("%s, generic decline, day 0: optimal %v, want retry_card", p, generic)
+		refused := opt.BestActions(State{Reason: BankRefused, Plan: p})
+		if !slices.Equal(refused, []Action{RetryCard}) {
+			t.Errorf("%s, bank refused, day 0: optimal %v, want retry_card", p, refused)
 		}
 		for r := range numReasons {
 			updated := State{Day: 1, Messages: 1, Reason: r, Plan: p, CardUpdated: true}
@@ -181,13 +181,13 @@ func TestOptimalFirstActionsFollowTheReason(t *testing.T) {
 			}
 		}
 	}
-	// Retrying an insufficient-funds decline pays off more as payday nears.
-	funds := func(day int) float64 {
-		s := State{Day: day, Reason: InsufficientFunds}
+	// Retrying after a low-balance decline pays off more as payday nears.
+	lowBalanceGain := func(day int) float64 {
+		s := State{Day: day, Reason: LowBalance}
 		return opt.Q[s][RetryCard] - opt.Q[s][Wait]
 	}
-	if !(funds(0) < 0 && funds(3) > 0) {
-		t.Errorf("retry minus wait, insufficient funds: day 0 %.3f (want < 0), day 3 %.3f (want > 0)", funds(0), funds(3))
+	if !(lowBalanceGain(0) < 0 && lowBalanceGain(3) > 0) {
+		t.Errorf("retry minus wait, low balance: day 0 %.3f (want < 0), day 3 %.3f (want > 0)", lowBalanceGain(0), lowBalanceGain(3))
 	}
 }
 
@@ -201,7 +201,7 @@ func TestGreedyOfOptimalQIsOptimal(t *testing.T) {
 }
 
 func TestGreedySplitsTiesEvenly(t *testing.T) {
-	s := State{Day: 2, Reason: ExpiredCard}
+	s := State{Day: 2, Reason: CardOutOfDate}
 	q := map[State][]float64{s: {1, 3, 0, 3, -1, 3}}
 	got := Greedy(q)(s)
 	want := []float64{0, 1.0 / 3, 0, 1.0 / 3, 0, 1.0 / 3}
