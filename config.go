@@ -57,6 +57,7 @@ const (
 	flagHistoryBucket  = "history-bucket"
 	flagHistoryWindow  = "history-window"
 	flagPprofListen    = "pprof-listen"
+	flagProblemDocs    = "problem-docs"
 )
 
 // Flags of episode retention.
@@ -93,6 +94,7 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 		&cli.DurationFlag{Name: flagHistoryBucket, Value: storage.DefaultHistory().Bucket, Usage: "stretch of time one row of training history sums up", Sources: env("QTALLY_HISTORY_BUCKET")},
 		&cli.DurationFlag{Name: flagHistoryWindow, Value: storage.DefaultHistory().Window, Usage: "how long training history is kept", Sources: env("QTALLY_HISTORY_WINDOW")},
 		&cli.StringFlag{Name: flagPprofListen, Usage: "serve Go profiles (net/http/pprof) on this loopback address, e.g. 127.0.0.1:6060; off when empty", Sources: env("QTALLY_PPROF_LISTEN")},
+		&cli.StringFlag{Name: flagProblemDocs, Value: api.DefaultProblemDocs, Usage: "address of the problem type documentation (docs/problems.md); each problem type URI is this address, # and the problem's name", Sources: env("QTALLY_PROBLEM_DOCS")},
 		logFlag(env),
 		&cli.DurationFlag{Name: flagEpisodeRetention, Usage: "keep trained episodes this long for evaluation and replay, then delete them (0 keeps them forever; untrained episodes are always kept)", Sources: env("QTALLY_EPISODE_RETENTION")},
 		&cli.DurationFlag{Name: flagPruneInterval, Value: time.Minute, Usage: "how often the worker deletes episodes older than the retention", Sources: env("QTALLY_PRUNE_INTERVAL")},
@@ -152,7 +154,7 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 	}
 	cfg.CoverageVisits = cmd.Int64(flagCoverageVisits)
 	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength,
-		HistoryWindow: cfg.History.Window}
+		HistoryWindow: cfg.History.Window, ProblemDocs: cmd.String(flagProblemDocs)}
 	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,
 		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength,
 		flagPruneBatch: cfg.PruneBatch} {
@@ -165,6 +167,9 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 	}
 	if cfg.HTTP.MaxBodyBytes < 1024 {
 		return cfg, fmt.Errorf("--%s must be at least 1024", flagMaxBodyBytes)
+	}
+	if err := api.CheckProblemDocs(cfg.HTTP.ProblemDocs); err != nil {
+		return cfg, fmt.Errorf("--%s: %w", flagProblemDocs, err)
 	}
 	if cfg.PollInterval <= 0 {
 		return cfg, fmt.Errorf("--%s must be positive", flagPollInterval)

@@ -17,7 +17,7 @@ func addHealthRoutes(e *echo.Echo, d Deps) {
 // addAPIRoutes serves the policy API. Every route needs a valid token (g
 // checks that for all requests); each names the scope it needs on top.
 func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
-	e.GET("/v1/openapi.json", handleOpenAPI())
+	e.GET("/v1/openapi.json", handleOpenAPI(cfg.ProblemDocs))
 
 	admin, ingest, choose := g.requireScope(training.ScopeAdmin), g.requireScope(training.ScopeIngest), g.requireScope(training.ScopeChoose)
 	e.GET("/v1/policies", handleListPolicies(d.Policies), admin)

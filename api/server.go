@@ -54,6 +54,9 @@ type Config struct {
 	HistoryWindow time.Duration
 	// TokenRate limits each token's requests unless the token sets its own.
 	TokenRate RateConfig
+	// ProblemDocs is the address of the problem type documentation; each
+	// of qtally's problem types is this address, "#" and its name.
+	ProblemDocs string
 }
 
 // Deps are what the server calls.
@@ -79,7 +82,7 @@ type Deps struct {
 
 // NewServer returns the HTTP handler of an API process.
 func NewServer(cfg Config, d Deps) http.Handler {
-	e := newEcho(d)
+	e := newEcho(cfg, d)
 	g := newGuard(d.Auth, cfg.TokenRate)
 	e.Use(g.authenticate)
 	addHealthRoutes(e, d)
@@ -89,17 +92,17 @@ func NewServer(cfg Config, d Deps) http.Handler {
 }
 
 // NewHealthServer serves only health and metrics, for worker processes.
-func NewHealthServer(d Deps) http.Handler {
-	e := newEcho(d)
+func NewHealthServer(cfg Config, d Deps) http.Handler {
+	e := newEcho(cfg, d)
 	addHealthRoutes(e, d)
 	return e
 }
 
-func newEcho(d Deps) *echo.Echo {
+func newEcho(cfg Config, d Deps) *echo.Echo {
 	e := echo.New()
 	e.HideBanner = true
 	e.HidePort = true
-	e.HTTPErrorHandler = errorHandler(d.Logger)
+	e.HTTPErrorHandler = errorHandler(d.Logger, problemTypes{docs: cfg.ProblemDocs})
 	e.Pre(routeOnEscapedPath)
 	e.Use(observe(d.Metrics))
 	return e

@@ -72,7 +72,7 @@ func TestWindowKeepsTheMostRecentReturns(t *testing.T) {
 }
 
 func TestDecodeProblem(t *testing.T) {
-	p := decodeProblem(http.StatusConflict, []byte(`{"type":"urn:qtally:problem:conflict","title":"Conflict","status":409,"detail":"actions cannot change"}`))
+	p := decodeProblem(http.StatusConflict, []byte(`{"type":"https://github.com/qtally/qtally/blob/main/docs/problems.md#conflict","title":"Conflict","status":409,"detail":"actions cannot change"}`))
 	if p.Status != 409 || p.Title != "Conflict" || p.Detail != "actions cannot change" {
 		t.Errorf("decoded %+v", p)
 	}
