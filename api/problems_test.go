@@ -190,7 +190,7 @@ func TestProblemDocsMustTakeFragments(t *testing.T) {
 			t.Errorf("%s: %v", ok, err)
 		}
 	}
-	for _, bad := range []string{"", "urn:qtally:problems", "/docs/problems.md", "https://docs.example.com/p#x", "https://docs.example.com/p?v=1", "ftp://docs.example.com/p", "https:///p"} {
+	for _, bad := range []string{"", "urn:example:problems", "/docs/problems.md", "https://docs.example.com/p#x", "https://docs.example.com/p?v=1", "ftp://docs.example.com/p", "https:///p"} {
 		if err := CheckProblemDocs(bad); err == nil {
 			t.Errorf("%q accepted", bad)
 		}
