@@ -2,11 +2,18 @@ package storage_test
 
 import (
 	"context"
+	"database/sql"
 	"fmt"
 	"math"
 	"slices"
 	"testing"
 
+	_ "github.com/jackc/pgx/v5/stdlib" // the "pgx" database/sql driver goose runs on
+	"github.com/pressly/goose/v3"
+
+	"github.com/qtally/qtally/migrations"
+	"github.com/qtally/qtally/storage"
+	"github.com/qtally/qtally/storage/pgtest"
 	"github.com/qtally/qtally/training"
 )
 
@@ -62,5 +69,53 @@ func TestAllowedSetsRoundTrip(t *testing.T) {
 	}
 	if plain.Allowed != nil || plain.StepsWithoutAllowed() != 1 {
 		t.Errorf("an episode posted without sets reads back with %v", plain.Allowed)
+	}
+}
+
+// An episode stored before steps could carry allowed sets keeps its data
+// through the migration that adds them and reads back as having none.
+func TestEpisodesStoredBeforeAllowedSetsReadAsHavingNone(t *testing.T) {
+	ctx := context.Background()
+	url := pgtest.NewDatabase(t)
+	sqlDB, err := sql.Open("pgx", url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer sqlDB.Close()
+	migrator, err := goose.NewProvider(goose.DialectPostgres, sqlDB, migrations.Files)
+	if err != nil {
+		t.Fatal(err)
+	}
+	down, err := migrator.DownTo(ctx, 5)
+	if err != nil || !slices.ContainsFunc(down, func(r *goose.MigrationResult) bool { return r.Source.Version == 6 }) {
+		t.Fatalf("rolling back to version 5 ran %v: %v", down, err)
+	}
+	pgtest.Exec(t, url, `INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q)
+		VALUES ('legacy', '{a,b}', 1, 0.1, 0.1, 0, 'first', 0)`)
+	pgtest.Exec(t, url, `INSERT INTO episodes (policy_id, episode_id, states, actions, rewards, probabilities)
+		SELECT policy_id, 'old-1', '{s,t}', '{1,0}', '{2,3}', '{0.5,0.25}' FROM policies WHERE name = 'legacy'`)
+	if _, err := migrator.Up(ctx); err != nil {
+		t.Fatal(err)
+	}
+	db, err := storage.Open(ctx, url, 4, training.DefaultLimits())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer db.Close()
+	pol, err := db.PolicyByName(ctx, "legacy")
+	if err != nil {
+		t.Fatal(err)
+	}
+	var got []training.StoredEpisode
+	err = db.ReadEpisodes(ctx, pol.ID, training.EpisodeSpan{FirstSeq: 0, LastSeq: math.MaxInt64}, func(ep training.StoredEpisode) error {
+		got = append(got, ep)
+		return nil
+	})
+	if err != nil || len(got) != 1 {
+		t.Fatalf("read back %d episodes: %v", len(got), err)
+	}
+	if ep := got[0]; ep.ID != "old-1" || !slices.Equal(ep.Rewards, []float64{2, 3}) || !slices.Equal(ep.Probabilities, []float64{0.5, 0.25}) ||
+		ep.Allowed != nil || ep.StepsWithoutAllowed() != 2 {
+		t.Fatalf("the old episode reads back as %+v", ep)
 	}
 }
