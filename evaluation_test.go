@@ -208,7 +208,8 @@ func TestEvaluationWindowsAndUnusableEpisodes(t *testing.T) {
 	// = 2.5; weighted = 5/2.5 = 2; ESS = 2.5^2/2.5^2 = 1; behaviour mean 3.
 	if job.Status != "succeeded" || res.EpisodesRead != 6 || res.EpisodesUsed != 2 || res.EpisodesWithoutProbabilities != 4 ||
 		res.ZeroWeightEpisodes != 1 || res.Ordinary.Estimate != 2.5 || res.Weighted.Estimate != 2 || res.EffectiveSampleSize != 1 ||
-		res.BehaviourMeanReturn != 3 || len(res.Notes) != 1 || !strings.Contains(res.Notes[0], "4 episodes lack a behaviour probability") {
+		res.BehaviourMeanReturn != 3 || len(res.Notes) != 2 || !strings.Contains(res.Notes[0], "4 episodes lack a behaviour probability") ||
+		!strings.Contains(res.Notes[1], "3 steps in 2 of the episodes used carry no allowed set") {
 		t.Fatalf("evaluation: %s %s %+v", job.Status, job.Error, res)
 	}
 	// An epsilon-soft target with epsilon 0.5: remind 0.75, skip 0.25.
@@ -221,7 +222,7 @@ func TestEvaluationWindowsAndUnusableEpisodes(t *testing.T) {
 	}
 	// The last two episodes: p-2 is usable, p-3 is not.
 	job, _ = startJob[evaluationResult](s, "/v1/policies/nudges/evaluations", map[string]any{"window": map[string]any{"last": 2}, "seed": 1}, 30*time.Second)
-	if res := job.Result; job.Status != "succeeded" || res.EpisodesRead != 2 || res.EpisodesUsed != 1 || res.ZeroWeightEpisodes != 1 || len(res.Notes) != 2 {
+	if res := job.Result; job.Status != "succeeded" || res.EpisodesRead != 2 || res.EpisodesUsed != 1 || res.ZeroWeightEpisodes != 1 || len(res.Notes) != 3 {
 		t.Fatalf("last 2: %s %+v", job.Status, res)
 	}
 	// A time range before anything was stored holds nothing.

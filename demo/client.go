@@ -411,6 +411,8 @@ type step struct {
 	Action      string  `json:"action"`
 	Reward      float64 `json:"reward"`
 	Probability float64 `json:"probability"`
+	// Allowed is the set choose chose from, so that evaluation can redo it.
+	Allowed []string `json:"allowed"`
 }
 
 type episode struct {
@@ -419,8 +421,9 @@ type episode struct {
 }
 
 type chooseAnswer struct {
-	Action      string  `json:"action"`
-	Probability float64 `json:"probability"`
+	Action      string   `json:"action"`
+	Probability float64  `json:"probability"`
+	Allowed     []string `json:"allowed"`
 }
 
 // playEpisode runs one customer: the service chooses each day's action,
@@ -441,7 +444,7 @@ func (c *client) playEpisode(ctx context.Context, n int, actions map[string]Acti
 			return episode{}, 0, fmt.Errorf("choose answered unknown action %q", choice.Action)
 		}
 		o := Step(s, a, rng)
-		ep.Steps = append(ep.Steps, step{State: s.String(), Action: choice.Action, Reward: o.Reward, Probability: choice.Probability})
+		ep.Steps = append(ep.Steps, step{State: s.String(), Action: choice.Action, Reward: o.Reward, Probability: choice.Probability, Allowed: choice.Allowed})
 		ret += discount * o.Reward
 		discount *= c.cfg.Settings.Gamma
 		if o.Done {

@@ -269,7 +269,7 @@ func (db *DB) ReadEpisodes(ctx context.Context, policyID int32, span training.Ep
 	return db.readTx(ctx, func(tx pgx.Tx) error {
 		_, err := tx.Exec(ctx, `
 			DECLARE window_episodes NO SCROLL CURSOR FOR
-			SELECT seq, received_at, episode_id, states, actions, rewards, probabilities FROM episodes
+			SELECT seq, received_at, episode_id, states, actions, rewards, probabilities, allowed FROM episodes
 			WHERE policy_id = $1 AND seq >= $2 AND seq <= $3
 			  AND ($4::timestamptz IS NULL OR received_at >= $4) AND ($5::timestamptz IS NULL OR received_at < $5)
 			ORDER BY seq`, policyID, span.FirstSeq, span.LastSeq, span.Since, span.Until)
@@ -283,7 +283,7 @@ func (db *DB) ReadEpisodes(ctx context.Context, policyID int32, span training.Ep
 			}
 			page, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.StoredEpisode, error) {
 				var ep training.StoredEpisode
-				err := r.Scan(&ep.Seq, &ep.ReceivedAt, &ep.ID, &ep.States, &ep.Actions, &ep.Rewards, &ep.Probabilities)
+				err := r.Scan(&ep.Seq, &ep.ReceivedAt, &ep.ID, &ep.States, &ep.Actions, &ep.Rewards, &ep.Probabilities, &ep.Allowed)
 				return ep, err
 			})
 			if err != nil {

@@ -88,6 +88,8 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 	return report, true, nil
 }
 
+// untrainedEpisodes reads what learning uses: not the allowed sets, which
+// only evaluation needs.
 func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, limit int) ([]training.StoredEpisode, error) {
 	rows, err := tx.Query(ctx, `
 		SELECT seq, received_at, episode_id, states, actions, rewards, probabilities

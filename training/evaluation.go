@@ -175,6 +175,12 @@ type EvaluationResult struct {
 	Resamples                    int      `json:"resamples"`
 	Seed                         int64    `json:"seed"`
 	Notes                        []string `json:"notes"`
+
+	// StepsWithoutAllowed counts the steps of the episodes used that carry
+	// no allowed set (the target's probability there is over every action);
+	// EpisodesWithoutAllowed counts the episodes used with any such step.
+	StepsWithoutAllowed    int64 `json:"steps_without_allowed"`
+	EpisodesWithoutAllowed int64 `json:"episodes_without_allowed"`
 }
 
 // Progress says how far a job is.
@@ -242,6 +248,10 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 		if rho == 0 {
 			res.ZeroWeightEpisodes++
 		}
+		if n := ep.StepsWithoutAllowed(); n > 0 {
+			res.StepsWithoutAllowed += int64(n)
+			res.EpisodesWithoutAllowed++
+		}
 		return nil
 	})
 	if err != nil {
@@ -256,6 +266,10 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 	}
 	if res.EpisodesWithoutProbabilities > 0 {
 		res.Notes = append(res.Notes, fmt.Sprintf("%d episodes lack a behaviour probability on some step and were left out", res.EpisodesWithoutProbabilities))
+	}
+	if res.StepsWithoutAllowed > 0 {
+		res.Notes = append(res.Notes, fmt.Sprintf("%d steps in %d of the episodes used carry no allowed set, so the target's probabilities there are taken over all %d actions; "+
+			"if choose was given \"allowed\" for them, post each step with the allowed set the choose answer returns, or the estimates are biased", res.StepsWithoutAllowed, res.EpisodesWithoutAllowed, len(p.Actions)))
 	}
 	if res.ZeroWeightEpisodes == res.EpisodesUsed {
 		res.Notes = append(res.Notes, "every episode used took some action the target never takes, so all weights are 0: the estimates are 0 by convention and say nothing; widen the window or evaluate an epsilon-soft target")
