@@ -23,10 +23,13 @@ WHERE r.policy_id = p.policy_id;
 -- A snapshot taken before now: the last of its policy's stored episodes
 -- trained by the time it was taken. A batch that started before the
 -- snapshot and committed after it counts too (trained_at is a batch's
--- start), again erring towards "already learned". Where no such episode is
--- stored (pruned, or a replay's policy), the policy's own position.
+-- start), again erring towards "already learned". When every stored
+-- trained episode was trained later, the snapshot learned from none of
+-- them; when none is stored (all pruned, or a replay's policy), the
+-- policy's own position.
 UPDATE snapshots s SET trained_through_seq = coalesce(
     (SELECT max(e.seq) FROM episodes e WHERE e.policy_id = s.policy_id AND e.trained_at <= s.created_at),
+    (SELECT min(e.seq) - 1 FROM episodes e WHERE e.policy_id = s.policy_id AND e.trained_at > s.created_at),
     (SELECT p.trained_through_seq FROM policies p WHERE p.policy_id = s.policy_id));
 
 -- +goose Down
