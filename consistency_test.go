@@ -175,6 +175,9 @@ func TestRestoredSnapshotIsTheTableEvaluated(t *testing.T) {
 		t.Fatalf("CSV import with initial_q=2: %d %s", r.Status, r.Body)
 	}
 	waitChoice(t, other, "other", "dunning", "overdue", "call", imported.Revision)
+	if r := s.send("PUT", "/v1/policies/dunning/table?initial_q=3", "application/json", frozenDoc.Body, false); r.Status != 400 || !strings.Contains(string(r.Body), "initial_q") {
+		t.Fatalf("a query that contradicts the document's initial value: %d %s", r.Status, r.Body)
+	}
 	if r := s.send("PUT", "/v1/policies/dunning/table?initial_q=high", "text/csv", []byte("state,action,q,visits\n"), true); r.Status != 400 {
 		t.Fatalf("initial_q=high: %d %s", r.Status, r.Body)
 	}
