@@ -37,10 +37,10 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 	var p training.Policy
 	var created bool
 	put := func(tx pgx.Tx) error {
-		// A change of initial value changes what the table means, so it
-		// waits for the policy's training lock (taken before the row lock,
-		// in the order training takes them): no batch learns from one value
-		// and writes under the other.
+		// A new initial value changes what the table means, so a settings
+		// change waits for the policy's training lock (taken before the row
+		// lock, in the order training takes them): no batch learns under
+		// one initial value and writes under another.
 		var id int32
 		err := tx.QueryRow(ctx, `SELECT policy_id FROM policies WHERE name = $1`, name).Scan(&id)
 		switch {
