@@ -213,3 +213,78 @@ func TestGreedySplitsTiesEvenly(t *testing.T) {
 		t.Errorf("unknown state: %v, want uniform", got)
 	}
 }
+
+// The value of every fixed action, computed exactly, must agree with the
+// mean of sampled returns (within 4 standard errors, as above).
+func TestFixedActionValuesMatchSampledReturns(t *testing.T) {
+	const gamma, n = 0.99, 50_000
+	rng := rand.New(rand.NewPCG(8, 1))
+	best, bestValue := BestFixedAction(gamma)
+	for _, a := range Actions() {
+		exact := Evaluate(Fixed(a), gamma).Start()
+		mean, sd := stat.MeanStdDev(sampleReturns(Fixed(a), gamma, n, rng), nil)
+		if stderr := sd / math.Sqrt(n); math.Abs(mean-exact) > 4*stderr {
+			t.Errorf("always %s: exact %.4f, sampled %.4f ± %.4f (standard error)", a, exact, mean, stderr)
+		}
+		if exact > bestValue {
+			t.Errorf("always %s is worth %.4f, more than the best fixed action %s at %.4f", a, exact, best, bestValue)
+		}
+	}
+	optimal, random := Optimal(gamma).Start(), RandomValue(gamma)
+	// No fixed action beats the optimum (it is optimal among all policies).
+	if bestValue > optimal {
+		t.Errorf("best fixed action %s %.4f above the optimum %.4f", best, bestValue, optimal)
+	}
+	t.Logf("best fixed action: always %s, %.3f; %.1f%% of the way from random %.3f to optimal %.3f",
+		best, bestValue, 100*(bestValue-random)/(optimal-random), random, optimal)
+}
+
+// Explore mode's policy: with epsilon 1 everywhere it is the uniformly
+// random policy, with epsilon 0 the greedy one; in between its exact value
+// must agree with sampled returns, and each state's probabilities follow
+// the epsilon-greedy rule, epsilon/|A| for every action and 1 - epsilon
+// more for the greedy one (Sutton & Barto, Reinforcement Learning: An
+// Introduction, 2nd ed., section 5.4; the 1 - epsilon split evenly over
+// tied greedy actions is the service's own rule), and sum to 1.
+func TestEpsilonSoftValue(t *testing.T) {
+	const gamma, n = 0.99, 100_000
+	q := Optimal(gamma).Q
+	constant := func(eps float64) func(State) float64 { return func(State) float64 { return eps } }
+	if got, want := Evaluate(EpsilonSoft(q, constant(1)), gamma).Start(), RandomValue(gamma); math.Abs(got-want) > 1e-12 {
+		t.Errorf("epsilon 1: %.15g, random %.15g", got, want)
+	}
+	if got, want := Evaluate(EpsilonSoft(q, constant(0)), gamma).Start(), Evaluate(Greedy(q), gamma).Start(); math.Abs(got-want) > 1e-12 {
+		t.Errorf("epsilon 0: %.15g, greedy %.15g", got, want)
+	}
+	byDay := func(s State) float64 { return 0.1 + 0.1*float64(s.Day) }
+	policy := EpsilonSoft(q, byDay)
+	for _, s := range States() {
+		var sum float64
+		greedy := Greedy(q)(s)
+		ties := 0.0
+		for _, g := range greedy {
+			if g > 0 {
+				ties++
+			}
+		}
+		for a, p := range policy(s) {
+			sum += p
+			want := byDay(s) / float64(numActions)
+			if greedy[a] > 0 {
+				want += (1 - byDay(s)) / ties
+			}
+			if math.Abs(p-want) > 1e-15 {
+				t.Fatalf("%s, %s: probability %v, want %v", s, Action(a), p, want)
+			}
+		}
+		if math.Abs(sum-1) > 1e-12 {
+			t.Fatalf("%s: probabilities sum to %v", s, sum)
+		}
+	}
+	rng := rand.New(rand.NewPCG(8, 2))
+	exact := Evaluate(policy, gamma).Start()
+	mean, sd := stat.MeanStdDev(sampleReturns(policy, gamma, n, rng), nil)
+	if stderr := sd / math.Sqrt(n); math.Abs(mean-exact) > 4*stderr {
+		t.Errorf("epsilon by day: exact %.4f, sampled %.4f ± %.4f (standard error)", exact, mean, stderr)
+	}
+}

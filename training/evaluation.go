@@ -10,11 +10,14 @@ import (
 
 // EpisodeWindow selects a policy's stored episodes: the last Last of them,
 // or those received in [Since, Until) (either end may be open). The zero
-// window is every stored episode.
+// window is every stored episode. AfterSnapshot, with either, keeps only
+// the episodes that snapshot's table has not learned from: those received
+// after it was taken and those still waiting for training then.
 type EpisodeWindow struct {
-	Last  int64      `json:"last,omitempty"`
-	Since *time.Time `json:"since,omitempty"`
-	Until *time.Time `json:"until,omitempty"`
+	Last          int64      `json:"last,omitempty"`
+	Since         *time.Time `json:"since,omitempty"`
+	Until         *time.Time `json:"until,omitempty"`
+	AfterSnapshot string     `json:"after_snapshot,omitempty"`
 }
 
 // MaxWindowEpisodes bounds the "last" count of a window.
@@ -36,6 +39,9 @@ func (w EpisodeWindow) check(l *problemList) {
 	}
 	if w.Since != nil && w.Until != nil && !w.Since.Before(*w.Until) {
 		l.add(-1, -1, "window.until", "must be later than since")
+	}
+	if w.AfterSnapshot != "" && ValidateSnapshotName(w.AfterSnapshot) != nil {
+		l.add(-1, -1, "window.after_snapshot", "must name a snapshot of the policy")
 	}
 }
 
@@ -145,6 +151,22 @@ type EvaluationJob struct {
 	PolicyID       int32             `json:"policy_id"`
 	TargetPolicyID int32             `json:"target_policy_id"`
 	Episodes       EpisodeSpan       `json:"episodes"`
+	// ReplayedFromSeq, for a target of another policy, is where replays of
+	// this policy's episodes into it began (the smallest first seq of
+	// their windows); 0 when none did, and the target never learned from
+	// these episodes.
+	ReplayedFromSeq int64 `json:"replayed_from_seq,omitempty"`
+}
+
+// EvaluatedTable names the table an evaluation judged, as it was read.
+type EvaluatedTable struct {
+	Policy string `json:"policy"`
+	// Name is LiveTable or the snapshot's name.
+	Name     string  `json:"name"`
+	Revision int64   `json:"revision"`
+	InitialQ float64 `json:"initial_q"`
+	// TrainedThroughSeq is the seq of the last episode trained into it.
+	TrainedThroughSeq int64 `json:"trained_through_seq"`
 }
 
 // IntervalEstimate is one estimator's value and its bootstrap interval.
@@ -167,14 +189,20 @@ type EvaluationResult struct {
 	// EpisodesRead were in the window; EpisodesUsed carried a behaviour
 	// probability at every step; ZeroWeightEpisodes (among those used) took
 	// an action the target never takes.
-	EpisodesRead                 int64    `json:"episodes_read"`
-	EpisodesUsed                 int64    `json:"episodes_used"`
-	EpisodesWithoutProbabilities int64    `json:"episodes_without_probabilities"`
-	ZeroWeightEpisodes           int64    `json:"zero_weight_episodes"`
-	Level                        float64  `json:"level"`
-	Resamples                    int      `json:"resamples"`
-	Seed                         int64    `json:"seed"`
-	Notes                        []string `json:"notes"`
+	EpisodesRead                 int64 `json:"episodes_read"`
+	EpisodesUsed                 int64 `json:"episodes_used"`
+	EpisodesWithoutProbabilities int64 `json:"episodes_without_probabilities"`
+	ZeroWeightEpisodes           int64 `json:"zero_weight_episodes"`
+	// EpisodesTrainedIntoTarget counts the episodes read that the target
+	// table had already learned from: on those it is judged in-sample,
+	// which flatters it.
+	EpisodesTrainedIntoTarget int64 `json:"episodes_trained_into_target"`
+	// Table is the table judged, as read when the job ran.
+	Table     EvaluatedTable `json:"table"`
+	Level     float64        `json:"level"`
+	Resamples int            `json:"resamples"`
+	Seed      int64          `json:"seed"`
+	Notes     []string       `json:"notes"`
 
 	// StepsWithoutAllowed counts the steps of the episodes used that carry
 	// no allowed set (the target's probability there is over every action);
@@ -227,11 +255,19 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 		return EvaluationResult{}, Conflictf("the target table's actions %q differ from the actions %q of policy %q's episodes", table.Actions, p.Actions, p.Name)
 	}
 	target := NewTargetPolicy(table, req.Target.Mode, req.Target.Epsilon, tp.Settings)
-	res := EvaluationResult{Level: IntervalLevel, Resamples: req.Resamples, Seed: *req.Seed, Notes: []string{}}
+	res := EvaluationResult{Level: IntervalLevel, Resamples: req.Resamples, Seed: *req.Seed, Notes: []string{},
+		Table: EvaluatedTable{Policy: tp.Name, Name: req.Target.Table, Revision: table.Revision, InitialQ: table.InitialQ, TrainedThroughSeq: table.TrainedThroughSeq}}
+	trainedFrom := int64(1)
+	if tp.ID != p.ID {
+		trainedFrom = job.ReplayedFromSeq
+	}
 	var samples []WeightedReturn
 	var returns []float64
 	err = src.ReadEpisodes(ctx, p.ID, job.Episodes, func(ep StoredEpisode) error {
 		res.EpisodesRead++
+		if trainedFrom > 0 && trainedFrom <= ep.Seq && ep.Seq <= table.TrainedThroughSeq {
+			res.EpisodesTrainedIntoTarget++
+		}
 		if res.EpisodesRead%1000 == 0 {
 			progress(Progress{Phase: "reading episodes", Done: res.EpisodesRead, Total: job.Episodes.Episodes})
 		}
@@ -263,6 +299,11 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 		return res, Invalid(-1, -1, "window", "holds no stored episodes of policy %q", p.Name)
 	case len(samples) == 0:
 		return res, Invalid(-1, -1, "window", "none of its %d episodes carries a behaviour probability at every step, so none says anything about another policy; post steps with \"probability\" (the chance the behaviour gave the action taken)", res.EpisodesRead)
+	}
+	if res.EpisodesTrainedIntoTarget > 0 {
+		res.Notes = append(res.Notes, fmt.Sprintf("%d of the %d episodes read were already trained into the target table: judged on what it learned from, "+
+			"a greedy table looks better than it is; for an honest estimate, evaluate a snapshot on the episodes after it (window.after_snapshot)",
+			res.EpisodesTrainedIntoTarget, res.EpisodesRead))
 	}
 	if res.EpisodesWithoutProbabilities > 0 {
 		res.Notes = append(res.Notes, fmt.Sprintf("%d episodes lack a behaviour probability on some step and were left out", res.EpisodesWithoutProbabilities))

@@ -64,8 +64,9 @@ type Policy struct {
 	CreatedAt time.Time `json:"created_at"`
 	UpdatedAt time.Time `json:"updated_at"`
 
-	// TableEpoch counts restores and imports, which replace the whole table:
-	// a copy of an older epoch must be reloaded, not patched.
+	// TableEpoch counts restores, imports and changes of the initial value
+	// or the actions, which replace the whole table or what its missing
+	// pairs are worth: a copy of an older epoch must be reloaded, not patched.
 	TableEpoch int64 `json:"-"`
 }
 
