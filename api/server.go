@@ -81,7 +81,7 @@ type Deps struct {
 func NewServer(cfg Config, d Deps) http.Handler {
 	e := newEcho(d)
 	g := newGuard(d.Auth, cfg.TokenRate)
-	e.Use(g.authenticate)
+	e.Use(g.authenticate, authorizeNamedPolicies)
 	addHealthRoutes(e, d)
 	addAPIRoutes(e, cfg, d, g)
 	addStatusRoutes(e, cfg, d, g)

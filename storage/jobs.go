@@ -73,7 +73,7 @@ func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.E
 			return fmt.Errorf("read policy: %w", err)
 		}
 		tp := p
-		if name := req.Target.Policy; name != "" && name != policy {
+		if name := string(req.Target.Policy); name != "" && name != policy {
 			tp, err = scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1`, name))
 			if errors.Is(err, pgx.ErrNoRows) {
 				return training.NotFoundf("no target policy named %q", name)
@@ -130,7 +130,7 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		err = tx.QueryRow(ctx, `
 			INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q)
 			VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9) RETURNING policy_id`,
-			req.Target, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ).
+			string(req.Target), s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ).
 			Scan(&targetID)
 		if isUniqueViolation(err) {
 			return training.Conflictf("a policy named %q exists already; a replay creates a new policy", req.Target)

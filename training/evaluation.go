@@ -56,7 +56,7 @@ type EpisodeSpan struct {
 type EvaluationTarget struct {
 	// Policy owns the table; empty means the policy whose episodes are read.
 	// Its actions must be the same, in the same order.
-	Policy string `json:"policy,omitempty"`
+	Policy PolicyName `json:"policy,omitempty"`
 	// Table is LiveTable or a snapshot's name.
 	Table string `json:"table"`
 	// Mode is Greedy, or Explore for the epsilon-soft version.
@@ -109,7 +109,7 @@ func (r EvaluationRequest) WithDefaults() EvaluationRequest {
 func (r EvaluationRequest) Validate() error {
 	var l problemList
 	if r.Target.Policy != "" {
-		if ValidatePolicyName(r.Target.Policy) != nil {
+		if ValidatePolicyName(string(r.Target.Policy)) != nil {
 			l.add(-1, -1, "target.policy", "is not a valid policy name")
 		}
 	}
