@@ -11,7 +11,6 @@ import (
 	"github.com/qtally/qtally/training"
 )
 
-
 type execer interface {
 	Exec(ctx context.Context, sql string, args ...any) (pgconn.CommandTag, error)
 }
