@@ -43,7 +43,10 @@ func resolveSpan(ctx context.Context, q pgx.Tx, policyID int32, w training.Episo
 	return span, withProbabilities, nil
 }
 
-// queueJob stores a job and wakes the runners.
+// queueJob stores a job and wakes the runners. Callers hold the policy's
+// pin lock from resolving the job's window to the commit, so that pruning
+// either ran before the window was resolved or sees the job and keeps its
+// episodes.
 func queueJob(ctx context.Context, tx pgx.Tx, policyID int32, kind training.JobKind, spec any) (int64, error) {
 	doc, err := json.Marshal(spec)
 	if err != nil {
@@ -89,6 +92,9 @@ func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.E
 		if !slices.Equal(h.actions, p.Actions) {
 			return training.Conflictf("the target table lists the actions %q, policy %q's episodes %q: a target must have the same actions in the same order", h.actions, p.Name, p.Actions)
 		}
+		if err := lockPins(ctx, tx, p.ID); err != nil {
+			return err
+		}
 		span, usable, err := resolveSpan(ctx, tx, p.ID, req.Window)
 		if err != nil {
 			return err
@@ -120,6 +126,9 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		}
 		s, err := req.TargetSettings(p.Settings)
 		if err != nil {
+			return err
+		}
+		if err := lockPins(ctx, tx, p.ID); err != nil {
 			return err
 		}
 		span, _, err := resolveSpan(ctx, tx, p.ID, req.Window)

@@ -41,7 +41,8 @@ func (w EpisodeWindow) check(l *problemList) {
 
 // EpisodeSpan is a window resolved, when a job is posted, to the arrival
 // sequence numbers it covers, so that a job run again reads the same
-// episodes (less any pruned meanwhile) however many arrived since.
+// episodes however many arrived since. Pruning keeps the span's episodes
+// while the job is queued or running.
 type EpisodeSpan struct {
 	FirstSeq int64      `json:"first_seq"`
 	LastSeq  int64      `json:"last_seq"`
