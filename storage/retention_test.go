@@ -4,9 +4,15 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
+	"strings"
+	"sync"
 	"testing"
 	"time"
 
+	"github.com/jackc/pgx/v5"
+
+	"github.com/qtally/qtally/storage"
+	"github.com/qtally/qtally/storage/pgtest"
 	"github.com/qtally/qtally/training"
 )
 
@@ -102,5 +108,55 @@ func must(t *testing.T, err error) {
 	t.Helper()
 	if err != nil {
 		t.Fatal(err)
+	}
+}
+
+// Queueing a job and pruning at the same moment never leave a job whose
+// window lost episodes: either pruning went first and the window never
+// held them, or it sees the job and keeps them.
+func TestPruningRacingQueuedJobsLosesNoWindowEpisodes(t *testing.T) {
+	ctx := context.Background()
+	url := pgtest.NewDatabase(t)
+	db, err := storage.Open(ctx, url, 20, training.DefaultLimits())
+	must(t, err)
+	t.Cleanup(db.Close)
+	conn, err := pgx.Connect(ctx, url)
+	must(t, err)
+	t.Cleanup(func() { conn.Close(ctx) })
+	_, _, err = db.PutPolicy(ctx, "renewals", training.Settings{Actions: []string{"a", "b"}, Gamma: 1, Alpha: 0.1, Visit: training.FirstVisit})
+	must(t, err)
+
+	for round := range 40 {
+		batch := make([]training.Episode, 10)
+		for i := range batch {
+			batch[i] = training.Episode{ID: fmt.Sprintf("%d-%d", round, i), Steps: []training.Step{{State: "s", Action: "a", Reward: 1}}}
+		}
+		_, err := db.Ingest(ctx, "renewals", batch)
+		must(t, err)
+		for trained := true; trained; {
+			_, trained, err = db.TrainBatch(ctx, 100, training.Learn)
+			must(t, err)
+		}
+		time.Sleep(2 * time.Millisecond)
+		var wg sync.WaitGroup
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			if _, err := db.PruneEpisodes(ctx, time.Millisecond, 1); err != nil {
+				t.Error(err)
+			}
+		}()
+		job, err := db.StartReplay(ctx, "renewals", training.ReplayRequest{Target: training.PolicyName(fmt.Sprintf("again-%d", round)), Window: training.EpisodeWindow{Last: 10}})
+		wg.Wait()
+		if err != nil && strings.Contains(err.Error(), "holds no stored episodes") {
+			continue // pruning took every episode first: no window, no job
+		}
+		must(t, err)
+		var kept int64
+		must(t, conn.QueryRow(ctx, `SELECT count(*) FROM episodes e JOIN policies p USING (policy_id)
+			WHERE p.name = 'renewals' AND e.seq BETWEEN $1 AND $2`, job.Episodes.FirstSeq, job.Episodes.LastSeq).Scan(&kept))
+		if kept != job.Episodes.Episodes {
+			t.Fatalf("round %d: the queued replay's window held %d episodes, %d are left", round, job.Episodes.Episodes, kept)
+		}
 	}
 }
