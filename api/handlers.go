@@ -6,7 +6,6 @@ import (
 	"io"
 	"net/http"
 	"net/url"
-	"slices"
 	"strconv"
 
 	"github.com/labstack/echo/v4"
@@ -74,9 +73,7 @@ func handleListPolicies(p Policies) echo.HandlerFunc {
 			return err
 		}
 		// A token limited to some policies sees only those.
-		if tok := requestToken(c); tok != nil {
-			list = slices.DeleteFunc(list, func(st training.PolicyStatus) bool { return !tok.CoversPolicy(st.Name) })
-		}
+		list = coveredPolicies(c, list)
 		if list == nil {
 			list = []training.PolicyStatus{}
 		}

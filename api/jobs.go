@@ -65,7 +65,7 @@ func handleStartReplay(j Jobs, cfg Config) echo.HandlerFunc {
 		if err := req.Validate(); err != nil {
 			return err
 		}
-		if req.Target == policy {
+		if string(req.Target) == policy {
 			return training.Invalid(-1, -1, "target", "must name a new policy, not the source")
 		}
 		job, err := j.StartReplay(c.Request().Context(), policy, req)
@@ -88,6 +88,9 @@ func handleGetJob(j Jobs, kind training.JobKind) echo.HandlerFunc {
 		}
 		job, err := j.Job(c.Request().Context(), policy, kind, id)
 		if err != nil {
+			return err
+		}
+		if err := authorizeJobNames(c, job); err != nil {
 			return err
 		}
 		return c.JSON(http.StatusOK, job)

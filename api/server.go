@@ -76,6 +76,8 @@ type Deps struct {
 	Snapshots Snapshots
 	Tables    TableWriter
 	Jobs      Jobs
+	// Audit records admin actions and reads them back.
+	Audit AuditLog
 	// Auth verifies tokens; nil turns authentication off.
 	Auth Authenticator
 }
@@ -84,9 +86,11 @@ type Deps struct {
 func NewServer(cfg Config, d Deps) http.Handler {
 	e := newEcho(cfg, d)
 	g := newGuard(d.Auth, cfg.TokenRate)
-	e.Use(g.authenticate)
+	audit := auditedRoutes{}
+	// The audit log records refusals too: it runs before names are authorised.
+	e.Use(g.authenticate, audit.record(d.Audit, d.Logger), authorizeNamedPolicies)
 	addHealthRoutes(e, d)
-	addAPIRoutes(e, cfg, d, g)
+	addAPIRoutes(e, cfg, d, g, audit)
 	addStatusRoutes(e, cfg, d, g)
 	return e
 }

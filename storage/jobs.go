@@ -71,7 +71,10 @@ func replayedFromSeq(ctx context.Context, tx pgx.Tx, source, target int32) (int6
 	return first, nil
 }
 
-// queueJob stores a job and wakes the runners.
+// queueJob stores a job and wakes the runners. Callers hold the policy's
+// pin lock from resolving the job's window to the commit, so that pruning
+// either ran before the window was resolved or sees the job and keeps its
+// episodes.
 func queueJob(ctx context.Context, tx pgx.Tx, policyID int32, kind training.JobKind, spec any) (int64, error) {
 	doc, err := json.Marshal(spec)
 	if err != nil {
@@ -101,7 +104,7 @@ func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.E
 			return fmt.Errorf("read policy: %w", err)
 		}
 		tp := p
-		if name := req.Target.Policy; name != "" && name != policy {
+		if name := string(req.Target.Policy); name != "" && name != policy {
 			tp, err = scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1`, name))
 			if errors.Is(err, pgx.ErrNoRows) {
 				return training.NotFoundf("no target policy named %q", name)
@@ -116,6 +119,9 @@ func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.E
 		}
 		if !slices.Equal(h.actions, p.Actions) {
 			return training.Conflictf("the target table lists the actions %q, policy %q's episodes %q: a target must have the same actions in the same order", h.actions, p.Name, p.Actions)
+		}
+		if err := lockPins(ctx, tx, p.ID); err != nil {
+			return err
 		}
 		span, usable, err := resolveSpan(ctx, tx, p.ID, req.Window)
 		if err != nil {
@@ -155,6 +161,9 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		if err != nil {
 			return err
 		}
+		if err := lockPins(ctx, tx, p.ID); err != nil {
+			return err
+		}
 		span, _, err := resolveSpan(ctx, tx, p.ID, req.Window)
 		if err != nil {
 			return err
@@ -163,7 +172,7 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		err = tx.QueryRow(ctx, `
 			INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q)
 			VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9) RETURNING policy_id`,
-			req.Target, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ).
+			string(req.Target), s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ).
 			Scan(&targetID)
 		if isUniqueViolation(err) {
 			return training.Conflictf("a policy named %q exists already; a replay creates a new policy", req.Target)

@@ -47,7 +47,8 @@ func (w EpisodeWindow) check(l *problemList) {
 
 // EpisodeSpan is a window resolved, when a job is posted, to the arrival
 // sequence numbers it covers, so that a job run again reads the same
-// episodes (less any pruned meanwhile) however many arrived since.
+// episodes however many arrived since. Pruning keeps the span's episodes
+// while the job is queued or running.
 type EpisodeSpan struct {
 	FirstSeq int64      `json:"first_seq"`
 	LastSeq  int64      `json:"last_seq"`
@@ -62,7 +63,7 @@ type EpisodeSpan struct {
 type EvaluationTarget struct {
 	// Policy owns the table; empty means the policy whose episodes are read.
 	// Its actions must be the same, in the same order.
-	Policy string `json:"policy,omitempty"`
+	Policy PolicyName `json:"policy,omitempty"`
 	// Table is LiveTable or a snapshot's name.
 	Table string `json:"table"`
 	// Mode is Greedy, or Explore for the epsilon-soft version.
@@ -115,7 +116,7 @@ func (r EvaluationRequest) WithDefaults() EvaluationRequest {
 func (r EvaluationRequest) Validate() error {
 	var l problemList
 	if r.Target.Policy != "" {
-		if ValidatePolicyName(r.Target.Policy) != nil {
+		if ValidatePolicyName(string(r.Target.Policy)) != nil {
 			l.add(-1, -1, "target.policy", "is not a valid policy name")
 		}
 	}

@@ -88,6 +88,12 @@ func (s Settings) ActionIndex() map[string]int16 {
 	return index
 }
 
+// PolicyName is a policy's name inside a request body. Every field of a
+// request that names a policy has this type, so that the API can find and
+// authorise each such name against the request's token when it reads the
+// body, whichever route it arrived on.
+type PolicyName string
+
 // ValidatePolicyName accepts names that are safe in a URL path segment.
 func ValidatePolicyName(name string) error {
 	if !isPolicyName(name) {
