@@ -5,16 +5,12 @@ import (
 	"context"
 	"encoding/json"
 	"io"
-	"net/http"
 	"regexp"
 	"strconv"
 	"strings"
 	"testing"
 	"time"
 
-	"github.com/getkin/kin-openapi/openapi3"
-
-	"github.com/qtally/qtally/api"
 	"github.com/qtally/qtally/storage/pgtest"
 )
 
@@ -170,41 +166,6 @@ func TestTokensScopesAndPolicies(t *testing.T) {
 		if r := s.as("").send("GET", path, "", nil, false); r.Status != 200 {
 			t.Fatalf("%s without a token: %d %s", path, r.Status, r.Body)
 		}
-	}
-}
-
-// Every operation the document secures answers 401 to a request without a
-// token, so a route added without thought for tokens cannot slip through.
-func TestEveryDocumentedRouteNeedsAToken(t *testing.T) {
-	s := startService(t, pgtest.NewDatabase(t))
-	// Status pages send a browser without a token to the sign-in page:
-	// look at that answer rather than follow it.
-	noRedirects := *s.client
-	noRedirects.CheckRedirect = func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }
-	s.client = &noRedirects
-	doc := must(openapi3.NewLoader().LoadFromData(api.OpenAPIDocument))
-	checked := 0
-	for path, item := range doc.Paths.Map() {
-		for method, op := range item.Operations() {
-			secured := op.Security == nil || len(*op.Security) > 0
-			concrete := strings.NewReplacer("{policy}", "alpha", "{state}", "s").Replace(path)
-			r := s.as("").send(method, concrete, "application/json", []byte("{}"), true)
-			page := method == "GET" && !strings.HasPrefix(path, "/v1/")
-			switch {
-			case secured && page:
-				if r.Status != http.StatusSeeOther || r.Header.Get("Location") != "/sign-in" {
-					t.Errorf("page %s without a token: %d to %q, want 303 to /sign-in", path, r.Status, r.Header.Get("Location"))
-				}
-			case secured && r.Status != 401:
-				t.Errorf("%s %s without a token: %d %s, want 401", method, path, r.Status, r.Body)
-			case !secured && r.Status == 401:
-				t.Errorf("%s %s is documented open but answered 401", method, path)
-			}
-			checked++
-		}
-	}
-	if checked < 9 {
-		t.Fatalf("checked only %d operations", checked)
 	}
 }
 

@@ -57,6 +57,7 @@ const (
 	flagHistoryBucket  = "history-bucket"
 	flagHistoryWindow  = "history-window"
 	flagPprofListen    = "pprof-listen"
+	flagProblemDocs    = "problem-docs"
 )
 
 // Flags of episode retention.
@@ -91,6 +92,7 @@ func serviceFlags(env flagEnv, listenDefault string, roles serviceRoles) []cli.F
 		&cli.DurationFlag{Name: flagHistoryBucket, Value: storage.DefaultHistory().Bucket, Usage: "stretch of time one row of training history sums up", Sources: env("QTALLY_HISTORY_BUCKET")},
 		&cli.DurationFlag{Name: flagHistoryWindow, Value: storage.DefaultHistory().Window, Usage: "how long training history is kept", Sources: env("QTALLY_HISTORY_WINDOW")},
 		&cli.StringFlag{Name: flagPprofListen, Usage: "serve Go profiles (net/http/pprof) on this loopback address, e.g. 127.0.0.1:6060; off when empty", Sources: env("QTALLY_PPROF_LISTEN")},
+		&cli.StringFlag{Name: flagProblemDocs, Value: api.DefaultProblemDocs, Usage: "address of the problem type documentation (docs/problems.md); each problem type URI is this address, # and the problem's name", Sources: env("QTALLY_PROBLEM_DOCS")},
 		logFlag(env),
 	}
 	if roles.api {
@@ -154,6 +156,10 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 		History:       storage.HistorySettings{Bucket: cmd.Duration(flagHistoryBucket), Window: cmd.Duration(flagHistoryWindow)},
 		PprofListen:   cmd.String(flagPprofListen),
 	}
+	cfg.HTTP = api.Config{HistoryWindow: cfg.History.Window, ProblemDocs: cmd.String(flagProblemDocs)}
+	if err := api.CheckProblemDocs(cfg.HTTP.ProblemDocs); err != nil {
+		return cfg, fmt.Errorf("--%s: %w", flagProblemDocs, err)
+	}
 	atLeastOne := map[string]int{}
 	if roles.api {
 		cfg.Limits = training.Limits{
@@ -163,8 +169,7 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 			MaxStateLength: cmd.Int(flagMaxStateLength),
 		}
 		cfg.CoverageVisits = cmd.Int64(flagCoverageVisits)
-		cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength,
-			HistoryWindow: cfg.History.Window}
+		cfg.HTTP.MaxBodyBytes, cfg.HTTP.MaxStateLength = cmd.Int64(flagMaxBodyBytes), cfg.Limits.MaxStateLength
 		atLeastOne[flagMaxEpisodes], atLeastOne[flagMaxSteps] = cfg.Limits.MaxEpisodes, cfg.Limits.MaxSteps
 		atLeastOne[flagMaxIDLength], atLeastOne[flagMaxStateLength] = cfg.Limits.MaxIDLength, cfg.Limits.MaxStateLength
 		if cfg.CoverageVisits < 1 {

@@ -188,7 +188,9 @@ func TestEvaluationWindowsAndUnusableEpisodes(t *testing.T) {
 	s := startService(t, pgtest.NewDatabase(t))
 	s.call("PUT", "/v1/policies/nudges", map[string]any{"actions": []string{"remind", "skip"}, "gamma": 0.5}, 201)
 	s.call("PUT", "/v1/policies/nudges/table", map[string]any{"rows": []tableRow{{"cart", "remind", 1, 1}, {"cart", "skip", 0, 1}}}, 200)
-	// Three episodes without probabilities first.
+	// Three episodes without probabilities first. The worker trains every
+	// episode into the live table, so each result notes that it is judged
+	// on episodes it learned from.
 	s.post("nudges", oneStep("plain-1", "cart", "remind", 1), oneStep("plain-2", "cart", "skip", 1), oneStep("plain-3", "cart", "remind", 0))
 	r := s.call("POST", "/v1/policies/nudges/evaluations", map[string]any{}, 400)
 	if !strings.Contains(string(r.Body), "none of its 3 episodes carries behaviour probabilities") {
@@ -201,6 +203,7 @@ func TestEvaluationWindowsAndUnusableEpisodes(t *testing.T) {
 		// A step without its probability leaves the whole episode out.
 		episodeJSON{ID: "p-3", Steps: []stepJSON{{State: "cart", Action: "remind", Reward: 1, Probability: p(0.8)}, {State: "cart", Action: "remind", Reward: 9}}})
 
+	s.waitTrained("nudges", 6)
 	job, _ := startJob[evaluationResult](s, "/v1/policies/nudges/evaluations", map[string]any{"seed": 1, "resamples": 200}, 30*time.Second)
 	res := job.Result
 	// Greedy target: remind with probability 1. p-1: rho = (1/0.8)(1/0.5) =
@@ -208,7 +211,8 @@ func TestEvaluationWindowsAndUnusableEpisodes(t *testing.T) {
 	// = 2.5; weighted = 5/2.5 = 2; ESS = 2.5^2/2.5^2 = 1; behaviour mean 3.
 	if job.Status != "succeeded" || res.EpisodesRead != 6 || res.EpisodesUsed != 2 || res.EpisodesWithoutProbabilities != 4 ||
 		res.ZeroWeightEpisodes != 1 || res.Ordinary.Estimate != 2.5 || res.Weighted.Estimate != 2 || res.EffectiveSampleSize != 1 ||
-		res.BehaviourMeanReturn != 3 || len(res.Notes) != 1 || !strings.Contains(res.Notes[0], "4 episodes lack a behaviour probability") {
+		res.BehaviourMeanReturn != 3 || len(res.Notes) != 3 || !strings.Contains(res.Notes[1], "4 episodes lack a behaviour probability") ||
+		!strings.Contains(res.Notes[2], "3 steps in 2 of the episodes used carry no allowed set") {
 		t.Fatalf("evaluation: %s %s %+v", job.Status, job.Error, res)
 	}
 	// An epsilon-soft target with epsilon 0.5: remind 0.75, skip 0.25.
@@ -221,7 +225,7 @@ func TestEvaluationWindowsAndUnusableEpisodes(t *testing.T) {
 	}
 	// The last two episodes: p-2 is usable, p-3 is not.
 	job, _ = startJob[evaluationResult](s, "/v1/policies/nudges/evaluations", map[string]any{"window": map[string]any{"last": 2}, "seed": 1}, 30*time.Second)
-	if res := job.Result; job.Status != "succeeded" || res.EpisodesRead != 2 || res.EpisodesUsed != 1 || res.ZeroWeightEpisodes != 1 || len(res.Notes) != 2 {
+	if res := job.Result; job.Status != "succeeded" || res.EpisodesRead != 2 || res.EpisodesUsed != 1 || res.ZeroWeightEpisodes != 1 || len(res.Notes) != 3 {
 		t.Fatalf("last 2: %s %+v", job.Status, res)
 	}
 	// A time range before anything was stored holds nothing.

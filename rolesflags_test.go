@@ -14,6 +14,7 @@ import (
 func TestWorkerHelpListsOnlyWhatTheWorkerReads(t *testing.T) {
 	workerFlags := []string{
 		flagDatabaseURL, flagListen, flagLogFormat, flagPollInterval, flagShutdownGrace, flagDBMaxConns, flagPprofListen,
+		flagProblemDocs,                      // the health server answers problems too
 		flagHistoryBucket, flagHistoryWindow, // the worker writes the training history and drops old buckets
 		flagBatchEpisodes, flagEpisodeRetention, flagPruneInterval, flagPruneBatch, flagJobStaleAfter,
 	}

@@ -114,9 +114,9 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	if cfg.RunAPI {
 		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, Episodes: db, States: db,
 			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth,
-			Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db})
+			Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db, Audit: db})
 	} else {
-		handler = api.NewHealthServer(api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})
+		handler = api.NewHealthServer(cfg.HTTP, api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})
 	}
 	listener, err := net.Listen("tcp", cfg.Listen)
 	if err != nil {

@@ -116,7 +116,7 @@ func importCommand(env flagEnv, stdout io.Writer) *cli.Command {
 			if err != nil {
 				return err
 			}
-			fmt.Fprintf(stdout, "imported %d pairs into %s; its revision is now %d\n", res.Pairs, res.Policy, res.Revision)
+			fmt.Fprintf(stdout, "imported %d pairs into %s; its revision is now %d, its initial value %g\n", res.Pairs, res.Policy, res.Revision, res.InitialQ)
 			return nil
 		},
 	}

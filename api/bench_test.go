@@ -125,3 +125,39 @@ func BenchmarkDecodeChoose(b *testing.B) {
 		}
 	}
 }
+
+// BenchmarkDecodeAndEncodeMaskedEpisodes is BenchmarkDecodeAndEncodeEpisodes
+// with every step carrying the allowed set it was chosen from (three of the
+// four actions), as a client that masks posts them.
+func BenchmarkDecodeAndEncodeMaskedEpisodes(b *testing.B) {
+	eps := benchEpisodeList()
+	for _, ep := range eps {
+		for t := range ep.Steps {
+			allowed := []string{ep.Steps[t].Action}
+			for _, a := range benchActions {
+				if a != ep.Steps[t].Action && len(allowed) < 3 {
+					allowed = append(allowed, a)
+				}
+			}
+			ep.Steps[t].Allowed = allowed
+		}
+	}
+	batch, err := json.Marshal(episodesBody{Episodes: eps})
+	if err != nil {
+		b.Fatal(err)
+	}
+	s := training.DefaultSettings()
+	s.Actions = benchActions
+	index, lim := s.ActionIndex(), training.DefaultLimits()
+	b.ReportAllocs()
+	for b.Loop() {
+		eps, err := decodeEpisodes(batch, mediaJSON)
+		if err != nil {
+			b.Fatal(err)
+		}
+		if _, err := training.EncodeEpisodes(s, index, eps, lim); err != nil {
+			b.Fatal(err)
+		}
+	}
+	reportSteps(b, len(batch))
+}

@@ -64,13 +64,17 @@ func contains(list []string, s string) bool {
 }
 
 // bindJSON reads a JSON body within limit and decodes it strictly into v,
-// which may hold defaults for the fields a client leaves out.
+// which may hold defaults for the fields a client leaves out, and
+// authorises every policy it names (access.go).
 func bindJSON(c echo.Context, limit int64, v any) error {
 	body, _, err := readBody(c, limit, mediaJSON)
 	if err != nil {
 		return err
 	}
-	return decodeStrict(body, v, -1)
+	if err := decodeStrict(body, v, -1); err != nil {
+		return err
+	}
+	return authorizeBodyNames(c, v)
 }
 
 // decodeStrict decodes exactly one JSON value into v, refusing unknown

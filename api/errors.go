@@ -31,12 +31,12 @@ const problemContentType = "application/problem+json"
 
 // errorHandler answers every error as problem JSON, with the status its
 // domain error calls for.
-func errorHandler(logger *slog.Logger) echo.HTTPErrorHandler {
+func errorHandler(logger *slog.Logger, types problemTypes) echo.HTTPErrorHandler {
 	return func(err error, c echo.Context) {
 		if c.Response().Committed {
 			return
 		}
-		p := toProblem(err)
+		p := types.toProblem(err)
 		if p.Status >= 500 {
 			logger.Error("request failed", "method", c.Request().Method, "path", c.Request().URL.Path, "error", err)
 		}
@@ -58,12 +58,12 @@ func errorHandler(logger *slog.Logger) echo.HTTPErrorHandler {
 	}
 }
 
-func toProblem(err error) Problem {
+func (pt problemTypes) toProblem(err error) Problem {
 	var verr *training.ValidationError
 	var herr *echo.HTTPError
 	switch {
 	case errors.As(err, &verr):
-		p := Problem{Type: "urn:qtally:problem:invalid-input", Title: "Invalid input", Status: http.StatusBadRequest, Detail: verr.Error()}
+		p := pt.problem(problemInvalidInput, verr.Error())
 		for _, fe := range verr.Problems {
 			pf := ProblemField{Field: fe.Field, Message: fe.Message}
 			if fe.Episode >= 0 {
@@ -76,24 +76,23 @@ func toProblem(err error) Problem {
 		}
 		return p
 	case errors.Is(err, training.ErrNotFound):
-		return Problem{Type: "urn:qtally:problem:not-found", Title: "Not found", Status: http.StatusNotFound, Detail: err.Error()}
+		return pt.problem(problemNotFound, err.Error())
 	case errors.Is(err, training.ErrConflict):
-		return Problem{Type: "urn:qtally:problem:conflict", Title: "Conflict", Status: http.StatusConflict, Detail: err.Error()}
+		return pt.problem(problemConflict, err.Error())
 	case errors.Is(err, training.ErrUnauthenticated):
-		return Problem{Type: "urn:qtally:problem:unauthenticated", Title: "Unauthenticated", Status: http.StatusUnauthorized, Detail: err.Error()}
+		return pt.problem(problemUnauthenticated, err.Error())
 	case errors.Is(err, training.ErrForbidden):
-		return Problem{Type: "urn:qtally:problem:forbidden", Title: "Forbidden", Status: http.StatusForbidden, Detail: err.Error()}
+		return pt.problem(problemForbidden, err.Error())
 	case errors.Is(err, training.ErrUnavailable):
-		return Problem{Type: "urn:qtally:problem:unavailable", Title: "Temporarily unavailable", Status: http.StatusServiceUnavailable,
-			Detail: "the database cannot be reached; retry later"}
+		return pt.problem(problemUnavailable, "the database cannot be reached; retry later")
 	case errors.As(err, &herr):
 		detail := http.StatusText(herr.Code)
 		if msg, ok := herr.Message.(string); ok {
 			detail = msg
 		}
-		return Problem{Type: "about:blank", Title: http.StatusText(herr.Code), Status: herr.Code, Detail: detail}
+		return Problem{Type: plainProblemType, Title: http.StatusText(herr.Code), Status: herr.Code, Detail: detail}
 	default:
-		return Problem{Type: "about:blank", Title: "Internal Server Error", Status: http.StatusInternalServerError,
+		return Problem{Type: plainProblemType, Title: "Internal Server Error", Status: http.StatusInternalServerError,
 			Detail: "the request failed on the server; see its log"}
 	}
 }

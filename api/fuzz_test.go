@@ -66,6 +66,9 @@ func FuzzDecodeEpisodes(f *testing.F) {
 		{`{"episodes":[{"id":"a","steps":[{"state":"s","action":"truck","reward":1}]}]}{}`, false},
 		{"", true},
 		{`{"id":"a","steps":[{"state":"s","action":"truck","reward":-Infinity}]}`, true},
+		{`{"episodes":[{"id":"a","steps":[{"state":"s","action":"wait","reward":1,"probability":0.5,"allowed":["wait","truck"]},{"state":"s","action":"drone","reward":0}]}]}`, false},
+		{`{"id":"a","steps":[{"state":"s","action":"wait","reward":1,"allowed":["truck","truck"]}]}`, true},
+		{`{"id":"a","steps":[{"state":"s","action":"wait","reward":1,"allowed":[]}]}`, true},
 	} {
 		f.Add([]byte(seed.body), seed.ndjson)
 	}
@@ -96,7 +99,8 @@ func FuzzDecodeEpisodes(f *testing.F) {
 			ids[r.ID] = true
 			n := len(ep.Steps)
 			if n == 0 || n > lim.MaxSteps || len(r.States) != n || len(r.Actions) != n || len(r.Rewards) != n ||
-				(r.Probabilities != nil && len(r.Probabilities) != n) {
+				(r.Probabilities != nil && len(r.Probabilities) != n) ||
+				(r.Allowed != nil && len(r.Allowed) != n*training.ActionSetWidth(len(settings.Actions))) {
 				t.Fatalf("record %d has columns of %d/%d/%d/%d for %d steps", i, len(r.States), len(r.Actions), len(r.Rewards), len(r.Probabilities), n)
 			}
 			for j, st := range ep.Steps {
@@ -114,6 +118,15 @@ func FuzzDecodeEpisodes(f *testing.F) {
 				}
 				if st.Probability == nil && r.Probabilities != nil && r.Probabilities[j] != 0 {
 					t.Fatalf("record %d step %d has a probability the client did not send", i, j)
+				}
+				set := r.AllowedAt(j)
+				if (st.Allowed == nil) != (set == nil) || (set != nil && !set.Has(r.Actions[j])) {
+					t.Fatalf("record %d step %d has allowed set %v for %q", i, j, set, st.Allowed)
+				}
+				for a, name := range settings.Actions {
+					if set != nil && set.Has(int16(a)) != slices.Contains(st.Allowed, name) {
+						t.Fatalf("record %d step %d has allowed set %v for %q", i, j, set, st.Allowed)
+					}
 				}
 			}
 		}

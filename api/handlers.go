@@ -76,9 +76,7 @@ func handleListPolicies(p Policies) echo.HandlerFunc {
 			return err
 		}
 		// A token limited to some policies sees only those.
-		if tok := requestToken(c); tok != nil {
-			list = slices.DeleteFunc(list, func(st training.PolicyStatus) bool { return !tok.CoversPolicy(st.Name) })
-		}
+		list = coveredPolicies(c, list)
 		if list == nil {
 			list = []training.PolicyStatus{}
 		}
@@ -214,7 +212,10 @@ type chooseResponse struct {
 	Explored     bool    `json:"explored"`
 	GreedyAction string  `json:"greedy_action"`
 	KnownState   bool    `json:"known_state"`
-	Revision     int64   `json:"revision"`
+	// Allowed is the set the action was chosen from; posted with the step
+	// (beside the probability), it lets evaluation recompute the choice.
+	Allowed  []string `json:"allowed"`
+	Revision int64    `json:"revision"`
 	// CopyAgeSeconds is how long ago this process last confirmed its
 	// in-memory copy was current.
 	CopyAgeSeconds float64 `json:"copy_age_seconds"`
@@ -244,7 +245,7 @@ func handleChoose(ch Chooser, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
 		m.Choices.WithLabelValues(name, string(req.Mode), strconv.FormatBool(res.Explored), strconv.FormatBool(res.KnownState)).Inc()
 		return c.JSON(http.StatusOK, chooseResponse{
 			Action: res.Action, Probability: res.Probability, Explored: res.Explored,
-			GreedyAction: res.GreedyAction, KnownState: res.KnownState, Revision: res.Revision,
+			GreedyAction: res.GreedyAction, KnownState: res.KnownState, Allowed: res.Allowed, Revision: res.Revision,
 			CopyAgeSeconds: res.Staleness.Seconds(),
 		})
 	}

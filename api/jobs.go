@@ -68,7 +68,7 @@ func handleStartReplay(j Jobs, cfg Config) echo.HandlerFunc {
 		if err := req.Validate(); err != nil {
 			return err
 		}
-		if req.Target == policy {
+		if string(req.Target) == policy {
 			return training.Invalid(-1, -1, "target", "must name a new policy, not the source")
 		}
 		job, err := j.StartReplay(c.Request().Context(), policy, req)
@@ -95,6 +95,9 @@ func handleGetJob(j Jobs, kind training.JobKind) echo.HandlerFunc {
 			return jobNotFound(missing)
 		}
 		if err != nil {
+			return err
+		}
+		if err := authorizeJobNames(c, job); err != nil {
 			return err
 		}
 		return c.JSON(http.StatusOK, job)

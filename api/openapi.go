@@ -13,8 +13,9 @@ import (
 //go:embed openapi.json
 var OpenAPIDocument []byte
 
-func handleOpenAPI() echo.HandlerFunc {
+func handleOpenAPI(problemDocs string) echo.HandlerFunc {
+	doc := openAPIDocument(problemDocs)
 	return func(c echo.Context) error {
-		return c.Blob(http.StatusOK, echo.MIMEApplicationJSON, OpenAPIDocument)
+		return c.Blob(http.StatusOK, echo.MIMEApplicationJSON, doc)
 	}
 }

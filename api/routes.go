@@ -16,36 +16,39 @@ func addHealthRoutes(e *echo.Echo, d Deps) {
 
 // addAPIRoutes serves the policy API. Every route needs a valid token (g
 // checks that for all requests); each names the scope it needs on top.
-func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
-	e.GET("/v1/openapi.json", handleOpenAPI())
+func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoutes) {
+	e.GET("/v1/openapi.json", handleOpenAPI(cfg.ProblemDocs))
 
+	// Every admin route is registered through audit.add, so that each of its
+	// requests goes to the audit log (TestEveryRouteEnforcesAccess checks).
 	admin, ingest, choose := g.requireScope(training.ScopeAdmin), g.requireScope(training.ScopeIngest), g.requireScope(training.ScopeChoose)
-	e.GET("/v1/policies", handleListPolicies(d.Policies), admin)
+	audit.add(e.GET("/v1/policies", handleListPolicies(d.Policies), admin))
+	audit.add(e.GET("/v1/audit", handleAuditLog(d.Audit), admin))
 	// Applications read their policy's backlog and revision with the
 	// scopes they have.
-	e.GET("/v1/policies/:policy", handleGetPolicy(d.Policies),
-		g.requireScope(training.ScopeAdmin, training.ScopeChoose, training.ScopeIngest))
-	e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg), admin)
+	audit.add(e.GET("/v1/policies/:policy", handleGetPolicy(d.Policies),
+		g.requireScope(training.ScopeAdmin, training.ScopeChoose, training.ScopeIngest)))
+	audit.add(e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg), admin))
 	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg), ingest)
 	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg), choose)
 	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect), choose)
 	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States, cfg), choose)
 
-	e.GET("/v1/policies/:policy/table", handleExportTable(d.Snapshots, false), admin)
-	e.PUT("/v1/policies/:policy/table", handleImportTable(d.Tables, cfg), admin)
-	e.GET("/v1/policies/:policy/diff", handleDiffTables(d.Snapshots), admin)
-	e.GET("/v1/policies/:policy/snapshots", handleListSnapshots(d.Snapshots), admin)
-	e.POST("/v1/policies/:policy/snapshots", handleCreateSnapshot(d.Snapshots, cfg), admin)
-	e.GET("/v1/policies/:policy/snapshots/:snapshot", handleGetSnapshot(d.Snapshots), admin)
-	e.DELETE("/v1/policies/:policy/snapshots/:snapshot", handleDeleteSnapshot(d.Snapshots), admin)
-	e.GET("/v1/policies/:policy/snapshots/:snapshot/table", handleExportTable(d.Snapshots, true), admin)
-	e.POST("/v1/policies/:policy/snapshots/:snapshot/restore", handleRestoreSnapshot(d.Tables), admin)
-	e.POST("/v1/policies/:policy/evaluations", handleStartEvaluation(d.Jobs, cfg), admin)
-	e.GET("/v1/policies/:policy/evaluations", handleListJobs(d.Jobs, training.EvaluationJobKind), admin)
-	e.GET("/v1/policies/:policy/evaluations/:id", handleGetJob(d.Jobs, training.EvaluationJobKind), admin)
-	e.POST("/v1/policies/:policy/replays", handleStartReplay(d.Jobs, cfg), admin)
-	e.GET("/v1/policies/:policy/replays", handleListJobs(d.Jobs, training.ReplayJobKind), admin)
-	e.GET("/v1/policies/:policy/replays/:id", handleGetJob(d.Jobs, training.ReplayJobKind), admin)
+	audit.add(e.GET("/v1/policies/:policy/table", handleExportTable(d.Snapshots, false), admin))
+	audit.add(e.PUT("/v1/policies/:policy/table", handleImportTable(d.Tables, cfg), admin))
+	audit.add(e.GET("/v1/policies/:policy/diff", handleDiffTables(d.Snapshots), admin))
+	audit.add(e.GET("/v1/policies/:policy/snapshots", handleListSnapshots(d.Snapshots), admin))
+	audit.add(e.POST("/v1/policies/:policy/snapshots", handleCreateSnapshot(d.Snapshots, cfg), admin))
+	audit.add(e.GET("/v1/policies/:policy/snapshots/:snapshot", handleGetSnapshot(d.Snapshots), admin))
+	audit.add(e.DELETE("/v1/policies/:policy/snapshots/:snapshot", handleDeleteSnapshot(d.Snapshots), admin))
+	audit.add(e.GET("/v1/policies/:policy/snapshots/:snapshot/table", handleExportTable(d.Snapshots, true), admin))
+	audit.add(e.POST("/v1/policies/:policy/snapshots/:snapshot/restore", handleRestoreSnapshot(d.Tables), admin))
+	audit.add(e.POST("/v1/policies/:policy/evaluations", handleStartEvaluation(d.Jobs, cfg), admin))
+	audit.add(e.GET("/v1/policies/:policy/evaluations", handleListJobs(d.Jobs, training.EvaluationJobKind), admin))
+	audit.add(e.GET("/v1/policies/:policy/evaluations/:id", handleGetJob(d.Jobs, training.EvaluationJobKind), admin))
+	audit.add(e.POST("/v1/policies/:policy/replays", handleStartReplay(d.Jobs, cfg), admin))
+	audit.add(e.GET("/v1/policies/:policy/replays", handleListJobs(d.Jobs, training.ReplayJobKind), admin))
+	audit.add(e.GET("/v1/policies/:policy/replays/:id", handleGetJob(d.Jobs, training.ReplayJobKind), admin))
 }
 
 // addStatusRoutes serves the status pages for people; they show every

@@ -57,6 +57,9 @@ type Config struct {
 	HistoryWindow time.Duration
 	// TokenRate limits each token's requests unless the token sets its own.
 	TokenRate RateConfig
+	// ProblemDocs is the address of the problem type documentation; each
+	// of qtally's problem types is this address, "#" and its name.
+	ProblemDocs string
 }
 
 // Deps are what the server calls.
@@ -76,33 +79,37 @@ type Deps struct {
 	Snapshots Snapshots
 	Tables    TableWriter
 	Jobs      Jobs
+	// Audit records admin actions and reads them back.
+	Audit AuditLog
 	// Auth verifies tokens; nil turns authentication off.
 	Auth Authenticator
 }
 
 // NewServer returns the HTTP handler of an API process.
 func NewServer(cfg Config, d Deps) http.Handler {
-	e := newEcho(d)
+	e := newEcho(cfg, d)
 	g := newGuard(d.Auth, cfg.TokenRate)
-	e.Use(g.authenticate)
+	audit := auditedRoutes{}
+	// The audit log records refusals too: it runs before names are authorised.
+	e.Use(g.authenticate, audit.record(d.Audit, d.Logger), authorizeNamedPolicies)
 	addHealthRoutes(e, d)
-	addAPIRoutes(e, cfg, d, g)
+	addAPIRoutes(e, cfg, d, g, audit)
 	addStatusRoutes(e, cfg, d, g)
 	return e
 }
 
 // NewHealthServer serves only health and metrics, for worker processes.
-func NewHealthServer(d Deps) http.Handler {
-	e := newEcho(d)
+func NewHealthServer(cfg Config, d Deps) http.Handler {
+	e := newEcho(cfg, d)
 	addHealthRoutes(e, d)
 	return e
 }
 
-func newEcho(d Deps) *echo.Echo {
+func newEcho(cfg Config, d Deps) *echo.Echo {
 	e := echo.New()
 	e.HideBanner = true
 	e.HidePort = true
-	e.HTTPErrorHandler = errorHandler(d.Logger)
+	e.HTTPErrorHandler = errorHandler(d.Logger, problemTypes{docs: cfg.ProblemDocs})
 	e.Pre(routeOnEscapedPath)
 	e.Use(observe(d.Metrics))
 	return e

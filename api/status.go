@@ -99,7 +99,7 @@ func handleOverview(p Policies) echo.HandlerFunc {
 			return err
 		}
 		v := overviewView{pageBase: pageBase{Title: "Policies", Now: time.Now(), Refresh: 30}}
-		for _, st := range list {
+		for _, st := range coveredPolicies(c, list) {
 			v.Policies = append(v.Policies, newPolicyRow(st, v.Now))
 		}
 		return renderPage(c, "overview.html", v)

@@ -29,7 +29,7 @@ type Snapshots interface {
 // TableWriter replaces a policy's live table.
 type TableWriter interface {
 	RestoreSnapshot(ctx context.Context, policy, snapshot string) (training.TableChange, error)
-	ImportTable(ctx context.Context, policy string, rows []training.TableRow) (training.TableChange, error)
+	ImportTable(ctx context.Context, policy string, rows []training.TableRow, initialQ *float64) (training.TableChange, error)
 }
 
 const mediaCSV = "text/csv"
@@ -187,11 +187,11 @@ func handleImportTable(t TableWriter, cfg Config) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
-		rows, err := decodeTable(body, media)
+		rows, initialQ, err := decodeTable(body, media, c.QueryParam("initial_q"))
 		if err != nil {
 			return err
 		}
-		ch, err := t.ImportTable(c.Request().Context(), policy, rows)
+		ch, err := t.ImportTable(c.Request().Context(), policy, rows, initialQ)
 		if err != nil {
 			return err
 		}
@@ -199,18 +199,50 @@ func handleImportTable(t TableWriter, cfg Config) echo.HandlerFunc {
 	}
 }
 
-// decodeTable reads rows from an exported JSON document or from CSV.
-func decodeTable(body []byte, media string) ([]training.TableRow, error) {
+// tableDocument is a table to import as JSON: an export document, whose
+// initial_q may be left out.
+type tableDocument struct {
+	training.TableExport
+	InitialQ *float64 `json:"initial_q"`
+}
+
+// decodeTable reads rows, and their initial value when the document or the
+// query names one, from an exported JSON document or from CSV (which has
+// no place for it).
+func decodeTable(body []byte, media, initialQuery string) ([]training.TableRow, *float64, error) {
+	var initialQ *float64
+	if initialQuery != "" {
+		x, err := strconv.ParseFloat(initialQuery, 64)
+		if err != nil {
+			return nil, nil, training.Invalid(-1, -1, "initial_q", "%q is not a number", truncateParam(initialQuery))
+		}
+		initialQ = &x
+	}
 	if media == mediaJSON {
-		var doc training.TableExport
+		var doc tableDocument
 		if err := decodeStrict(body, &doc, -1); err != nil {
-			return nil, err
+			return nil, nil, err
 		}
 		if doc.Rows == nil {
-			return nil, training.Invalid(-1, -1, "rows", "is missing")
+			return nil, nil, training.Invalid(-1, -1, "rows", "is missing")
 		}
-		return doc.Rows, nil
+		if doc.InitialQ != nil && initialQ != nil && *doc.InitialQ != *initialQ {
+			return nil, nil, training.Invalid(-1, -1, "initial_q", "the query says %g, the document %g; give one", *initialQ, *doc.InitialQ)
+		}
+		if doc.InitialQ != nil {
+			initialQ = doc.InitialQ
+		}
+		return doc.Rows, initialQ, training.CheckInitialQ(initialQ)
 	}
+	rows, err := decodeCSVTable(body)
+	if err != nil {
+		return nil, nil, err
+	}
+	return rows, initialQ, training.CheckInitialQ(initialQ)
+}
+
+// decodeCSVTable reads rows from CSV with a header line.
+func decodeCSVTable(body []byte) ([]training.TableRow, error) {
 	r := csv.NewReader(bytes.NewReader(body))
 	r.FieldsPerRecord = len(csvHeader)
 	r.ReuseRecord = true

@@ -67,6 +67,9 @@ type ImportResult struct {
 	Policy   string `json:"policy"`
 	Revision int64  `json:"revision"`
 	Pairs    int    `json:"pairs"`
+	// InitialQ is the policy's initial value after the import: the JSON
+	// document's, or unchanged for CSV.
+	InitialQ float64 `json:"initial_q"`
 }
 
 // ImportTable replaces a policy's live table with the table read from r.

@@ -53,6 +53,17 @@ func RecommendedSettings() PolicySettings {
 	}
 }
 
+// epsilonFor is the exploration rate the service gives a state visited
+// visits times in all: max(epsilon_min, epsilon k / (k + visits)) with k
+// the decay setting, or epsilon when there is no decay.
+func (s PolicySettings) epsilonFor(visits int64) float64 {
+	if s.EpsilonDecayVisits <= 0 {
+		return s.Epsilon
+	}
+	k := s.EpsilonDecayVisits
+	return math.Max(s.EpsilonMin, s.Epsilon*k/(k+float64(visits)))
+}
+
 // Config says where to send simulated customers and how many.
 type Config struct {
 	// BaseURL is the service root, such as http://127.0.0.1:8080; the
@@ -144,7 +155,14 @@ type Report struct {
 	// Exact expected returns from the start distribution.
 	Optimal float64
 	Learned float64 // greedy policy on the service's Q, ties split evenly
-	Random  float64 // every action equally likely
+	// Exploring is what explore mode now runs: epsilon-soft on the
+	// service's Q with each state's decayed epsilon.
+	Exploring float64
+	// BestFixed is the value of always taking BestFixedAction, the best
+	// single action: what a rule needing no learning gets.
+	BestFixed       float64
+	BestFixedAction Action
+	Random          float64 // every action equally likely
 	// FirstDay compares the learned and optimal first actions per customer kind.
 	FirstDay []FirstAction
 }
@@ -166,6 +184,14 @@ func (r Report) Fraction() float64 {
 	return (r.Learned - r.Random) / (r.Optimal - r.Random)
 }
 
+// FractionFromBestFixed is how far the learned policy got from the best
+// single fixed action to optimal: 0 is no better than always taking that
+// action, 1 is optimal. Random is a low bar; this one says what learning
+// added to the plainest rule.
+func (r Report) FractionFromBestFixed() float64 {
+	return (r.Learned - r.BestFixed) / (r.Optimal - r.BestFixed)
+}
+
 func (r Report) String() string {
 	var b strings.Builder
 	fmt.Fprintf(&b, "episodes sent:             %d (%d duplicates) in %s\n", r.Episodes, r.Duplicates, r.Elapsed.Round(time.Second))
@@ -178,8 +204,11 @@ func (r Report) String() string {
 	fmt.Fprintf(&b, "mean return, last %-6d   %.3f (while exploring)\n", r.Window, r.MeanReturn)
 	fmt.Fprintf(&b, "optimal expected return:   %.3f\n", r.Optimal)
 	fmt.Fprintf(&b, "learned greedy policy:     %.3f\n", r.Learned)
+	fmt.Fprintf(&b, "exploring behaviour:       %.3f (explore mode on the learned Q, as it stands)\n", r.Exploring)
+	fmt.Fprintf(&b, "best fixed action:         %.3f (always %s)\n", r.BestFixed, r.BestFixedAction)
 	fmt.Fprintf(&b, "random policy:             %.3f\n", r.Random)
 	fmt.Fprintf(&b, "random -> optimal:         %.1f%% of the way\n", 100*r.Fraction())
+	fmt.Fprintf(&b, "best fixed -> optimal:     %.1f%% of the way\n", 100*r.FractionFromBestFixed())
 	b.WriteString("day-0 action by customer (learned / optimal):\n")
 	for _, f := range r.FirstDay {
 		fmt.Fprintf(&b, "  %-18s %-7s  %s / %s", f.State.Reason, f.State.Plan, joinActions(f.Learned), joinActions(f.Optimal))
@@ -221,6 +250,7 @@ func Run(ctx context.Context, cfg Config, out io.Writer) (Report, error) {
 		Optimal:       optimal.Start(),
 		Random:        RandomValue(cfg.Settings.Gamma),
 	}
+	report.BestFixedAction, report.BestFixed = BestFixedAction(cfg.Settings.Gamma)
 	fmt.Fprintf(out, "demo: policy %q at %s; optimal expected return %.3f, random %.3f\n",
 		cfg.Policy, cfg.BaseURL, report.Optimal, report.Random)
 
@@ -237,11 +267,13 @@ func Run(ctx context.Context, cfg Config, out io.Writer) (Report, error) {
 	if report.Untrained, err = c.settle(ctx); err != nil {
 		return Report{}, err
 	}
-	q, err := c.readQ(ctx)
+	q, visits, err := c.readQ(ctx)
 	if err != nil {
 		return Report{}, err
 	}
 	report.Learned = Evaluate(Greedy(q), cfg.Settings.Gamma).Start()
+	exploring := EpsilonSoft(q, func(s State) float64 { return cfg.Settings.epsilonFor(visits[s]) })
+	report.Exploring = Evaluate(exploring, cfg.Settings.Gamma).Start()
 	greedy := Greedy(q)
 	for _, st := range Starts() {
 		var shortfall float64
@@ -411,6 +443,8 @@ type step struct {
 	Action      string  `json:"action"`
 	Reward      float64 `json:"reward"`
 	Probability float64 `json:"probability"`
+	// Allowed is the set choose chose from, so that evaluation can redo it.
+	Allowed []string `json:"allowed"`
 }
 
 type episode struct {
@@ -419,8 +453,9 @@ type episode struct {
 }
 
 type chooseAnswer struct {
-	Action      string  `json:"action"`
-	Probability float64 `json:"probability"`
+	Action      string   `json:"action"`
+	Probability float64  `json:"probability"`
+	Allowed     []string `json:"allowed"`
 }
 
 // playEpisode runs one customer: the service chooses each day's action,
@@ -441,7 +476,7 @@ func (c *client) playEpisode(ctx context.Context, n int, actions map[string]Acti
 			return episode{}, 0, fmt.Errorf("choose answered unknown action %q", choice.Action)
 		}
 		o := Step(s, a, rng)
-		ep.Steps = append(ep.Steps, step{State: s.String(), Action: choice.Action, Reward: o.Reward, Probability: choice.Probability})
+		ep.Steps = append(ep.Steps, step{State: s.String(), Action: choice.Action, Reward: o.Reward, Probability: choice.Probability, Allowed: choice.Allowed})
 		ret += discount * o.Reward
 		discount *= c.cfg.Settings.Gamma
 		if o.Done {
@@ -645,16 +680,19 @@ func (c *client) settle(ctx context.Context) (int64, error) {
 type actionValue struct {
 	Action string  `json:"action"`
 	Q      float64 `json:"q"`
+	Visits int64   `json:"visits"`
 }
 
 type stateAnswer struct {
 	Actions []actionValue `json:"actions"`
 }
 
-// readQ fetches the service's Q for every state of the model.
-func (c *client) readQ(ctx context.Context) (map[State][]float64, error) {
+// readQ fetches the service's Q for every state of the model, and each
+// state's visits over all actions.
+func (c *client) readQ(ctx context.Context) (map[State][]float64, map[State]int64, error) {
 	states := States()
 	rows := make([][]float64, len(states))
+	totals := make([]int64, len(states))
 	g, ctx := errgroup.WithContext(ctx)
 	g.SetLimit(c.cfg.Concurrency)
 	for i, s := range states {
@@ -668,17 +706,21 @@ func (c *client) readQ(ctx context.Context) (map[State][]float64, error) {
 				return fmt.Errorf("state %s: %w", s, err)
 			}
 			rows[i] = row
+			for _, av := range answer.Actions {
+				totals[i] += av.Visits
+			}
 			return nil
 		})
 	}
 	if err := g.Wait(); err != nil {
-		return nil, err
+		return nil, nil, err
 	}
 	q := make(map[State][]float64, len(states))
+	visits := make(map[State]int64, len(states))
 	for i, s := range states {
-		q[s] = rows[i]
+		q[s], visits[s] = rows[i], totals[i]
 	}
-	return q, nil
+	return q, visits, nil
 }
 
 // qRow puts a state's action values in Actions order.

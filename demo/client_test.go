@@ -42,12 +42,17 @@ func TestConfigValidationRefusesNonsense(t *testing.T) {
 
 func TestReportFractionAndText(t *testing.T) {
 	r := Report{Episodes: 30_000, Window: 1000, MeanReturn: 6.5, Optimal: 8, Learned: 7.5, Random: 0.5,
-		FirstDay: []FirstAction{{State: State{Reason: ExpiredCard}, Learned: []Action{EmailReminder}, Optimal: []Action{TextReminder}, Shortfall: 0.031}}}
+		Exploring: 6.25, BestFixed: 5.5, BestFixedAction: RetryCard,
+		FirstDay: []FirstAction{{State: State{Reason: CardOutOfDate}, Learned: []Action{EmailReminder}, Optimal: []Action{TextReminder}, Shortfall: 0.031}}}
 	if got := r.Fraction(); math.Abs(got-7.0/7.5) > 1e-15 {
 		t.Errorf("fraction %v, want %v", got, 7.0/7.5)
 	}
+	if got := r.FractionFromBestFixed(); math.Abs(got-2.0/2.5) > 1e-15 {
+		t.Errorf("fraction from the best fixed action %v, want %v", got, 2.0/2.5)
+	}
 	text := r.String()
-	for _, want := range []string{"30000", "93.3% of the way", "expired_card", "email_reminder / text_reminder  (0.031 less)"} {
+	for _, want := range []string{"30000", "93.3% of the way", "card_out_of_date", "email_reminder / text_reminder  (0.031 less)",
+		"exploring behaviour:       6.250", "best fixed action:         5.500 (always retry_card)", "best fixed -> optimal:     80.0% of the way"} {
 		if !strings.Contains(text, want) {
 			t.Errorf("report lacks %q:\n%s", want, text)
 		}
@@ -72,7 +77,7 @@ func TestWindowKeepsTheMostRecentReturns(t *testing.T) {
 }
 
 func TestDecodeProblem(t *testing.T) {
-	p := decodeProblem(http.StatusConflict, []byte(`{"type":"urn:qtally:problem:conflict","title":"Conflict","status":409,"detail":"actions cannot change"}`))
+	p := decodeProblem(http.StatusConflict, []byte(`{"type":"https://github.com/qtally/qtally/blob/main/docs/problems.md#conflict","title":"Conflict","status":409,"detail":"actions cannot change"}`))
 	if p.Status != 409 || p.Title != "Conflict" || p.Detail != "actions cannot change" {
 		t.Errorf("decoded %+v", p)
 	}
@@ -87,7 +92,7 @@ func TestQRowFollowsActionOrder(t *testing.T) {
 	names := ActionNames()
 	// The service may list actions in any order; the row must not care.
 	for i := len(names) - 1; i >= 0; i-- {
-		answer.Actions = append(answer.Actions, actionValue{names[i], float64(i)})
+		answer.Actions = append(answer.Actions, actionValue{Action: names[i], Q: float64(i)})
 	}
 	row, err := qRow(answer)
 	if err != nil {
@@ -109,5 +114,23 @@ func TestRetryAfter(t *testing.T) {
 		if got := retryAfter(header); got != want {
 			t.Errorf("Retry-After %q: %v, want %v", header, got, want)
 		}
+	}
+}
+
+// The service's exploration rate: max(epsilon_min, epsilon k / (k + N)),
+// as the README states it for epsilon_decay_visits k.
+func TestEpsilonForFollowsTheServicesRule(t *testing.T) {
+	s := RecommendedSettings() // epsilon 1, floor 0.02, k 300
+	for _, c := range []struct {
+		visits int64
+		want   float64
+	}{{0, 1}, {300, 0.5}, {900, 0.25}, {1_000_000, 0.02}} {
+		if got := s.epsilonFor(c.visits); math.Abs(got-c.want) > 1e-15 {
+			t.Errorf("%d visits: epsilon %v, want %v", c.visits, got, c.want)
+		}
+	}
+	s.EpsilonDecayVisits = 0
+	if got := s.epsilonFor(1000); got != s.Epsilon {
+		t.Errorf("without decay: %v, want %v", got, s.Epsilon)
 	}
 }

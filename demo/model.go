@@ -60,13 +60,13 @@ func ActionNames() []string { return slices.Clone(actionNames[:]) }
 type Reason int
 
 const (
-	InsufficientFunds Reason = iota
-	ExpiredCard
-	GenericDecline
+	LowBalance Reason = iota
+	CardOutOfDate
+	BankRefused
 	numReasons
 )
 
-var reasonNames = [numReasons]string{"insufficient_funds", "expired_card", "generic_decline"}
+var reasonNames = [numReasons]string{"low_balance", "card_out_of_date", "bank_refused"}
 
 func (r Reason) String() string { return reasonNames[r] }
 
@@ -97,7 +97,7 @@ type State struct {
 }
 
 // String is the state as the service sees it, for example
-// "day=3|tries=1|msgs=2|reason=insufficient_funds|plan=premium|card=old".
+// "day=3|tries=1|msgs=2|reason=low_balance|plan=premium|card=old".
 func (s State) String() string {
 	card := "old"
 	if s.CardUpdated {
@@ -124,7 +124,7 @@ type Start struct {
 
 // Mix of failures the application sees on day 0.
 var (
-	reasonShare = [numReasons]float64{InsufficientFunds: 0.5, ExpiredCard: 0.2, GenericDecline: 0.3}
+	reasonShare = [numReasons]float64{LowBalance: 0.5, CardOutOfDate: 0.2, BankRefused: 0.3}
 	planShare   = [numPlans]float64{Basic: 0.7, Premium: 0.3}
 )
 
@@ -160,31 +160,31 @@ var (
 // through a discount offer.
 const discountRate = 0.25
 
-// fundsRetrySuccessByDay: with insufficient funds a retry rarely works at once
+// lowBalanceRetrySuccessByDay: with a low balance a retry rarely works at once
 // and works more often after a few days, as paydays arrive.
-var fundsRetrySuccessByDay = [DayCap]float64{0.05, 0.15, 0.30, 0.45, 0.50}
+var lowBalanceRetrySuccessByDay = [DayCap]float64{0.05, 0.15, 0.30, 0.45, 0.50}
 
 // retryDecay: each failed retry makes the issuer less willing to approve
 // the next one.
 var retryDecay = [maxTries + 1]float64{1, 0.7, 0.5}
 
 const (
-	expiredRetrySuccess = 0.03 // only when an account updater happens to have the new card
-	genericRetrySuccess = 0.30
-	updatedRetrySuccess = 0.90 // new payment details almost always work
+	outOfDateRetrySuccess = 0.03 // only when the bank has already passed on the new card's details
+	refusedRetrySuccess   = 0.30
+	updatedRetrySuccess   = 0.90 // new payment details almost always work
 )
 
 // Chance a reminder makes the customer update their payment details. Texts
-// are read more than emails; the owner of an expired card has the most
+// are read more than emails; the owner of an out-of-date card has the most
 // reason to act.
 var (
-	emailUpdate = [numReasons]float64{InsufficientFunds: 0.05, ExpiredCard: 0.35, GenericDecline: 0.20}
-	textUpdate  = [numReasons]float64{InsufficientFunds: 0.08, ExpiredCard: 0.50, GenericDecline: 0.30}
+	emailUpdate = [numReasons]float64{LowBalance: 0.05, CardOutOfDate: 0.35, BankRefused: 0.20}
+	textUpdate  = [numReasons]float64{LowBalance: 0.08, CardOutOfDate: 0.50, BankRefused: 0.30}
 )
 
 // Chance a customer pays at once through a discount offer; a hesitant
 // customer, one who has already ignored reminders, responds more.
-var discountPay = [numReasons]float64{InsufficientFunds: 0.04, ExpiredCard: 0.06, GenericDecline: 0.05}
+var discountPay = [numReasons]float64{LowBalance: 0.04, CardOutOfDate: 0.06, BankRefused: 0.05}
 
 const (
 	hesitantAfterMessages = 2
@@ -262,12 +262,12 @@ func payProbability(s State, a Action) float64 {
 		}
 		var base float64
 		switch s.Reason {
-		case InsufficientFunds:
-			base = fundsRetrySuccessByDay[s.Day]
-		case ExpiredCard:
-			base = expiredRetrySuccess
-		case GenericDecline:
-			base = genericRetrySuccess
+		case LowBalance:
+			base = lowBalanceRetrySuccessByDay[s.Day]
+		case CardOutOfDate:
+			base = outOfDateRetrySuccess
+		case BankRefused:
+			base = refusedRetrySuccess
 		}
 		return base * retryDecay[s.Tries]
 	case OfferDiscount:

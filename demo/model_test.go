@@ -91,8 +91,8 @@ func TestStateStringsAreDistinct(t *testing.T) {
 		}
 		seen[s.String()] = s
 	}
-	want := "day=3|tries=1|msgs=2|reason=insufficient_funds|plan=premium|card=new"
-	s := State{Day: 3, Tries: 1, Messages: 2, Reason: InsufficientFunds, Plan: Premium, CardUpdated: true}
+	want := "day=3|tries=1|msgs=2|reason=low_balance|plan=premium|card=new"
+	s := State{Day: 3, Tries: 1, Messages: 2, Reason: LowBalance, Plan: Premium, CardUpdated: true}
 	if got := s.String(); got != want {
 		t.Errorf("String() = %q, want %q", got, want)
 	}

@@ -1,6 +1,9 @@
 package demo
 
-import "slices"
+import (
+	"math"
+	"slices"
+)
 
 // Policy gives, for a state, the probability of each action, indexed in
 // Actions order.
@@ -124,4 +127,42 @@ func (v Values) BestActions(s State) []Action {
 		}
 	}
 	return best
+}
+
+// Fixed is the policy that takes action a in every state.
+func Fixed(a Action) Policy {
+	return func(State) []float64 {
+		p := make([]float64, numActions)
+		p[a] = 1
+		return p
+	}
+}
+
+// BestFixedAction is the action whose fixed policy is worth most from the
+// start distribution, with that value: the plainest rule an application
+// could follow without learning anything.
+func BestFixedAction(gamma float64) (Action, float64) {
+	best, value := Action(0), math.Inf(-1)
+	for _, a := range Actions() {
+		if v := Evaluate(Fixed(a), gamma).Start(); v > value {
+			best, value = a, v
+		}
+	}
+	return best, value
+}
+
+// EpsilonSoft is the policy that explore mode runs on a table q: in each
+// state, with epsilon(s) its exploration rate, each of the g actions tied
+// for the highest Q gets (1 - epsilon)/g + epsilon/|A| and every other
+// action epsilon/|A|. A state missing from q has every action tied.
+func EpsilonSoft(q map[State][]float64, epsilon func(State) float64) Policy {
+	greedy := Greedy(q)
+	return func(s State) []float64 {
+		eps := epsilon(s)
+		p := greedy(s)
+		for a := range p {
+			p[a] = (1-eps)*p[a] + eps/float64(numActions)
+		}
+		return p
+	}
 }

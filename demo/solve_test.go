@@ -154,25 +154,25 @@ func TestOptimalBeatsRandomClearly(t *testing.T) {
 }
 
 // The optimum follows the decline reason the way the scenario intends:
-// wait for payday after insufficient funds, get an expired card replaced
-// before retrying, retry a generic decline at once, and retry as soon as
-// the customer has entered new details.
+// wait for payday after a low balance, get an out-of-date card replaced
+// before retrying, retry at once when the bank refused without saying
+// why, and retry as soon as the customer has entered new details.
 func TestOptimalFirstActionsFollowTheReason(t *testing.T) {
 	opt := Optimal(0.99)
 	for p := range numPlans {
-		funds := opt.BestActions(State{Reason: InsufficientFunds, Plan: p})
-		if slices.Contains(funds, RetryCard) {
-			t.Errorf("%s, insufficient funds, day 0: optimal %v includes retry_card", p, funds)
+		lowBalance := opt.BestActions(State{Reason: LowBalance, Plan: p})
+		if slices.Contains(lowBalance, RetryCard) {
+			t.Errorf("%s, low balance, day 0: optimal %v includes retry_card", p, lowBalance)
 		}
-		expired := opt.BestActions(State{Reason: ExpiredCard, Plan: p})
-		for _, a := range expired {
+		outOfDate := opt.BestActions(State{Reason: CardOutOfDate, Plan: p})
+		for _, a := range outOfDate {
 			if a != EmailReminder && a != TextReminder {
-				t.Errorf("%s, expired card, day 0: optimal %v, want a reminder", p, expired)
+				t.Errorf("%s, card out of date, day 0: optimal %v, want a reminder", p, outOfDate)
 			}
 		}
-		generic := opt.BestActions(State{Reason: GenericDecline, Plan: p})
-		if !slices.Equal(generic, []Action{RetryCard}) {
-			t.Errorf("%s, generic decline, day 0: optimal %v, want retry_card", p, generic)
+		refused := opt.BestActions(State{Reason: BankRefused, Plan: p})
+		if !slices.Equal(refused, []Action{RetryCard}) {
+			t.Errorf("%s, bank refused, day 0: optimal %v, want retry_card", p, refused)
 		}
 		for r := range numReasons {
 			updated := State{Day: 1, Messages: 1, Reason: r, Plan: p, CardUpdated: true}
@@ -181,13 +181,13 @@ func TestOptimalFirstActionsFollowTheReason(t *testing.T) {
 			}
 		}
 	}
-	// Retrying an insufficient-funds decline pays off more as payday nears.
-	funds := func(day int) float64 {
-		s := State{Day: day, Reason: InsufficientFunds}
+	// Retrying after a low-balance decline pays off more as payday nears.
+	lowBalanceGain := func(day int) float64 {
+		s := State{Day: day, Reason: LowBalance}
 		return opt.Q[s][RetryCard] - opt.Q[s][Wait]
 	}
-	if !(funds(0) < 0 && funds(3) > 0) {
-		t.Errorf("retry minus wait, insufficient funds: day 0 %.3f (want < 0), day 3 %.3f (want > 0)", funds(0), funds(3))
+	if !(lowBalanceGain(0) < 0 && lowBalanceGain(3) > 0) {
+		t.Errorf("retry minus wait, low balance: day 0 %.3f (want < 0), day 3 %.3f (want > 0)", lowBalanceGain(0), lowBalanceGain(3))
 	}
 }
 
@@ -201,7 +201,7 @@ func TestGreedyOfOptimalQIsOptimal(t *testing.T) {
 }
 
 func TestGreedySplitsTiesEvenly(t *testing.T) {
-	s := State{Day: 2, Reason: ExpiredCard}
+	s := State{Day: 2, Reason: CardOutOfDate}
 	q := map[State][]float64{s: {1, 3, 0, 3, -1, 3}}
 	got := Greedy(q)(s)
 	want := []float64{0, 1.0 / 3, 0, 1.0 / 3, 0, 1.0 / 3}
@@ -211,5 +211,80 @@ func TestGreedySplitsTiesEvenly(t *testing.T) {
 	// A state the table lacks has every action tied.
 	if got := Greedy(q)(State{Day: 1}); !slices.Equal(got, Uniform(State{})) {
 		t.Errorf("unknown state: %v, want uniform", got)
+	}
+}
+
+// The value of every fixed action, computed exactly, must agree with the
+// mean of sampled returns (within 4 standard errors, as above).
+func TestFixedActionValuesMatchSampledReturns(t *testing.T) {
+	const gamma, n = 0.99, 50_000
+	rng := rand.New(rand.NewPCG(8, 1))
+	best, bestValue := BestFixedAction(gamma)
+	for _, a := range Actions() {
+		exact := Evaluate(Fixed(a), gamma).Start()
+		mean, sd := stat.MeanStdDev(sampleReturns(Fixed(a), gamma, n, rng), nil)
+		if stderr := sd / math.Sqrt(n); math.Abs(mean-exact) > 4*stderr {
+			t.Errorf("always %s: exact %.4f, sampled %.4f ± %.4f (standard error)", a, exact, mean, stderr)
+		}
+		if exact > bestValue {
+			t.Errorf("always %s is worth %.4f, more than the best fixed action %s at %.4f", a, exact, best, bestValue)
+		}
+	}
+	optimal, random := Optimal(gamma).Start(), RandomValue(gamma)
+	// No fixed action beats the optimum (it is optimal among all policies).
+	if bestValue > optimal {
+		t.Errorf("best fixed action %s %.4f above the optimum %.4f", best, bestValue, optimal)
+	}
+	t.Logf("best fixed action: always %s, %.3f; %.1f%% of the way from random %.3f to optimal %.3f",
+		best, bestValue, 100*(bestValue-random)/(optimal-random), random, optimal)
+}
+
+// Explore mode's policy: with epsilon 1 everywhere it is the uniformly
+// random policy, with epsilon 0 the greedy one; in between its exact value
+// must agree with sampled returns, and each state's probabilities follow
+// the epsilon-greedy rule, epsilon/|A| for every action and 1 - epsilon
+// more for the greedy one (Sutton & Barto, Reinforcement Learning: An
+// Introduction, 2nd ed., section 5.4; the 1 - epsilon split evenly over
+// tied greedy actions is the service's own rule), and sum to 1.
+func TestEpsilonSoftValue(t *testing.T) {
+	const gamma, n = 0.99, 100_000
+	q := Optimal(gamma).Q
+	constant := func(eps float64) func(State) float64 { return func(State) float64 { return eps } }
+	if got, want := Evaluate(EpsilonSoft(q, constant(1)), gamma).Start(), RandomValue(gamma); math.Abs(got-want) > 1e-12 {
+		t.Errorf("epsilon 1: %.15g, random %.15g", got, want)
+	}
+	if got, want := Evaluate(EpsilonSoft(q, constant(0)), gamma).Start(), Evaluate(Greedy(q), gamma).Start(); math.Abs(got-want) > 1e-12 {
+		t.Errorf("epsilon 0: %.15g, greedy %.15g", got, want)
+	}
+	byDay := func(s State) float64 { return 0.1 + 0.1*float64(s.Day) }
+	policy := EpsilonSoft(q, byDay)
+	for _, s := range States() {
+		var sum float64
+		greedy := Greedy(q)(s)
+		ties := 0.0
+		for _, g := range greedy {
+			if g > 0 {
+				ties++
+			}
+		}
+		for a, p := range policy(s) {
+			sum += p
+			want := byDay(s) / float64(numActions)
+			if greedy[a] > 0 {
+				want += (1 - byDay(s)) / ties
+			}
+			if math.Abs(p-want) > 1e-15 {
+				t.Fatalf("%s, %s: probability %v, want %v", s, Action(a), p, want)
+			}
+		}
+		if math.Abs(sum-1) > 1e-12 {
+			t.Fatalf("%s: probabilities sum to %v", s, sum)
+		}
+	}
+	rng := rand.New(rand.NewPCG(8, 2))
+	exact := Evaluate(policy, gamma).Start()
+	mean, sd := stat.MeanStdDev(sampleReturns(policy, gamma, n, rng), nil)
+	if stderr := sd / math.Sqrt(n); math.Abs(mean-exact) > 4*stderr {
+		t.Errorf("epsilon by day: exact %.4f, sampled %.4f ± %.4f (standard error)", exact, mean, stderr)
 	}
 }

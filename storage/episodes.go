@@ -59,10 +59,10 @@ func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Epi
 			return fmt.Errorf("ingest lock: %w", err)
 		}
 		_, err = tx.CopyFrom(ctx, pgx.Identifier{"episodes"},
-			[]string{"policy_id", "episode_id", "states", "actions", "rewards", "probabilities"},
+			[]string{"policy_id", "episode_id", "states", "actions", "rewards", "probabilities", "allowed"},
 			pgx.CopyFromSlice(len(fresh), func(i int) ([]any, error) {
 				r := fresh[i]
-				return []any{p.ID, r.ID, r.States, r.Actions, r.Rewards, r.Probabilities}, nil
+				return []any{p.ID, r.ID, r.States, r.Actions, r.Rewards, r.Probabilities, r.Allowed}, nil
 			}))
 		if err != nil {
 			return fmt.Errorf("store episodes: %w", err)

@@ -20,22 +20,37 @@ const ChannelJobs = "qtally_jobs"
 // counts its episodes and those carrying behaviour probabilities.
 func resolveSpan(ctx context.Context, q pgx.Tx, policyID int32, w training.EpisodeWindow) (training.EpisodeSpan, int64, error) {
 	span := training.EpisodeSpan{Since: w.Since, Until: w.Until}
+	// after is the training position of the window's snapshot: its table
+	// learned from no episode of a later seq.
+	var after int64
+	if w.AfterSnapshot != "" {
+		err := q.QueryRow(ctx, `SELECT trained_through_seq FROM snapshots WHERE policy_id = $1 AND name = $2`, policyID, w.AfterSnapshot).Scan(&after)
+		if errors.Is(err, pgx.ErrNoRows) {
+			return span, 0, training.NotFoundf("window.after_snapshot: the policy has no snapshot named %q", w.AfterSnapshot)
+		}
+		if err != nil {
+			return span, 0, fmt.Errorf("read snapshot: %w", err)
+		}
+	}
 	var withProbabilities int64
 	var row pgx.Row
 	if w.Last > 0 {
 		row = q.QueryRow(ctx, `
 			SELECT coalesce(min(seq), 0), coalesce(max(seq), 0), count(*), count(*) FILTER (WHERE has_probabilities)
 			FROM (SELECT seq, probabilities IS NOT NULL AS has_probabilities FROM episodes
-			      WHERE policy_id = $1 ORDER BY seq DESC LIMIT $2) last`, policyID, w.Last)
+			      WHERE policy_id = $1 AND seq > $3 ORDER BY seq DESC LIMIT $2) last`, policyID, w.Last, after)
 	} else {
 		row = q.QueryRow(ctx, `
 			SELECT coalesce(min(seq), 0), coalesce(max(seq), 0), count(*), count(*) FILTER (WHERE probabilities IS NOT NULL)
-			FROM episodes WHERE policy_id = $1
+			FROM episodes WHERE policy_id = $1 AND seq > $4
 			  AND ($2::timestamptz IS NULL OR received_at >= $2) AND ($3::timestamptz IS NULL OR received_at < $3)`,
-			policyID, w.Since, w.Until)
+			policyID, w.Since, w.Until, after)
 	}
 	if err := row.Scan(&span.FirstSeq, &span.LastSeq, &span.Episodes, &withProbabilities); err != nil {
 		return span, 0, fmt.Errorf("resolve episode window: %w", err)
+	}
+	if span.Episodes == 0 && w.AfterSnapshot != "" {
+		return span, 0, training.Invalid(-1, -1, "window", "holds no stored episodes: none arrived after snapshot %q's table was trained", w.AfterSnapshot)
 	}
 	if span.Episodes == 0 {
 		return span, 0, training.Invalid(-1, -1, "window", "holds no stored episodes")
@@ -43,7 +58,23 @@ func resolveSpan(ctx context.Context, q pgx.Tx, policyID int32, w training.Episo
 	return span, withProbabilities, nil
 }
 
-// queueJob stores a job and wakes the runners.
+// replayedFromSeq is where the replays of a policy's episodes into another
+// policy began, the smallest first seq of their windows; 0 when none did.
+func replayedFromSeq(ctx context.Context, tx pgx.Tx, source, target int32) (int64, error) {
+	var first int64
+	err := tx.QueryRow(ctx, `
+		SELECT coalesce(min((spec->'episodes'->>'first_seq')::bigint), 0) FROM jobs
+		WHERE policy_id = $1 AND kind = 'replay' AND (spec->>'target_policy_id')::integer = $2`, source, target).Scan(&first)
+	if err != nil {
+		return 0, fmt.Errorf("read replays: %w", err)
+	}
+	return first, nil
+}
+
+// queueJob stores a job and wakes the runners. Callers hold the policy's
+// pin lock from resolving the job's window to the commit, so that pruning
+// either ran before the window was resolved or sees the job and keeps its
+// episodes.
 func queueJob(ctx context.Context, tx pgx.Tx, policyID int32, kind training.JobKind, spec any) (int64, error) {
 	doc, err := json.Marshal(spec)
 	if err != nil {
@@ -73,7 +104,7 @@ func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.E
 			return fmt.Errorf("read policy: %w", err)
 		}
 		tp := p
-		if name := req.Target.Policy; name != "" && name != policy {
+		if name := string(req.Target.Policy); name != "" && name != policy {
 			tp, err = scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1`, name))
 			if errors.Is(err, pgx.ErrNoRows) {
 				return training.NotFoundf("no target policy named %q", name)
@@ -89,6 +120,9 @@ func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.E
 		if !slices.Equal(h.actions, p.Actions) {
 			return training.Conflictf("the target table lists the actions %q, policy %q's episodes %q: a target must have the same actions in the same order", h.actions, p.Name, p.Actions)
 		}
+		if err := lockPins(ctx, tx, p.ID); err != nil {
+			return err
+		}
 		span, usable, err := resolveSpan(ctx, tx, p.ID, req.Window)
 		if err != nil {
 			return err
@@ -96,8 +130,13 @@ func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.E
 		if usable == 0 {
 			return training.Invalid(-1, -1, "window", "none of its %d episodes carries behaviour probabilities, so none says anything about another policy; post steps with \"probability\" (the chance the behaviour gave the action taken)", span.Episodes)
 		}
-		id, err = queueJob(ctx, tx, p.ID, training.EvaluationJobKind,
-			training.EvaluationJob{Request: req, PolicyID: p.ID, TargetPolicyID: tp.ID, Episodes: span})
+		job := training.EvaluationJob{Request: req, PolicyID: p.ID, TargetPolicyID: tp.ID, Episodes: span}
+		if tp.ID != p.ID {
+			if job.ReplayedFromSeq, err = replayedFromSeq(ctx, tx, p.ID, tp.ID); err != nil {
+				return err
+			}
+		}
+		id, err = queueJob(ctx, tx, p.ID, training.EvaluationJobKind, job)
 		return err
 	})
 	if err != nil {
@@ -122,6 +161,9 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		if err != nil {
 			return err
 		}
+		if err := lockPins(ctx, tx, p.ID); err != nil {
+			return err
+		}
 		span, _, err := resolveSpan(ctx, tx, p.ID, req.Window)
 		if err != nil {
 			return err
@@ -130,7 +172,7 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		err = tx.QueryRow(ctx, `
 			INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q)
 			VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9) RETURNING policy_id`,
-			req.Target, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ).
+			string(req.Target), s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ).
 			Scan(&targetID)
 		if isUniqueViolation(err) {
 			return training.Conflictf("a policy named %q exists already; a replay creates a new policy", req.Target)
@@ -318,7 +360,7 @@ func (db *DB) ReadEpisodes(ctx context.Context, policyID int32, span training.Ep
 	return db.readTx(ctx, func(tx pgx.Tx) error {
 		_, err := tx.Exec(ctx, `
 			DECLARE window_episodes NO SCROLL CURSOR FOR
-			SELECT seq, received_at, episode_id, states, actions, rewards, probabilities FROM episodes
+			SELECT seq, received_at, episode_id, states, actions, rewards, probabilities, allowed FROM episodes
 			WHERE policy_id = $1 AND seq >= $2 AND seq <= $3
 			  AND ($4::timestamptz IS NULL OR received_at >= $4) AND ($5::timestamptz IS NULL OR received_at < $5)
 			ORDER BY seq`, policyID, span.FirstSeq, span.LastSeq, span.Since, span.Until)
@@ -332,7 +374,7 @@ func (db *DB) ReadEpisodes(ctx context.Context, policyID int32, span training.Ep
 			}
 			page, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.StoredEpisode, error) {
 				var ep training.StoredEpisode
-				err := r.Scan(&ep.Seq, &ep.ReceivedAt, &ep.ID, &ep.States, &ep.Actions, &ep.Rewards, &ep.Probabilities)
+				err := r.Scan(&ep.Seq, &ep.ReceivedAt, &ep.ID, &ep.States, &ep.Actions, &ep.Rewards, &ep.Probabilities, &ep.Allowed)
 				return ep, err
 			})
 			if err != nil {
@@ -356,7 +398,7 @@ func (db *DB) ClearTable(ctx context.Context, policyID int32) error {
 		if err := lockTraining(ctx, tx, policyID); err != nil {
 			return err
 		}
-		if _, _, err := replaceTable(ctx, tx, policyID); err != nil {
+		if _, _, _, err := replaceTable(ctx, tx, policyID, nil); err != nil {
 			return err
 		}
 		return notifyPolicy(ctx, tx, policyID)
@@ -383,7 +425,7 @@ func (db *DB) LearnBatch(ctx context.Context, policyID int32, episodes []trainin
 		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}
 		result = learn(in)
 		// No episodes of this policy to mark: they belong to the source.
-		revision, err = writeBatch(ctx, tx, policyID, nil, result, db.history, training.SummarizeBatch(in, result))
+		revision, err = writeBatch(ctx, tx, policyID, nil, lastSeq(episodes), result, db.history, training.SummarizeBatch(in, result))
 		return err
 	})
 	return revision, result, err

@@ -37,6 +37,20 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 	var p training.Policy
 	var created bool
 	put := func(tx pgx.Tx) error {
+		// A new initial value changes what the table means, so a settings
+		// change waits for the policy's training lock (taken before the row
+		// lock, in the order training takes them): no batch learns under
+		// one initial value and writes under another.
+		var id int32
+		err := tx.QueryRow(ctx, `SELECT policy_id FROM policies WHERE name = $1`, name).Scan(&id)
+		switch {
+		case err == nil:
+			if err := lockTraining(ctx, tx, id); err != nil {
+				return err
+			}
+		case !errors.Is(err, pgx.ErrNoRows):
+			return fmt.Errorf("read policy: %w", err)
+		}
 		existing, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1 FOR UPDATE`, name))
 		switch {
 		case errors.Is(err, pgx.ErrNoRows):
@@ -63,12 +77,20 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 					return training.Conflictf("policy %q has stored episodes or learned values, so its actions cannot change (stored steps refer to actions by position); create a new policy instead", name)
 				}
 			}
+			// Pairs never updated are worth the initial value, so a new one
+			// (or new actions) is a new table: a new revision names it, and
+			// a new epoch makes every in-memory copy reload it whole.
+			rewrite := 0
+			if existing.InitialQ != s.InitialQ || !slices.Equal(existing.Actions, s.Actions) {
+				rewrite = 1
+			}
 			p, err = scanPolicy(tx.QueryRow(ctx, `
 				UPDATE policies SET actions = $2, gamma = $3, alpha = $4, epsilon = $5, epsilon_min = $6,
-					epsilon_decay_visits = $7, visit = $8, initial_q = $9, updated_at = now()
+					epsilon_decay_visits = $7, visit = $8, initial_q = $9, updated_at = now(),
+					revision = revision + $10, table_epoch = table_epoch + $10
 				WHERE policy_id = $1
 				RETURNING `+policyColumns,
-				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ))
+				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, rewrite))
 			if err != nil {
 				return fmt.Errorf("update policy: %w", err)
 			}

@@ -23,11 +23,11 @@ func (db *DB) readTx(ctx context.Context, fn func(pgx.Tx) error) error {
 	return mapError(fn(tx))
 }
 
-const snapshotColumns = `name, created_at, revision, actions, initial_q, states, pairs`
+const snapshotColumns = `name, created_at, revision, actions, initial_q, states, pairs, trained_through_seq`
 
 func scanSnapshot(row pgx.Row) (training.Snapshot, error) {
 	var s training.Snapshot
-	err := row.Scan(&s.Name, &s.CreatedAt, &s.Revision, &s.Actions, &s.InitialQ, &s.States, &s.Pairs)
+	err := row.Scan(&s.Name, &s.CreatedAt, &s.Revision, &s.Actions, &s.InitialQ, &s.States, &s.Pairs, &s.TrainedThroughSeq)
 	return s, err
 }
 
@@ -41,8 +41,8 @@ func (db *DB) CreateSnapshot(ctx context.Context, policy, name string) (training
 	}
 	s, err := scanSnapshot(db.pool.QueryRow(ctx, `
 		WITH snap AS (
-			INSERT INTO snapshots (policy_id, name, revision, actions, initial_q, states, pairs)
-			SELECT p.policy_id, $2, p.revision, p.actions, p.initial_q,
+			INSERT INTO snapshots (policy_id, name, revision, actions, initial_q, trained_through_seq, states, pairs)
+			SELECT p.policy_id, $2, p.revision, p.actions, p.initial_q, p.trained_through_seq,
 			       (SELECT count(DISTINCT state) FROM q_values q WHERE q.policy_id = p.policy_id),
 			       (SELECT count(*) FROM q_values q WHERE q.policy_id = p.policy_id)
 			FROM policies p WHERE p.policy_id = $1
@@ -121,28 +121,30 @@ func (db *DB) DeleteSnapshot(ctx context.Context, policy, name string) error {
 	})
 }
 
-// tableHeader is what a table's rows mean: its actions, initial value and
-// revision, and where its rows are (snapshot 0 is the live table).
+// tableHeader is what a table's rows mean: its actions, initial value,
+// revision and training position, and where its rows are (snapshot 0 is
+// the live table).
 type tableHeader struct {
-	actions    []string
-	initialQ   float64
-	revision   int64
-	snapshotID int64
+	actions        []string
+	initialQ       float64
+	revision       int64
+	trainedThrough int64
+	snapshotID     int64
 }
 
 func readTableHeader(ctx context.Context, tx pgx.Tx, p training.Policy, table string) (tableHeader, error) {
 	if table == training.LiveTable {
 		h := tableHeader{}
-		err := tx.QueryRow(ctx, `SELECT actions, initial_q, revision FROM policies WHERE policy_id = $1`, p.ID).
-			Scan(&h.actions, &h.initialQ, &h.revision)
+		err := tx.QueryRow(ctx, `SELECT actions, initial_q, revision, trained_through_seq FROM policies WHERE policy_id = $1`, p.ID).
+			Scan(&h.actions, &h.initialQ, &h.revision, &h.trainedThrough)
 		if err != nil {
 			return h, fmt.Errorf("read policy: %w", err)
 		}
 		return h, nil
 	}
 	var h tableHeader
-	err := tx.QueryRow(ctx, `SELECT snapshot_id, actions, initial_q, revision FROM snapshots WHERE policy_id = $1 AND name = $2`, p.ID, table).
-		Scan(&h.snapshotID, &h.actions, &h.initialQ, &h.revision)
+	err := tx.QueryRow(ctx, `SELECT snapshot_id, actions, initial_q, revision, trained_through_seq FROM snapshots WHERE policy_id = $1 AND name = $2`, p.ID, table).
+		Scan(&h.snapshotID, &h.actions, &h.initialQ, &h.revision, &h.trainedThrough)
 	if errors.Is(err, pgx.ErrNoRows) {
 		return h, noSnapshot(p.Name, table)
 	}
@@ -212,6 +214,7 @@ func (db *DB) LoadTable(ctx context.Context, policyID int32, table string) (*tra
 			return err
 		}
 		t = training.NewQTable(h.actions, h.initialQ)
+		t.Revision, t.TrainedThroughSeq = h.revision, h.trainedThrough
 		return forEachTableRow(ctx, tx, p.ID, h, t.Set)
 	})
 	return t, err
@@ -278,20 +281,25 @@ func lockedPolicy(ctx context.Context, tx pgx.Tx, name string) (training.Policy,
 
 // replaceTable empties a policy's table and starts a new revision and
 // epoch, which the rows written next carry; the caller holds the training
-// lock. Readers of the change feed reload on the new epoch. It returns the
-// revision and the transaction's time.
-func replaceTable(ctx context.Context, tx pgx.Tx, policyID int32) (int64, time.Time, error) {
+// lock. Readers of the change feed reload on the new epoch. The new table's
+// initial value, when given, becomes the policy's: pairs the table lacks
+// mean that value. It returns the revision, the initial value in force and
+// the transaction's time.
+func replaceTable(ctx context.Context, tx pgx.Tx, policyID int32, initialQ *float64) (int64, float64, time.Time, error) {
 	if _, err := tx.Exec(ctx, `DELETE FROM q_values WHERE policy_id = $1`, policyID); err != nil {
-		return 0, time.Time{}, fmt.Errorf("clear table: %w", err)
+		return 0, 0, time.Time{}, fmt.Errorf("clear table: %w", err)
 	}
 	var revision int64
+	var initial float64
 	var now time.Time
-	err := tx.QueryRow(ctx, `UPDATE policies SET revision = revision + 1, table_epoch = table_epoch + 1
-		WHERE policy_id = $1 RETURNING revision, now()`, policyID).Scan(&revision, &now)
+	err := tx.QueryRow(ctx, `UPDATE policies SET revision = revision + 1, table_epoch = table_epoch + 1,
+			initial_q = coalesce($2, initial_q),
+			updated_at = CASE WHEN coalesce($2, initial_q) <> initial_q THEN now() ELSE updated_at END
+		WHERE policy_id = $1 RETURNING revision, initial_q, now()`, policyID, initialQ).Scan(&revision, &initial, &now)
 	if err != nil {
-		return 0, now, fmt.Errorf("bump revision: %w", err)
+		return 0, 0, now, fmt.Errorf("bump revision: %w", err)
 	}
-	return revision, now, nil
+	return revision, initial, now, nil
 }
 
 func notifyPolicy(ctx context.Context, tx pgx.Tx, policyID int32) error {
@@ -317,8 +325,12 @@ func (db *DB) RestoreSnapshot(ctx context.Context, policy, snapshot string) (tra
 		if !slices.Equal(h.actions, p.Actions) {
 			return training.Conflictf("snapshot %q lists the actions %q, the policy now %q: its rows would name other actions", snapshot, h.actions, p.Actions)
 		}
-		if ch.Revision, _, err = replaceTable(ctx, tx, p.ID); err != nil {
+		if ch.Revision, ch.InitialQ, _, err = replaceTable(ctx, tx, p.ID, &h.initialQ); err != nil {
 			return err
+		}
+		// The live table has now learned from what the snapshot had.
+		if _, err := tx.Exec(ctx, `UPDATE policies SET trained_through_seq = $2 WHERE policy_id = $1`, p.ID, h.trainedThrough); err != nil {
+			return fmt.Errorf("restore training position: %w", err)
 		}
 		tag, err := tx.Exec(ctx, `
 			INSERT INTO q_values (policy_id, state, action, q, visits, last_delta, updated_at, revision)
@@ -334,7 +346,7 @@ func (db *DB) RestoreSnapshot(ctx context.Context, policy, snapshot string) (tra
 }
 
 // ImportTable implements training.TableStore.
-func (db *DB) ImportTable(ctx context.Context, policy string, rows []training.TableRow) (training.TableChange, error) {
+func (db *DB) ImportTable(ctx context.Context, policy string, rows []training.TableRow, initialQ *float64) (training.TableChange, error) {
 	ch := training.TableChange{Policy: policy, Source: "import"}
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		p, err := lockedPolicy(ctx, tx, policy)
@@ -347,7 +359,7 @@ func (db *DB) ImportTable(ctx context.Context, policy string, rows []training.Ta
 			return err
 		}
 		var now time.Time
-		if ch.Revision, now, err = replaceTable(ctx, tx, p.ID); err != nil {
+		if ch.Revision, ch.InitialQ, now, err = replaceTable(ctx, tx, p.ID, initialQ); err != nil {
 			return err
 		}
 		n, err := tx.CopyFrom(ctx, pgx.Identifier{"q_values"},

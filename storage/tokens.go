@@ -40,7 +40,8 @@ func collectTokens(rows pgx.Rows, err error) ([]training.Token, error) {
 	return tokens, nil
 }
 
-// CreateToken stores a new token with the digest of its secret.
+// CreateToken stores a new token with the digest of its secret, and says
+// so in the audit log.
 func (db *DB) CreateToken(ctx context.Context, spec training.TokenSpec, digest []byte) (training.Token, error) {
 	scopes := make([]string, len(spec.Scopes))
 	for i, s := range spec.Scopes {
@@ -61,6 +62,9 @@ func (db *DB) CreateToken(ctx context.Context, spec training.TokenSpec, digest [
 		if err != nil {
 			return fmt.Errorf("insert token: %w", err)
 		}
+		if err := insertAudit(ctx, tx, commandLineAudit("create", t.ID, 201)); err != nil {
+			return err
+		}
 		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::bigint::text)`, ChannelTokens, t.ID)
 		return err
 	})
@@ -78,7 +82,7 @@ func (db *DB) ActiveTokens(ctx context.Context) ([]training.Token, error) {
 }
 
 // RevokeToken marks a token revoked and returns when it was; revoking it
-// again keeps the first time.
+// again keeps the first time. Each revocation is written to the audit log.
 func (db *DB) RevokeToken(ctx context.Context, id int64) (time.Time, error) {
 	var at time.Time
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
@@ -89,6 +93,9 @@ func (db *DB) RevokeToken(ctx context.Context, id int64) (time.Time, error) {
 		}
 		if err != nil {
 			return fmt.Errorf("revoke token: %w", err)
+		}
+		if err := insertAudit(ctx, tx, commandLineAudit("revoke", id, 200)); err != nil {
+			return err
 		}
 		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::bigint::text)`, ChannelTokens, id)
 		return err

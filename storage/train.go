@@ -70,7 +70,7 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 		}
 		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}
 		result := learn(in)
-		revision, err := writeBatch(ctx, tx, policyID, episodes, result, db.history, training.SummarizeBatch(in, result))
+		revision, err := writeBatch(ctx, tx, policyID, episodes, lastSeq(episodes), result, db.history, training.SummarizeBatch(in, result))
 		if err != nil {
 			return err
 		}
@@ -88,6 +88,8 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 	return report, true, nil
 }
 
+// untrainedEpisodes reads what learning uses: not the allowed sets, which
+// only evaluation needs.
 func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, limit int) ([]training.StoredEpisode, error) {
 	rows, err := tx.Query(ctx, `
 		SELECT seq, received_at, episode_id, states, actions, rewards, probabilities
@@ -133,10 +135,20 @@ func estimatesOfStates(ctx context.Context, tx pgx.Tx, policyID int32, states []
 // API process further behind than that reloads its copy whole.
 const changesKept = 1000
 
+// lastSeq is the largest arrival number of the episodes (0 for none).
+func lastSeq(episodes []training.StoredEpisode) int64 {
+	var last int64
+	for _, ep := range episodes {
+		last = max(last, ep.Seq)
+	}
+	return last
+}
+
 // writeBatch writes every updated pair with one upsert, marks the episodes
-// trained, adds the batch to the training history and announces the new
-// revision, in one round trip.
-func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []training.StoredEpisode, res training.BatchResult,
+// trained, moves the table's training position to trainedThrough (the
+// largest seq the batch learned from), adds the batch to the training
+// history and announces the new revision, in one round trip.
+func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []training.StoredEpisode, trainedThrough int64, res training.BatchResult,
 	history HistorySettings, summary training.BatchSummary) (int64, error) {
 	n := len(res.Pairs)
 	states, actions := make([]string, n), make([]int16, n)
@@ -150,7 +162,8 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []train
 	}
 	var revision int64
 	batch := &pgx.Batch{}
-	batch.Queue(`UPDATE policies SET revision = revision + 1, last_trained_at = now() WHERE policy_id = $1 RETURNING revision`, policyID).
+	batch.Queue(`UPDATE policies SET revision = revision + 1, last_trained_at = now(),
+		trained_through_seq = greatest(trained_through_seq, $2) WHERE policy_id = $1 RETURNING revision`, policyID, trainedThrough).
 		QueryRow(func(row pgx.Row) error { return row.Scan(&revision) })
 	// One statement records the changed keys for readers (q_changes) and
 	// upserts the pairs, so the key arrays cross the wire once.

@@ -59,16 +59,7 @@ var SharedRandom Random = sharedRandom{}
 // Ties at the top are split uniformly at random. It does not allocate.
 func Choose(q []float64, mode Mode, epsilon float64, rng Random) Choice {
 	n := len(q)
-	top := q[0]
-	ties := 0
-	for _, v := range q {
-		switch {
-		case v > top:
-			top, ties = v, 1
-		case v == top:
-			ties++
-		}
-	}
+	top, ties := greedyTop(q)
 	greedy := nthTie(q, top, rng.IntN(ties))
 	chosen := greedy
 	if mode == Explore && epsilon > 0 && rng.Float64() < epsilon {
@@ -84,6 +75,46 @@ func Choose(q []float64, mode Mode, epsilon float64, rng Random) Choice {
 		Explored:    !isGreedy,
 		Greedy:      greedy,
 	}
+}
+
+// greedyTop is the highest of the values and how many share it.
+func greedyTop(q []float64) (top float64, ties int) {
+	top = q[0]
+	for _, v := range q {
+		switch {
+		case v > top:
+			top, ties = v, 1
+		case v == top:
+			ties++
+		}
+	}
+	return top, ties
+}
+
+// ProbabilitiesAmong gives, for every action of a state with values q (by
+// action index), the chance that Choose gives it when it chooses among the
+// allowed actions only (every action when allowed is nil) with this mode
+// and epsilon: the greedy ones counted among the allowed, epsilon spread
+// over the allowed count, 0 outside the set. Evaluation takes a target's
+// probabilities from here, so they are the ones choose reports.
+func ProbabilitiesAmong(q []float64, allowed ActionSet, mode Mode, epsilon float64) []float64 {
+	among := make([]float64, 0, len(q))
+	for a, v := range q {
+		if allowed == nil || allowed.Has(int16(a)) {
+			among = append(among, v)
+		}
+	}
+	probs := make([]float64, len(q))
+	if len(among) == 0 {
+		return probs
+	}
+	top, ties := greedyTop(among)
+	for a, v := range q {
+		if allowed == nil || allowed.Has(int16(a)) {
+			probs[a] = ActionProbability(mode, epsilon, len(among), ties, v == top)
+		}
+	}
+	return probs
 }
 
 func nthTie(q []float64, top float64, k int) int {

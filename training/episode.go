@@ -15,6 +15,11 @@ type Step struct {
 	// Probability is the chance the behaviour policy gave this action; it
 	// makes off-policy evaluation possible. Nil when the client did not say.
 	Probability *float64 `json:"probability,omitempty"`
+	// Allowed is the set of actions the step's action was chosen from (the
+	// choose request's allowed, as the choose answer returns it), so that
+	// evaluation can tell what a target would have done among them. Nil
+	// when the client did not say: then every action counts as allowed.
+	Allowed []string `json:"allowed,omitempty"`
 }
 
 // Episode is one finished episode as the client reports it.
@@ -77,6 +82,10 @@ type EpisodeRecord struct {
 	// Probabilities holds 0 for a step without one, and is nil when no step
 	// had one (0 is never a valid probability of an action that was taken).
 	Probabilities []float64
+	// Allowed holds each step's allowed set (an ActionSet of
+	// ActionSetWidth(actions) bytes a step, AllowedAt reads it), all zero
+	// for a step without one, and is nil when no step had one.
+	Allowed []byte
 }
 
 // StoredEpisode is an episode read back for training or evaluation.
@@ -100,6 +109,8 @@ func EncodeEpisodes(p Settings, actionIndex map[string]int16, episodes []Episode
 	}
 	seen := make(map[string]int, len(episodes))
 	totalSteps := 0
+	width := ActionSetWidth(len(p.Actions))
+	allowed := allowedSets(episodes, width, lim.MaxSteps)
 	for i, ep := range episodes {
 		switch {
 		case ep.ID == "":
@@ -142,12 +153,73 @@ func EncodeEpisodes(p Settings, actionIndex map[string]int16, episodes []Episode
 			if pr := st.Probability; pr != nil && !(*pr > 0 && *pr <= 1) {
 				l.add(i, j, "probability", "must be in (0, 1], got %v", *pr)
 			}
+			if st.Allowed != nil {
+				checkAllowed(&l, i, j, st, actionIndex, ActionSet(allowed[i][j*width:(j+1)*width]))
+			}
 		}
 	}
 	if err := l.err(); err != nil {
 		return nil, err
 	}
-	return encode(actionIndex, episodes, totalSteps), nil
+	records := encode(actionIndex, episodes, totalSteps)
+	for i := range allowed {
+		records[i].Allowed = allowed[i]
+	}
+	return records, nil
+}
+
+// allowedSets makes room for the allowed sets of every episode that has a
+// step with one, in one backing array: width bytes a step. Episodes without
+// any (and those over the step limit, which are refused) get nil; so does
+// the whole batch when no step has a set.
+func allowedSets(episodes []Episode, width, maxSteps int) [][]byte {
+	steps := 0
+	for _, ep := range episodes {
+		if len(ep.Steps) <= maxSteps && anyAllowed(ep.Steps) {
+			steps += len(ep.Steps)
+		}
+	}
+	if steps == 0 {
+		return nil
+	}
+	backing := make([]byte, steps*width)
+	sets := make([][]byte, len(episodes))
+	for i, ep := range episodes {
+		if len(ep.Steps) <= maxSteps && anyAllowed(ep.Steps) {
+			n := len(ep.Steps) * width
+			sets[i], backing = backing[:n:n], backing[n:]
+		}
+	}
+	return sets
+}
+
+func anyAllowed(steps []Step) bool {
+	for _, st := range steps {
+		if st.Allowed != nil {
+			return true
+		}
+	}
+	return false
+}
+
+// checkAllowed validates a step's allowed set and writes it into set.
+func checkAllowed(l *problemList, i, j int, st Step, actionIndex map[string]int16, set ActionSet) {
+	if len(st.Allowed) == 0 {
+		l.add(i, j, "allowed", "must name at least one action when given")
+		return
+	}
+	for k, name := range st.Allowed {
+		a, ok := actionIndex[name]
+		switch {
+		case !ok:
+			l.add(i, j, fmt.Sprintf("allowed[%d]", k), "%q is not one of the policy's actions", truncate(name, 64))
+		case !set.add(a):
+			l.add(i, j, fmt.Sprintf("allowed[%d]", k), "repeats %q", truncate(name, 64))
+		}
+	}
+	if a, ok := actionIndex[st.Action]; ok && !set.Has(a) {
+		l.add(i, j, "allowed", "%q, the step's action, is not in it: a step's action must be one of those it was chosen from", truncate(st.Action, 64))
+	}
 }
 
 // encode packs valid episodes into shared backing arrays: one allocation per

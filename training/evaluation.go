@@ -10,11 +10,14 @@ import (
 
 // EpisodeWindow selects a policy's stored episodes: the last Last of them,
 // or those received in [Since, Until) (either end may be open). The zero
-// window is every stored episode.
+// window is every stored episode. AfterSnapshot, with either, keeps only
+// the episodes that snapshot's table has not learned from: those received
+// after it was taken and those still waiting for training then.
 type EpisodeWindow struct {
-	Last  int64      `json:"last,omitempty"`
-	Since *time.Time `json:"since,omitempty"`
-	Until *time.Time `json:"until,omitempty"`
+	Last          int64      `json:"last,omitempty"`
+	Since         *time.Time `json:"since,omitempty"`
+	Until         *time.Time `json:"until,omitempty"`
+	AfterSnapshot string     `json:"after_snapshot,omitempty"`
 }
 
 // MaxWindowEpisodes bounds the "last" count of a window.
@@ -37,11 +40,15 @@ func (w EpisodeWindow) check(l *problemList) {
 	if w.Since != nil && w.Until != nil && !w.Since.Before(*w.Until) {
 		l.add(-1, -1, "window.until", "must be later than since")
 	}
+	if w.AfterSnapshot != "" && ValidateSnapshotName(w.AfterSnapshot) != nil {
+		l.add(-1, -1, "window.after_snapshot", "must name a snapshot of the policy")
+	}
 }
 
 // EpisodeSpan is a window resolved, when a job is posted, to the arrival
 // sequence numbers it covers, so that a job run again reads the same
-// episodes (less any pruned meanwhile) however many arrived since.
+// episodes however many arrived since. Pruning keeps the span's episodes
+// while the job is queued or running.
 type EpisodeSpan struct {
 	FirstSeq int64      `json:"first_seq"`
 	LastSeq  int64      `json:"last_seq"`
@@ -56,7 +63,7 @@ type EpisodeSpan struct {
 type EvaluationTarget struct {
 	// Policy owns the table; empty means the policy whose episodes are read.
 	// Its actions must be the same, in the same order.
-	Policy string `json:"policy,omitempty"`
+	Policy PolicyName `json:"policy,omitempty"`
 	// Table is LiveTable or a snapshot's name.
 	Table string `json:"table"`
 	// Mode is Greedy, or Explore for the epsilon-soft version.
@@ -109,7 +116,7 @@ func (r EvaluationRequest) WithDefaults() EvaluationRequest {
 func (r EvaluationRequest) Validate() error {
 	var l problemList
 	if r.Target.Policy != "" {
-		if ValidatePolicyName(r.Target.Policy) != nil {
+		if ValidatePolicyName(string(r.Target.Policy)) != nil {
 			l.add(-1, -1, "target.policy", "is not a valid policy name")
 		}
 	}
@@ -145,6 +152,22 @@ type EvaluationJob struct {
 	PolicyID       int32             `json:"policy_id"`
 	TargetPolicyID int32             `json:"target_policy_id"`
 	Episodes       EpisodeSpan       `json:"episodes"`
+	// ReplayedFromSeq, for a target of another policy, is where replays of
+	// this policy's episodes into it began (the smallest first seq of
+	// their windows); 0 when none did, and the target never learned from
+	// these episodes.
+	ReplayedFromSeq int64 `json:"replayed_from_seq,omitempty"`
+}
+
+// EvaluatedTable names the table an evaluation judged, as it was read.
+type EvaluatedTable struct {
+	Policy string `json:"policy"`
+	// Name is LiveTable or the snapshot's name.
+	Name     string  `json:"name"`
+	Revision int64   `json:"revision"`
+	InitialQ float64 `json:"initial_q"`
+	// TrainedThroughSeq is the seq of the last episode trained into it.
+	TrainedThroughSeq int64 `json:"trained_through_seq"`
 }
 
 // IntervalEstimate is one estimator's value and its bootstrap interval.
@@ -167,14 +190,26 @@ type EvaluationResult struct {
 	// EpisodesRead were in the window; EpisodesUsed carried a behaviour
 	// probability at every step; ZeroWeightEpisodes (among those used) took
 	// an action the target never takes.
-	EpisodesRead                 int64    `json:"episodes_read"`
-	EpisodesUsed                 int64    `json:"episodes_used"`
-	EpisodesWithoutProbabilities int64    `json:"episodes_without_probabilities"`
-	ZeroWeightEpisodes           int64    `json:"zero_weight_episodes"`
-	Level                        float64  `json:"level"`
-	Resamples                    int      `json:"resamples"`
-	Seed                         int64    `json:"seed"`
-	Notes                        []string `json:"notes"`
+	EpisodesRead                 int64 `json:"episodes_read"`
+	EpisodesUsed                 int64 `json:"episodes_used"`
+	EpisodesWithoutProbabilities int64 `json:"episodes_without_probabilities"`
+	ZeroWeightEpisodes           int64 `json:"zero_weight_episodes"`
+	// EpisodesTrainedIntoTarget counts the episodes read that the target
+	// table had already learned from: on those it is judged in-sample,
+	// which flatters it.
+	EpisodesTrainedIntoTarget int64 `json:"episodes_trained_into_target"`
+	// Table is the table judged, as read when the job ran.
+	Table     EvaluatedTable `json:"table"`
+	Level     float64        `json:"level"`
+	Resamples int            `json:"resamples"`
+	Seed      int64          `json:"seed"`
+	Notes     []string       `json:"notes"`
+
+	// StepsWithoutAllowed counts the steps of the episodes used that carry
+	// no allowed set (the target's probability there is over every action);
+	// EpisodesWithoutAllowed counts the episodes used with any such step.
+	StepsWithoutAllowed    int64 `json:"steps_without_allowed"`
+	EpisodesWithoutAllowed int64 `json:"episodes_without_allowed"`
 }
 
 // Progress says how far a job is.
@@ -221,11 +256,19 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 		return EvaluationResult{}, Conflictf("the target table's actions %q differ from the actions %q of policy %q's episodes", table.Actions, p.Actions, p.Name)
 	}
 	target := NewTargetPolicy(table, req.Target.Mode, req.Target.Epsilon, tp.Settings)
-	res := EvaluationResult{Level: IntervalLevel, Resamples: req.Resamples, Seed: *req.Seed, Notes: []string{}}
+	res := EvaluationResult{Level: IntervalLevel, Resamples: req.Resamples, Seed: *req.Seed, Notes: []string{},
+		Table: EvaluatedTable{Policy: tp.Name, Name: req.Target.Table, Revision: table.Revision, InitialQ: table.InitialQ, TrainedThroughSeq: table.TrainedThroughSeq}}
+	trainedFrom := int64(1)
+	if tp.ID != p.ID {
+		trainedFrom = job.ReplayedFromSeq
+	}
 	var samples []WeightedReturn
 	var returns []float64
 	err = src.ReadEpisodes(ctx, p.ID, job.Episodes, func(ep StoredEpisode) error {
 		res.EpisodesRead++
+		if trainedFrom > 0 && trainedFrom <= ep.Seq && ep.Seq <= table.TrainedThroughSeq {
+			res.EpisodesTrainedIntoTarget++
+		}
 		if res.EpisodesRead%1000 == 0 {
 			progress(Progress{Phase: "reading episodes", Done: res.EpisodesRead, Total: job.Episodes.Episodes})
 		}
@@ -242,6 +285,10 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 		if rho == 0 {
 			res.ZeroWeightEpisodes++
 		}
+		if n := ep.StepsWithoutAllowed(); n > 0 {
+			res.StepsWithoutAllowed += int64(n)
+			res.EpisodesWithoutAllowed++
+		}
 		return nil
 	})
 	if err != nil {
@@ -254,8 +301,17 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 	case len(samples) == 0:
 		return res, Invalid(-1, -1, "window", "none of its %d episodes carries a behaviour probability at every step, so none says anything about another policy; post steps with \"probability\" (the chance the behaviour gave the action taken)", res.EpisodesRead)
 	}
+	if res.EpisodesTrainedIntoTarget > 0 {
+		res.Notes = append(res.Notes, fmt.Sprintf("%d of the %d episodes read were already trained into the target table: judged on what it learned from, "+
+			"a greedy table looks better than it is; for an honest estimate, evaluate a snapshot on the episodes after it (window.after_snapshot)",
+			res.EpisodesTrainedIntoTarget, res.EpisodesRead))
+	}
 	if res.EpisodesWithoutProbabilities > 0 {
 		res.Notes = append(res.Notes, fmt.Sprintf("%d episodes lack a behaviour probability on some step and were left out", res.EpisodesWithoutProbabilities))
+	}
+	if res.StepsWithoutAllowed > 0 {
+		res.Notes = append(res.Notes, fmt.Sprintf("%d steps in %d of the episodes used carry no allowed set, so the target's probabilities there are taken over all %d actions; "+
+			"if choose was given \"allowed\" for them, post each step with the allowed set the choose answer returns, or the estimates are biased", res.StepsWithoutAllowed, res.EpisodesWithoutAllowed, len(p.Actions)))
 	}
 	if res.ZeroWeightEpisodes == res.EpisodesUsed {
 		res.Notes = append(res.Notes, "every episode used took some action the target never takes, so all weights are 0: the estimates are 0 by convention and say nothing; widen the window or evaluate an epsilon-soft target")

@@ -19,10 +19,11 @@ type WeightedReturn struct {
 }
 
 // ImportanceRatio is rho = prod_t pi(A_t|S_t) / b(A_t|S_t) over an episode,
-// with pi the target's probability and b the behaviour's as stored. It
-// reports false when a step has no behaviour probability: such an episode
-// says nothing about the target.
-func ImportanceRatio(ep EpisodeRecord, target func(state string, action int16) float64) (float64, bool) {
+// with pi the target's probability among the step's allowed actions (nil:
+// all of them) and b the behaviour's as stored. It reports false when a
+// step has no behaviour probability: such an episode says nothing about
+// the target.
+func ImportanceRatio(ep EpisodeRecord, target func(state string, allowed ActionSet, action int16) float64) (float64, bool) {
 	if ep.Probabilities == nil {
 		return 0, false
 	}
@@ -32,7 +33,7 @@ func ImportanceRatio(ep EpisodeRecord, target func(state string, action int16) f
 			return 0, false
 		}
 		if rho != 0 {
-			rho *= target(ep.States[t], ep.Actions[t]) / b
+			rho *= target(ep.States[t], ep.AllowedAt(t), ep.Actions[t]) / b
 		}
 	}
 	return rho, true
@@ -148,46 +149,43 @@ func BootstrapIS(ctx context.Context, s []WeightedReturn, resamples int, level f
 }
 
 // TargetPolicy is the policy an evaluation asks about: greedy with respect
-// to a Q table, or its epsilon-soft version. Greedy ties split the greedy
-// probability evenly, as choosing does.
+// to a Q table, or its epsilon-soft version, choosing among a step's
+// allowed actions as choose does (ProbabilitiesAmong).
 type TargetPolicy struct {
 	table *QTable
 	mode  Mode
 	// epsilon of explore mode: a fixed rate, or the settings' per-state rule.
 	epsilon  *float64
 	settings Settings
-	cache    map[string][]float64
+	// cache holds, per state, the probabilities under each allowed set seen
+	// (keyed by the set's bytes; "" is no set).
+	cache map[string]map[string][]float64
 }
 
 // NewTargetPolicy returns the greedy (mode Greedy) or epsilon-soft (mode
 // Explore) policy of a table. In explore mode the rate is epsilon when given,
 // else the settings' rule applied to the state's visits, as choose does.
 func NewTargetPolicy(table *QTable, mode Mode, epsilon *float64, settings Settings) *TargetPolicy {
-	return &TargetPolicy{table: table, mode: mode, epsilon: epsilon, settings: settings, cache: map[string][]float64{}}
+	return &TargetPolicy{table: table, mode: mode, epsilon: epsilon, settings: settings, cache: map[string]map[string][]float64{}}
 }
 
-// Probability is pi(action | state).
-func (t *TargetPolicy) Probability(state string, action int16) float64 {
-	probs, ok := t.cache[state]
+// Probability is pi(action | state) when choosing among the allowed
+// actions (every action when allowed is nil).
+func (t *TargetPolicy) Probability(state string, allowed ActionSet, action int16) float64 {
+	bySet, ok := t.cache[state]
+	if !ok {
+		bySet = map[string][]float64{}
+		t.cache[state] = bySet
+	}
+	probs, ok := bySet[string(allowed)]
 	if !ok {
 		s := t.table.state(state)
-		n := len(s.Q)
-		top := maxOf(s.Q)
-		ties := 0
-		for _, v := range s.Q {
-			if v == top {
-				ties++
-			}
-		}
 		eps := t.settings.EpsilonFor(s.Total)
 		if t.epsilon != nil {
 			eps = *t.epsilon
 		}
-		probs = make([]float64, n)
-		for a, v := range s.Q {
-			probs[a] = ActionProbability(t.mode, eps, n, ties, v == top)
-		}
-		t.cache[state] = probs
+		probs = ProbabilitiesAmong(s.Q, allowed, t.mode, eps)
+		bySet[string(allowed)] = probs
 	}
 	return probs[action]
 }

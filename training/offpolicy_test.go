@@ -139,25 +139,25 @@ func TestTargetProbabilitiesAndRatios(t *testing.T) {
 	table.Set("tied", 1, 2, 5)
 	table.Set("one", 2, 1, 30)
 	greedy := training.NewTargetPolicy(table, training.Greedy, nil, training.DefaultSettings())
-	if p := []float64{greedy.Probability("tied", 0), greedy.Probability("tied", 1), greedy.Probability("tied", 2)}; p[0] != 0.5 || p[1] != 0.5 || p[2] != 0 {
+	if p := []float64{greedy.Probability("tied", nil, 0), greedy.Probability("tied", nil, 1), greedy.Probability("tied", nil, 2)}; p[0] != 0.5 || p[1] != 0.5 || p[2] != 0 {
 		t.Fatalf("greedy with a tie: %v, want [0.5 0.5 0]", p)
 	}
 	// An unknown state has every action tied at the initial value.
-	if p := greedy.Probability("unseen", 1); math.Abs(p-1.0/3) > 1e-15 {
+	if p := greedy.Probability("unseen", nil, 1); math.Abs(p-1.0/3) > 1e-15 {
 		t.Fatalf("unseen state: %v, want 1/3", p)
 	}
 	eps := 0.3
 	soft := training.NewTargetPolicy(table, training.Explore, &eps, training.DefaultSettings())
-	if p := soft.Probability("one", 2); math.Abs(p-(0.7+0.1)) > 1e-15 {
+	if p := soft.Probability("one", nil, 2); math.Abs(p-(0.7+0.1)) > 1e-15 {
 		t.Fatalf("epsilon-soft greedy action: %v, want 0.8", p)
 	}
-	if p := soft.Probability("one", 0); math.Abs(p-0.1) > 1e-15 {
+	if p := soft.Probability("one", nil, 0); math.Abs(p-0.1) > 1e-15 {
 		t.Fatalf("epsilon-soft other action: %v, want 0.1", p)
 	}
 	// Without a fixed rate, the policy's own decayed rate for the state's
 	// visits applies: 0.4 * 10 / (10 + 30) = 0.1.
 	decayed := training.NewTargetPolicy(table, training.Explore, nil, training.Settings{Epsilon: 0.4, EpsilonDecayVisits: 10})
-	if p := decayed.Probability("one", 0); math.Abs(p-0.1/3) > 1e-15 {
+	if p := decayed.Probability("one", nil, 0); math.Abs(p-0.1/3) > 1e-15 {
 		t.Fatalf("decayed epsilon-soft: %v, want 0.1/3", p)
 	}
 

@@ -64,8 +64,9 @@ type Policy struct {
 	CreatedAt time.Time `json:"created_at"`
 	UpdatedAt time.Time `json:"updated_at"`
 
-	// TableEpoch counts restores and imports, which replace the whole table:
-	// a copy of an older epoch must be reloaded, not patched.
+	// TableEpoch counts restores, imports and changes of the initial value
+	// or the actions, which replace the whole table or what its missing
+	// pairs are worth: a copy of an older epoch must be reloaded, not patched.
 	TableEpoch int64 `json:"-"`
 }
 
@@ -86,6 +87,12 @@ func (s Settings) ActionIndex() map[string]int16 {
 	}
 	return index
 }
+
+// PolicyName is a policy's name inside a request body. Every field of a
+// request that names a policy has this type, so that the API can find and
+// authorise each such name against the request's token when it reads the
+// body, whichever route it arrived on.
+type PolicyName string
 
 // ValidatePolicyName accepts names that are safe in a URL path segment.
 func ValidatePolicyName(name string) error {

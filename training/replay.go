@@ -9,7 +9,7 @@ import (
 // history. Settings left out are the source policy's.
 type ReplayRequest struct {
 	// Target names the policy to create; it must not exist yet.
-	Target             string        `json:"target"`
+	Target             PolicyName    `json:"target"`
 	Gamma              *float64      `json:"gamma,omitempty"`
 	Alpha              *float64      `json:"alpha,omitempty"`
 	Epsilon            *float64      `json:"epsilon,omitempty"`
@@ -24,7 +24,7 @@ type ReplayRequest struct {
 // settings it makes.
 func (r ReplayRequest) Validate() error {
 	var l problemList
-	if ValidatePolicyName(r.Target) != nil {
+	if ValidatePolicyName(string(r.Target)) != nil {
 		l.add(-1, -1, "target", "must name the policy to create: 1 to %d characters of letters, digits, '.', '_' and '-', starting with a letter or digit", MaxPolicyNameLen)
 	}
 	r.Window.check(&l)

@@ -85,7 +85,11 @@ type ChooseResult struct {
 	Explored     bool
 	GreedyAction string
 	KnownState   bool
-	Revision     int64
+	// Allowed is the set the action was chosen from: the request's, or
+	// every action when it gave none. A step posted with it (and the
+	// probability) lets evaluation recompute this choice.
+	Allowed  []string
+	Revision int64
 	// Staleness is how long ago the copy was last confirmed current.
 	Staleness time.Duration
 }
@@ -104,8 +108,11 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 	var idxBuf [maxStackActions]int16
 	t.mu.RLock()
 	defer t.mu.RUnlock()
-	allowed := idxBuf[:0]
+	allowed, allowedNames := idxBuf[:0], req.Allowed
 	if len(req.Allowed) == 0 {
+		// The policy's list is replaced, never changed in place, so the
+		// answer may share it.
+		allowedNames = t.policy.Actions
 		for i := range t.policy.Actions {
 			allowed = append(allowed, int16(i))
 		}
@@ -143,6 +150,7 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 		Explored:     c.Explored,
 		GreedyAction: t.policy.Actions[allowed[c.Greedy]],
 		KnownState:   known,
+		Allowed:      allowedNames,
 		Revision:     t.revision,
 		Staleness:    time.Since(time.Unix(0, t.syncedAt.Load())),
 	}, nil

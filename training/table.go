@@ -47,6 +47,10 @@ type Snapshot struct {
 	InitialQ float64  `json:"initial_q"`
 	States   int64    `json:"states"`
 	Pairs    int64    `json:"pairs"`
+	// TrainedThroughSeq is the arrival number (an episode's seq) of the
+	// last episode the table had learned from when it was frozen: episodes
+	// after it are held out from it.
+	TrainedThroughSeq int64 `json:"trained_through_seq"`
 }
 
 // TableRow is one learned pair in exchange form: actions by name, so a
@@ -77,6 +81,19 @@ type TableChange struct {
 	Source   string `json:"source"`
 	Revision int64  `json:"revision"`
 	Pairs    int    `json:"pairs"`
+	// InitialQ is the value of the pairs the new table lacks, now the
+	// policy's: the snapshot's own, the imported document's, or (when an
+	// import names none) the policy's unchanged.
+	InitialQ float64 `json:"initial_q"`
+}
+
+// CheckInitialQ accepts a table's initial value (nil: none given) within
+// the bounds a policy's initial_q setting has.
+func CheckInitialQ(initialQ *float64) error {
+	if x := initialQ; x != nil && !(math.Abs(*x) <= MaxAbsReward) {
+		return Invalid(-1, -1, "initial_q", "must be a finite number of magnitude at most %g", MaxAbsReward)
+	}
+	return nil
 }
 
 // EncodeTable validates rows to be imported into a policy and returns them
@@ -129,6 +146,10 @@ type QTable struct {
 	Actions  []string
 	InitialQ float64
 	States   map[string]*TableState
+	// Revision is the revision the table was read at; TrainedThroughSeq the
+	// seq of the last episode trained into it (training follows seq order).
+	Revision          int64
+	TrainedThroughSeq int64
 }
 
 // TableState is one state's values, by action index.
@@ -294,7 +315,8 @@ func union(a, b []int) []int {
 // and its table epoch, and commit all or nothing.
 type TableStore interface {
 	RestoreSnapshot(ctx context.Context, policy, snapshot string) (TableChange, error)
-	ImportTable(ctx context.Context, policy string, rows []TableRow) (TableChange, error)
+	// ImportTable's initialQ, when not nil, is the rows' initial value.
+	ImportTable(ctx context.Context, policy string, rows []TableRow, initialQ *float64) (TableChange, error)
 }
 
 // Tables replaces Q tables and brings this process's in-memory copy up to
@@ -315,9 +337,10 @@ func (t Tables) RestoreSnapshot(ctx context.Context, policy, snapshot string) (T
 	return ch, err
 }
 
-// ImportTable makes the given rows the policy's live table.
-func (t Tables) ImportTable(ctx context.Context, policy string, rows []TableRow) (TableChange, error) {
-	ch, err := t.Store.ImportTable(ctx, policy, rows)
+// ImportTable makes the given rows, with their initial value when given,
+// the policy's live table.
+func (t Tables) ImportTable(ctx context.Context, policy string, rows []TableRow, initialQ *float64) (TableChange, error) {
+	ch, err := t.Store.ImportTable(ctx, policy, rows, initialQ)
 	if err == nil {
 		t.refresh(ctx, ch)
 	}

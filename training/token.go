@@ -59,8 +59,27 @@ func (t *Token) Authorize(s Scope, policy string) error {
 	if !t.HasScope(s) {
 		return Forbiddenf("token %d lacks the %s scope that this request needs", t.ID, s)
 	}
-	if policy != "" && !t.CoversPolicy(policy) {
+	if policy != "" {
+		return t.AuthorizePolicy(policy)
+	}
+	return nil
+}
+
+// AuthorizePolicy says whether the token may act on the policy a request's
+// path names. The answer is the same whether that policy exists or not.
+func (t *Token) AuthorizePolicy(policy string) error {
+	if !t.CoversPolicy(policy) {
 		return Forbiddenf("token %d is limited to other policies than %q", t.ID, truncate(policy, 64))
+	}
+	return nil
+}
+
+// AuthorizeNamed says whether the token may act on a policy that a request
+// names in field (a query parameter or a body field) besides its path. The
+// answer is the same whether that policy exists or not.
+func (t *Token) AuthorizeNamed(field, policy string) error {
+	if !t.CoversPolicy(policy) {
+		return Forbiddenf("token %d is limited to other policies than %q, which %s names", t.ID, truncate(policy, 64), field)
 	}
 	return nil
 }
