@@ -120,6 +120,24 @@ func TestEpisodeRefusalsHintAndListEveryProblem(t *testing.T) {
 		t.Errorf("NDJSON refusal at %q, want %q: %s", where, want, r.Body)
 	}
 
+	// A body of nothing but problems gets a bounded answer that says so.
+	badLine := `{"id":"x","steps":[{"state":"s","action":"truck","reward":"r"}]}` + "\n"
+	for _, body := range []struct{ ctype, body string }{
+		{nd, strings.Repeat(badLine, 5000)},
+		{js, `{"episodes":[` + strings.TrimSuffix(strings.Repeat(strings.TrimSpace(badLine)+",", 5000), ",") + `]}`},
+		{js, `{"episodes":[{"id":"x","steps":[{` + strings.TrimSuffix(strings.Repeat(`"k":1,`, 5000), ",") + `}]}]}`},
+	} {
+		got = refusal{}
+		r = s.send("POST", path, body.ctype, []byte(body.body), true)
+		if r.Status != 400 {
+			t.Fatalf("all problems: %d %.300s", r.Status, r.Body)
+		}
+		r.decode(t, &got)
+		if n := len(got.Errors); n < 100 || n > 101 || !strings.Contains(string(r.Body), "decoding stopped after 100 problems") {
+			t.Errorf("a body of problems: %d problems listed, want 100 and where decoding stopped: %.500s", n, r.Body)
+		}
+	}
+
 	var st struct {
 		Episodes int64 `json:"episodes"`
 	}

@@ -252,6 +252,30 @@ func newUndecodedBatch(problems []training.FieldError, episodes []training.Episo
 	return &undecodedBatch{problems: problems, episodes: episodes, err: training.Refuse(problems)}
 }
 
+// maxDecodeProblems bounds what decoding a body collects, so that a hostile
+// body cannot make its refusal cost more than the request: past it,
+// decoding stops and says so.
+const maxDecodeProblems = 100
+
+// problemSink collects decoding problems, up to maxDecodeProblems.
+type problemSink struct {
+	problems []training.FieldError
+	full     bool
+}
+
+func (s *problemSink) add(problems ...training.FieldError) {
+	for _, p := range problems {
+		switch {
+		case len(s.problems) < maxDecodeProblems:
+			s.problems = append(s.problems, p)
+		case !s.full:
+			s.full = true
+			s.problems = append(s.problems, training.FieldError{Episode: -1, Step: -1,
+				Message: fmt.Sprintf("decoding stopped after %d problems; there may be more", maxDecodeProblems)})
+		}
+	}
+}
+
 // problemsOf lists the located problems of a refusal; none for nil.
 func problemsOf(err error) []training.FieldError {
 	if err == nil {
@@ -285,8 +309,8 @@ func decodeEpisodes(body []byte, media string) ([]training.Episode, error) {
 		return b.Episodes, nil
 	}
 	var episodes []training.Episode
-	var problems []training.FieldError
-	for rest := body; len(rest) > 0; {
+	var sink problemSink
+	for rest := body; len(rest) > 0 && !sink.full; {
 		line := rest
 		if i := bytes.IndexByte(rest, '\n'); i >= 0 {
 			line, rest = rest[:i], rest[i+1:]
@@ -301,12 +325,12 @@ func decodeEpisodes(body []byte, media string) ([]training.Episode, error) {
 			if len(episodes) == 0 && isBatchObject(body) {
 				return nil, training.Invalid(-1, -1, "", `the body is a JSON batch {"episodes": [...]}, not NDJSON; send it with Content-Type: application/json`)
 			}
-			ep = decodeEpisodeMembers(line, len(episodes), err, &problems)
+			ep = decodeEpisodeMembers(line, len(episodes), err, &sink)
 		}
 		episodes = append(episodes, ep)
 	}
-	if len(problems) > 0 {
-		return nil, newUndecodedBatch(problems, episodes)
+	if len(sink.problems) > 0 {
+		return nil, newUndecodedBatch(sink.problems, episodes)
 	}
 	return episodes, nil
 }
@@ -335,12 +359,12 @@ func undecodableBatch(body []byte, err error) error {
 	if episode && !batch {
 		return training.Invalid(-1, -1, "", `the body is one episode, not a batch: post {"episodes": [ ...the episode... ]}, or send episodes one a line as application/x-ndjson`)
 	}
-	var problems []training.FieldError
+	var sink problemSink
 	var episodes []training.Episode
 	listed := false
 	for _, m := range members {
 		if !strings.EqualFold(m.name, "episodes") {
-			problems = append(problems, unknownMember(m.name, -1, -1))
+			sink.add(unknownMember(m.name, -1, -1))
 			continue
 		}
 		items, ok := arrayItems(m.value)
@@ -349,37 +373,40 @@ func undecodableBatch(body []byte, err error) error {
 			if derr == nil { // null
 				derr = training.Invalid(-1, -1, "episodes", "is missing")
 			}
-			problems = append(problems, locate(problemsOf(derr), -1, "episodes")...)
+			sink.add(locate(problemsOf(derr), -1, "episodes")...)
 			continue
 		}
 		listed = true
 		episodes = make([]training.Episode, len(items))
 		for i, raw := range items {
+			if sink.full {
+				break
+			}
 			if derr := decodeStrict(raw, &episodes[i], i); derr != nil {
-				episodes[i] = decodeEpisodeMembers(raw, i, derr, &problems)
+				episodes[i] = decodeEpisodeMembers(raw, i, derr, &sink)
 			}
 		}
 	}
-	if len(problems) == 0 {
+	if len(sink.problems) == 0 {
 		return err
 	}
 	if !listed {
 		episodes = nil
 	}
-	return newUndecodedBatch(problems, episodes)
+	return newUndecodedBatch(sink.problems, episodes)
 }
 
 // decodeEpisodeMembers decodes an episode that failed to decode whole, one
 // member at a time, adding a located problem for each member that does not
 // decode, and returns the episode as far as it did. err is the episode's
 // own decoding error, reported when the members say nothing more.
-func decodeEpisodeMembers(raw []byte, episode int, err error, problems *[]training.FieldError) training.Episode {
+func decodeEpisodeMembers(raw []byte, episode int, err error, sink *problemSink) training.Episode {
 	var ep training.Episode
-	before := len(*problems)
-	decodeMembers(raw, reflect.ValueOf(&ep).Elem(), episode, -1, problems)
-	if len(*problems) == before {
+	before := len(sink.problems)
+	decodeMembers(raw, reflect.ValueOf(&ep).Elem(), episode, -1, sink)
+	if len(sink.problems) == before {
 		// Every member decoded alone (a repeated member, say).
-		*problems = append(*problems, problemsOf(err)...)
+		sink.add(problemsOf(err)...)
 	}
 	return ep
 }
@@ -389,26 +416,29 @@ func decodeEpisodeMembers(raw []byte, episode int, err error, problems *[]traini
 // no field of v. Members match fields by JSON name, ignoring case, as the
 // decoder does. A list of objects (an episode's steps) is decoded item by
 // item, each item's problems located at its index as the step.
-func decodeMembers(raw []byte, v reflect.Value, episode, step int, problems *[]training.FieldError) {
+func decodeMembers(raw []byte, v reflect.Value, episode, step int, sink *problemSink) {
 	members, ok := objectMembers(raw)
 	if !ok {
-		*problems = append(*problems, locate(problemsOf(decodeStrict(raw, v.Addr().Interface(), episode)), step, "")...)
+		sink.add(locate(problemsOf(decodeStrict(raw, v.Addr().Interface(), episode)), step, "")...)
 		return
 	}
 	for _, m := range members {
+		if sink.full {
+			return
+		}
 		field, name := jsonField(v, m.name)
 		if !field.IsValid() {
-			*problems = append(*problems, unknownMember(m.name, episode, step))
+			sink.add(unknownMember(m.name, episode, step))
 			continue
 		}
 		if items, ok := arrayItems(m.value); ok && step < 0 && field.Kind() == reflect.Slice && field.Type().Elem().Kind() == reflect.Struct {
 			field.Set(reflect.MakeSlice(field.Type(), len(items), len(items)))
 			for j, item := range items {
-				decodeMembers(item, field.Index(j), episode, j, problems)
+				decodeMembers(item, field.Index(j), episode, j, sink)
 			}
 			continue
 		}
-		*problems = append(*problems, locate(problemsOf(decodeStrict(m.value, field.Addr().Interface(), episode)), step, name)...)
+		sink.add(locate(problemsOf(decodeStrict(m.value, field.Addr().Interface(), episode)), step, name)...)
 	}
 }
 
