@@ -225,7 +225,7 @@ func TestEvaluationWindowsAndUnusableEpisodes(t *testing.T) {
 	}
 	// The last two episodes: p-2 is usable, p-3 is not.
 	job, _ = startJob[evaluationResult](s, "/v1/policies/nudges/evaluations", map[string]any{"window": map[string]any{"last": 2}, "seed": 1}, 30*time.Second)
-	if res := job.Result; job.Status != "succeeded" || res.EpisodesRead != 2 || res.EpisodesUsed != 1 || res.ZeroWeightEpisodes != 1 || len(res.Notes) != 3 {
+	if res := job.Result; job.Status != "succeeded" || res.EpisodesRead != 2 || res.EpisodesUsed != 1 || res.ZeroWeightEpisodes != 1 || len(res.Notes) != 4 {
 		t.Fatalf("last 2: %s %+v", job.Status, res)
 	}
 	// A time range before anything was stored holds nothing.
