@@ -237,3 +237,38 @@ func TestEvaluationWindowsAndUnusableEpisodes(t *testing.T) {
 	s.call("GET", "/v1/policies/nudges/evaluations/999", nil, 404)
 	s.call("GET", "/v1/policies/nudges/replays/1", nil, 404) // job 1 is an evaluation
 }
+
+// Ratios far beyond what squares of float64 hold must not break the
+// result: 80-step episodes whose every action the greedy target takes
+// with probability 1 and the behaviour took with 0.01 have rho = 100^80 =
+// 1e160, so sum rho^2 overflows. Weighted importance sampling and the
+// effective sample size do not depend on the ratios' scale (Sutton &
+// Barto, 2nd ed., eq. 5.6: a common factor cancels), so the job must
+// finish with finite numbers.
+func TestEvaluationSurvivesHugeRatios(t *testing.T) {
+	s := startService(t, pgtest.NewDatabase(t))
+	s.call("PUT", "/v1/policies/ticks", map[string]any{"actions": []string{"hold", "sell"}, "gamma": 1}, 201)
+	s.call("PUT", "/v1/policies/ticks/table", map[string]any{"rows": []tableRow{{"tick", "hold", 1, 1}, {"tick", "sell", 0, 1}}}, 200)
+	rare, common := 0.01, 0.99
+	var eps []episodeJSON
+	for i := range 6 {
+		ep := episodeJSON{ID: fmt.Sprintf("long-%d", i)}
+		for range 80 {
+			ep.Steps = append(ep.Steps, stepJSON{State: "tick", Action: "hold", Reward: float64(i % 3), Probability: &rare})
+		}
+		eps = append(eps, ep)
+	}
+	for i := range 20 {
+		eps = append(eps, episodeJSON{ID: fmt.Sprintf("sold-%d", i), Steps: []stepJSON{{State: "tick", Action: "sell", Reward: 5, Probability: &common}}})
+	}
+	s.post("ticks", eps...)
+	job, _ := startJob[evaluationResult](s, "/v1/policies/ticks/evaluations", map[string]any{"seed": 5, "resamples": 500}, 30*time.Second)
+	if job.Status != "succeeded" {
+		t.Fatalf("evaluation %s: %s", job.Status, job.Error)
+	}
+	res := job.Result
+	// Returns 0, 80, 160, 0, 80, 160 with equal weights: weighted 80, ESS 6.
+	if math.Abs(res.Weighted.Estimate-80) > 1e-9 || math.Abs(res.EffectiveSampleSize-6) > 1e-9 || res.ZeroWeightEpisodes != 20 {
+		t.Fatalf("weighted %v, ESS %v, zero weight %d", res.Weighted.Estimate, res.EffectiveSampleSize, res.ZeroWeightEpisodes)
+	}
+}

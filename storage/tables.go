@@ -212,6 +212,7 @@ func (db *DB) LoadTable(ctx context.Context, policyID int32, table string) (*tra
 			return err
 		}
 		t = training.NewQTable(h.actions, h.initialQ)
+		t.Revision = h.revision
 		return forEachTableRow(ctx, tx, p.ID, h, t.Set)
 	})
 	return t, err

@@ -128,6 +128,9 @@ func EncodeTable(p Policy, rows []TableRow, maxStateLength int) ([]PairResult, e
 type QTable struct {
 	Actions  []string
 	InitialQ float64
+	// Revision is the policy's revision the table was read at, or frozen at
+	// for a snapshot.
+	Revision int64
 	States   map[string]*TableState
 }
 
