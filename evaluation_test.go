@@ -353,6 +353,7 @@ func TestEvaluationSurvivesHugeRatios(t *testing.T) {
 		t.Fatalf("evaluation %s: %s", job.Status, job.Error)
 	}
 	res := job.Result
+	t.Logf("notes: %q", res.Notes)
 	// Returns 0, 80, 160, 0, 80, 160 with equal weights: weighted 80, ESS 6;
 	// ordinary 1e160 * 480 / 26, too large to believe and named in a note.
 	if math.Abs(res.Weighted.Estimate-80) > 1e-9 || math.Abs(res.EffectiveSampleSize-6) > 1e-9 || res.ZeroWeightEpisodes != 20 ||
@@ -381,6 +382,7 @@ func TestEvaluationSurvivesHugeRatios(t *testing.T) {
 	s.call("GET", fmt.Sprintf("/v1/policies/ticks/evaluations/%d", job.ID), nil, 200).decode(t, &raw)
 	ordinary := raw["result"].(map[string]any)["ordinary"].(map[string]any)
 	res = job.Result
+	t.Logf("notes: %q", res.Notes)
 	if math.Abs(res.Weighted.Estimate-100) > 1e-9 || math.Abs(res.EffectiveSampleSize-2) > 1e-9 || ordinary["estimate"] != nil ||
 		noteWith(res.Notes, "the ordinary estimate is too large") == "" || math.Abs(*res.LargestRatioLog10-400) > 1e-9 {
 		t.Fatalf("weighted %v, ESS %v, ordinary %v, notes %q", res.Weighted.Estimate, res.EffectiveSampleSize, ordinary, res.Notes)

@@ -1,6 +1,7 @@
 package training
 
 import (
+	"cmp"
 	"context"
 	"fmt"
 	"math"
@@ -270,7 +271,7 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 	res := EvaluationResult{Level: IntervalLevel, Resamples: req.Resamples, Seed: *req.Seed, Notes: []string{},
 		Inputs: evaluationInputs(p, tp, table, req.Target)}
 	var ratios []EpisodeRatio
-	var ids []string
+	var largest largestRatios
 	err = src.ReadEpisodes(ctx, p.ID, job.Episodes, func(ep StoredEpisode) error {
 		res.EpisodesRead++
 		if res.EpisodesRead%1000 == 0 {
@@ -282,7 +283,7 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 			return nil
 		}
 		ratios = append(ratios, r)
-		ids = append(ids, ep.ID)
+		largest.offer(ep.ID, r.LogRatio)
 		if math.IsInf(r.LogRatio, -1) {
 			res.ZeroWeightEpisodes++
 		}
@@ -305,7 +306,7 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 		res.Notes = append(res.Notes, "every episode used took some action the target never takes, so all weights are 0: the estimates are 0 by convention and say nothing; widen the window or evaluate an epsilon-soft target")
 	}
 	sample := NewISSample(ratios)
-	res.Notes = append(res.Notes, absurdRatios(ratios, ids)...)
+	res.Notes = append(res.Notes, largest.absurd(ratios)...)
 	res.BehaviourMeanReturn = sample.BehaviourMean()
 	res.EffectiveSampleSize = sample.EffectiveSampleSize()
 	res.LargestWeightShare = sample.LargestWeightShare()
@@ -358,24 +359,44 @@ func intervalEstimate(estimate float64, iv *Interval) IntervalEstimate {
 // 0.001.
 const absurdRatioFactor = 1000
 
-// absurdRatios names, in a note, the episodes (at most three) whose ratio
-// is too large to be believed.
-func absurdRatios(ratios []EpisodeRatio, ids []string) []string {
+// largestRatios keeps the episodes of the three largest ratios, to name
+// them without keeping every episode's id.
+type largestRatios []namedRatio
+
+type namedRatio struct {
+	id       string
+	logRatio float64
+}
+
+func (l *largestRatios) offer(id string, logRatio float64) {
+	if len(*l) == 3 && logRatio <= (*l)[2].logRatio {
+		return
+	}
+	*l = append(*l, namedRatio{id, logRatio})
+	slices.SortStableFunc(*l, func(a, b namedRatio) int { return cmp.Compare(b.logRatio, a.logRatio) })
+	*l = (*l)[:min(len(*l), 3)]
+}
+
+// absurd says, in a note, how many ratios are too large to be believed,
+// naming the largest.
+func (l largestRatios) absurd(ratios []EpisodeRatio) []string {
 	limit := math.Log(absurdRatioFactor * float64(len(ratios)))
-	var named []string
 	count := 0
-	for i, r := range ratios {
+	for _, r := range ratios {
 		if r.LogRatio > limit {
 			count++
-			if len(named) < 3 {
-				named = append(named, fmt.Sprintf("%q (1e%.0f)", ids[i], r.LogRatio/math.Ln10))
-			}
 		}
 	}
 	if count == 0 {
 		return nil
 	}
-	return []string{fmt.Sprintf("%d episodes have an importance ratio above %d times the number of episodes, which correctly stored behaviour probabilities give with chance below 0.001: %s; check the probabilities posted for them (a probability posted for the wrong action, or one far too small); the weighted estimate rests on them", count, absurdRatioFactor, strings.Join(named, ", "))}
+	var named []string
+	for _, r := range l {
+		if r.logRatio > limit {
+			named = append(named, fmt.Sprintf("%q (1e%.0f)", r.id, r.logRatio/math.Ln10))
+		}
+	}
+	return []string{fmt.Sprintf("%d episodes have an importance ratio above %d times the number of episodes, which correctly stored behaviour probabilities give with chance below 0.001; the largest: %s; check the probabilities posted for them (one posted for another action, or far too small): the weighted estimate rests on them", count, absurdRatioFactor, strings.Join(named, ", "))}
 }
 
 // smallEffectiveSampleSize is where the report starts warning that the

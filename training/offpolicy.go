@@ -319,11 +319,12 @@ func BootstrapIS(ctx context.Context, s ISSample, resamples int, level float64, 
 		iv[statWeighted] = nil
 		out.Notes = append(out.Notes, fmt.Sprintf("%.1f%% of bootstrap resamples drew no episode of positive weight and have no weighted estimate; above %.1f%% they, not the data, would set an end of a %.0f%% interval, so the weighted interval is left out (null)", 100*out.WeightlessShare, 100*(1-level)/2, 100*level))
 	}
-	out.Weighted, out.Difference = iv[statWeighted], iv[statDifference]
+	out.Weighted = iv[statWeighted]
+	out.Difference = scaleInterval(iv[statDifference], c.differenceLogScale)
 	out.Ordinary = scaleInterval(iv[statOrdinary], s.LogRatioScale)
 	out.MeanRatio = scaleInterval(iv[statMeanRatio], s.LogRatioScale)
 	out.PerDecision = scaleInterval(iv[statPerDecision], s.LogPerDecisionScale)
-	for k, scaled := range map[int]*Interval{statOrdinary: out.Ordinary, statMeanRatio: out.MeanRatio, statPerDecision: out.PerDecision} {
+	for k, scaled := range map[int]*Interval{statOrdinary: out.Ordinary, statMeanRatio: out.MeanRatio, statPerDecision: out.PerDecision, statDifference: out.Difference} {
 		if iv[k] != nil && scaled == nil {
 			out.Notes = append(out.Notes, fmt.Sprintf("the %s interval is too large for a 64-bit float (left out, null)", statNames[k]))
 		}
@@ -382,19 +383,29 @@ func scaleInterval(iv *Interval, logScale float64) *Interval {
 	return out
 }
 
-// centres are what resampleSums subtract (so that a large common offset
-// of the returns does not cancel digits away), and the factor that takes
-// per-decision returns from their scale to plain numbers (Inf when they
-// are too large for a float64).
+// centres are what resampleSums subtract, so that a large common offset
+// of the returns does not cancel digits away. The difference of a
+// per-decision return and a return is taken in its own scale,
+// exp(differenceLogScale), so that neither part overflows:
+// pdToDifference and returnToDifference take each part there.
 type centres struct {
-	ret, perDecision, difference, perDecisionFactor float64
+	ret, perDecision, difference                           float64
+	differenceLogScale, pdToDifference, returnToDifference float64
 }
 
 func (s ISSample) centres() centres {
 	c := centres{ret: s.BehaviourMean(), perDecision: mean(s.Episodes, func(x WeightedReturn) float64 { return x.PerDecision }),
-		perDecisionFactor: math.Exp(s.LogPerDecisionScale)}
-	c.difference = c.perDecision*c.perDecisionFactor - c.ret
+		differenceLogScale: max(s.LogPerDecisionScale, 0)}
+	c.pdToDifference = math.Exp(s.LogPerDecisionScale - c.differenceLogScale)
+	c.returnToDifference = math.Exp(-c.differenceLogScale)
+	c.difference = mean(s.Episodes, c.differenceOf)
 	return c
+}
+
+// differenceOf is an episode's per-decision return less its return, in
+// the difference's scale.
+func (c centres) differenceOf(x WeightedReturn) float64 {
+	return x.PerDecision*c.pdToDifference - x.Return*c.returnToDifference
 }
 
 // resampleSums are the sums over one resample's picks that the statistics
@@ -408,7 +419,7 @@ type resampleSums struct {
 
 func (m *resampleSums) add(x WeightedReturn, c centres) {
 	g, p := x.Return-c.ret, x.PerDecision-c.perDecision
-	d := x.PerDecision*c.perDecisionFactor - x.Return - c.difference
+	d := c.differenceOf(x) - c.difference
 	rg := x.Ratio * g
 	m.n++
 	m.r += x.Ratio
@@ -425,9 +436,8 @@ func (m *resampleSums) add(x WeightedReturn, c centres) {
 	m.dd += d * d
 }
 
-// estimates gives each statistic and its standard error; the weighted
-// estimate is NaN when every ratio is 0, the difference when the
-// per-decision returns are too large for a float64.
+// estimates gives each statistic and its standard error (in the
+// statistic's scale); the weighted estimate is NaN when every ratio is 0.
 func (m resampleSums) estimates(c centres) (theta, se [statCount]float64) {
 	n := m.n
 	// spread is n-1 times the sample variance from a sum and a sum of squares.
@@ -444,9 +454,6 @@ func (m resampleSums) estimates(c centres) (theta, se [statCount]float64) {
 	theta[statMeanRatio], se[statMeanRatio] = m.r/n, meanErr(spread(m.rr, m.r))
 	theta[statPerDecision], se[statPerDecision] = c.perDecision+m.p/n, meanErr(spread(m.pp, m.p))
 	theta[statDifference], se[statDifference] = c.difference+m.d/n, meanErr(spread(m.dd, m.d))
-	if math.IsInf(c.perDecisionFactor, 0) {
-		theta[statDifference] = math.NaN()
-	}
 	if m.r == 0 {
 		theta[statWeighted] = math.NaN()
 		return theta, se
@@ -469,7 +476,7 @@ func (s ISSample) stdErrs(estimate [statCount]float64, c centres) [statCount]flo
 			statWeighted:    x.Ratio * (x.Return - estimate[statWeighted]),
 			statPerDecision: x.PerDecision - estimate[statPerDecision],
 			statMeanRatio:   x.Ratio - estimate[statMeanRatio],
-			statDifference:  x.PerDecision*c.perDecisionFactor - x.Return - estimate[statDifference],
+			statDifference:  c.differenceOf(x) - estimate[statDifference],
 		} {
 			sq[k] += u * u
 		}
