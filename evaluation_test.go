@@ -388,3 +388,48 @@ func TestEvaluationSurvivesHugeRatios(t *testing.T) {
 		t.Fatalf("weighted %v, ESS %v, ordinary %v, notes %q", res.Weighted.Estimate, res.EffectiveSampleSize, ordinary, res.Notes)
 	}
 }
+
+// Resamples without weight are not estimates: 100 episodes of which some
+// agree with the greedy target (return 10) and the rest take the other
+// action (ratio 0). Weighted importance sampling (Sutton & Barto, 2nd ed.,
+// eq. 5.6) gives 10 and so does every resample that draws an agreeing
+// episode; one that draws none has no estimate. With 3 agreeing that
+// happens with chance 0.97^100 = 4.8%, more than the 2.5% a 95% interval
+// leaves in a tail: the interval is withheld with a note. With 6 agreeing,
+// 0.94^100 = 0.2%: the interval is [10, 10].
+func TestEvaluationWithholdsIntervalsSetByResamplesWithoutWeight(t *testing.T) {
+	s := startService(t, pgtest.NewDatabase(t))
+	half := 0.5
+	for _, agree := range []int{3, 6} {
+		name := fmt.Sprintf("agree-%d", agree)
+		s.call("PUT", "/v1/policies/"+name, map[string]any{"actions": []string{"call", "wait"}}, 201)
+		s.call("PUT", "/v1/policies/"+name+"/table", map[string]any{"rows": []tableRow{{"lead", "call", 1, 1}, {"lead", "wait", 0, 1}}}, 200)
+		eps := make([]episodeJSON, 100)
+		for i := range eps {
+			step := stepJSON{State: "lead", Action: "wait", Reward: 2, Probability: &half}
+			if i < agree {
+				step = stepJSON{State: "lead", Action: "call", Reward: 10, Probability: &half}
+			}
+			eps[i] = episodeJSON{ID: fmt.Sprint(i), Steps: []stepJSON{step}}
+		}
+		s.post(name, eps...)
+		job, _ := startJob[evaluationResult](s, "/v1/policies/"+name+"/evaluations", map[string]any{"seed": 11, "resamples": 2000}, 30*time.Second)
+		if job.Status != "succeeded" {
+			t.Fatalf("%s: %s %s", name, job.Status, job.Error)
+		}
+		res := job.Result
+		miss := math.Pow(1-float64(agree)/100, 100)
+		t.Logf("%s: weighted %v %v, weightless share %v (expected %.4f), notes %q", name, res.Weighted.Estimate, res.Weighted.Interval, res.WeightlessResampleShare, miss, res.Notes)
+		// The share is binomial over 2000 resamples: within 4 standard deviations.
+		if res.Weighted.Estimate != 10 || math.Abs(res.WeightlessResampleShare-miss) > 4*math.Sqrt(miss*(1-miss)/2000) {
+			t.Errorf("%s: weighted %v, weightless share %v, want 10 and %.4f", name, res.Weighted.Estimate, res.WeightlessResampleShare, miss)
+		}
+		withheld := noteWith(res.Notes, "no episode of positive weight")
+		switch {
+		case agree == 3 && (res.Weighted.Interval != nil || withheld == ""):
+			t.Errorf("%s: weighted interval %v, notes %q; want it withheld with a note", name, res.Weighted.Interval, res.Notes)
+		case agree == 6 && (res.Weighted.Interval == nil || *res.Weighted.Interval != interval{Low: 10, High: 10} || withheld != ""):
+			t.Errorf("%s: weighted interval %v, notes %q; want [10, 10]", name, res.Weighted.Interval, res.Notes)
+		}
+	}
+}

@@ -84,7 +84,7 @@ const (
 type EvaluationRequest struct {
 	Target EvaluationTarget `json:"target"`
 	Window EpisodeWindow    `json:"window"`
-	// Resamples of the percentile bootstrap.
+	// Resamples of the bootstrap.
 	Resamples int `json:"resamples"`
 	// Seed makes the bootstrap repeatable; one is drawn when not given.
 	Seed *int64 `json:"seed,omitempty"`
@@ -327,7 +327,7 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 	res.Weighted = intervalEstimate(sample.Weighted(), iv.Weighted)
 	res.PerDecision = intervalEstimate(sample.PerDecision(), iv.PerDecision)
 	res.MeanRatio = intervalEstimate(sample.MeanRatio(), iv.MeanRatio)
-	res.PerDecisionMinusBehaviour = intervalEstimate(sample.PerDecision()-res.BehaviourMeanReturn, iv.Difference)
+	res.PerDecisionMinusBehaviour = intervalEstimate(sample.PerDecisionMinusBehaviour(), iv.Difference)
 	res.WeightlessResampleShare = iv.WeightlessShare
 	res.Notes = append(res.Notes, iv.Notes...)
 	res.Notes = append(res.Notes, reportNotes(res)...)

@@ -154,6 +154,14 @@ func (s ISSample) MeanRatio() float64 {
 	return scaleBy(mean(s.Episodes, func(x WeightedReturn) float64 { return x.Ratio }), s.LogRatioScale)
 }
 
+// PerDecisionMinusBehaviour is the mean over the episodes of the
+// per-decision return less the return: the per-decision estimate less
+// the behaviour's mean return.
+func (s ISSample) PerDecisionMinusBehaviour() float64 {
+	c := s.centres()
+	return scaleBy(c.difference, c.differenceLogScale)
+}
+
 // BehaviourMean is the mean return of the episodes: what the behaviour got.
 func (s ISSample) BehaviourMean() float64 {
 	return mean(s.Episodes, func(x WeightedReturn) float64 { return x.Return })
@@ -270,11 +278,15 @@ func BootstrapIS(ctx context.Context, s ISSample, resamples int, level float64, 
 		return out, nil
 	}
 	c := s.centres()
-	var whole resampleSums
-	for _, x := range s.Episodes {
-		whole.add(x, c)
+	// The intervals are centred on the estimates as reported, computed
+	// directly rather than from centred sums.
+	estimate := [statCount]float64{
+		statOrdinary:    mean(s.Episodes, func(x WeightedReturn) float64 { return x.Ratio * x.Return }),
+		statWeighted:    s.Weighted(),
+		statPerDecision: mean(s.Episodes, func(x WeightedReturn) float64 { return x.PerDecision }),
+		statMeanRatio:   mean(s.Episodes, func(x WeightedReturn) float64 { return x.Ratio }),
+		statDifference:  c.difference,
 	}
-	estimate, _ := whole.estimates(c)
 	var theta, se [statCount][]float64
 	for k := range statCount {
 		theta[k], se[k] = make([]float64, 0, resamples), make([]float64, 0, resamples)
@@ -304,13 +316,13 @@ func BootstrapIS(ctx context.Context, s ISSample, resamples int, level float64, 
 		}
 	}
 	out.WeightlessShare = float64(weightless) / float64(resamples)
-	stdErr := s.stdErrs(estimate, c)
+	stdErr, magnitude := s.stdErrs(estimate, c)
 	var iv [statCount]*Interval
 	for k := range statCount {
 		if len(theta[k]) == 0 {
 			continue
 		}
-		iv[k] = studentized(estimate[k], stdErr[k], theta[k], se[k], level, k != statWeighted)
+		iv[k] = studentized(estimate[k], stdErr[k], theta[k], se[k], level, k != statWeighted, roundingTolerance*magnitude[k])
 		if iv[k] == nil {
 			out.Notes = append(out.Notes, fmt.Sprintf("the %s interval is unbounded (left out, null): too many resamples differ from the sample with no spread to measure them by, as happens when very few episodes carry the weight", statNames[k]))
 		}
@@ -333,13 +345,20 @@ func BootstrapIS(ctx context.Context, s ISSample, resamples int, level float64, 
 	return out, nil
 }
 
+// roundingTolerance, times the largest magnitude a statistic is computed
+// from, bounds the rounding noise of its sums: differences and standard
+// errors below it are 0. (Sums of n terms carry noise of about sqrt(n)
+// 1e-16 of their terms; this leaves room for a billion terms.)
+const roundingTolerance = 1e-11
+
 // studentized is the bootstrap-t interval from the resamples' estimates
 // theta and standard errors se: estimate - t*_(1+level)/2 stdErr to
 // estimate - t*_(1-level)/2 stdErr, or with symmetric, estimate +- the
-// level quantile of |t*| times stdErr. It is nil when unbounded: when too
+// level quantile of |t*| times stdErr. Differences and standard errors
+// within tolerance of 0 count as 0. It is nil when unbounded: when too
 // many resamples differ from the estimate with a standard error of 0.
-func studentized(estimate, stdErr float64, theta, se []float64, level float64, symmetric bool) *Interval {
-	if stdErr == 0 {
+func studentized(estimate, stdErr float64, theta, se []float64, level float64, symmetric bool, tolerance float64) *Interval {
+	if stdErr <= tolerance {
 		return &Interval{Low: estimate, High: estimate}
 	}
 	t := make([]float64, len(theta))
@@ -349,10 +368,10 @@ func studentized(estimate, stdErr float64, theta, se []float64, level float64, s
 			d = math.Abs(d)
 		}
 		switch {
-		case se[i] > 0:
-			t[i] = d / se[i]
-		case d == 0:
+		case math.Abs(d) <= tolerance:
 			t[i] = 0
+		case se[i] > tolerance:
+			t[i] = d / se[i]
 		default:
 			t[i] = math.Inf(int(math.Copysign(1, d)))
 		}
@@ -467,33 +486,38 @@ func (m resampleSums) estimates(c centres) (theta, se [statCount]float64) {
 
 // stdErrs are the statistics' standard errors on the whole sample, the
 // same as estimates gives but in two passes, so that a sample without
-// spread gives exactly 0.
-func (s ISSample) stdErrs(estimate [statCount]float64, c centres) [statCount]float64 {
+// spread gives 0 but for rounding; and the largest magnitude each is
+// computed from, which bounds that rounding.
+func (s ISSample) stdErrs(estimate [statCount]float64, c centres) (stdErr, magnitude [statCount]float64) {
 	var sq [statCount]float64
 	for _, x := range s.Episodes {
-		for k, u := range [statCount]float64{
-			statOrdinary:    x.Ratio*x.Return - estimate[statOrdinary],
-			statWeighted:    x.Ratio * (x.Return - estimate[statWeighted]),
-			statPerDecision: x.PerDecision - estimate[statPerDecision],
-			statMeanRatio:   x.Ratio - estimate[statMeanRatio],
-			statDifference:  c.differenceOf(x) - estimate[statDifference],
+		for k, v := range [statCount][2]float64{
+			statOrdinary:    {x.Ratio * x.Return, estimate[statOrdinary]},
+			statWeighted:    {x.Return, estimate[statWeighted]},
+			statPerDecision: {x.PerDecision, estimate[statPerDecision]},
+			statMeanRatio:   {x.Ratio, estimate[statMeanRatio]},
+			statDifference:  {c.differenceOf(x), estimate[statDifference]},
 		} {
+			u := v[0] - v[1]
+			if k == statWeighted {
+				u *= x.Ratio
+			}
 			sq[k] += u * u
+			magnitude[k] = max(magnitude[k], math.Abs(v[0]), math.Abs(v[1]))
 		}
 	}
 	n := float64(len(s.Episodes))
-	var out [statCount]float64
 	for k := range statCount {
 		switch {
 		case k == statWeighted:
 			if sumRatio := n * mean(s.Episodes, func(x WeightedReturn) float64 { return x.Ratio }); sumRatio > 0 {
-				out[k] = math.Sqrt(sq[k]) / sumRatio
+				stdErr[k] = math.Sqrt(sq[k]) / sumRatio
 			}
 		case n >= 2:
-			out[k] = math.Sqrt(sq[k] / (n * (n - 1)))
+			stdErr[k] = math.Sqrt(sq[k] / (n * (n - 1)))
 		}
 	}
-	return out
+	return stdErr, magnitude
 }
 
 // TargetPolicy is the policy an evaluation asks about: greedy with respect
