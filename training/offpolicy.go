@@ -125,7 +125,7 @@ func (s ISSample) Ordinary() float64 {
 
 // Weighted is the weighted importance-sampling estimate, sum rho G / sum
 // rho, and 0 when every ratio is 0 (same book, eq. 5.6). Biased for few
-// episodes, consistent, and of far lower variance.
+// episodes, consistent, and usually of lower variance.
 func (s ISSample) Weighted() float64 {
 	num, den := 0.0, 0.0
 	for _, x := range s.Episodes {
@@ -317,19 +317,19 @@ func BootstrapIS(ctx context.Context, s ISSample, resamples int, level float64, 
 	}
 	out.WeightlessShare = float64(weightless) / float64(resamples)
 	stdErr, magnitude := s.stdErrs(estimate, c)
+	withheld := out.WeightlessShare > (1-level)/2
+	if withheld {
+		out.Notes = append(out.Notes, fmt.Sprintf("%.1f%% of bootstrap resamples drew no episode of positive weight and have no weighted estimate; above %.1f%% they, not the data, would set an end of a %.0f%% interval, so the weighted interval is left out (null)", 100*out.WeightlessShare, 100*(1-level)/2, 100*level))
+	}
 	var iv [statCount]*Interval
 	for k := range statCount {
-		if len(theta[k]) == 0 {
+		if len(theta[k]) == 0 || (k == statWeighted && withheld) {
 			continue
 		}
 		iv[k] = studentized(estimate[k], stdErr[k], theta[k], se[k], level, k != statWeighted, roundingTolerance*magnitude[k])
 		if iv[k] == nil {
 			out.Notes = append(out.Notes, fmt.Sprintf("the %s interval is unbounded (left out, null): too many resamples differ from the sample with no spread to measure them by, as happens when very few episodes carry the weight", statNames[k]))
 		}
-	}
-	if out.WeightlessShare > (1-level)/2 {
-		iv[statWeighted] = nil
-		out.Notes = append(out.Notes, fmt.Sprintf("%.1f%% of bootstrap resamples drew no episode of positive weight and have no weighted estimate; above %.1f%% they, not the data, would set an end of a %.0f%% interval, so the weighted interval is left out (null)", 100*out.WeightlessShare, 100*(1-level)/2, 100*level))
 	}
 	out.Weighted = iv[statWeighted]
 	out.Difference = scaleInterval(iv[statDifference], c.differenceLogScale)
