@@ -74,7 +74,8 @@ func deskTarget(epsilon float64) deskPolicy {
 
 // deskValue is the exact expected discounted return from the first
 // contact with a calm customer, by dynamic programming backwards over the
-// contacts (Bellman expectation equation, Sutton & Barto, 2nd ed., eq. 3.14).
+// contacts (Bellman expectation equation, Sutton & Barto, 2nd ed., eq. 3.14;
+// the equation number from memory).
 func deskValue(pi deskPolicy) float64 {
 	var next [2]float64 // V(contact+1, calm/upset); none after the last
 	for c := deskContacts - 1; c >= 0; c-- {

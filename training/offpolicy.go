@@ -22,8 +22,8 @@ type EpisodeRatio struct {
 	Return float64
 	// PerDecision times exp(LogPerDecisionScale) is the per-decision
 	// return sum_t gamma^t rho_{0:t} R_{t+1} (Sutton & Barto, 2nd ed.,
-	// section 5.9, eq. 5.15 from the first step): each reward weighted by
-	// the ratio of the actions up to it only.
+	// section 5.9, eq. 5.15 from the first step, its number from memory):
+	// each reward weighted by the ratio of the actions up to it only.
 	PerDecision         float64
 	LogPerDecisionScale float64
 }

@@ -321,8 +321,8 @@ func TestTinyRatioIsNotZero(t *testing.T) {
 }
 
 // Per-decision importance sampling (Sutton & Barto, 2nd ed., section 5.9,
-// eq. 5.15 from the first step) weights each reward by the ratio of the
-// actions up to it only. Worked by hand: step ratios 2, 0.5 and 0 (an
+// eq. 5.15 from the first step; the equation number from memory) weights
+// each reward by the ratio of the actions up to it only. Worked by hand: step ratios 2, 0.5 and 0 (an
 // action the target never takes), rewards 1, 3 and 7, gamma 0.5: the
 // per-decision return is 2*1 + 0.5*(2*0.5)*3 + 0.25*0*7 = 3.5, the
 // ordinary one rho G = 0 * (1 + 1.5 + 1.75).
