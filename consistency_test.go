@@ -14,20 +14,6 @@ import (
 	"github.com/qtally/qtally/storage/pgtest"
 )
 
-// evaluatedTable is what an evaluation result says it evaluated.
-type evaluatedTable struct {
-	Policy   string  `json:"policy"`
-	Name     string  `json:"name"`
-	Revision int64   `json:"revision"`
-	InitialQ float64 `json:"initial_q"`
-}
-
-// evaluationWithTable is an evaluation result with the table it names.
-type evaluationWithTable struct {
-	evaluationResult
-	Table evaluatedTable `json:"table"`
-}
-
 type policySettingsView struct {
 	InitialQ float64 `json:"initial_q"`
 	Revision int64   `json:"revision"`
@@ -121,13 +107,13 @@ func TestRestoredSnapshotIsTheTableEvaluated(t *testing.T) {
 	request := func(table string) map[string]any {
 		return map[string]any{"target": map[string]any{"table": table}, "window": map[string]any{"last": 40}, "seed": 7, "resamples": 200}
 	}
-	snap, _ := startJob[evaluationWithTable](s, "/v1/policies/dunning/evaluations", request("email-first"), time.Minute)
+	snap, _ := startJob[evaluationResult](s, "/v1/policies/dunning/evaluations", request("email-first"), time.Minute)
 	if snap.Status != "succeeded" {
 		t.Fatalf("evaluating the snapshot: %s %s", snap.Status, snap.Error)
 	}
 	// Greedy on the snapshot: email (about 1) beats call (0, its own
 	// initial value), so the 20 email episodes carry ratio 2 and return 1.
-	if r := snap.Result; r.Weighted.Estimate != 1 || r.Table.InitialQ != 0 || r.Table.Name != "email-first" || r.Table.Revision != frozen.Revision {
+	if r := snap.Result; r.Weighted.Estimate != 1 || r.Inputs.InitialQ != 0 || r.Inputs.Table != "email-first" || r.Inputs.TableRevision != frozen.Revision {
 		t.Fatalf("snapshot evaluation: %+v", r)
 	}
 
@@ -139,13 +125,13 @@ func TestRestoredSnapshotIsTheTableEvaluated(t *testing.T) {
 	if got := s.settings("dunning"); change.InitialQ != 0 || got.InitialQ != 0 || got.Revision != change.Revision {
 		t.Fatalf("after the restore the policy has %+v (restore said %+v), want the snapshot's initial value 0", got, change)
 	}
-	live, _ := startJob[evaluationWithTable](s, "/v1/policies/dunning/evaluations", request("live"), time.Minute)
+	live, _ := startJob[evaluationResult](s, "/v1/policies/dunning/evaluations", request("live"), time.Minute)
 	if live.Status != "succeeded" {
 		t.Fatalf("evaluating the restored table: %s %s", live.Status, live.Error)
 	}
 	a, b := snap.Result, live.Result
-	if a.Weighted != b.Weighted || a.Ordinary != b.Ordinary || a.EffectiveSampleSize != b.EffectiveSampleSize || a.ZeroWeightEpisodes != b.ZeroWeightEpisodes ||
-		b.Table.InitialQ != 0 || b.Table.Revision != change.Revision {
+	if a.Weighted.Estimate != b.Weighted.Estimate || a.Ordinary.Estimate != b.Ordinary.Estimate || a.EffectiveSampleSize != b.EffectiveSampleSize || a.ZeroWeightEpisodes != b.ZeroWeightEpisodes ||
+		b.Inputs.InitialQ != 0 || b.Inputs.TableRevision != change.Revision {
 		t.Fatalf("the restored table evaluates to %+v, the snapshot to %+v", b, a)
 	}
 	waitChoice(t, other, "other", "dunning", "overdue", "email", change.Revision)
@@ -183,21 +169,6 @@ func TestRestoredSnapshotIsTheTableEvaluated(t *testing.T) {
 	}
 }
 
-// inSampleResult is an evaluation result with its in-sample count.
-type inSampleResult struct {
-	evaluationResult
-	TrainedIntoTarget int64 `json:"episodes_trained_into_target"`
-}
-
-func hasNote(notes []string, part string) bool {
-	for _, n := range notes {
-		if strings.Contains(n, part) {
-			return true
-		}
-	}
-	return false
-}
-
 // banditEpisodes are one-step episodes of the uniformly random behaviour
 // over actions whose rewards all have mean 0 (standard normal).
 func banditEpisodes(rng *rand.Rand, prefix string, n int, actions []string) []episodeJSON {
@@ -226,10 +197,10 @@ func TestEvaluationReportsEpisodesTrainedIntoTheTarget(t *testing.T) {
 	s.waitTrained("offers", 200)
 	s.call("POST", "/v1/policies/offers/snapshots", map[string]any{"name": "after-200"}, 201)
 
-	evaluate := func(body map[string]any) jobView[inSampleResult] {
+	evaluate := func(body map[string]any) jobView[evaluationResult] {
 		t.Helper()
 		body["seed"], body["resamples"] = 3, 200
-		job, _ := startJob[inSampleResult](s, "/v1/policies/offers/evaluations", body, time.Minute)
+		job, _ := startJob[evaluationResult](s, "/v1/policies/offers/evaluations", body, time.Minute)
 		if job.Status != "succeeded" {
 			t.Fatalf("evaluation %v: %s %s", body, job.Status, job.Error)
 		}
@@ -237,7 +208,7 @@ func TestEvaluationReportsEpisodesTrainedIntoTheTarget(t *testing.T) {
 	}
 	const note = "already trained into the target table"
 	own := evaluate(map[string]any{"target": map[string]any{"table": "after-200"}})
-	if r := own.Result; r.EpisodesRead != 200 || r.TrainedIntoTarget != 200 || !hasNote(r.Notes, note) {
+	if r := own.Result; r.EpisodesRead != 200 || r.EpisodesTrainedIntoTarget != 200 || noteWith(r.Notes, note) == "" {
 		t.Fatalf("the snapshot on its own training episodes: %+v", r)
 	}
 
@@ -255,16 +226,16 @@ func TestEvaluationReportsEpisodesTrainedIntoTheTarget(t *testing.T) {
 	s.waitTrained("offers", 410)
 
 	held := evaluate(map[string]any{"target": map[string]any{"table": "after-200"}, "window": map[string]any{"after_snapshot": "after-200"}})
-	if r := held.Result; r.EpisodesRead != 210 || held.Episodes.Episodes != 210 || r.TrainedIntoTarget != 0 || hasNote(r.Notes, note) {
+	if r := held.Result; r.EpisodesRead != 210 || held.Episodes.Episodes != 210 || r.EpisodesTrainedIntoTarget != 0 || noteWith(r.Notes, note) != "" {
 		t.Fatalf("the snapshot on the episodes after it: %+v (window %+v)", r, held.Episodes)
 	}
 	waiting := evaluate(map[string]any{"target": map[string]any{"table": "after-400"}, "window": map[string]any{"after_snapshot": "after-400"}})
-	if r := waiting.Result; r.EpisodesRead != 10 || r.TrainedIntoTarget != 0 {
+	if r := waiting.Result; r.EpisodesRead != 10 || r.EpisodesTrainedIntoTarget != 0 {
 		t.Fatalf("the episodes waiting for training when after-400 was taken: %+v", r)
 	}
 	// The live table has learned from everything, the held-out window too.
 	live := evaluate(map[string]any{"window": map[string]any{"after_snapshot": "after-200"}})
-	if r := live.Result; r.EpisodesRead != 210 || r.TrainedIntoTarget != 210 || !hasNote(r.Notes, note) {
+	if r := live.Result; r.EpisodesRead != 210 || r.EpisodesTrainedIntoTarget != 210 || noteWith(r.Notes, note) == "" {
 		t.Fatalf("the live table on the episodes after after-200: %+v", r)
 	}
 	// A replay learns from the source's episodes: a table of the replay is
@@ -275,7 +246,7 @@ func TestEvaluationReportsEpisodesTrainedIntoTheTarget(t *testing.T) {
 		t.Fatalf("replay: %s %s", replay.Status, replay.Error)
 	}
 	cross := evaluate(map[string]any{"target": map[string]any{"policy": "offers-slow"}})
-	if r := cross.Result; r.EpisodesRead != 410 || r.TrainedIntoTarget != 210 || !hasNote(r.Notes, note) {
+	if r := cross.Result; r.EpisodesRead != 410 || r.EpisodesTrainedIntoTarget != 210 || noteWith(r.Notes, note) == "" {
 		t.Fatalf("the replay's table on every episode: %+v", r)
 	}
 	s.call("POST", "/v1/policies/offers/evaluations", map[string]any{"window": map[string]any{"after_snapshot": "nope"}}, 404)

@@ -1,10 +1,13 @@
 package training
 
 import (
+	"cmp"
 	"context"
 	"fmt"
+	"math"
 	"math/rand/v2"
 	"slices"
+	"strings"
 	"time"
 )
 
@@ -88,7 +91,7 @@ const (
 type EvaluationRequest struct {
 	Target EvaluationTarget `json:"target"`
 	Window EpisodeWindow    `json:"window"`
-	// Resamples of the percentile bootstrap.
+	// Resamples of the bootstrap.
 	Resamples int `json:"resamples"`
 	// Seed makes the bootstrap repeatable; one is drawn when not given.
 	Seed *int64 `json:"seed,omitempty"`
@@ -159,31 +162,66 @@ type EvaluationJob struct {
 	ReplayedFromSeq int64 `json:"replayed_from_seq,omitempty"`
 }
 
-// EvaluatedTable names the table an evaluation judged, as it was read.
-type EvaluatedTable struct {
-	Policy string `json:"policy"`
-	// Name is LiveTable or the snapshot's name.
-	Name     string  `json:"name"`
-	Revision int64   `json:"revision"`
-	InitialQ float64 `json:"initial_q"`
-	// TrainedThroughSeq is the seq of the last episode trained into it.
-	TrainedThroughSeq int64 `json:"trained_through_seq"`
+// IntervalEstimate is one estimator's value and its bootstrap interval.
+// Estimate is nil when it is too large for a float64; Interval is nil when
+// the bootstrap gives none (a note says why).
+type IntervalEstimate struct {
+	Estimate *float64  `json:"estimate"`
+	Interval *Interval `json:"interval"`
 }
 
-// IntervalEstimate is one estimator's value and its bootstrap interval.
-type IntervalEstimate struct {
-	Estimate float64  `json:"estimate"`
-	Interval Interval `json:"interval"`
+// EvaluationInputs are what an evaluation's numbers depend on besides the
+// episodes and the seed.
+type EvaluationInputs struct {
+	// Gamma discounts the returns (the episodes' policy's).
+	Gamma float64 `json:"gamma"`
+	// Policy owns the target table; Table is LiveTable or a snapshot.
+	Policy        string  `json:"policy"`
+	Table         string  `json:"table"`
+	TableRevision int64   `json:"table_revision"`
+	InitialQ      float64 `json:"initial_q"`
+	// TableTrainedThroughSeq is the seq of the last episode trained into
+	// the table.
+	TableTrainedThroughSeq int64 `json:"table_trained_through_seq"`
+	Mode                   Mode  `json:"mode"`
+	// Epsilon is explore mode's fixed rate; EpsilonRule the target
+	// policy's per-state rule, when explore mode has no fixed rate.
+	Epsilon     *float64     `json:"epsilon,omitempty"`
+	EpsilonRule *EpsilonRule `json:"epsilon_rule,omitempty"`
+}
+
+// EpsilonRule is epsilon(s) = max(epsilon_min, epsilon k / (k + N(s))),
+// k the decay visits (0: no decay).
+type EpsilonRule struct {
+	Epsilon            float64 `json:"epsilon"`
+	EpsilonMin         float64 `json:"epsilon_min"`
+	EpsilonDecayVisits float64 `json:"epsilon_decay_visits"`
 }
 
 // EvaluationResult is the answer of an evaluation.
 type EvaluationResult struct {
-	// Ordinary and Weighted are the two importance-sampling estimates of
-	// the target's expected return G0.
-	Ordinary IntervalEstimate `json:"ordinary"`
-	Weighted IntervalEstimate `json:"weighted"`
+	// Ordinary, Weighted and PerDecision are three importance-sampling
+	// estimates of the target's expected return G0.
+	Ordinary    IntervalEstimate `json:"ordinary"`
+	Weighted    IntervalEstimate `json:"weighted"`
+	PerDecision IntervalEstimate `json:"per_decision"`
+	// PerDecisionMinusBehaviour is the per-decision estimate less the
+	// behaviour's mean return, its interval from the same resamples as
+	// both: how much better than what the episodes got the target is.
+	PerDecisionMinusBehaviour IntervalEstimate `json:"per_decision_minus_behaviour"`
+	// MeanRatio is the mean importance ratio, about 1 when the stored
+	// probabilities are the behaviour's.
+	MeanRatio IntervalEstimate `json:"mean_ratio"`
 	// EffectiveSampleSize is (sum rho)^2 / sum rho^2.
 	EffectiveSampleSize float64 `json:"effective_sample_size"`
+	// LargestWeightShare is the largest rho over sum rho;
+	// LargestRatioLog10 is log10 of the largest rho (it may be too large
+	// for a float64), nil when every ratio is 0.
+	LargestWeightShare float64  `json:"largest_weight_share"`
+	LargestRatioLog10  *float64 `json:"largest_ratio_log10"`
+	// WeightlessResampleShare is the share of bootstrap resamples that drew
+	// no episode of positive weight: they have no weighted estimate.
+	WeightlessResampleShare float64 `json:"weightless_resample_share"`
 	// BehaviourMeanReturn is the mean G0 of the episodes used: what the
 	// behaviour itself got.
 	BehaviourMeanReturn float64 `json:"behaviour_mean_return"`
@@ -197,13 +235,12 @@ type EvaluationResult struct {
 	// EpisodesTrainedIntoTarget counts the episodes read that the target
 	// table had already learned from: on those it is judged in-sample,
 	// which flatters it.
-	EpisodesTrainedIntoTarget int64 `json:"episodes_trained_into_target"`
-	// Table is the table judged, as read when the job ran.
-	Table     EvaluatedTable `json:"table"`
-	Level     float64        `json:"level"`
-	Resamples int            `json:"resamples"`
-	Seed      int64          `json:"seed"`
-	Notes     []string       `json:"notes"`
+	EpisodesTrainedIntoTarget int64            `json:"episodes_trained_into_target"`
+	Inputs                    EvaluationInputs `json:"inputs"`
+	Level                     float64          `json:"level"`
+	Resamples                 int              `json:"resamples"`
+	Seed                      int64            `json:"seed"`
+	Notes                     []string         `json:"notes"`
 
 	// StepsWithoutAllowed counts the steps of the episodes used that carry
 	// no allowed set (the target's probability there is over every action);
@@ -234,8 +271,8 @@ type EvaluationSource interface {
 }
 
 // Evaluate estimates the target's expected return from the episodes of the
-// job's span by ordinary and weighted importance sampling, with percentile
-// bootstrap intervals, reporting progress as it goes.
+// job's span by ordinary, weighted and per-decision importance sampling,
+// with bootstrap intervals, reporting progress as it goes.
 func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, progress func(Progress)) (EvaluationResult, error) {
 	req := job.Request
 	p, err := src.PolicyByID(ctx, job.PolicyID)
@@ -257,13 +294,13 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 	}
 	target := NewTargetPolicy(table, req.Target.Mode, req.Target.Epsilon, tp.Settings)
 	res := EvaluationResult{Level: IntervalLevel, Resamples: req.Resamples, Seed: *req.Seed, Notes: []string{},
-		Table: EvaluatedTable{Policy: tp.Name, Name: req.Target.Table, Revision: table.Revision, InitialQ: table.InitialQ, TrainedThroughSeq: table.TrainedThroughSeq}}
+		Inputs: evaluationInputs(p, tp, table, req.Target)}
 	trainedFrom := int64(1)
 	if tp.ID != p.ID {
 		trainedFrom = job.ReplayedFromSeq
 	}
-	var samples []WeightedReturn
-	var returns []float64
+	var ratios []EpisodeRatio
+	var largest largestRatios
 	err = src.ReadEpisodes(ctx, p.ID, job.Episodes, func(ep StoredEpisode) error {
 		res.EpisodesRead++
 		if trainedFrom > 0 && trainedFrom <= ep.Seq && ep.Seq <= table.TrainedThroughSeq {
@@ -272,17 +309,14 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 		if res.EpisodesRead%1000 == 0 {
 			progress(Progress{Phase: "reading episodes", Done: res.EpisodesRead, Total: job.Episodes.Episodes})
 		}
-		rho, ok := ImportanceRatio(ep.EpisodeRecord, target.Probability)
+		r, ok := ImportanceRatio(ep.EpisodeRecord, p.Gamma, target.Probability)
 		if !ok {
 			res.EpisodesWithoutProbabilities++
 			return nil
 		}
-		if !finite(rho) {
-			return Invalid(-1, -1, "window", "episode %q has an importance ratio too large to represent (%d steps); evaluate a window of shorter episodes", ep.ID, len(ep.States))
-		}
-		returns = Returns(ep.Rewards, p.Gamma, returns)
-		samples = append(samples, WeightedReturn{Ratio: rho, Return: returns[0]})
-		if rho == 0 {
+		ratios = append(ratios, r)
+		largest.offer(ep.ID, r.LogRatio)
+		if math.IsInf(r.LogRatio, -1) {
 			res.ZeroWeightEpisodes++
 		}
 		if n := ep.StepsWithoutAllowed(); n > 0 {
@@ -294,11 +328,11 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 	if err != nil {
 		return EvaluationResult{}, err
 	}
-	res.EpisodesUsed = int64(len(samples))
+	res.EpisodesUsed = int64(len(ratios))
 	switch {
 	case res.EpisodesRead == 0:
 		return res, Invalid(-1, -1, "window", "holds no stored episodes of policy %q", p.Name)
-	case len(samples) == 0:
+	case len(ratios) == 0:
 		return res, Invalid(-1, -1, "window", "none of its %d episodes carries a behaviour probability at every step, so none says anything about another policy; post steps with \"probability\" (the chance the behaviour gave the action taken)", res.EpisodesRead)
 	}
 	if res.EpisodesTrainedIntoTarget > 0 {
@@ -316,24 +350,122 @@ func Evaluate(ctx context.Context, src EvaluationSource, job EvaluationJob, prog
 	if res.ZeroWeightEpisodes == res.EpisodesUsed {
 		res.Notes = append(res.Notes, "every episode used took some action the target never takes, so all weights are 0: the estimates are 0 by convention and say nothing; widen the window or evaluate an epsilon-soft target")
 	}
-	res.BehaviourMeanReturn = behaviourMean(samples)
-	res.Ordinary.Estimate = OrdinaryIS(samples)
-	res.Weighted.Estimate = WeightedIS(samples)
-	res.EffectiveSampleSize = EffectiveSampleSize(samples)
+	sample := NewISSample(ratios)
+	res.Notes = append(res.Notes, largest.absurd(ratios)...)
+	res.BehaviourMeanReturn = sample.BehaviourMean()
+	res.EffectiveSampleSize = sample.EffectiveSampleSize()
+	res.LargestWeightShare = sample.LargestWeightShare()
+	if res.ZeroWeightEpisodes < res.EpisodesUsed {
+		top := sample.LogRatioScale / math.Ln10
+		res.LargestRatioLog10 = &top
+	}
 	rng := rand.New(rand.NewPCG(uint64(*req.Seed), bootstrapStream))
 	total := int64(req.Resamples)
 	progress(Progress{Phase: "bootstrap", Done: 0, Total: total})
-	res.Ordinary.Interval, res.Weighted.Interval, err = BootstrapIS(ctx, samples, req.Resamples, IntervalLevel, rng, func(done int) {
+	iv, err := BootstrapIS(ctx, sample, req.Resamples, IntervalLevel, rng, func(done int) {
 		progress(Progress{Phase: "bootstrap", Done: int64(done), Total: total})
 	})
 	if err != nil {
 		return EvaluationResult{}, err
 	}
-	if !finite(res.Ordinary.Estimate) || !finite(res.Ordinary.Interval.High) || !finite(res.Ordinary.Interval.Low) {
-		return EvaluationResult{}, Invalid(-1, -1, "window", "the importance-weighted returns overflow; evaluate a window of shorter episodes")
-	}
+	res.Ordinary = intervalEstimate(sample.Ordinary(), iv.Ordinary)
+	res.Weighted = intervalEstimate(sample.Weighted(), iv.Weighted)
+	res.PerDecision = intervalEstimate(sample.PerDecision(), iv.PerDecision)
+	res.MeanRatio = intervalEstimate(sample.MeanRatio(), iv.MeanRatio)
+	res.PerDecisionMinusBehaviour = intervalEstimate(sample.PerDecisionMinusBehaviour(), iv.Difference)
+	res.WeightlessResampleShare = iv.WeightlessShare
+	res.Notes = append(res.Notes, iv.Notes...)
+	res.Notes = append(res.Notes, reportNotes(res)...)
 	progress(Progress{Phase: "done", Done: total, Total: total})
 	return res, nil
+}
+
+func evaluationInputs(p, tp Policy, table *QTable, target EvaluationTarget) EvaluationInputs {
+	in := EvaluationInputs{Gamma: p.Gamma, Policy: tp.Name, Table: target.Table, TableRevision: table.Revision,
+		InitialQ: table.InitialQ, TableTrainedThroughSeq: table.TrainedThroughSeq, Mode: target.Mode, Epsilon: target.Epsilon}
+	if target.Mode == Explore && target.Epsilon == nil {
+		in.EpsilonRule = &EpsilonRule{Epsilon: tp.Epsilon, EpsilonMin: tp.EpsilonMin, EpsilonDecayVisits: tp.EpsilonDecayVisits}
+	}
+	return in
+}
+
+// intervalEstimate keeps an estimate only when a float64 holds it.
+func intervalEstimate(estimate float64, iv *Interval) IntervalEstimate {
+	out := IntervalEstimate{Interval: iv}
+	if finite(estimate) {
+		out.Estimate = &estimate
+	}
+	return out
+}
+
+// absurdRatioFactor: under correctly stored probabilities a ratio is at
+// least R with chance at most 1/R (Markov's inequality, as E_b[rho] <= 1),
+// so among n episodes one of at least 1000 n turns up with chance at most
+// 0.001.
+const absurdRatioFactor = 1000
+
+// largestRatios keeps the episodes of the three largest ratios, to name
+// them without keeping every episode's id.
+type largestRatios []namedRatio
+
+type namedRatio struct {
+	id       string
+	logRatio float64
+}
+
+func (l *largestRatios) offer(id string, logRatio float64) {
+	if len(*l) == 3 && logRatio <= (*l)[2].logRatio {
+		return
+	}
+	*l = append(*l, namedRatio{id, logRatio})
+	slices.SortStableFunc(*l, func(a, b namedRatio) int { return cmp.Compare(b.logRatio, a.logRatio) })
+	*l = (*l)[:min(len(*l), 3)]
+}
+
+// absurd says, in a note, how many ratios are too large to be believed,
+// naming the largest.
+func (l largestRatios) absurd(ratios []EpisodeRatio) []string {
+	limit := math.Log(absurdRatioFactor * float64(len(ratios)))
+	count := 0
+	for _, r := range ratios {
+		if r.LogRatio > limit {
+			count++
+		}
+	}
+	if count == 0 {
+		return nil
+	}
+	var named []string
+	for _, r := range l {
+		if r.logRatio > limit {
+			named = append(named, fmt.Sprintf("%q (1e%.0f)", r.id, r.logRatio/math.Ln10))
+		}
+	}
+	return []string{fmt.Sprintf("%d episodes have an importance ratio above %d times the number of episodes, which correctly stored behaviour probabilities give with chance below 0.001; the largest: %s; check the probabilities posted for them (one posted for another action, or far too small): the weighted estimate rests on them", count, absurdRatioFactor, strings.Join(named, ", "))}
+}
+
+// smallEffectiveSampleSize is where the report starts warning that the
+// weighted estimate rests on few episodes (our choice of threshold).
+const smallEffectiveSampleSize = 100
+
+// reportNotes says what a reader of the numbers must know.
+func reportNotes(res EvaluationResult) []string {
+	var notes []string
+	for _, e := range []struct {
+		name string
+		est  IntervalEstimate
+	}{{"ordinary", res.Ordinary}, {"per-decision", res.PerDecision}, {"mean ratio", res.MeanRatio}, {"per-decision minus behaviour", res.PerDecisionMinusBehaviour}} {
+		if e.est.Estimate == nil {
+			notes = append(notes, fmt.Sprintf("the %s estimate is too large for a 64-bit float (left out, null)", e.name))
+		}
+	}
+	if res.ZeroWeightEpisodes < res.EpisodesUsed && res.EffectiveSampleSize < smallEffectiveSampleSize {
+		notes = append(notes, fmt.Sprintf("the weights are worth only %.1f equally weighted episodes (the largest carries %.0f%% of the total weight): the estimates and intervals rest on few episodes", res.EffectiveSampleSize, 100*res.LargestWeightShare))
+	}
+	if iv := res.MeanRatio.Interval; iv != nil && (iv.Low > 1 || iv.High < 1) {
+		notes = append(notes, fmt.Sprintf("warning: the mean importance ratio's %.0f%% interval [%.4g, %.4g] excludes 1, its expected value when the stored probabilities are the behaviour's and the behaviour could take every action the target takes; likely causes: probabilities posted that are not the ones choose returned for the action taken, steps chosen from a mask posted without \"allowed\", or episodes chosen in greedy mode (probability 1 for one action, so the target's other choices are never covered)", 100*res.Level, iv.Low, iv.High))
+	}
+	return notes
 }
 
 // bootstrapStream is the second PCG word of the bootstrap generator; the

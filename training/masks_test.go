@@ -140,8 +140,9 @@ func TestTargetProbabilitiesFollowEachStepsAllowedSet(t *testing.T) {
 	// ImportanceRatio hands each step its own set.
 	ep := EpisodeRecord{States: []string{"s", "s"}, Actions: []int16{0, 1}, Rewards: []float64{0, 1},
 		Probabilities: []float64{0.5, 0.5}, Allowed: []byte{0b011, 0}}
-	rho, ok := ImportanceRatio(ep, soft.Probability)
-	if want := (0.85 / 0.5) * (0.1 / 0.5); !ok || math.Abs(rho-want) > 1e-15 {
+	r, ok := ImportanceRatio(ep, 1, soft.Probability)
+	rho := math.Exp(r.LogRatio)
+	if want := (0.85 / 0.5) * (0.1 / 0.5); !ok || math.Abs(rho-want) > 1e-14 {
 		t.Errorf("ratio %v, %v; want %v from step 0 under {a, b} and step 1 unmasked", rho, ok, want)
 	}
 	if n := ep.StepsWithoutAllowed(); n != 1 {

@@ -4,6 +4,7 @@ import (
 	"context"
 	"math"
 	"math/rand/v2"
+	"strings"
 	"testing"
 
 	"gonum.org/v1/gonum/stat"
@@ -51,16 +52,15 @@ func behaviourEpisode(rng *rand.Rand) training.EpisodeRecord {
 	return rec
 }
 
-func weightedReturns(t *testing.T, target *training.TargetPolicy, rng *rand.Rand, n int) []training.WeightedReturn {
+func episodeRatios(t *testing.T, target *training.TargetPolicy, rng *rand.Rand, n int) []training.EpisodeRatio {
 	t.Helper()
-	out := make([]training.WeightedReturn, n)
+	out := make([]training.EpisodeRatio, n)
 	for i := range out {
-		ep := behaviourEpisode(rng)
-		rho, ok := training.ImportanceRatio(ep, target.Probability)
+		r, ok := training.ImportanceRatio(behaviourEpisode(rng), 1, target.Probability)
 		if !ok {
 			t.Fatal("an episode with every probability was refused")
 		}
-		out[i] = training.WeightedReturn{Ratio: rho, Return: training.Returns(ep.Rewards, 1, nil)[0]}
+		out[i] = r
 	}
 	return out
 }
@@ -83,14 +83,16 @@ func TestWeightedISHasLowerVarianceThanOrdinaryOnTheBooksExample(t *testing.T) {
 	mseOrd, mseWtd := make([]float64, len(checkpoints)), make([]float64, len(checkpoints))
 	final := map[string][]float64{}
 	for range runs {
-		s := weightedReturns(t, target, rng, episodes)
+		r := episodeRatios(t, target, rng, episodes)
 		for i, n := range checkpoints {
-			ord, wtd := training.OrdinaryIS(s[:n]), training.WeightedIS(s[:n])
+			s := training.NewISSample(r[:n])
+			ord, wtd := s.Ordinary(), s.Weighted()
 			mseOrd[i] += (ord - cardgame.ExampleStartValue) * (ord - cardgame.ExampleStartValue) / runs
 			mseWtd[i] += (wtd - cardgame.ExampleStartValue) * (wtd - cardgame.ExampleStartValue) / runs
 		}
-		final["ordinary"] = append(final["ordinary"], training.OrdinaryIS(s))
-		final["weighted"] = append(final["weighted"], training.WeightedIS(s))
+		s := training.NewISSample(r)
+		final["ordinary"] = append(final["ordinary"], s.Ordinary())
+		final["weighted"] = append(final["weighted"], s.Weighted())
 	}
 	for i, n := range checkpoints {
 		t.Logf("after %4d episodes: mean squared error ordinary %.5f, weighted %.5f", n, mseOrd[i], mseWtd[i])
@@ -112,11 +114,13 @@ func TestWeightedISHasLowerVarianceThanOrdinaryOnTheBooksExample(t *testing.T) {
 // 1, 5, -1 give ordinary (2 + 0 - 4) / 3 = -2/3, weighted (2 - 4) / 6 =
 // -1/3 and effective sample size 6^2 / 20 = 1.8.
 func TestEstimatorsOnHandWorkedNumbers(t *testing.T) {
-	s := []training.WeightedReturn{{Ratio: 2, Return: 1}, {Ratio: 0, Return: 5}, {Ratio: 4, Return: -1}}
+	s := training.ISSample{Episodes: []training.WeightedReturn{{Ratio: 2, Return: 1}, {Ratio: 0, Return: 5}, {Ratio: 4, Return: -1}}}
 	for name, c := range map[string][2]float64{
-		"ordinary": {training.OrdinaryIS(s), -2.0 / 3},
-		"weighted": {training.WeightedIS(s), -1.0 / 3},
-		"ESS":      {training.EffectiveSampleSize(s), 1.8},
+		"ordinary":             {s.Ordinary(), -2.0 / 3},
+		"weighted":             {s.Weighted(), -1.0 / 3},
+		"ESS":                  {s.EffectiveSampleSize(), 1.8},
+		"mean ratio":           {s.MeanRatio(), 2},
+		"largest weight share": {s.LargestWeightShare(), 4.0 / 6},
 	} {
 		if math.Abs(c[0]-c[1]) > 1e-12 {
 			t.Errorf("%s = %v, want %v", name, c[0], c[1])
@@ -124,8 +128,8 @@ func TestEstimatorsOnHandWorkedNumbers(t *testing.T) {
 	}
 	// All ratios zero: the weighted estimate is 0 by the book's convention
 	// (eq. 5.6), and the weights are worth no episode at all.
-	zero := []training.WeightedReturn{{Ratio: 0, Return: 3}}
-	if training.WeightedIS(zero) != 0 || training.EffectiveSampleSize(zero) != 0 {
+	zero := training.ISSample{Episodes: []training.WeightedReturn{{Ratio: 0, Return: 3}}}
+	if zero.Weighted() != 0 || zero.EffectiveSampleSize() != 0 {
 		t.Error("all-zero weights")
 	}
 }
@@ -162,70 +166,175 @@ func TestTargetProbabilitiesAndRatios(t *testing.T) {
 	}
 
 	ep := training.EpisodeRecord{States: []string{"tied", "one"}, Actions: []int16{1, 2}, Rewards: []float64{0, 1}, Probabilities: []float64{0.25, 0.5}}
-	if rho, ok := training.ImportanceRatio(ep, greedy.Probability); !ok || math.Abs(rho-(0.5/0.25)*(1/0.5)) > 1e-15 {
-		t.Fatalf("ratio %v %v, want 4", rho, ok)
+	if r, ok := training.ImportanceRatio(ep, 1, greedy.Probability); !ok || math.Abs(math.Exp(r.LogRatio)-(0.5/0.25)*(1/0.5)) > 1e-14 {
+		t.Fatalf("ratio %v %v, want 4", math.Exp(r.LogRatio), ok)
 	}
 	ep.Probabilities[1] = 0
-	if _, ok := training.ImportanceRatio(ep, greedy.Probability); ok {
+	if _, ok := training.ImportanceRatio(ep, 1, greedy.Probability); ok {
 		t.Fatal("a step without a behaviour probability must leave the episode out")
 	}
 	ep.Probabilities = nil
-	if _, ok := training.ImportanceRatio(ep, greedy.Probability); ok {
+	if _, ok := training.ImportanceRatio(ep, 1, greedy.Probability); ok {
 		t.Fatal("an episode without probabilities must be left out")
 	}
 }
 
-// The percentile bootstrap intervals must be close to the large-sample
-// normal intervals estimate +- z(0.975) se (z from gonum's normal
-// quantile): for the ordinary estimate, a mean, se = sd(rho G)/sqrt(n)
+// The bootstrap intervals must be close to the large-sample normal
+// intervals estimate +- z(0.975) se (z from gonum's normal quantile): for
+// the ordinary estimate and the mean ratio, means, se = sd/sqrt(n)
 // (central limit theorem); for the weighted estimate, a ratio of means, the
 // delta-method se = sqrt(sum rho^2 (G - w)^2) / sum rho (common practice
-// for self-normalised weights). Once with every ratio 1, where both
-// estimates are the sample mean, and once with most ratios 0, the case the
-// bootstrap's shortcut for zero weights serves. Seeded, so repeatable.
+// for self-normalised weights); the per-decision returns are set to rho G,
+// as they are when all reward comes at the end, and the difference is the
+// mean of rho G - G. Once with every ratio 1, where the two estimates are
+// the sample mean, and once with most ratios 0. The returns are skewed but
+// the sample is large, so the bootstrap-t must agree with the normal
+// theory within 20% of the half-width (its ends move with the skew; the
+// normal interval's do not). Seeded, so repeatable.
 func TestBootstrapIntervalsAgreeWithNormalTheory(t *testing.T) {
 	for _, zeroShare := range []float64{0, 0.85} {
 		rng := rand.New(rand.NewPCG(8, 9))
 		const n = 4000
-		s := make([]training.WeightedReturn, n)
-		for i := range s {
-			s[i] = training.WeightedReturn{Ratio: 1, Return: rng.ExpFloat64()*2 - 1}
+		s := training.ISSample{Episodes: make([]training.WeightedReturn, n)}
+		for i := range s.Episodes {
+			x := training.WeightedReturn{Ratio: 1, Return: rng.ExpFloat64()*2 - 1}
 			if zeroShare > 0 {
-				s[i].Ratio = 0
+				x.Ratio = 0
 				if rng.Float64() >= zeroShare {
-					s[i].Ratio = float64(2 + rng.IntN(6))
+					x.Ratio = float64(2 + rng.IntN(6))
 				}
 			}
+			x.PerDecision = x.Ratio * x.Return
+			s.Episodes[i] = x
 		}
-		ord, wtd, err := training.BootstrapIS(context.Background(), s, 2000, 0.95, rand.New(rand.NewPCG(1, 2)), nil)
+		iv, err := training.BootstrapIS(context.Background(), s, 2000, 0.95, rand.New(rand.NewPCG(1, 2)), nil)
 		if err != nil {
 			t.Fatal(err)
 		}
 		z := distuv.UnitNormal.Quantile(0.975)
-		products := make([]float64, n)
-		w := training.WeightedIS(s)
+		products, ratios, differences := make([]float64, n), make([]float64, n), make([]float64, n)
+		w := s.Weighted()
 		sumRho, sumSq := 0.0, 0.0
-		for i, x := range s {
-			products[i] = x.Ratio * x.Return
+		for i, x := range s.Episodes {
+			products[i], ratios[i], differences[i] = x.Ratio*x.Return, x.Ratio, x.Ratio*x.Return-x.Return
 			sumRho += x.Ratio
 			sumSq += x.Ratio * x.Ratio * (x.Return - w) * (x.Return - w)
 		}
-		ordHalf := z * stat.StdDev(products, nil) / math.Sqrt(n)
-		wtdHalf := z * math.Sqrt(sumSq) / sumRho
-		o := training.OrdinaryIS(s)
-		t.Logf("zero share %.2f: ordinary bootstrap [%.4f, %.4f], normal [%.4f, %.4f]; weighted bootstrap [%.4f, %.4f], delta method [%.4f, %.4f]",
-			zeroShare, ord.Low, ord.High, o-ordHalf, o+ordHalf, wtd.Low, wtd.High, w-wtdHalf, w+wtdHalf)
 		for _, c := range []struct {
 			name         string
-			got          training.Interval
+			got          *training.Interval
 			center, half float64
-		}{{"ordinary", ord, o, ordHalf}, {"weighted", wtd, w, wtdHalf}} {
-			if math.Abs(c.got.Low-(c.center-c.half)) > 0.15*c.half || math.Abs(c.got.High-(c.center+c.half)) > 0.15*c.half {
+		}{
+			{"ordinary", iv.Ordinary, s.Ordinary(), z * stat.StdDev(products, nil) / math.Sqrt(n)},
+			{"mean ratio", iv.MeanRatio, s.MeanRatio(), z * stat.StdDev(ratios, nil) / math.Sqrt(n)},
+			{"weighted", iv.Weighted, w, z * math.Sqrt(sumSq) / sumRho},
+			{"per-decision", iv.PerDecision, s.PerDecision(), z * stat.StdDev(products, nil) / math.Sqrt(n)},
+			{"difference", iv.Difference, stat.Mean(differences, nil), z * stat.StdDev(differences, nil) / math.Sqrt(n)},
+		} {
+			if c.got == nil {
+				t.Errorf("zero share %.2f: no %s interval", zeroShare, c.name)
+				continue
+			}
+			t.Logf("zero share %.2f: %s bootstrap [%.4f, %.4f], normal [%.4f, %.4f]", zeroShare, c.name, c.got.Low, c.got.High, c.center-c.half, c.center+c.half)
+			if c.half < 1e-9 {
+				if math.Abs(c.got.Low-c.center) > 1e-9 || math.Abs(c.got.High-c.center) > 1e-9 {
+					t.Errorf("zero share %.2f: %s interval [%v, %v] around a constant %v", zeroShare, c.name, c.got.Low, c.got.High, c.center)
+				}
+				continue
+			}
+			if math.Abs(c.got.Low-(c.center-c.half)) > 0.2*c.half || math.Abs(c.got.High-(c.center+c.half)) > 0.2*c.half {
 				t.Errorf("zero share %.2f: %s bootstrap interval [%v, %v] far from [%v, %v]", zeroShare, c.name, c.got.Low, c.got.High, c.center-c.half, c.center+c.half)
 			}
 		}
-		if zeroShare == 0 && ord != wtd {
-			t.Errorf("with unit ratios the intervals must agree: %v vs %v", ord, wtd)
+		// Per-decision returns equal to rho G make the two unbiased
+		// estimates one statistic, resampled alike.
+		if math.Abs(iv.Ordinary.Low-iv.PerDecision.Low) > 1e-12 || math.Abs(iv.Ordinary.High-iv.PerDecision.High) > 1e-12 {
+			t.Errorf("zero share %.2f: ordinary %v and per-decision %v intervals must agree", zeroShare, *iv.Ordinary, *iv.PerDecision)
 		}
+	}
+}
+
+// A resample that draws no episode of positive weight has no weighted
+// estimate (0/0, Sutton & Barto, 2nd ed., eq. 5.6) and must not count as
+// one. 100 episodes, 3 agreeing with the target (ratio 1, return 10), the
+// rest of ratio 0: every informative resample gives 10, and a resample
+// misses all three with chance 0.97^100 = 4.8%, more than the 2.5% a 95%
+// interval leaves in each tail, so the weighted interval is withheld, with
+// a note. With 6 agreeing the chance is 0.94^100 = 0.2% and the interval
+// is [10, 10].
+func TestBootstrapLeavesOutResamplesWithoutWeight(t *testing.T) {
+	const resamples = 4000
+	for _, agree := range []int{3, 6} {
+		s := training.ISSample{Episodes: make([]training.WeightedReturn, 100)}
+		for i := range agree {
+			s.Episodes[i] = training.WeightedReturn{Ratio: 1, Return: 10}
+		}
+		iv, err := training.BootstrapIS(context.Background(), s, resamples, 0.95, rand.New(rand.NewPCG(3, 3)), nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		miss := math.Pow(1-float64(agree)/100, 100)
+		// Binomial share of resamples: within 4 standard deviations.
+		if tol := 4 * math.Sqrt(miss*(1-miss)/resamples); math.Abs(iv.WeightlessShare-miss) > tol {
+			t.Errorf("%d agreeing: weightless share %v, want %v +- %v", agree, iv.WeightlessShare, miss, tol)
+		}
+		switch {
+		case agree == 3 && (iv.Weighted != nil || len(iv.Notes) != 1 || !strings.Contains(iv.Notes[0], "4.")):
+			t.Errorf("3 agreeing: weighted interval %v, notes %q; want it withheld with a note giving the share", iv.Weighted, iv.Notes)
+		case agree == 6 && (iv.Weighted == nil || *iv.Weighted != training.Interval{Low: 10, High: 10}):
+			t.Errorf("6 agreeing: weighted interval %v, want [10, 10]", iv.Weighted)
+		}
+	}
+}
+
+// Ratios are products of many factors and are kept as logarithms. A ratio
+// too small for a float64 is not a ratio of 0: 600 steps whose actions the
+// target takes with probability 0.25 and the behaviour took with 0.99 give
+// rho = (0.25/0.99)^600, about 1e-358. Only a step the target never takes
+// makes a ratio 0.
+func TestTinyRatioIsNotZero(t *testing.T) {
+	table := training.NewQTable([]string{"a", "b"}, 0)
+	table.Set("s", 0, 1, 1)
+	eps := 0.5
+	target := training.NewTargetPolicy(table, training.Explore, &eps, training.DefaultSettings())
+	ep := training.EpisodeRecord{}
+	for range 600 {
+		ep.States = append(ep.States, "s")
+		ep.Actions = append(ep.Actions, 1)
+		ep.Rewards = append(ep.Rewards, 1)
+		ep.Probabilities = append(ep.Probabilities, 0.99)
+	}
+	r, ok := training.ImportanceRatio(ep, 1, target.Probability)
+	if want := 600 * math.Log(0.25/0.99); !ok || math.Abs(r.LogRatio-want) > 1e-9 {
+		t.Fatalf("log ratio %v (%v), want %v: an underflow was taken for an action the target never takes", r.LogRatio, ok, want)
+	}
+	greedy := training.NewTargetPolicy(table, training.Greedy, nil, training.DefaultSettings())
+	zero, _ := training.ImportanceRatio(ep, 1, greedy.Probability)
+	if !math.IsInf(zero.LogRatio, -1) {
+		t.Fatalf("an action the greedy target never takes: log ratio %v, want -Inf", zero.LogRatio)
+	}
+	// Scaled together, the tiny ratio is the largest and counts fully.
+	s := training.NewISSample([]training.EpisodeRatio{zero, {LogRatio: r.LogRatio, Return: 3}})
+	if s.Weighted() != 3 || s.EffectiveSampleSize() != 1 {
+		t.Fatalf("weighted %v, ESS %v, want 3 and 1", s.Weighted(), s.EffectiveSampleSize())
+	}
+}
+
+// Per-decision importance sampling (Sutton & Barto, 2nd ed., section 5.9,
+// eq. 5.15 from the first step; the equation number from memory) weights
+// each reward by the ratio of the actions up to it only. Worked by hand: step ratios 2, 0.5 and 0 (an
+// action the target never takes), rewards 1, 3 and 7, gamma 0.5: the
+// per-decision return is 2*1 + 0.5*(2*0.5)*3 + 0.25*0*7 = 3.5, the
+// ordinary one rho G = 0 * (1 + 1.5 + 1.75).
+func TestPerDecisionReturnOnHandWorkedNumbers(t *testing.T) {
+	pi := map[string]float64{"x": 1, "y": 0.25, "z": 0}
+	ep := training.EpisodeRecord{States: []string{"x", "y", "z"}, Actions: []int16{0, 0, 0}, Rewards: []float64{1, 3, 7}, Probabilities: []float64{0.5, 0.5, 0.5}}
+	r, ok := training.ImportanceRatio(ep, 0.5, func(state string, _ training.ActionSet, _ int16) float64 { return pi[state] })
+	if !ok || !math.IsInf(r.LogRatio, -1) || r.Return != 4.25 {
+		t.Fatalf("ratio %+v %v", r, ok)
+	}
+	s := training.NewISSample([]training.EpisodeRatio{r})
+	if got := s.PerDecision(); math.Abs(got-3.5) > 1e-12 || s.Ordinary() != 0 {
+		t.Fatalf("per-decision %v, ordinary %v; want 3.5 and 0", got, s.Ordinary())
 	}
 }

@@ -146,8 +146,9 @@ type QTable struct {
 	Actions  []string
 	InitialQ float64
 	States   map[string]*TableState
-	// Revision is the revision the table was read at; TrainedThroughSeq the
-	// seq of the last episode trained into it (training follows seq order).
+	// Revision is the policy's revision the table was read at, or frozen at
+	// for a snapshot; TrainedThroughSeq the seq of the last episode trained
+	// into it (training follows seq order).
 	Revision          int64
 	TrainedThroughSeq int64
 }
