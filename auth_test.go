@@ -37,7 +37,7 @@ func (s *service) withAuthorization(header string) *service {
 // qtally runs a command of the binary against the service's database.
 func (s *service) qtally(args ...string) (string, error) {
 	var out bytes.Buffer
-	env := map[string]string{"DATABASE_URL": s.databaseURL}
+	env := map[string]string{"DATABASE_URL": s.databaseURL, "QTALLY_TOKEN_PEPPER": testPepper}
 	err := run(context.Background(), append([]string{"qtally"}, args...), func(k string) string { return env[k] }, &out, io.Discard)
 	return out.String(), err
 }

@@ -59,6 +59,16 @@ const (
 	flagPprofListen    = "pprof-listen"
 )
 
+// Flags of the HTTP server's limits on slow and idle clients.
+const (
+	flagReadHeaderTimeout = "read-header-timeout"
+	flagReadTimeout       = "read-timeout"
+	flagWriteTimeout      = "write-timeout"
+	flagBulkTimeout       = "bulk-timeout"
+	flagIdleTimeout       = "idle-timeout"
+	flagMaxHeaderBytes    = "max-header-bytes"
+)
+
 // Flags of episode retention.
 const (
 	flagEpisodeRetention = "episode-retention"
@@ -82,6 +92,12 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 		&cli.StringFlag{Name: flagListen, Value: listenDefault, Usage: "HTTP listen address", Sources: env("QTALLY_LISTEN")},
 		&cli.IntFlag{Name: flagBatchEpisodes, Value: 10_000, Usage: "most episodes one training transaction takes (a batch takes what is waiting, up to this)", Sources: env("QTALLY_BATCH_EPISODES")},
 		&cli.DurationFlag{Name: flagPollInterval, Value: 2 * time.Second, Usage: "fallback poll for work and changes when notifications are missed", Sources: env("QTALLY_POLL_INTERVAL")},
+		&cli.DurationFlag{Name: flagReadHeaderTimeout, Value: 10 * time.Second, Usage: "time a client gets to send a request's headers", Sources: env("QTALLY_READ_HEADER_TIMEOUT")},
+		&cli.DurationFlag{Name: flagReadTimeout, Value: 30 * time.Second, Usage: "time a client gets to send a whole request, body included (bulk routes get --bulk-timeout once authenticated)", Sources: env("QTALLY_READ_TIMEOUT")},
+		&cli.DurationFlag{Name: flagWriteTimeout, Value: 60 * time.Second, Usage: "time from a request's headers to the end of its answer (bulk routes get --bulk-timeout once authenticated)", Sources: env("QTALLY_WRITE_TIMEOUT")},
+		&cli.DurationFlag{Name: flagBulkTimeout, Value: 5 * time.Minute, Usage: "read and write time of authenticated bulk requests: posting episodes, importing and exporting tables (a full --max-body-bytes body needs about 8*max-body-bytes/bulk-timeout bits per second)", Sources: env("QTALLY_BULK_TIMEOUT")},
+		&cli.DurationFlag{Name: flagIdleTimeout, Value: 60 * time.Second, Usage: "how long an idle keep-alive connection stays open", Sources: env("QTALLY_IDLE_TIMEOUT")},
+		&cli.IntFlag{Name: flagMaxHeaderBytes, Value: 64 << 10, Usage: "largest request line and header block accepted (bytes); larger get 431", Sources: env("QTALLY_MAX_HEADER_BYTES")},
 		&cli.Int64Flag{Name: flagMaxBodyBytes, Value: 16 << 20, Usage: "largest request body accepted (bytes)", Sources: env("QTALLY_MAX_BODY_BYTES")},
 		&cli.IntFlag{Name: flagMaxEpisodes, Value: lim.MaxEpisodes, Usage: "most episodes in one request", Sources: env("QTALLY_MAX_EPISODES_PER_REQUEST")},
 		&cli.IntFlag{Name: flagMaxSteps, Value: lim.MaxSteps, Usage: "most steps in one episode", Sources: env("QTALLY_MAX_STEPS")},
@@ -126,6 +142,16 @@ type serviceConfig struct {
 	JobStaleAfter    time.Duration
 	Auth             authConfig
 	PprofListen      string
+	Server           serverLimits
+}
+
+// serverLimits bound what slow, idle or verbose clients can hold.
+type serverLimits struct {
+	ReadHeaderTimeout time.Duration
+	ReadTimeout       time.Duration
+	WriteTimeout      time.Duration
+	IdleTimeout       time.Duration
+	MaxHeaderBytes    int
 }
 
 func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
@@ -149,10 +175,26 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		PruneBatch:       cmd.Int(flagPruneBatch),
 		JobStaleAfter:    cmd.Duration(flagJobStaleAfter),
 		PprofListen:      cmd.String(flagPprofListen),
+		Server: serverLimits{
+			ReadHeaderTimeout: cmd.Duration(flagReadHeaderTimeout),
+			ReadTimeout:       cmd.Duration(flagReadTimeout),
+			WriteTimeout:      cmd.Duration(flagWriteTimeout),
+			IdleTimeout:       cmd.Duration(flagIdleTimeout),
+			MaxHeaderBytes:    cmd.Int(flagMaxHeaderBytes),
+		},
 	}
 	cfg.CoverageVisits = cmd.Int64(flagCoverageVisits)
 	cfg.HTTP = api.Config{MaxBodyBytes: cmd.Int64(flagMaxBodyBytes), MaxStateLength: cfg.Limits.MaxStateLength,
-		HistoryWindow: cfg.History.Window}
+		HistoryWindow: cfg.History.Window, BulkTimeout: cmd.Duration(flagBulkTimeout)}
+	for name, d := range map[string]time.Duration{flagReadHeaderTimeout: cfg.Server.ReadHeaderTimeout, flagReadTimeout: cfg.Server.ReadTimeout,
+		flagWriteTimeout: cfg.Server.WriteTimeout, flagIdleTimeout: cfg.Server.IdleTimeout, flagBulkTimeout: cfg.HTTP.BulkTimeout} {
+		if d <= 0 {
+			return cfg, fmt.Errorf("--%s must be positive, got %v", name, d)
+		}
+	}
+	if cfg.Server.MaxHeaderBytes < 4096 {
+		return cfg, fmt.Errorf("--%s must be at least 4096", flagMaxHeaderBytes)
+	}
 	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,
 		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength,
 		flagPruneBatch: cfg.PruneBatch} {

@@ -44,8 +44,12 @@ func errorHandler(logger *slog.Logger) echo.HTTPErrorHandler {
 		if (p.Status == http.StatusServiceUnavailable || p.Status == http.StatusTooManyRequests) && h.Get("Retry-After") == "" {
 			h.Set("Retry-After", "1")
 		}
-		if p.Status == http.StatusUnauthorized && h.Get(echo.HeaderWWWAuthenticate) == "" {
-			h.Set(echo.HeaderWWWAuthenticate, bearerRealm)
+		if p.Status == http.StatusUnauthorized {
+			if h.Get(echo.HeaderWWWAuthenticate) == "" {
+				h.Set(echo.HeaderWWWAuthenticate, bearerRealm)
+			}
+			// A client without a valid token gets no idle connection to hold.
+			h.Set(echo.HeaderConnection, "close")
 		}
 		c.Response().Header().Set(echo.HeaderContentType, problemContentType)
 		c.Response().WriteHeader(p.Status)

@@ -54,6 +54,9 @@ type Config struct {
 	HistoryWindow time.Duration
 	// TokenRate limits each token's requests unless the token sets its own.
 	TokenRate RateConfig
+	// BulkTimeout replaces the server's read and write timeouts for
+	// authenticated requests that carry episode batches or whole tables.
+	BulkTimeout time.Duration
 }
 
 // Deps are what the server calls.
@@ -101,7 +104,7 @@ func newEcho(d Deps) *echo.Echo {
 	e.HidePort = true
 	e.HTTPErrorHandler = errorHandler(d.Logger)
 	e.Pre(routeOnEscapedPath)
-	e.Use(observe(d.Metrics))
+	e.Use(observe(d.Metrics, e))
 	return e
 }
 
