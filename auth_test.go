@@ -6,6 +6,8 @@ import (
 	"encoding/json"
 	"io"
 	"net/http"
+	"os"
+	"path/filepath"
 	"regexp"
 	"strconv"
 	"strings"
@@ -269,12 +271,18 @@ func TestTokenRateLimit(t *testing.T) {
 	s.call("POST", "/v1/policies/alpha/choose", map[string]any{"state": "s"}, 200)
 }
 
-// Token digests are keyed with the server's pepper: a token made under
-// another pepper is refused, and the database holds no secret.
+// Token digests are keyed with the server's pepper, here read from a file:
+// a token made under another pepper is refused, and the database holds no
+// secret.
 func TestTokenPepper(t *testing.T) {
 	db := pgtest.NewDatabase(t)
-	s := startService(t, db, "serve", "--token-pepper", "first pepper")
-	peppered := createToken(t, db, "--label", "peppered", "--scope", "admin", "--token-pepper", "first pepper")
+	file := filepath.Join(t.TempDir(), "pepper")
+	if err := os.WriteFile(file, []byte("first pepper, kept in a file: 4f1c9e7a2b\n"), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	fromFile := map[string]string{"DATABASE_URL": db, "QTALLY_TOKEN_PEPPER": "", "QTALLY_TOKEN_PEPPER_FILE": file}
+	s := startServiceWith(t, db, fromFile, "serve")
+	peppered := createTokenWith(t, fromFile, "--label", "peppered", "--scope", "admin")
 	plain := createToken(t, db, "--label", "plain", "--scope", "admin")
 	s.as(peppered).call("GET", "/v1/policies", nil, 200)
 	if r := s.as(plain).send("GET", "/v1/policies", "", nil, false); r.Status != 401 {

@@ -59,6 +59,14 @@ const (
 	flagPprofListen    = "pprof-listen"
 )
 
+// Flags of quotas: what the service keeps per policy and in all.
+const (
+	flagMaxPairsPerPolicy     = "max-pairs-per-policy"
+	flagMaxPolicies           = "max-policies"
+	flagMaxSnapshotsPerPolicy = "max-snapshots-per-policy"
+	flagMaxOpenJobsPerPolicy  = "max-open-jobs-per-policy"
+)
+
 // Flags of the HTTP server's limits on slow and idle clients.
 const (
 	flagReadHeaderTimeout = "read-header-timeout"
@@ -103,6 +111,10 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 		&cli.IntFlag{Name: flagMaxSteps, Value: lim.MaxSteps, Usage: "most steps in one episode", Sources: env("QTALLY_MAX_STEPS")},
 		&cli.IntFlag{Name: flagMaxIDLength, Value: lim.MaxIDLength, Usage: "longest episode id (bytes)", Sources: env("QTALLY_MAX_ID_LENGTH")},
 		&cli.IntFlag{Name: flagMaxStateLength, Value: lim.MaxStateLength, Usage: "longest state name (bytes)", Sources: env("QTALLY_MAX_STATE_LENGTH")},
+		&cli.Int64Flag{Name: flagMaxPairsPerPolicy, Value: lim.MaxPairsPerPolicy, Usage: "most states x actions a policy's max_states may allow (every API process keeps a slot per pair in memory)", Sources: env("QTALLY_MAX_PAIRS_PER_POLICY")},
+		&cli.IntFlag{Name: flagMaxPolicies, Value: lim.MaxPolicies, Usage: "most policies the service holds", Sources: env("QTALLY_MAX_POLICIES")},
+		&cli.IntFlag{Name: flagMaxSnapshotsPerPolicy, Value: lim.MaxSnapshotsPerPolicy, Usage: "most snapshots one policy keeps", Sources: env("QTALLY_MAX_SNAPSHOTS_PER_POLICY")},
+		&cli.IntFlag{Name: flagMaxOpenJobsPerPolicy, Value: lim.MaxOpenJobsPerPolicy, Usage: "most evaluations and replays one policy may have queued or running", Sources: env("QTALLY_MAX_OPEN_JOBS_PER_POLICY")},
 		&cli.DurationFlag{Name: flagShutdownGrace, Value: 15 * time.Second, Usage: "time in-flight work gets to finish on shutdown", Sources: env("QTALLY_SHUTDOWN_GRACE")},
 		&cli.Int32Flag{Name: flagDBMaxConns, Value: 20, Usage: "most PostgreSQL connections of this process", Sources: env("QTALLY_DB_MAX_CONNS")},
 		&cli.Int64Flag{Name: flagCoverageVisits, Value: 10, Usage: "visits a state-action pair needs to count as covered in the coverage metric", Sources: env("QTALLY_COVERAGE_VISITS")},
@@ -165,6 +177,11 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 			MaxSteps:       cmd.Int(flagMaxSteps),
 			MaxIDLength:    cmd.Int(flagMaxIDLength),
 			MaxStateLength: cmd.Int(flagMaxStateLength),
+
+			MaxPairsPerPolicy:     cmd.Int64(flagMaxPairsPerPolicy),
+			MaxPolicies:           cmd.Int(flagMaxPolicies),
+			MaxSnapshotsPerPolicy: cmd.Int(flagMaxSnapshotsPerPolicy),
+			MaxOpenJobsPerPolicy:  cmd.Int(flagMaxOpenJobsPerPolicy),
 		},
 		ShutdownGrace: cmd.Duration(flagShutdownGrace),
 		DBMaxConns:    cmd.Int32(flagDBMaxConns),
@@ -197,10 +214,14 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 	}
 	for name, v := range map[string]int{flagBatchEpisodes: cfg.BatchEpisodes, flagMaxEpisodes: cfg.Limits.MaxEpisodes,
 		flagMaxSteps: cfg.Limits.MaxSteps, flagMaxIDLength: cfg.Limits.MaxIDLength, flagMaxStateLength: cfg.Limits.MaxStateLength,
-		flagPruneBatch: cfg.PruneBatch} {
+		flagPruneBatch: cfg.PruneBatch, flagMaxPolicies: cfg.Limits.MaxPolicies, flagMaxSnapshotsPerPolicy: cfg.Limits.MaxSnapshotsPerPolicy,
+		flagMaxOpenJobsPerPolicy: cfg.Limits.MaxOpenJobsPerPolicy} {
 		if v < 1 {
 			return cfg, fmt.Errorf("--%s must be at least 1, got %d", name, v)
 		}
+	}
+	if cfg.Limits.MaxPairsPerPolicy < training.MaxActions {
+		return cfg, fmt.Errorf("--%s must be at least %d (one state of the most actions a policy may have)", flagMaxPairsPerPolicy, training.MaxActions)
 	}
 	if cfg.CoverageVisits < 1 {
 		return cfg, fmt.Errorf("--%s must be at least 1, got %d", flagCoverageVisits, cfg.CoverageVisits)

@@ -220,9 +220,14 @@ func checkBearer(_ context.Context, in *openapi3filter.AuthenticationInput) erro
 // returns the secret it prints.
 func createToken(t testing.TB, databaseURL string, flags ...string) string {
 	t.Helper()
+	return createTokenWith(t, map[string]string{"DATABASE_URL": databaseURL, "QTALLY_TOKEN_PEPPER": testPepper}, flags...)
+}
+
+// createTokenWith runs `qtally token create flags...` with env.
+func createTokenWith(t testing.TB, env map[string]string, flags ...string) string {
+	t.Helper()
 	var out bytes.Buffer
 	args := append([]string{"qtally", "token", "create"}, flags...)
-	env := map[string]string{"DATABASE_URL": databaseURL, "QTALLY_TOKEN_PEPPER": testPepper}
 	if err := run(context.Background(), args, func(k string) string { return env[k] }, &out, io.Discard); err != nil {
 		t.Fatalf("%v: %v", args, err)
 	}

@@ -64,21 +64,17 @@ func errorHandler(logger *slog.Logger) echo.HTTPErrorHandler {
 
 func toProblem(err error) Problem {
 	var verr *training.ValidationError
+	var qerr *training.QuotaError
 	var herr *echo.HTTPError
 	switch {
 	case errors.As(err, &verr):
-		p := Problem{Type: "urn:qtally:problem:invalid-input", Title: "Invalid input", Status: http.StatusBadRequest, Detail: verr.Error()}
-		for _, fe := range verr.Problems {
-			pf := ProblemField{Field: fe.Field, Message: fe.Message}
-			if fe.Episode >= 0 {
-				pf.Episode = &fe.Episode
-			}
-			if fe.Step >= 0 {
-				pf.Step = &fe.Step
-			}
-			p.Errors = append(p.Errors, pf)
-		}
-		return p
+		return Problem{Type: "urn:qtally:problem:invalid-input", Title: "Invalid input", Status: http.StatusBadRequest, Detail: verr.Error(),
+			Errors: problemFields(verr.Problems)}
+	case errors.As(err, &qerr):
+		return Problem{Type: "urn:qtally:problem:quota-exceeded", Title: "Quota exceeded", Status: http.StatusConflict, Detail: qerr.Error(),
+			Errors: problemFields(qerr.Problems)}
+	case errors.Is(err, training.ErrQuota):
+		return Problem{Type: "urn:qtally:problem:quota-exceeded", Title: "Quota exceeded", Status: http.StatusConflict, Detail: err.Error()}
 	case errors.Is(err, training.ErrNotFound):
 		return Problem{Type: "urn:qtally:problem:not-found", Title: "Not found", Status: http.StatusNotFound, Detail: err.Error()}
 	case errors.Is(err, training.ErrConflict):
@@ -100,4 +96,19 @@ func toProblem(err error) Problem {
 		return Problem{Type: "about:blank", Title: "Internal Server Error", Status: http.StatusInternalServerError,
 			Detail: "the request failed on the server; see its log"}
 	}
+}
+
+func problemFields(list []training.FieldError) []ProblemField {
+	var out []ProblemField
+	for _, fe := range list {
+		pf := ProblemField{Field: fe.Field, Message: fe.Message}
+		if fe.Episode >= 0 {
+			pf.Episode = &fe.Episode
+		}
+		if fe.Step >= 0 {
+			pf.Step = &fe.Step
+		}
+		out = append(out, pf)
+	}
+	return out
 }

@@ -49,8 +49,11 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 func addStatusRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 	admin := g.requireScope(training.ScopeAdmin)
 	if g != nil {
+		s := &signIn{auth: g.auth, sessions: g.sessions, attempts: newAddressLimiter(cfg.SignInAttemptsPerMinute, maxTrackedAddresses),
+			trustedProxy: cfg.fromTrustedProxy}
 		e.GET(signInPath, handleSignInPage())
-		e.POST(signInPath, handleSignIn(g.auth))
+		e.POST(signInPath, s.handleSignIn())
+		e.POST(signOutPath, s.handleSignOut())
 	}
 	e.GET("/", handleOverview(d.Policies), admin)
 	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, cfg), admin)

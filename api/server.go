@@ -6,7 +6,9 @@ package api
 import (
 	"context"
 	"log/slog"
+	"net"
 	"net/http"
+	"net/netip"
 	"time"
 
 	"github.com/labstack/echo/v4"
@@ -54,6 +56,13 @@ type Config struct {
 	HistoryWindow time.Duration
 	// TokenRate limits each token's requests unless the token sets its own.
 	TokenRate RateConfig
+	// SignInAttemptsPerMinute is how many sign-ins one client address may
+	// try a minute, with as many at once.
+	SignInAttemptsPerMinute int
+	// TrustedProxies are the addresses of a TLS-terminating proxy in front
+	// of the service: requests from them take the client address from
+	// X-Forwarded-For, and page cookies get the Secure attribute.
+	TrustedProxies []netip.Prefix
 	// BulkTimeout replaces the server's read and write timeouts for
 	// authenticated requests that carry episode batches or whole tables.
 	BulkTimeout time.Duration
@@ -76,14 +85,52 @@ type Deps struct {
 	Snapshots Snapshots
 	Tables    TableWriter
 	Jobs      Jobs
-	// Auth verifies tokens; nil turns authentication off.
-	Auth Authenticator
+	// Auth verifies tokens and Sessions keeps page sign-ins; a nil Auth
+	// turns authentication off.
+	Auth     Authenticator
+	Sessions PageSessions
+}
+
+// maxTrackedAddresses bounds the client addresses the sign-in limiter
+// remembers.
+const maxTrackedAddresses = 10_000
+
+// fromTrustedProxy tells whether the request's peer is a configured proxy.
+func (cfg Config) fromTrustedProxy(c echo.Context) bool {
+	if len(cfg.TrustedProxies) == 0 {
+		return false
+	}
+	ap, err := netip.ParseAddrPort(c.Request().RemoteAddr)
+	if err != nil {
+		return false
+	}
+	for _, p := range cfg.TrustedProxies {
+		if p.Contains(ap.Addr().Unmap()) {
+			return true
+		}
+	}
+	return false
+}
+
+// clientAddress takes a request's client address from the connection, or,
+// behind a configured proxy, from what the proxy appended to
+// X-Forwarded-For; a header from anyone else is ignored.
+func clientAddress(cfg Config) echo.IPExtractor {
+	if len(cfg.TrustedProxies) == 0 {
+		return echo.ExtractIPDirect()
+	}
+	opts := []echo.TrustOption{echo.TrustLoopback(false), echo.TrustLinkLocal(false), echo.TrustPrivateNet(false)}
+	for _, p := range cfg.TrustedProxies {
+		opts = append(opts, echo.TrustIPRange(&net.IPNet{IP: p.Addr().AsSlice(), Mask: net.CIDRMask(p.Bits(), p.Addr().BitLen())}))
+	}
+	return echo.ExtractIPFromXFFHeader(opts...)
 }
 
 // NewServer returns the HTTP handler of an API process.
 func NewServer(cfg Config, d Deps) http.Handler {
 	e := newEcho(d)
-	g := newGuard(d.Auth, cfg.TokenRate)
+	e.IPExtractor = clientAddress(cfg)
+	g := newGuard(d.Auth, d.Sessions, cfg.TokenRate)
 	e.Use(g.authenticate)
 	addHealthRoutes(e, d)
 	addAPIRoutes(e, cfg, d, g)

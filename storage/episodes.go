@@ -47,6 +47,10 @@ func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Epi
 		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
 			return fmt.Errorf("ingest lock: %w", err)
 		}
+		// Under the same lock, so concurrent batches count each other's states.
+		if err := admitStates(ctx, tx, p, records, fresh); err != nil {
+			return err
+		}
 		_, err = tx.CopyFrom(ctx, pgx.Identifier{"episodes"},
 			[]string{"policy_id", "episode_id", "states", "actions", "rewards", "probabilities"},
 			pgx.CopyFromSlice(len(fresh), func(i int) ([]any, error) {
@@ -96,4 +100,83 @@ func withoutStored(ctx context.Context, tx pgx.Tx, policyID int32, records []tra
 		}
 	}
 	return fresh, nil
+}
+
+// admitStates records the states of the fresh episodes as the policy's,
+// and refuses the batch when the new ones pass its max_states. It costs an
+// index probe per distinct state of the batch, and a count only when some
+// state is new.
+func admitStates(ctx context.Context, tx pgx.Tx, p training.Policy, records, fresh []training.EpisodeRecord) error {
+	position := make(map[string]int, len(records))
+	for i, r := range records {
+		position[r.ID] = i
+	}
+	positions := make([]int, len(fresh))
+	for i, r := range fresh {
+		positions[i] = position[r.ID]
+	}
+	sightings := training.FirstSightings(fresh, positions)
+	names := make([]string, len(sightings))
+	for i, s := range sightings {
+		names[i] = s.State
+	}
+	added, err := addPolicyStates(ctx, tx, p.ID, names)
+	if err != nil || len(added) == 0 {
+		return err
+	}
+	known, err := countPolicyStates(ctx, tx, p.ID)
+	if err != nil || known <= p.MaxStates {
+		return err
+	}
+	isNew := make(map[string]bool, len(added))
+	for _, s := range added {
+		isNew[s] = true
+	}
+	room := p.MaxStates - (known - int64(len(added)))
+	return training.StatesBeyondQuota(sightings, func(s string) bool { return isNew[s] }, room, p.MaxStates)
+}
+
+// addPolicyStates records states as the policy's and returns those it did
+// not have.
+func addPolicyStates(ctx context.Context, tx pgx.Tx, policyID int32, states []string) ([]string, error) {
+	rows, err := tx.Query(ctx, `INSERT INTO policy_states (policy_id, state) SELECT $1, unnest($2::text[])
+		ON CONFLICT DO NOTHING RETURNING state`, policyID, states)
+	if err != nil {
+		return nil, fmt.Errorf("record states: %w", err)
+	}
+	added, err := pgx.CollectRows(rows, pgx.RowTo[string])
+	if err != nil {
+		return nil, fmt.Errorf("record states: %w", err)
+	}
+	return added, nil
+}
+
+func countPolicyStates(ctx context.Context, tx pgx.Tx, policyID int32) (int64, error) {
+	var n int64
+	if err := tx.QueryRow(ctx, `SELECT count(*) FROM policy_states WHERE policy_id = $1`, policyID).Scan(&n); err != nil {
+		return 0, fmt.Errorf("count states: %w", err)
+	}
+	return n, nil
+}
+
+// admitTableStates records the states of a policy's live table, just
+// rewritten by a restore or import, and refuses the rewrite when they pass
+// its max_states.
+func admitTableStates(ctx context.Context, tx pgx.Tx, p training.Policy) error {
+	if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
+		return fmt.Errorf("ingest lock: %w", err)
+	}
+	if _, err := tx.Exec(ctx, `INSERT INTO policy_states (policy_id, state)
+		SELECT DISTINCT policy_id, state FROM q_values WHERE policy_id = $1 ON CONFLICT DO NOTHING`, p.ID); err != nil {
+		return fmt.Errorf("record states: %w", err)
+	}
+	known, err := countPolicyStates(ctx, tx, p.ID)
+	if err != nil {
+		return err
+	}
+	if known > p.MaxStates {
+		return training.Quotaf("with this table policy %q would know %d states, more than its max_states of %d; nothing was changed: raise max_states with PUT on the policy first",
+			p.Name, known, p.MaxStates)
+	}
+	return nil
 }
