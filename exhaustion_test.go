@@ -109,9 +109,18 @@ func TestRequestMetricLabelsAreBounded(t *testing.T) {
 func TestSignInBodyAndAttemptsAreLimited(t *testing.T) {
 	s := startService(t, pgtest.NewDatabase(t))
 	client := &http.Client{CheckRedirect: func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }}
+	spoofed := 0
 	post := func(contentType string, body io.Reader) *http.Response {
 		t.Helper()
-		resp, err := client.Post(s.URL+"/sign-in", contentType, body)
+		req, err := http.NewRequest("POST", s.URL+"/sign-in", body)
+		if err != nil {
+			t.Fatal(err)
+		}
+		req.Header.Set("Content-Type", contentType)
+		// No proxy is configured: a forwarded address must not buy new attempts.
+		spoofed++
+		req.Header.Set("X-Forwarded-For", fmt.Sprintf("198.51.100.%d", spoofed))
+		resp, err := client.Do(req)
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -392,5 +401,156 @@ func TestQuotasRefuseBeyondTheirLimits(t *testing.T) {
 		if r := s.send(c.method, c.path, "application/json", []byte(c.body), true); r.Status != 400 || !strings.Contains(string(r.Body), c.field) {
 			t.Errorf("%s %s: %d, want 400 naming %s: %s", c.method, c.path, r.Status, c.field, r.Body)
 		}
+	}
+}
+
+// Signing in opens an opaque session: the cookie holds a random id (never
+// the token), the database only its digest; signing out or revoking the
+// token ends it on the server; another site can neither sign in nor out;
+// the pages tell the browser to run no script and refuse framing.
+func TestPageSessions(t *testing.T) {
+	db := pgtest.NewDatabase(t)
+	s := startServiceWith(t, db, map[string]string{"QTALLY_TRUSTED_PROXIES": "192.0.2.0/24"})
+	admin := createToken(t, db, "--label", "operator", "--scope", "admin")
+	client := &http.Client{CheckRedirect: func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }}
+	do := func(method, path, origin string, cookie *http.Cookie, form url.Values) *http.Response {
+		t.Helper()
+		req, err := http.NewRequest(method, s.URL+path, strings.NewReader(form.Encode()))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if form != nil {
+			req.Header.Set("Content-Type", "application/x-www-form-urlencoded")
+		}
+		if origin != "" {
+			req.Header.Set("Origin", origin)
+		}
+		if cookie != nil {
+			req.AddCookie(cookie)
+		}
+		resp, err := client.Do(req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		_, _ = io.Copy(io.Discard, resp.Body)
+		resp.Body.Close()
+		return resp
+	}
+	session := func(resp *http.Response) *http.Cookie {
+		t.Helper()
+		for _, c := range resp.Cookies() {
+			if c.Name == "qtally_session" {
+				return c
+			}
+		}
+		t.Fatalf("no session cookie: %d %v", resp.StatusCode, resp.Header)
+		return nil
+	}
+	signIn := func(origin string) *http.Response {
+		return do("POST", "/sign-in", origin, nil, url.Values{"token": {admin}})
+	}
+	self := s.URL
+
+	if resp := signIn("https://elsewhere.example"); resp.StatusCode != http.StatusForbidden {
+		t.Fatalf("sign-in posted from another site: %d", resp.StatusCode)
+	}
+	resp := signIn(self)
+	ck := session(resp)
+	if resp.StatusCode != http.StatusSeeOther || !ck.HttpOnly || ck.SameSite != http.SameSiteStrictMode || ck.Secure || ck.MaxAge <= 0 {
+		t.Fatalf("session cookie: %d %+v", resp.StatusCode, ck)
+	}
+	if strings.Contains(ck.Value, admin[len(admin)-43:]) || strings.Contains(ck.Value, "qtk_") {
+		t.Fatalf("the cookie carries the token: %q", ck.Value)
+	}
+	if dump := pgtest.Dump(t, db, "page_sessions"); strings.Contains(dump, ck.Value) {
+		t.Fatalf("the database holds the session id:\n%s", dump)
+	}
+
+	page := do("GET", "/", "", ck, nil)
+	if page.StatusCode != 200 {
+		t.Fatalf("overview in a session: %d", page.StatusCode)
+	}
+	csp := page.Header.Get("Content-Security-Policy")
+	for _, want := range []string{"default-src 'none'", "frame-ancestors 'none'", "form-action 'self'"} {
+		if !strings.Contains(csp, want) {
+			t.Errorf("Content-Security-Policy %q lacks %q", csp, want)
+		}
+	}
+	if strings.Contains(csp, "script-src") || strings.Contains(csp, "unsafe-inline") {
+		t.Errorf("Content-Security-Policy %q allows scripts or inline code", csp)
+	}
+	if page.Header.Get("X-Content-Type-Options") != "nosniff" || page.Header.Get("Referrer-Policy") == "" {
+		t.Errorf("page headers: %v", page.Header)
+	}
+	if signInPage := do("GET", "/sign-in", "", nil, nil); signInPage.Header.Get("Content-Security-Policy") != csp {
+		t.Errorf("the sign-in page is sent without the same policy")
+	}
+	// The cookie opens pages only, and a token secret in a cookie opens nothing.
+	if resp := do("GET", "/v1/policies", "", ck, nil); resp.StatusCode != http.StatusUnauthorized {
+		t.Errorf("API answered %d to a session cookie", resp.StatusCode)
+	}
+	if resp := do("GET", "/", "", &http.Cookie{Name: "qtally_token", Value: admin}, nil); resp.StatusCode != http.StatusSeeOther {
+		t.Errorf("a token secret in a cookie opened a page: %d", resp.StatusCode)
+	}
+
+	if resp := do("POST", "/sign-out", "https://elsewhere.example", ck, nil); resp.StatusCode != http.StatusForbidden {
+		t.Fatalf("sign-out posted from another site: %d", resp.StatusCode)
+	}
+	if resp := do("GET", "/", "", ck, nil); resp.StatusCode != 200 {
+		t.Fatalf("a refused sign-out ended the session: %d", resp.StatusCode)
+	}
+	out := do("POST", "/sign-out", self, ck, nil)
+	if out.StatusCode != http.StatusSeeOther || out.Header.Get("Location") != "/sign-in" || session(out).MaxAge >= 0 {
+		t.Fatalf("sign-out: %d %v", out.StatusCode, out.Header)
+	}
+	// A copy of the cookie kept from before is dead on the server too.
+	if resp := do("GET", "/", "", ck, nil); resp.StatusCode != http.StatusSeeOther {
+		t.Fatalf("the session outlived sign-out: %d", resp.StatusCode)
+	}
+
+	// Revoking the token ends its sessions.
+	ck = session(signIn(self))
+	if _, err := s.qtally("token", "revoke", tokenID(t, admin)); err != nil {
+		t.Fatal(err)
+	}
+	waitFor(t, hangGuard, "the revoked token's session to end", func() bool {
+		return do("GET", "/", "", ck, nil).StatusCode == http.StatusSeeOther
+	})
+}
+
+// Behind a configured TLS-terminating proxy the session cookie is Secure,
+// and the proxy's X-Forwarded-For names the client whose attempts count;
+// the same header from anyone else is ignored.
+func TestTrustedProxy(t *testing.T) {
+	db := pgtest.NewDatabase(t)
+	s := startServiceWith(t, db, map[string]string{"QTALLY_TRUSTED_PROXIES": "127.0.0.1", "QTALLY_SIGN_IN_ATTEMPTS": "2"})
+	admin := createToken(t, db, "--label", "operator", "--scope", "admin")
+	client := &http.Client{CheckRedirect: func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }}
+	post := func(forwardedFor, token string) *http.Response {
+		t.Helper()
+		req, _ := http.NewRequest("POST", s.URL+"/sign-in", strings.NewReader(url.Values{"token": {token}}.Encode()))
+		req.Header.Set("Content-Type", "application/x-www-form-urlencoded")
+		req.Header.Set("X-Forwarded-For", forwardedFor)
+		resp, err := client.Do(req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		resp.Body.Close()
+		return resp
+	}
+	resp := post("203.0.113.7", admin)
+	var secure bool
+	for _, c := range resp.Cookies() {
+		secure = secure || (c.Name == "qtally_session" && c.Secure)
+	}
+	if resp.StatusCode != http.StatusSeeOther || !secure {
+		t.Fatalf("sign-in through the proxy: %d, Secure session cookie %v", resp.StatusCode, secure)
+	}
+	post("203.0.113.7", "wrong")
+	if resp := post("203.0.113.7", "wrong"); resp.StatusCode != http.StatusTooManyRequests {
+		t.Fatalf("third attempt of one client behind the proxy: %d, want 429", resp.StatusCode)
+	}
+	if resp := post("203.0.113.8", "wrong"); resp.StatusCode != http.StatusUnauthorized {
+		t.Fatalf("another client behind the proxy: %d, want 401", resp.StatusCode)
 	}
 }

@@ -52,13 +52,14 @@ func isPageRequest(c echo.Context) bool {
 // pageSecurityHeaders keep the status pages inert in a browser: no script
 // runs (the pages have none), only the layout's own style block applies,
 // forms post only here, no other site may frame them, and no URL leaks in
-// a Referer.
+// a Referer to another site ("no-referrer" would make browsers send
+// "Origin: null" with the sign-in form, which the Origin check refuses).
 func pageSecurityHeaders(c echo.Context) {
 	h := c.Response().Header()
 	h.Set("Content-Security-Policy", pageCSP)
 	h.Set("X-Content-Type-Options", "nosniff")
 	h.Set("X-Frame-Options", "DENY")
-	h.Set("Referrer-Policy", "no-referrer")
+	h.Set("Referrer-Policy", "same-origin")
 	h.Set("Cache-Control", "no-store")
 }
 
