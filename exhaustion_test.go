@@ -11,6 +11,8 @@ import (
 	"net"
 	"net/http"
 	"net/url"
+	"os"
+	"regexp"
 	"strings"
 	"testing"
 	"time"
@@ -289,6 +291,21 @@ func TestUnsafeSecretsAndOpenListenersAreRefused(t *testing.T) {
 		{"dev on every interface", base, []string{"dev", "--listen", "[::]:0"}, "loopback"},
 		{"token create without a pepper", with("QTALLY_TOKEN_PEPPER", ""), []string{"token", "create", "--label", "x", "--scope", "admin"}, "QTALLY_TOKEN_PEPPER"},
 	}
+	// The deployment example's value must not work either.
+	manifest, err := os.ReadFile("deploy/kubernetes/secret.yaml")
+	if err != nil {
+		t.Fatal(err)
+	}
+	example := regexp.MustCompile(`(?m)^\s+QTALLY_TOKEN_PEPPER:\s*(\S+)`).FindSubmatch(manifest)
+	if example == nil {
+		t.Fatal("deploy/kubernetes/secret.yaml sets no QTALLY_TOKEN_PEPPER")
+	}
+	cases = append(cases, struct {
+		name string
+		env  map[string]string
+		args []string
+		want string
+	}{"serve with the Kubernetes example's pepper", with("QTALLY_TOKEN_PEPPER", string(example[1])), []string{"serve"}, "placeholder"})
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
 			err := startRefused(t, c.env, c.args...)
