@@ -571,3 +571,37 @@ func TestTrustedProxy(t *testing.T) {
 		t.Fatalf("another client behind the proxy: %d, want 401", resp.StatusCode)
 	}
 }
+
+// An authorised bulk upload may take longer than the read timeout, up to
+// the bulk timeout; the same pause on another route ends the connection.
+func TestBulkRoutesGetTheBulkTimeout(t *testing.T) {
+	s := startServiceWith(t, pgtest.NewDatabase(t), map[string]string{"QTALLY_READ_TIMEOUT": "300ms", "QTALLY_BULK_TIMEOUT": "2m"})
+	s.call("PUT", "/v1/policies/slow", map[string]any{"actions": []string{"a", "b"}}, 201)
+	body := `{"episodes":[{"id":"e1","steps":[{"state":"s","action":"a","reward":1}]}]}`
+	send := func(path string) (int, error) {
+		conn := dialService(t, s)
+		fmt.Fprintf(conn, "POST %s HTTP/1.1\r\nHost: x\r\nAuthorization: %s\r\nContent-Type: application/json\r\nContent-Length: %d\r\n\r\n%s",
+			path, s.authorization, len(body), body[:10])
+		// Pauses past the read timeout (this is no timing check: the
+		// outcome differs by route, not by how long anything took).
+		time.Sleep(time.Second)
+		if _, err := io.WriteString(conn, body[10:]); err != nil {
+			return 0, err
+		}
+		if err := conn.SetReadDeadline(time.Now().Add(hangGuard)); err != nil {
+			t.Fatal(err)
+		}
+		resp, err := http.ReadResponse(bufio.NewReader(conn), nil)
+		if err != nil {
+			return 0, err
+		}
+		resp.Body.Close()
+		return resp.StatusCode, nil
+	}
+	if code, err := send("/v1/policies/slow/episodes"); err != nil || code != http.StatusAccepted {
+		t.Fatalf("slow episode upload: %d %v, want 202", code, err)
+	}
+	if code, err := send("/v1/policies/slow/choose"); err == nil && code < 400 {
+		t.Fatalf("slow choose request: %d, want the connection cut or refused", code)
+	}
+}
