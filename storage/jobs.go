@@ -346,8 +346,14 @@ func (db *DB) LearnBatch(ctx context.Context, policyID int32, episodes []trainin
 		if err != nil {
 			return fmt.Errorf("read policy %d: %w", policyID, err)
 		}
-		current, err := estimatesOfStates(ctx, tx, policyID, training.TouchedStates(episodes))
+		touched := training.TouchedStates(episodes)
+		current, err := estimatesOfStates(ctx, tx, policyID, touched)
 		if err != nil {
+			return err
+		}
+		// The target's table takes the source's states: they count towards
+		// its own quota from now on (the source's quota bounded them).
+		if _, err := addPolicyStates(ctx, tx, policyID, touched); err != nil {
 			return err
 		}
 		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}
