@@ -408,6 +408,24 @@ func TestQuotasRefuseBeyondTheirLimits(t *testing.T) {
 	s.call("POST", "/v1/policies/third/evaluations", evaluation, 202)
 	s.call("POST", "/v1/policies/third/evaluations", evaluation, 409)
 
+	// A table rewrite is held to max_states too: "third" knows "s"; with room
+	// for two states, a table of three changes nothing.
+	s.call("PUT", "/v1/policies/third", map[string]any{"actions": []string{"a", "b"}, "max_states": 2}, 200)
+	rows := []map[string]any{}
+	for _, st := range []string{"s", "t", "u"} {
+		rows = append(rows, map[string]any{"state": st, "action": "a", "q": 1, "visits": 1})
+	}
+	if r := s.call("PUT", "/v1/policies/third/table", map[string]any{"rows": rows}, 409); !strings.Contains(string(r.Body), "max_states") {
+		t.Fatalf("import beyond max_states: %s", r.Body)
+	}
+	var third struct {
+		States int64 `json:"states"`
+	}
+	if s.call("GET", "/v1/policies/third", nil, 200).decode(t, &third); third.States != 0 {
+		t.Fatalf("a refused import left %d states", third.States)
+	}
+	s.call("PUT", "/v1/policies/third/table", map[string]any{"rows": rows[:2]}, 200)
+
 	// Page sizes and windows stay capped (the document says so too, so these
 	// requests go out unchecked).
 	for _, c := range []struct{ method, path, body, field string }{

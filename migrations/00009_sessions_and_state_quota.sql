@@ -25,16 +25,29 @@ SELECT policy_id, state FROM q_values
 UNION
 SELECT policy_id, unnest(states) FROM episodes WHERE trained_at IS NULL;
 
+-- How many states each policy has accepted, kept with policy_states under
+-- the policy's ingest lock, so that a batch of new states costs no count.
+-- Apart from policies: its row would make ingest and training wait on
+-- each other.
+CREATE TABLE policy_state_counts (
+    policy_id integer PRIMARY KEY,
+    states    bigint NOT NULL
+);
+
+INSERT INTO policy_state_counts (policy_id, states)
+SELECT policy_id, count(*) FROM policy_states GROUP BY policy_id;
+
 -- The most states a policy accepts. Existing policies get the default the
 -- service gives new ones (100000, and at most 1000000 pairs), or the states
 -- they already have if that is more: nothing stored is refused.
 ALTER TABLE policies ADD COLUMN max_states integer;
 UPDATE policies p SET max_states = greatest(
     least(100000, 1000000 / cardinality(p.actions)),
-    (SELECT count(*) FROM policy_states s WHERE s.policy_id = p.policy_id));
+    (SELECT coalesce(sum(c.states), 0) FROM policy_state_counts c WHERE c.policy_id = p.policy_id));
 ALTER TABLE policies ALTER COLUMN max_states SET NOT NULL;
 
 -- +goose Down
 ALTER TABLE policies DROP COLUMN max_states;
+DROP TABLE policy_state_counts;
 DROP TABLE policy_states;
 DROP TABLE page_sessions;

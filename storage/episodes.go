@@ -103,9 +103,8 @@ func withoutStored(ctx context.Context, tx pgx.Tx, policyID int32, records []tra
 }
 
 // admitStates records the states of the fresh episodes as the policy's,
-// and refuses the batch when the new ones pass its max_states. It costs an
-// index probe per distinct state of the batch, and a count only when some
-// state is new.
+// and refuses the batch when the new ones pass its max_states. Over known
+// states it costs one index probe per distinct state of the batch.
 func admitStates(ctx context.Context, tx pgx.Tx, p training.Policy, records, fresh []training.EpisodeRecord) error {
 	position := make(map[string]int, len(records))
 	for i, r := range records {
@@ -120,11 +119,7 @@ func admitStates(ctx context.Context, tx pgx.Tx, p training.Policy, records, fre
 	for i, s := range sightings {
 		names[i] = s.State
 	}
-	added, err := addPolicyStates(ctx, tx, p.ID, names)
-	if err != nil || len(added) == 0 {
-		return err
-	}
-	known, err := countPolicyStates(ctx, tx, p.ID)
+	added, known, err := recordStates(ctx, tx, p.ID, names)
 	if err != nil || known <= p.MaxStates {
 		return err
 	}
@@ -136,27 +131,36 @@ func admitStates(ctx context.Context, tx pgx.Tx, p training.Policy, records, fre
 	return training.StatesBeyondQuota(sightings, func(s string) bool { return isNew[s] }, room, p.MaxStates)
 }
 
-// addPolicyStates records states as the policy's and returns those it did
-// not have.
-func addPolicyStates(ctx context.Context, tx pgx.Tx, policyID int32, states []string) ([]string, error) {
+// recordStates records states as the policy's, and returns those it did
+// not have and how many it has now (0 when none was new). Callers hold the
+// policy's ingest lock or training lock, so counts do not interleave.
+func recordStates(ctx context.Context, tx pgx.Tx, policyID int32, states []string) ([]string, int64, error) {
 	rows, err := tx.Query(ctx, `INSERT INTO policy_states (policy_id, state) SELECT $1, unnest($2::text[])
 		ON CONFLICT DO NOTHING RETURNING state`, policyID, states)
 	if err != nil {
-		return nil, fmt.Errorf("record states: %w", err)
+		return nil, 0, fmt.Errorf("record states: %w", err)
 	}
 	added, err := pgx.CollectRows(rows, pgx.RowTo[string])
 	if err != nil {
-		return nil, fmt.Errorf("record states: %w", err)
+		return nil, 0, fmt.Errorf("record states: %w", err)
 	}
-	return added, nil
+	if len(added) == 0 {
+		return nil, 0, nil
+	}
+	known, err := countStates(ctx, tx, policyID, int64(len(added)))
+	return added, known, err
 }
 
-func countPolicyStates(ctx context.Context, tx pgx.Tx, policyID int32) (int64, error) {
-	var n int64
-	if err := tx.QueryRow(ctx, `SELECT count(*) FROM policy_states WHERE policy_id = $1`, policyID).Scan(&n); err != nil {
+// countStates adds n to the policy's state count and returns the new count.
+func countStates(ctx context.Context, tx pgx.Tx, policyID int32, n int64) (int64, error) {
+	var known int64
+	err := tx.QueryRow(ctx, `INSERT INTO policy_state_counts (policy_id, states) VALUES ($1, $2)
+		ON CONFLICT (policy_id) DO UPDATE SET states = policy_state_counts.states + excluded.states
+		RETURNING states`, policyID, n).Scan(&known)
+	if err != nil {
 		return 0, fmt.Errorf("count states: %w", err)
 	}
-	return n, nil
+	return known, nil
 }
 
 // admitTableStates records the states of a policy's live table, just
@@ -166,11 +170,12 @@ func admitTableStates(ctx context.Context, tx pgx.Tx, p training.Policy) error {
 	if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
 		return fmt.Errorf("ingest lock: %w", err)
 	}
-	if _, err := tx.Exec(ctx, `INSERT INTO policy_states (policy_id, state)
-		SELECT DISTINCT policy_id, state FROM q_values WHERE policy_id = $1 ON CONFLICT DO NOTHING`, p.ID); err != nil {
+	tag, err := tx.Exec(ctx, `INSERT INTO policy_states (policy_id, state)
+		SELECT DISTINCT policy_id, state FROM q_values WHERE policy_id = $1 ON CONFLICT DO NOTHING`, p.ID)
+	if err != nil {
 		return fmt.Errorf("record states: %w", err)
 	}
-	known, err := countPolicyStates(ctx, tx, p.ID)
+	known, err := countStates(ctx, tx, p.ID, tag.RowsAffected())
 	if err != nil {
 		return err
 	}

@@ -353,7 +353,7 @@ func (db *DB) LearnBatch(ctx context.Context, policyID int32, episodes []trainin
 		}
 		// The target's table takes the source's states: they count towards
 		// its own quota from now on (the source's quota bounded them).
-		if _, err := addPolicyStates(ctx, tx, policyID, touched); err != nil {
+		if _, _, err := recordStates(ctx, tx, policyID, touched); err != nil {
 			return err
 		}
 		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}
