@@ -87,7 +87,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	if cfg.RunAPI {
 		if keyring := startKeyring(ctx, cfg.Auth, db, subs, goBackground, logger, stdout); keyring != nil {
 			auth = keyring
-			sessions = training.PageSessions{Store: db, Tokens: keyring, Life: pageSessionLife}
+			sessions = training.PageSessions{Store: db, Tokens: keyring, Life: pageSessionLife, Key: training.SessionKey(cfg.Auth.Pepper)}
 		}
 	}
 	if cfg.RunWorker {
