@@ -86,7 +86,7 @@ const (
 )
 
 func databaseFlag(env flagEnv, required bool) cli.Flag {
-	return &cli.StringFlag{Name: flagDatabaseURL, Usage: "PostgreSQL connection URL", Sources: env("DATABASE_URL"), Required: required}
+	return &cli.StringFlag{Name: flagDatabaseURL, Usage: "PostgreSQL connection URL; a password in it only through the environment (on the command line it is refused; or use PGPASSFILE); sslmode=verify-full for TLS", Sources: env("DATABASE_URL"), Required: required}
 }
 
 func logFlag(env flagEnv) cli.Flag {
