@@ -5,6 +5,8 @@ import (
 	"context"
 	"encoding/json"
 	"io"
+	"os"
+	"path/filepath"
 	"regexp"
 	"strconv"
 	"strings"
@@ -33,7 +35,7 @@ func (s *service) withAuthorization(header string) *service {
 // qtally runs a command of the binary against the service's database.
 func (s *service) qtally(args ...string) (string, error) {
 	var out bytes.Buffer
-	env := map[string]string{"DATABASE_URL": s.databaseURL}
+	env := map[string]string{"DATABASE_URL": s.databaseURL, "QTALLY_TOKEN_PEPPER": testPepper}
 	err := run(context.Background(), append([]string{"qtally"}, args...), func(k string) string { return env[k] }, &out, io.Discard)
 	return out.String(), err
 }
@@ -236,12 +238,18 @@ func TestTokenRateLimit(t *testing.T) {
 	s.call("POST", "/v1/policies/alpha/choose", map[string]any{"state": "s"}, 200)
 }
 
-// Token digests are keyed with the server's pepper: a token made under
-// another pepper is refused, and the database holds no secret.
+// Token digests are keyed with the server's pepper, here read from a file:
+// a token made under another pepper is refused, and the database holds no
+// secret.
 func TestTokenPepper(t *testing.T) {
 	db := pgtest.NewDatabase(t)
-	s := startService(t, db, "serve", "--token-pepper", "first pepper")
-	peppered := createToken(t, db, "--label", "peppered", "--scope", "admin", "--token-pepper", "first pepper")
+	file := filepath.Join(t.TempDir(), "pepper")
+	if err := os.WriteFile(file, []byte("first pepper, kept in a file: 4f1c9e7a2b\n"), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	fromFile := map[string]string{"DATABASE_URL": db, "QTALLY_TOKEN_PEPPER": "", "QTALLY_TOKEN_PEPPER_FILE": file}
+	s := startServiceWith(t, db, fromFile, "serve")
+	peppered := createTokenWith(t, fromFile, "--label", "peppered", "--scope", "admin")
 	plain := createToken(t, db, "--label", "plain", "--scope", "admin")
 	s.as(peppered).call("GET", "/v1/policies", nil, 200)
 	if r := s.as(plain).send("GET", "/v1/policies", "", nil, false); r.Status != 401 {

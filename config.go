@@ -60,6 +60,24 @@ const (
 	flagProblemDocs    = "problem-docs"
 )
 
+// Flags of quotas: what the service keeps per policy and in all.
+const (
+	flagMaxPairsPerPolicy     = "max-pairs-per-policy"
+	flagMaxPolicies           = "max-policies"
+	flagMaxSnapshotsPerPolicy = "max-snapshots-per-policy"
+	flagMaxOpenJobsPerPolicy  = "max-open-jobs-per-policy"
+)
+
+// Flags of the HTTP server's limits on slow and idle clients.
+const (
+	flagReadHeaderTimeout = "read-header-timeout"
+	flagReadTimeout       = "read-timeout"
+	flagWriteTimeout      = "write-timeout"
+	flagBulkTimeout       = "bulk-timeout"
+	flagIdleTimeout       = "idle-timeout"
+	flagMaxHeaderBytes    = "max-header-bytes"
+)
+
 // Flags of episode retention.
 const (
 	flagEpisodeRetention = "episode-retention"
@@ -69,7 +87,7 @@ const (
 )
 
 func databaseFlag(env flagEnv, required bool) cli.Flag {
-	return &cli.StringFlag{Name: flagDatabaseURL, Usage: "PostgreSQL connection URL", Sources: env("DATABASE_URL"), Required: required}
+	return &cli.StringFlag{Name: flagDatabaseURL, Usage: "PostgreSQL connection URL; a password in it only through the environment (on the command line it is refused; or use PGPASSFILE); sslmode=verify-full for TLS", Sources: env("DATABASE_URL"), Required: required}
 }
 
 func logFlag(env flagEnv) cli.Flag {
@@ -87,6 +105,11 @@ func serviceFlags(env flagEnv, listenDefault string, roles serviceRoles) []cli.F
 	flags := []cli.Flag{
 		&cli.StringFlag{Name: flagListen, Value: listenDefault, Usage: "HTTP listen address", Sources: env("QTALLY_LISTEN")},
 		&cli.DurationFlag{Name: flagPollInterval, Value: 2 * time.Second, Usage: "fallback poll for work and changes when notifications are missed", Sources: env("QTALLY_POLL_INTERVAL")},
+		&cli.DurationFlag{Name: flagReadHeaderTimeout, Value: 10 * time.Second, Usage: "time a client gets to send a request's headers", Sources: env("QTALLY_READ_HEADER_TIMEOUT")},
+		&cli.DurationFlag{Name: flagReadTimeout, Value: 30 * time.Second, Usage: "time a client gets to send a whole request, body included (bulk routes get --bulk-timeout once authenticated)", Sources: env("QTALLY_READ_TIMEOUT")},
+		&cli.DurationFlag{Name: flagWriteTimeout, Value: 60 * time.Second, Usage: "time from a request's headers to the end of its answer (bulk routes get --bulk-timeout once authenticated)", Sources: env("QTALLY_WRITE_TIMEOUT")},
+		&cli.DurationFlag{Name: flagIdleTimeout, Value: 60 * time.Second, Usage: "how long an idle keep-alive connection stays open", Sources: env("QTALLY_IDLE_TIMEOUT")},
+		&cli.IntFlag{Name: flagMaxHeaderBytes, Value: 64 << 10, Usage: "largest request line and header block accepted (bytes); larger get 431", Sources: env("QTALLY_MAX_HEADER_BYTES")},
 		&cli.DurationFlag{Name: flagShutdownGrace, Value: 15 * time.Second, Usage: "time in-flight work gets to finish on shutdown", Sources: env("QTALLY_SHUTDOWN_GRACE")},
 		&cli.Int32Flag{Name: flagDBMaxConns, Value: 20, Usage: "most PostgreSQL connections of this process", Sources: env("QTALLY_DB_MAX_CONNS")},
 		&cli.DurationFlag{Name: flagHistoryBucket, Value: storage.DefaultHistory().Bucket, Usage: "stretch of time one row of training history sums up", Sources: env("QTALLY_HISTORY_BUCKET")},
@@ -104,6 +127,11 @@ func serviceFlags(env flagEnv, listenDefault string, roles serviceRoles) []cli.F
 			&cli.IntFlag{Name: flagMaxIDLength, Value: lim.MaxIDLength, Usage: "longest episode id (bytes)", Sources: env("QTALLY_MAX_ID_LENGTH")},
 			&cli.IntFlag{Name: flagMaxStateLength, Value: lim.MaxStateLength, Usage: "longest state name (bytes)", Sources: env("QTALLY_MAX_STATE_LENGTH")},
 			&cli.Int64Flag{Name: flagCoverageVisits, Value: 10, Usage: "visits a state-action pair needs to count as covered in the coverage metric", Sources: env("QTALLY_COVERAGE_VISITS")},
+			&cli.DurationFlag{Name: flagBulkTimeout, Value: 5 * time.Minute, Usage: "read and write time of authenticated bulk requests: posting episodes, importing and exporting tables (a full --max-body-bytes body needs about 8*max-body-bytes/bulk-timeout bits per second)", Sources: env("QTALLY_BULK_TIMEOUT")},
+			&cli.Int64Flag{Name: flagMaxPairsPerPolicy, Value: lim.MaxPairsPerPolicy, Usage: "most states x actions a policy's max_states may allow (every API process keeps a slot per pair in memory)", Sources: env("QTALLY_MAX_PAIRS_PER_POLICY")},
+			&cli.IntFlag{Name: flagMaxPolicies, Value: lim.MaxPolicies, Usage: "most policies the service holds", Sources: env("QTALLY_MAX_POLICIES")},
+			&cli.IntFlag{Name: flagMaxSnapshotsPerPolicy, Value: lim.MaxSnapshotsPerPolicy, Usage: "most snapshots one policy keeps", Sources: env("QTALLY_MAX_SNAPSHOTS_PER_POLICY")},
+			&cli.IntFlag{Name: flagMaxOpenJobsPerPolicy, Value: lim.MaxOpenJobsPerPolicy, Usage: "most evaluations and replays one policy may have queued or running", Sources: env("QTALLY_MAX_OPEN_JOBS_PER_POLICY")},
 		)
 	}
 	if roles.worker {
@@ -143,6 +171,16 @@ type serviceConfig struct {
 	JobStaleAfter    time.Duration
 	Auth             authConfig
 	PprofListen      string
+	Server           serverLimits
+}
+
+// serverLimits bound what slow, idle or verbose clients can hold.
+type serverLimits struct {
+	ReadHeaderTimeout time.Duration
+	ReadTimeout       time.Duration
+	WriteTimeout      time.Duration
+	IdleTimeout       time.Duration
+	MaxHeaderBytes    int
 }
 
 func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, error) {
@@ -155,6 +193,13 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 		DBMaxConns:    cmd.Int32(flagDBMaxConns),
 		History:       storage.HistorySettings{Bucket: cmd.Duration(flagHistoryBucket), Window: cmd.Duration(flagHistoryWindow)},
 		PprofListen:   cmd.String(flagPprofListen),
+		Server: serverLimits{
+			ReadHeaderTimeout: cmd.Duration(flagReadHeaderTimeout),
+			ReadTimeout:       cmd.Duration(flagReadTimeout),
+			WriteTimeout:      cmd.Duration(flagWriteTimeout),
+			IdleTimeout:       cmd.Duration(flagIdleTimeout),
+			MaxHeaderBytes:    cmd.Int(flagMaxHeaderBytes),
+		},
 	}
 	cfg.HTTP = api.Config{HistoryWindow: cfg.History.Window, ProblemDocs: cmd.String(flagProblemDocs)}
 	if err := api.CheckProblemDocs(cfg.HTTP.ProblemDocs); err != nil {
@@ -167,16 +212,30 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 			MaxSteps:       cmd.Int(flagMaxSteps),
 			MaxIDLength:    cmd.Int(flagMaxIDLength),
 			MaxStateLength: cmd.Int(flagMaxStateLength),
+
+			MaxPairsPerPolicy:     cmd.Int64(flagMaxPairsPerPolicy),
+			MaxPolicies:           cmd.Int(flagMaxPolicies),
+			MaxSnapshotsPerPolicy: cmd.Int(flagMaxSnapshotsPerPolicy),
+			MaxOpenJobsPerPolicy:  cmd.Int(flagMaxOpenJobsPerPolicy),
 		}
 		cfg.CoverageVisits = cmd.Int64(flagCoverageVisits)
 		cfg.HTTP.MaxBodyBytes, cfg.HTTP.MaxStateLength = cmd.Int64(flagMaxBodyBytes), cfg.Limits.MaxStateLength
+		cfg.HTTP.BulkTimeout = cmd.Duration(flagBulkTimeout)
 		atLeastOne[flagMaxEpisodes], atLeastOne[flagMaxSteps] = cfg.Limits.MaxEpisodes, cfg.Limits.MaxSteps
 		atLeastOne[flagMaxIDLength], atLeastOne[flagMaxStateLength] = cfg.Limits.MaxIDLength, cfg.Limits.MaxStateLength
+		atLeastOne[flagMaxPolicies], atLeastOne[flagMaxSnapshotsPerPolicy] = cfg.Limits.MaxPolicies, cfg.Limits.MaxSnapshotsPerPolicy
+		atLeastOne[flagMaxOpenJobsPerPolicy] = cfg.Limits.MaxOpenJobsPerPolicy
 		if cfg.CoverageVisits < 1 {
 			return cfg, fmt.Errorf("--%s must be at least 1, got %d", flagCoverageVisits, cfg.CoverageVisits)
 		}
 		if cfg.HTTP.MaxBodyBytes < 1024 {
 			return cfg, fmt.Errorf("--%s must be at least 1024", flagMaxBodyBytes)
+		}
+		if cfg.Limits.MaxPairsPerPolicy < training.MaxActions {
+			return cfg, fmt.Errorf("--%s must be at least %d (one state of the most actions a policy may have)", flagMaxPairsPerPolicy, training.MaxActions)
+		}
+		if cfg.HTTP.BulkTimeout <= 0 {
+			return cfg, fmt.Errorf("--%s must be positive, got %v", flagBulkTimeout, cfg.HTTP.BulkTimeout)
 		}
 	}
 	if roles.worker {
@@ -192,6 +251,15 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 		if cfg.JobStaleAfter < 2*jobReportInterval {
 			return cfg, fmt.Errorf("--%s must be at least %v (twice the progress report interval)", flagJobStaleAfter, 2*jobReportInterval)
 		}
+	}
+	for name, d := range map[string]time.Duration{flagReadHeaderTimeout: cfg.Server.ReadHeaderTimeout, flagReadTimeout: cfg.Server.ReadTimeout,
+		flagWriteTimeout: cfg.Server.WriteTimeout, flagIdleTimeout: cfg.Server.IdleTimeout} {
+		if d <= 0 {
+			return cfg, fmt.Errorf("--%s must be positive, got %v", name, d)
+		}
+	}
+	if cfg.Server.MaxHeaderBytes < 4096 {
+		return cfg, fmt.Errorf("--%s must be at least 4096", flagMaxHeaderBytes)
 	}
 	for name, v := range atLeastOne {
 		if v < 1 {

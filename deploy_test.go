@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"debug/elf"
+	"maps"
 	"net/url"
 	"os"
 	"os/exec"
@@ -198,10 +199,16 @@ func loadCompose(t testing.TB, environment map[string]string) (*types.Project, e
 // PostgreSQL is healthy and the migration has succeeded.
 func TestComposeFileRunsRealCommands(t *testing.T) {
 	commands := qtallyCommands(t)
-	if _, err := loadCompose(t, map[string]string{}); err == nil || !strings.Contains(err.Error(), "QTALLY_TOKEN_PEPPER") {
-		t.Errorf("compose.yaml loads without QTALLY_TOKEN_PEPPER set (%v); it must refuse to start without the secret", err)
+	secrets := map[string]string{"QTALLY_TOKEN_PEPPER": "pepper-for-the-test", "QTALLY_DB_PASSWORD": "db-password-for-the-test",
+		"GRAFANA_ADMIN_PASSWORD": "grafana-password-for-the-test"}
+	for name := range secrets {
+		without := maps.Clone(secrets)
+		delete(without, name)
+		if _, err := loadCompose(t, without); err == nil || !strings.Contains(err.Error(), name) {
+			t.Errorf("compose.yaml loads without %s set (%v); it must refuse to start without the secret", name, err)
+		}
 	}
-	project, err := loadCompose(t, map[string]string{"QTALLY_TOKEN_PEPPER": "pepper-for-the-test"})
+	project, err := loadCompose(t, secrets)
 	if err != nil {
 		t.Fatalf("deploy/compose.yaml: %v", err)
 	}

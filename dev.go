@@ -34,8 +34,12 @@ func devCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 				return err
 			}
 			cfg.RunAPI, cfg.RunWorker = true, true
-			// dev is for a first look on one machine: no tokens, and it says so.
+			// dev is for a first look on one machine: no tokens, and it says
+			// so; others cannot reach it.
 			cfg.Auth.Off = true
+			if err := requireLoopback(cfg.Listen); err != nil {
+				return err
+			}
 			if cmd.String(flagLogFormat) == "json" && !cmd.IsSet(flagLogFormat) {
 				_ = cmd.Set(flagLogFormat, "text")
 			}

@@ -7,6 +7,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"io"
+	"maps"
 	"net/http"
 	"strings"
 	"sync"
@@ -60,11 +61,23 @@ func (b *lockedBuffer) String() string {
 	return b.buf.String()
 }
 
+// testPepper keys the token digests of every service and token command the
+// tests run: the service refuses to check tokens without a real pepper.
+const testPepper = "pepper-of-the-tests-0123456789abcdef"
+
 // startService runs `qtally <args>` against databaseURL on a free
 // loopback port and stops it when the test ends.
 func startService(t testing.TB, databaseURL string, args ...string) *service {
 	t.Helper()
-	env := map[string]string{"DATABASE_URL": databaseURL, "QTALLY_LISTEN": "127.0.0.1:0", "QTALLY_POLL_INTERVAL": "300ms"}
+	return startServiceWith(t, databaseURL, nil, args...)
+}
+
+// startServiceWith is startService with more environment variables.
+func startServiceWith(t testing.TB, databaseURL string, extraEnv map[string]string, args ...string) *service {
+	t.Helper()
+	env := map[string]string{"DATABASE_URL": databaseURL, "QTALLY_LISTEN": "127.0.0.1:0", "QTALLY_POLL_INTERVAL": "300ms",
+		"QTALLY_TOKEN_PEPPER": testPepper}
+	maps.Copy(env, extraEnv)
 	if len(args) == 0 {
 		args = []string{"serve"}
 	}
@@ -207,9 +220,14 @@ func checkBearer(_ context.Context, in *openapi3filter.AuthenticationInput) erro
 // returns the secret it prints.
 func createToken(t testing.TB, databaseURL string, flags ...string) string {
 	t.Helper()
+	return createTokenWith(t, map[string]string{"DATABASE_URL": databaseURL, "QTALLY_TOKEN_PEPPER": testPepper}, flags...)
+}
+
+// createTokenWith runs `qtally token create flags...` with env.
+func createTokenWith(t testing.TB, env map[string]string, flags ...string) string {
+	t.Helper()
 	var out bytes.Buffer
 	args := append([]string{"qtally", "token", "create"}, flags...)
-	env := map[string]string{"DATABASE_URL": databaseURL}
 	if err := run(context.Background(), args, func(k string) string { return env[k] }, &out, io.Discard); err != nil {
 		t.Fatalf("%v: %v", args, err)
 	}

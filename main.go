@@ -24,5 +24,8 @@ func main() {
 // run is the whole program, with its environment passed in so that tests
 // can call it like a process.
 func run(ctx context.Context, args []string, getenv func(string) string, stdout, stderr io.Writer) error {
+	if err := refuseSecretArguments(args); err != nil {
+		return err
+	}
 	return newApp(getenv, stdout, stderr).Run(ctx, args)
 }

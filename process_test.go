@@ -44,7 +44,7 @@ type process struct {
 func startProcess(t testing.TB, bin string, env map[string]string, args ...string) *process {
 	t.Helper()
 	cmd := exec.Command(bin, args...)
-	cmd.Env = os.Environ()
+	cmd.Env = append(os.Environ(), "QTALLY_TOKEN_PEPPER="+testPepper)
 	for k, v := range env {
 		cmd.Env = append(cmd.Env, k+"="+v)
 	}

@@ -35,6 +35,9 @@ var distributionExceptions = map[string]string{
 	// API tokens belong to the service, not to a policy: like policies, a
 	// small table kept whole on every node.
 	"api_tokens_pkey": "api_tokens",
+	// Page sessions belong to signed-in browsers, not to a policy: a small
+	// table read by key, kept whole on every node like the tokens.
+	"page_sessions_pkey": "page_sessions",
 	// The migration tool's bookkeeping; it stays on the coordinator.
 	"goose_db_version_pkey": "goose_db_version",
 }

@@ -83,8 +83,12 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		})
 	}
 	var auth api.Authenticator
+	var sessions api.PageSessions
 	if cfg.RunAPI {
-		auth = startKeyring(ctx, cfg.Auth, db, subs, goBackground, logger, stdout)
+		if keyring := startKeyring(ctx, cfg.Auth, db, subs, goBackground, logger, stdout); keyring != nil {
+			auth = keyring
+			sessions = training.PageSessions{Store: db, Tokens: keyring, Life: pageSessionLife, Key: training.SessionKey(cfg.Auth.Pepper)}
+		}
 	}
 	if cfg.RunWorker {
 		subs[storage.ChannelEpisodes] = storage.Subscription{Notify: func(int32) { nudge(wake) }, CatchUp: func() { nudge(wake) }}
@@ -113,7 +117,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	var handler http.Handler
 	if cfg.RunAPI {
 		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, Episodes: db, States: db,
-			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth,
+			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth, Sessions: sessions,
 			Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db, Audit: db})
 	} else {
 		handler = api.NewHealthServer(cfg.HTTP, api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})
@@ -129,7 +133,8 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 			return nil
 		})
 	}
-	srv := &http.Server{Handler: handler, ReadHeaderTimeout: 10 * time.Second}
+	srv := &http.Server{Handler: handler, ReadHeaderTimeout: cfg.Server.ReadHeaderTimeout, ReadTimeout: cfg.Server.ReadTimeout,
+		WriteTimeout: cfg.Server.WriteTimeout, IdleTimeout: cfg.Server.IdleTimeout, MaxHeaderBytes: cfg.Server.MaxHeaderBytes}
 	serveErr := make(chan error, 1)
 	go func() { serveErr <- srv.Serve(listener) }()
 

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
+	"net/netip"
 	"strconv"
 	"strings"
 	"text/tabwriter"
@@ -18,12 +19,18 @@ import (
 )
 
 const (
-	flagNoAuth       = "no-auth"
-	flagTokenPepper  = "token-pepper"
-	flagTokenRate    = "token-rate"
-	flagTokenBurst   = "token-burst"
-	flagTokenRefresh = "token-refresh"
+	flagNoAuth          = "no-auth"
+	flagTokenPepper     = "token-pepper"
+	flagTokenPepperFile = "token-pepper-file"
+	flagTokenRate       = "token-rate"
+	flagTokenBurst      = "token-burst"
+	flagTokenRefresh    = "token-refresh"
+	flagSignInAttempts  = "sign-in-attempts"
+	flagTrustedProxy    = "trusted-proxy"
 )
+
+// pageSessionLife is how long a status page sign-in lasts.
+const pageSessionLife = 12 * time.Hour
 
 // authConfig says whether and how the API checks tokens.
 type authConfig struct {
@@ -32,43 +39,81 @@ type authConfig struct {
 	Refresh time.Duration
 }
 
-func pepperFlag(env flagEnv) cli.Flag {
-	return &cli.StringFlag{Name: flagTokenPepper, Usage: "server-side key mixed into stored token digests; every process and token command must use the same (prefer the environment variable)",
-		Sources: env("QTALLY_TOKEN_PEPPER")}
+// pepperFlags read the server-side key of the stored token digests, which
+// every process and token command must share. It is a secret: it comes
+// from the environment or a file, and a command-line value is refused.
+func pepperFlags(env flagEnv) []cli.Flag {
+	return []cli.Flag{
+		&cli.StringFlag{Name: flagTokenPepper, Usage: "key of the stored token digests, from the environment only (a command-line value is refused); the same for every process and token command",
+			Sources: env("QTALLY_TOKEN_PEPPER")},
+		&cli.StringFlag{Name: flagTokenPepperFile, Usage: "file holding the token pepper, instead of QTALLY_TOKEN_PEPPER",
+			Sources: env("QTALLY_TOKEN_PEPPER_FILE")},
+	}
 }
 
 // authFlags configure token checking of an API process.
 func authFlags(env flagEnv) []cli.Flag {
-	return []cli.Flag{
-		&cli.BoolFlag{Name: flagNoAuth, Usage: "serve without tokens: any client may do anything (local development only)", Sources: env("QTALLY_NO_AUTH")},
-		pepperFlag(env),
+	return append(pepperFlags(env),
+		&cli.BoolFlag{Name: flagNoAuth, Usage: "serve without tokens: any client may do anything (local development only; loopback listen addresses only)", Sources: env("QTALLY_NO_AUTH")},
 		&cli.FloatFlag{Name: flagTokenRate, Value: 10000, Usage: "requests per second a token may make unless it was created with its own rate; 0: no limit", Sources: env("QTALLY_TOKEN_RATE")},
 		&cli.IntFlag{Name: flagTokenBurst, Value: 20000, Usage: "requests a token may make at once above its rate", Sources: env("QTALLY_TOKEN_BURST")},
 		&cli.DurationFlag{Name: flagTokenRefresh, Value: 5 * time.Second, Usage: "how often tokens are re-read; a revoked token stops working within this time even if its change notification is lost", Sources: env("QTALLY_TOKEN_REFRESH")},
-	}
+		&cli.IntFlag{Name: flagSignInAttempts, Value: 10, Usage: "status page sign-ins one client address may try per minute (429 above)", Sources: env("QTALLY_SIGN_IN_ATTEMPTS")},
+		&cli.StringSliceFlag{Name: flagTrustedProxy, Usage: "address or CIDR range of a TLS-terminating proxy in front of qtally (repeat or separate with commas): requests from it take the client address from X-Forwarded-For, and page cookies get the Secure attribute", Sources: env("QTALLY_TRUSTED_PROXIES")},
+	)
 }
 
 func readAuthConfig(cmd *cli.Command, cfg *serviceConfig) error {
-	cfg.Auth = authConfig{Off: cmd.Bool(flagNoAuth), Pepper: cmd.String(flagTokenPepper), Refresh: cmd.Duration(flagTokenRefresh)}
+	cfg.Auth = authConfig{Off: cmd.Bool(flagNoAuth), Refresh: cmd.Duration(flagTokenRefresh)}
 	cfg.HTTP.TokenRate = api.RateConfig{PerSecond: cmd.Float(flagTokenRate), Burst: cmd.Int(flagTokenBurst)}
+	cfg.HTTP.SignInAttemptsPerMinute = cmd.Int(flagSignInAttempts)
 	switch {
 	case cfg.Auth.Refresh <= 0:
 		return fmt.Errorf("--%s must be positive", flagTokenRefresh)
 	case cfg.HTTP.TokenRate.PerSecond < 0 || cfg.HTTP.TokenRate.Burst < 0:
 		return fmt.Errorf("--%s and --%s must not be negative", flagTokenRate, flagTokenBurst)
+	case cfg.HTTP.SignInAttemptsPerMinute < 1:
+		return fmt.Errorf("--%s must be at least 1", flagSignInAttempts)
 	}
-	return nil
+	for _, s := range cmd.StringSlice(flagTrustedProxy) {
+		p, err := parseAddressRange(strings.TrimSpace(s))
+		if err != nil {
+			return fmt.Errorf("--%s: %w", flagTrustedProxy, err)
+		}
+		cfg.HTTP.TrustedProxies = append(cfg.HTTP.TrustedProxies, p)
+	}
+	if cfg.Auth.Off {
+		return requireLoopback(cfg.Listen)
+	}
+	var err error
+	cfg.Auth.Pepper, err = readPepper(cmd)
+	return err
+}
+
+// parseAddressRange reads an address (a range of one) or a CIDR range.
+func parseAddressRange(s string) (netip.Prefix, error) {
+	if a, err := netip.ParseAddr(s); err == nil {
+		return netip.PrefixFrom(a.Unmap(), a.Unmap().BitLen()), nil
+	}
+	p, err := netip.ParsePrefix(s)
+	if err != nil {
+		return p, fmt.Errorf("%q is neither an address nor a CIDR range", s)
+	}
+	return p.Masked(), nil
 }
 
 // startKeyring loads the tokens an API process checks requests against and
 // keeps them current: at once on a change notification, and every
 // cfg.Refresh in case one is lost. It returns nil when auth is off.
 func startKeyring(ctx context.Context, cfg authConfig, db *storage.DB, subs map[string]storage.Subscription,
-	goBackground func(string, func(context.Context) error), logger *slog.Logger, stdout io.Writer) api.Authenticator {
+	goBackground func(string, func(context.Context) error), logger *slog.Logger, stdout io.Writer) *training.Keyring {
 	if cfg.Off {
 		fmt.Fprintln(stdout, "qtally: authentication is OFF (--no-auth): any client may read and change every policy")
 		logger.Warn("authentication is off; every request is let through")
 		return nil
+	}
+	if len(cfg.Pepper) < 32 {
+		logger.Warn("the token pepper is shorter than 32 characters; a long random one (openssl rand -hex 32) resists guessing from a copy of the database")
 	}
 	keyring := training.NewKeyring(db, cfg.Pepper)
 	if err := keyring.Reload(ctx); err != nil {
@@ -109,13 +154,13 @@ func tokenCommand(env flagEnv, stdout io.Writer) *cli.Command {
 			{
 				Name:  "create",
 				Usage: "create a token and print its secret, which is shown this once only",
-				Flags: []cli.Flag{databaseFlag(env, true), pepperFlag(env),
+				Flags: append([]cli.Flag{databaseFlag(env, true)}, append(pepperFlags(env),
 					&cli.StringFlag{Name: "label", Usage: "what the token is for", Required: true},
 					&cli.StringSliceFlag{Name: "scope", Usage: "what it may do: ingest, choose, admin (repeat or separate with commas)", Required: true},
 					&cli.StringSliceFlag{Name: "policy", Usage: "limit it to these policies (repeat or separate with commas); all when omitted"},
 					&cli.FloatFlag{Name: "rate", Usage: "its own requests per second instead of the server's --token-rate"},
 					&cli.IntFlag{Name: "burst", Usage: "its own burst, with --rate"},
-				},
+				)...),
 				Action: func(ctx context.Context, cmd *cli.Command) error {
 					spec := training.TokenSpec{Label: cmd.String("label"), Policies: cmd.StringSlice("policy"),
 						RatePerSecond: cmd.Float("rate"), Burst: cmd.Int("burst")}
@@ -128,8 +173,12 @@ func tokenCommand(env flagEnv, stdout io.Writer) *cli.Command {
 					if err := spec.Validate(); err != nil {
 						return err
 					}
+					pepper, err := readPepper(cmd)
+					if err != nil {
+						return err
+					}
 					random := training.NewSecretPart()
-					digest := training.NewTokenHasher(cmd.String(flagTokenPepper)).Digest(random)
+					digest := training.NewTokenHasher(pepper).Digest(random)
 					return withDB(ctx, cmd, func(db *storage.DB) error {
 						tok, err := db.CreateToken(ctx, spec, digest)
 						if err != nil {

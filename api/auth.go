@@ -2,6 +2,7 @@ package api
 
 import (
 	"context"
+	"errors"
 	"math"
 	"net/http"
 	"strconv"
@@ -31,25 +32,27 @@ type RateConfig struct {
 // metrics ones, and checks each route's scope. A nil guard lets all through.
 type guard struct {
 	auth     Authenticator
+	sessions PageSessions
 	rate     RateConfig
 	limiters sync.Map // token id -> *rate.Limiter
 }
 
-func newGuard(auth Authenticator, rc RateConfig) *guard {
+func newGuard(auth Authenticator, sessions PageSessions, rc RateConfig) *guard {
 	if auth == nil {
 		return nil
 	}
-	return &guard{auth: auth, rate: rc}
+	return &guard{auth: auth, sessions: sessions, rate: rc}
 }
 
 const (
 	tokenKey    = "qtally.token"
+	sessionKey  = "qtally.session"
 	bearerRealm = `Bearer realm="qtally"`
 )
 
 // openRoutes answer without a token: probes and scrapers carry none, and
 // the sign-in page is how a browser gets one.
-var openRoutes = map[string]bool{"/livez": true, "/readyz": true, "/metrics": true, signInPath: true}
+var openRoutes = map[string]bool{"/livez": true, "/readyz": true, "/metrics": true, signInPath: true, signOutPath: true}
 
 // authenticate runs for every request, matched route or not, so that a
 // route added without a scope still needs a valid token.
@@ -62,24 +65,31 @@ func (g *guard) authenticate(next echo.HandlerFunc) echo.HandlerFunc {
 			return next(c)
 		}
 		header := c.Request().Header.Get(echo.HeaderAuthorization)
-		scheme, secret, found := strings.Cut(header, " ")
-		if !found && isPageRequest(c) {
+		var tok *training.Token
+		if header == "" && isPageRequest(c) {
 			// A browser cannot send a bearer header: status pages take the
-			// token from the cookie that signing in set.
-			if ck, err := c.Cookie(pageCookie); err == nil {
-				scheme, secret, found = "Bearer", ck.Value, true
-			} else {
+			// token of the session that signing in opened.
+			ck, err := c.Cookie(sessionCookie)
+			if err != nil {
 				return c.Redirect(http.StatusSeeOther, signInPath)
 			}
-		}
-		if !found || !strings.EqualFold(scheme, "Bearer") || secret == "" {
-			c.Response().Header().Set(echo.HeaderWWWAuthenticate, bearerRealm)
-			return training.Unauthenticatedf("this request needs a token: send Authorization: Bearer <secret>")
-		}
-		tok, err := g.auth.Verify(c.Request().Context(), strings.TrimSpace(secret))
-		if err != nil {
-			c.Response().Header().Set(echo.HeaderWWWAuthenticate, bearerRealm+`, error="invalid_token"`)
-			return err
+			if tok, err = g.sessions.Token(c.Request().Context(), ck.Value); errors.Is(err, training.ErrUnauthenticated) {
+				return c.Redirect(http.StatusSeeOther, signInPath)
+			} else if err != nil {
+				return err
+			}
+			c.Set(sessionKey, true)
+		} else {
+			scheme, secret, found := strings.Cut(header, " ")
+			if !found || !strings.EqualFold(scheme, "Bearer") || secret == "" {
+				c.Response().Header().Set(echo.HeaderWWWAuthenticate, bearerRealm)
+				return training.Unauthenticatedf("this request needs a token: send Authorization: Bearer <secret>")
+			}
+			var err error
+			if tok, err = g.auth.Verify(c.Request().Context(), strings.TrimSpace(secret)); err != nil {
+				c.Response().Header().Set(echo.HeaderWWWAuthenticate, bearerRealm+`, error="invalid_token"`)
+				return err
+			}
 		}
 		if wait, ok := g.allow(tok); !ok {
 			c.Response().Header().Set("Retry-After", strconv.Itoa(int(math.Ceil(wait.Seconds()))))
@@ -148,4 +158,10 @@ func (g *guard) requireScope(scopes ...training.Scope) echo.MiddlewareFunc {
 func requestToken(c echo.Context) *training.Token {
 	tok, _ := c.Get(tokenKey).(*training.Token)
 	return tok
+}
+
+// inSession tells whether a page request was authenticated by a session.
+func inSession(c echo.Context) bool {
+	in, _ := c.Get(sessionKey).(bool)
+	return in
 }

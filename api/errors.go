@@ -44,8 +44,12 @@ func errorHandler(logger *slog.Logger, types problemTypes) echo.HTTPErrorHandler
 		if (p.Status == http.StatusServiceUnavailable || p.Status == http.StatusTooManyRequests) && h.Get("Retry-After") == "" {
 			h.Set("Retry-After", "1")
 		}
-		if p.Status == http.StatusUnauthorized && h.Get(echo.HeaderWWWAuthenticate) == "" {
-			h.Set(echo.HeaderWWWAuthenticate, bearerRealm)
+		if p.Status == http.StatusUnauthorized {
+			if h.Get(echo.HeaderWWWAuthenticate) == "" {
+				h.Set(echo.HeaderWWWAuthenticate, bearerRealm)
+			}
+			// A client without a valid token gets no idle connection to hold.
+			h.Set(echo.HeaderConnection, "close")
 		}
 		c.Response().Header().Set(echo.HeaderContentType, problemContentType)
 		c.Response().WriteHeader(p.Status)
@@ -60,21 +64,19 @@ func errorHandler(logger *slog.Logger, types problemTypes) echo.HTTPErrorHandler
 
 func (pt problemTypes) toProblem(err error) Problem {
 	var verr *training.ValidationError
+	var qerr *training.QuotaError
 	var herr *echo.HTTPError
 	switch {
 	case errors.As(err, &verr):
 		p := pt.problem(problemInvalidInput, verr.Error())
-		for _, fe := range verr.Problems {
-			pf := ProblemField{Field: fe.Field, Message: fe.Message}
-			if fe.Episode >= 0 {
-				pf.Episode = &fe.Episode
-			}
-			if fe.Step >= 0 {
-				pf.Step = &fe.Step
-			}
-			p.Errors = append(p.Errors, pf)
-		}
+		p.Errors = problemFields(verr.Problems)
 		return p
+	case errors.As(err, &qerr):
+		p := pt.problem(problemQuotaExceeded, qerr.Error())
+		p.Errors = problemFields(qerr.Problems)
+		return p
+	case errors.Is(err, training.ErrQuota):
+		return pt.problem(problemQuotaExceeded, err.Error())
 	case errors.Is(err, training.ErrNotFound):
 		return pt.problem(problemNotFound, err.Error())
 	case errors.Is(err, training.ErrConflict):
@@ -95,4 +97,19 @@ func (pt problemTypes) toProblem(err error) Problem {
 		return Problem{Type: plainProblemType, Title: "Internal Server Error", Status: http.StatusInternalServerError,
 			Detail: "the request failed on the server; see its log"}
 	}
+}
+
+func problemFields(list []training.FieldError) []ProblemField {
+	var out []ProblemField
+	for _, fe := range list {
+		pf := ProblemField{Field: fe.Field, Message: fe.Message}
+		if fe.Episode >= 0 {
+			pf.Episode = &fe.Episode
+		}
+		if fe.Step >= 0 {
+			pf.Step = &fe.Step
+		}
+		out = append(out, pf)
+	}
+	return out
 }

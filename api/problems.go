@@ -29,6 +29,7 @@ const (
 	problemUnauthenticated problemName = "unauthenticated"
 	problemForbidden       problemName = "forbidden"
 	problemUnavailable     problemName = "unavailable"
+	problemQuotaExceeded   problemName = "quota-exceeded"
 )
 
 // problemDefinition is what every answer of one problem type carries.
@@ -44,6 +45,7 @@ var problemDefinitions = map[problemName]problemDefinition{
 	problemUnauthenticated: {"Unauthenticated", http.StatusUnauthorized},
 	problemForbidden:       {"Forbidden", http.StatusForbidden},
 	problemUnavailable:     {"Temporarily unavailable", http.StatusServiceUnavailable},
+	problemQuotaExceeded:   {"Quota exceeded", http.StatusConflict},
 }
 
 // problemTypes makes problems whose type URIs lead to the documentation at

@@ -22,6 +22,7 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoute
 	// Every admin route is registered through audit.add, so that each of its
 	// requests goes to the audit log (TestEveryRouteEnforcesAccess checks).
 	admin, ingest, choose := g.requireScope(training.ScopeAdmin), g.requireScope(training.ScopeIngest), g.requireScope(training.ScopeChoose)
+	bulk := bulkDeadline(cfg.BulkTimeout)
 	audit.add(e.GET("/v1/policies", handleListPolicies(d.Policies), admin))
 	audit.add(e.GET("/v1/audit", handleAuditLog(d.Audit), admin))
 	// Applications read their policy's backlog and revision with the
@@ -29,19 +30,19 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoute
 	audit.add(e.GET("/v1/policies/:policy", handleGetPolicy(d.Policies),
 		g.requireScope(training.ScopeAdmin, training.ScopeChoose, training.ScopeIngest)))
 	audit.add(e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg), admin))
-	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg), ingest)
+	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg), ingest, bulk)
 	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg), choose)
 	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect), choose)
 	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States, cfg), choose)
 
-	audit.add(e.GET("/v1/policies/:policy/table", handleExportTable(d.Snapshots, false), admin))
-	audit.add(e.PUT("/v1/policies/:policy/table", handleImportTable(d.Tables, cfg), admin))
+	audit.add(e.GET("/v1/policies/:policy/table", handleExportTable(d.Snapshots, false), admin, bulk))
+	audit.add(e.PUT("/v1/policies/:policy/table", handleImportTable(d.Tables, cfg), admin, bulk))
 	audit.add(e.GET("/v1/policies/:policy/diff", handleDiffTables(d.Snapshots), admin))
 	audit.add(e.GET("/v1/policies/:policy/snapshots", handleListSnapshots(d.Snapshots), admin))
 	audit.add(e.POST("/v1/policies/:policy/snapshots", handleCreateSnapshot(d.Snapshots, cfg), admin))
 	audit.add(e.GET("/v1/policies/:policy/snapshots/:snapshot", handleGetSnapshot(d.Snapshots), admin))
 	audit.add(e.DELETE("/v1/policies/:policy/snapshots/:snapshot", handleDeleteSnapshot(d.Snapshots), admin))
-	audit.add(e.GET("/v1/policies/:policy/snapshots/:snapshot/table", handleExportTable(d.Snapshots, true), admin))
+	audit.add(e.GET("/v1/policies/:policy/snapshots/:snapshot/table", handleExportTable(d.Snapshots, true), admin, bulk))
 	audit.add(e.POST("/v1/policies/:policy/snapshots/:snapshot/restore", handleRestoreSnapshot(d.Tables), admin))
 	audit.add(e.POST("/v1/policies/:policy/evaluations", handleStartEvaluation(d.Jobs, cfg), admin))
 	audit.add(e.GET("/v1/policies/:policy/evaluations", handleListJobs(d.Jobs, training.EvaluationJobKind), admin))
@@ -56,8 +57,11 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoute
 func addStatusRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 	admin := g.requireScope(training.ScopeAdmin)
 	if g != nil {
+		s := &signIn{auth: g.auth, sessions: g.sessions, attempts: newAddressLimiter(cfg.SignInAttemptsPerMinute, maxTrackedAddresses),
+			trustedProxy: cfg.fromTrustedProxy}
 		e.GET(signInPath, handleSignInPage())
-		e.POST(signInPath, handleSignIn(g.auth))
+		e.POST(signInPath, s.handleSignIn())
+		e.POST(signOutPath, s.handleSignOut())
 	}
 	e.GET("/", handleOverview(d.Policies), admin)
 	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, cfg), admin)

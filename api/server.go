@@ -6,7 +6,9 @@ package api
 import (
 	"context"
 	"log/slog"
+	"net"
 	"net/http"
+	"net/netip"
 	"time"
 
 	"github.com/labstack/echo/v4"
@@ -60,6 +62,16 @@ type Config struct {
 	// ProblemDocs is the address of the problem type documentation; each
 	// of qtally's problem types is this address, "#" and its name.
 	ProblemDocs string
+	// SignInAttemptsPerMinute is how many sign-ins one client address may
+	// try a minute, with as many at once.
+	SignInAttemptsPerMinute int
+	// TrustedProxies are the addresses of a TLS-terminating proxy in front
+	// of the service: requests from them take the client address from
+	// X-Forwarded-For, and page cookies get the Secure attribute.
+	TrustedProxies []netip.Prefix
+	// BulkTimeout replaces the server's read and write timeouts for
+	// authenticated requests that carry episode batches or whole tables.
+	BulkTimeout time.Duration
 }
 
 // Deps are what the server calls.
@@ -81,14 +93,52 @@ type Deps struct {
 	Jobs      Jobs
 	// Audit records admin actions and reads them back.
 	Audit AuditLog
-	// Auth verifies tokens; nil turns authentication off.
-	Auth Authenticator
+	// Auth verifies tokens and Sessions keeps page sign-ins; a nil Auth
+	// turns authentication off.
+	Auth     Authenticator
+	Sessions PageSessions
+}
+
+// maxTrackedAddresses bounds the client addresses the sign-in limiter
+// remembers.
+const maxTrackedAddresses = 10_000
+
+// fromTrustedProxy tells whether the request's peer is a configured proxy.
+func (cfg Config) fromTrustedProxy(c echo.Context) bool {
+	if len(cfg.TrustedProxies) == 0 {
+		return false
+	}
+	ap, err := netip.ParseAddrPort(c.Request().RemoteAddr)
+	if err != nil {
+		return false
+	}
+	for _, p := range cfg.TrustedProxies {
+		if p.Contains(ap.Addr().Unmap()) {
+			return true
+		}
+	}
+	return false
+}
+
+// clientAddress takes a request's client address from the connection, or,
+// behind a configured proxy, from what the proxy appended to
+// X-Forwarded-For; a header from anyone else is ignored.
+func clientAddress(cfg Config) echo.IPExtractor {
+	if len(cfg.TrustedProxies) == 0 {
+		return echo.ExtractIPDirect()
+	}
+	opts := []echo.TrustOption{echo.TrustLoopback(false), echo.TrustLinkLocal(false), echo.TrustPrivateNet(false)}
+	for _, p := range cfg.TrustedProxies {
+		opts = append(opts, echo.TrustIPRange(&net.IPNet{IP: p.Addr().AsSlice(), Mask: net.CIDRMask(p.Bits(), p.Addr().BitLen())}))
+	}
+	return echo.ExtractIPFromXFFHeader(opts...)
 }
 
 // NewServer returns the HTTP handler of an API process.
 func NewServer(cfg Config, d Deps) http.Handler {
 	e := newEcho(cfg, d)
-	g := newGuard(d.Auth, cfg.TokenRate)
+	e.IPExtractor = clientAddress(cfg)
+	g := newGuard(d.Auth, d.Sessions, cfg.TokenRate)
 	audit := auditedRoutes{}
 	// The audit log records refusals too: it runs before names are authorised.
 	e.Use(g.authenticate, audit.record(d.Audit, d.Logger), authorizeNamedPolicies)
@@ -111,7 +161,7 @@ func newEcho(cfg Config, d Deps) *echo.Echo {
 	e.HidePort = true
 	e.HTTPErrorHandler = errorHandler(d.Logger, problemTypes{docs: cfg.ProblemDocs})
 	e.Pre(routeOnEscapedPath)
-	e.Use(observe(d.Metrics))
+	e.Use(observe(d.Metrics, e))
 	return e
 }
 

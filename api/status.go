@@ -42,7 +42,7 @@ func renderPage(c echo.Context, name string, view any) error {
 	if err := pages[name].ExecuteTemplate(&buf, "layout.html", view); err != nil {
 		return fmt.Errorf("render %s: %w", name, err)
 	}
-	c.Response().Header().Set("Cache-Control", "no-store")
+	pageSecurityHeaders(c)
 	return c.HTMLBlob(http.StatusOK, buf.Bytes())
 }
 
@@ -61,6 +61,8 @@ type pageBase struct {
 	Now   time.Time
 	// Refresh reloads the page after this many seconds; 0 never.
 	Refresh int
+	// SignOut shows a sign-out button: the page was opened in a session.
+	SignOut bool
 }
 
 type policyRow struct {
@@ -98,7 +100,7 @@ func handleOverview(p Policies) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
-		v := overviewView{pageBase: pageBase{Title: "Policies", Now: time.Now(), Refresh: 30}}
+		v := overviewView{pageBase: pageBase{Title: "Policies", Now: time.Now(), Refresh: 30, SignOut: inSession(c)}}
 		for _, st := range coveredPolicies(c, list) {
 			v.Policies = append(v.Policies, newPolicyRow(st, v.Now))
 		}
@@ -186,7 +188,7 @@ func handlePolicyPage(in Inspector, cfg Config) echo.HandlerFunc {
 		}
 		now := time.Now()
 		v := policyView{
-			pageBase:    pageBase{Title: name, Now: now, Refresh: 30},
+			pageBase:    pageBase{Title: name, Now: now, Refresh: 30, SignOut: inSession(c)},
 			policyRow:   newPolicyRow(report.Status, now),
 			Window:      formatDuration(window),
 			Charts:      historyCharts(report, now),
@@ -276,7 +278,7 @@ func handleStatesPage(in Inspector) echo.HandlerFunc {
 			return err
 		}
 		now := time.Now()
-		v := statesView{pageBase: pageBase{Title: name + " states", Now: now}, Policy: name, Sort: q.Order,
+		v := statesView{pageBase: pageBase{Title: name + " states", Now: now, SignOut: inSession(c)}, Policy: name, Sort: q.Order,
 			Rows: newStateRows(page.States, now)}
 		for _, o := range training.StateOrders {
 			v.Sorts = append(v.Sorts, windowLink{Label: string(o), URL: "?sort=" + string(o), Current: o == q.Order})

@@ -146,6 +146,8 @@ cat "$OUT/ceilings.txt" >&2
 # --- the service -----------------------------------------------------------------
 # The service runs as in production, with tokens checked on every request;
 # the per-token rate limit is off so that it does not cap the figures.
+QTALLY_TOKEN_PEPPER=$(head -c 32 /dev/urandom | od -An -tx1 | tr -d ' \n')
+export QTALLY_TOKEN_PEPPER
 QTALLY_TOKEN=$("$QT" token create --database-url "$DB_URL" --label bench --scope ingest,choose,admin |
   sed -n 's/^secret: //p')
 [ -n "$QTALLY_TOKEN" ] || { say "could not create an API token"; exit 1; }

@@ -58,6 +58,10 @@ func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Epi
 		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
 			return fmt.Errorf("ingest lock: %w", err)
 		}
+		// Under the same lock, so concurrent batches count each other's states.
+		if err := admitStates(ctx, tx, p, records, fresh); err != nil {
+			return err
+		}
 		_, err = tx.CopyFrom(ctx, pgx.Identifier{"episodes"},
 			[]string{"policy_id", "episode_id", "states", "actions", "rewards", "probabilities", "allowed"},
 			pgx.CopyFromSlice(len(fresh), func(i int) ([]any, error) {
@@ -107,4 +111,88 @@ func withoutStored(ctx context.Context, tx pgx.Tx, policyID int32, records []tra
 		}
 	}
 	return fresh, nil
+}
+
+// admitStates records the states of the fresh episodes as the policy's,
+// and refuses the batch when the new ones pass its max_states. Over known
+// states it costs one index probe per distinct state of the batch.
+func admitStates(ctx context.Context, tx pgx.Tx, p training.Policy, records, fresh []training.EpisodeRecord) error {
+	position := make(map[string]int, len(records))
+	for i, r := range records {
+		position[r.ID] = i
+	}
+	positions := make([]int, len(fresh))
+	for i, r := range fresh {
+		positions[i] = position[r.ID]
+	}
+	sightings := training.FirstSightings(fresh, positions)
+	names := make([]string, len(sightings))
+	for i, s := range sightings {
+		names[i] = s.State
+	}
+	added, known, err := recordStates(ctx, tx, p.ID, names)
+	if err != nil || known <= p.MaxStates {
+		return err
+	}
+	isNew := make(map[string]bool, len(added))
+	for _, s := range added {
+		isNew[s] = true
+	}
+	room := p.MaxStates - (known - int64(len(added)))
+	return training.StatesBeyondQuota(sightings, func(s string) bool { return isNew[s] }, room, p.MaxStates)
+}
+
+// recordStates records states as the policy's, and returns those it did
+// not have and how many it has now (0 when none was new). Callers hold the
+// policy's ingest lock or training lock, so counts do not interleave.
+func recordStates(ctx context.Context, tx pgx.Tx, policyID int32, states []string) ([]string, int64, error) {
+	rows, err := tx.Query(ctx, `INSERT INTO policy_states (policy_id, state) SELECT $1, unnest($2::text[])
+		ON CONFLICT DO NOTHING RETURNING state`, policyID, states)
+	if err != nil {
+		return nil, 0, fmt.Errorf("record states: %w", err)
+	}
+	added, err := pgx.CollectRows(rows, pgx.RowTo[string])
+	if err != nil {
+		return nil, 0, fmt.Errorf("record states: %w", err)
+	}
+	if len(added) == 0 {
+		return nil, 0, nil
+	}
+	known, err := countStates(ctx, tx, policyID, int64(len(added)))
+	return added, known, err
+}
+
+// countStates adds n to the policy's state count and returns the new count.
+func countStates(ctx context.Context, tx pgx.Tx, policyID int32, n int64) (int64, error) {
+	var known int64
+	err := tx.QueryRow(ctx, `INSERT INTO policy_state_counts (policy_id, states) VALUES ($1, $2)
+		ON CONFLICT (policy_id) DO UPDATE SET states = policy_state_counts.states + excluded.states
+		RETURNING states`, policyID, n).Scan(&known)
+	if err != nil {
+		return 0, fmt.Errorf("count states: %w", err)
+	}
+	return known, nil
+}
+
+// admitTableStates records the states of a policy's live table, just
+// rewritten by a restore or import, and refuses the rewrite when they pass
+// its max_states.
+func admitTableStates(ctx context.Context, tx pgx.Tx, p training.Policy) error {
+	if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
+		return fmt.Errorf("ingest lock: %w", err)
+	}
+	tag, err := tx.Exec(ctx, `INSERT INTO policy_states (policy_id, state)
+		SELECT DISTINCT policy_id, state FROM q_values WHERE policy_id = $1 ON CONFLICT DO NOTHING`, p.ID)
+	if err != nil {
+		return fmt.Errorf("record states: %w", err)
+	}
+	known, err := countStates(ctx, tx, p.ID, tag.RowsAffected())
+	if err != nil {
+		return err
+	}
+	if known > p.MaxStates {
+		return training.Quotaf("with this table policy %q would know %d states, more than its max_states of %d; nothing was changed: raise max_states with PUT on the policy first",
+			p.Name, known, p.MaxStates)
+	}
+	return nil
 }

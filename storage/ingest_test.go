@@ -12,7 +12,7 @@ import (
 	"github.com/qtally/qtally/training"
 )
 
-func openDB(t *testing.T) *storage.DB {
+func openDB(t testing.TB) *storage.DB {
 	t.Helper()
 	db, err := storage.Open(context.Background(), pgtest.NewDatabase(t), 20, training.DefaultLimits())
 	if err != nil {

@@ -71,11 +71,26 @@ func replayedFromSeq(ctx context.Context, tx pgx.Tx, source, target int32) (int6
 	return first, nil
 }
 
-// queueJob stores a job and wakes the runners. Callers hold the policy's
-// pin lock from resolving the job's window to the commit, so that pruning
-// either ran before the window was resolved or sees the job and keeps its
-// episodes.
-func queueJob(ctx context.Context, tx pgx.Tx, policyID int32, kind training.JobKind, spec any) (int64, error) {
+// jobQuotaLockClass namespaces the per-policy lock of the open-jobs count.
+const jobQuotaLockClass = 0x71746a71
+
+// queueJob stores a job, within the policy's open-jobs quota, and wakes
+// the runners. Callers hold the policy's pin lock from resolving the job's
+// window to the commit, so that pruning either ran before the window was
+// resolved or sees the job and keeps its episodes.
+func (db *DB) queueJob(ctx context.Context, tx pgx.Tx, policyID int32, kind training.JobKind, spec any) (int64, error) {
+	// Serialised per policy, so that concurrent requests cannot pass the
+	// count together.
+	if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, jobQuotaLockClass, policyID); err != nil {
+		return 0, fmt.Errorf("job quota lock: %w", err)
+	}
+	var open int
+	if err := tx.QueryRow(ctx, `SELECT count(*) FROM jobs WHERE policy_id = $1 AND status IN ('queued', 'running')`, policyID).Scan(&open); err != nil {
+		return 0, fmt.Errorf("count open jobs: %w", err)
+	}
+	if open >= db.limits.MaxOpenJobsPerPolicy {
+		return 0, training.Quotaf("the policy has %d evaluations and replays queued or running, its limit (--max-open-jobs-per-policy %d); wait for one to finish", open, db.limits.MaxOpenJobsPerPolicy)
+	}
 	doc, err := json.Marshal(spec)
 	if err != nil {
 		return 0, fmt.Errorf("encode job: %w", err)
@@ -136,7 +151,7 @@ func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.E
 				return err
 			}
 		}
-		id, err = queueJob(ctx, tx, p.ID, training.EvaluationJobKind, job)
+		id, err = db.queueJob(ctx, tx, p.ID, training.EvaluationJobKind, job)
 		return err
 	})
 	if err != nil {
@@ -168,11 +183,14 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		if err != nil {
 			return err
 		}
+		if err := db.checkPolicyCount(ctx, tx); err != nil {
+			return err
+		}
 		var targetID int32
 		err = tx.QueryRow(ctx, `
-			INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q)
-			VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9) RETURNING policy_id`,
-			string(req.Target), s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ).
+			INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q, max_states)
+			VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10) RETURNING policy_id`,
+			string(req.Target), s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, s.MaxStates).
 			Scan(&targetID)
 		if isUniqueViolation(err) {
 			return training.Conflictf("a policy named %q exists already; a replay creates a new policy", req.Target)
@@ -180,7 +198,7 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		if err != nil {
 			return fmt.Errorf("create target policy: %w", err)
 		}
-		id, err = queueJob(ctx, tx, p.ID, training.ReplayJobKind,
+		id, err = db.queueJob(ctx, tx, p.ID, training.ReplayJobKind,
 			training.ReplayJob{Request: req, PolicyID: p.ID, TargetPolicyID: targetID, Episodes: span})
 		return err
 	})
@@ -418,8 +436,14 @@ func (db *DB) LearnBatch(ctx context.Context, policyID int32, episodes []trainin
 		if err != nil {
 			return fmt.Errorf("read policy %d: %w", policyID, err)
 		}
-		current, err := estimatesOfStates(ctx, tx, policyID, training.TouchedStates(episodes))
+		touched := training.TouchedStates(episodes)
+		current, err := estimatesOfStates(ctx, tx, policyID, touched)
 		if err != nil {
+			return err
+		}
+		// The target's table takes the source's states: they count towards
+		// its own quota from now on (the source's quota bounded them).
+		if _, _, err := recordStates(ctx, tx, policyID, touched); err != nil {
 			return err
 		}
 		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}

@@ -12,13 +12,13 @@ import (
 )
 
 const policyColumns = `policy_id, name, actions, gamma, alpha, epsilon, epsilon_min,
-	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at, table_epoch`
+	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at, table_epoch, max_states`
 
 func scanPolicy(row pgx.Row) (training.Policy, error) {
 	var p training.Policy
 	var visit string
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
-		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch)
+		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch, &p.MaxStates)
 	p.Visit = training.VisitRule(visit)
 	return p, err
 }
@@ -37,6 +37,7 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 	var p training.Policy
 	var created bool
 	put := func(tx pgx.Tx) error {
+		s := s // a retry starts from the request's settings again
 		// A new initial value changes what the table means, so a settings
 		// change waits for the policy's training lock (taken before the row
 		// lock, in the order training takes them): no batch learns under
@@ -55,11 +56,17 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 		switch {
 		case errors.Is(err, pgx.ErrNoRows):
 			created = true
+			if err := s.SetStateQuota(0, db.limits.MaxPairsPerPolicy); err != nil {
+				return err
+			}
+			if err := db.checkPolicyCount(ctx, tx); err != nil {
+				return err
+			}
 			p, err = scanPolicy(tx.QueryRow(ctx, `
-				INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q)
-				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9)
+				INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q, max_states)
+				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10)
 				RETURNING `+policyColumns,
-				name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ))
+				name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, s.MaxStates))
 			if err != nil {
 				return fmt.Errorf("insert policy: %w", err)
 			}
@@ -67,6 +74,13 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 			return fmt.Errorf("read policy: %w", err)
 		default:
 			created = false
+			current := existing.MaxStates
+			if !slices.Equal(existing.Actions, s.Actions) {
+				current = 0 // other actions: the bound on pairs applies anew
+			}
+			if err := s.SetStateQuota(current, db.limits.MaxPairsPerPolicy); err != nil {
+				return err
+			}
 			if !slices.Equal(existing.Actions, s.Actions) {
 				var used bool
 				if err := tx.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM episodes WHERE policy_id = $1)
@@ -86,11 +100,11 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 			}
 			p, err = scanPolicy(tx.QueryRow(ctx, `
 				UPDATE policies SET actions = $2, gamma = $3, alpha = $4, epsilon = $5, epsilon_min = $6,
-					epsilon_decay_visits = $7, visit = $8, initial_q = $9, updated_at = now(),
+					epsilon_decay_visits = $7, visit = $8, initial_q = $9, max_states = $11, updated_at = now(),
 					revision = revision + $10, table_epoch = table_epoch + $10
 				WHERE policy_id = $1
 				RETURNING `+policyColumns,
-				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, rewrite))
+				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, rewrite, s.MaxStates))
 			if err != nil {
 				return fmt.Errorf("update policy: %w", err)
 			}
@@ -160,7 +174,7 @@ func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
 	var visit string
 	p := &st.Policy
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
-		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch,
+		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch, &p.MaxStates,
 		&st.Episodes, &st.Backlog, &st.OldestUntrained, &st.States, &st.Pairs, &st.LastTrainedAt)
 	p.Visit = training.VisitRule(visit)
 	return st, err
@@ -209,4 +223,23 @@ func (db *DB) Backlogs(ctx context.Context) ([]training.Backlog, error) {
 		return nil, mapError(fmt.Errorf("read backlog: %w", err))
 	}
 	return out, nil
+}
+
+// policyCountLock serialises policy creation, so that concurrent creations
+// cannot pass the count together.
+const policyCountLock = 0x71746c70
+
+// checkPolicyCount refuses a new policy when the service holds its limit.
+func (db *DB) checkPolicyCount(ctx context.Context, tx pgx.Tx) error {
+	if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1)`, policyCountLock); err != nil {
+		return fmt.Errorf("policy count lock: %w", err)
+	}
+	var n int
+	if err := tx.QueryRow(ctx, `SELECT count(*) FROM policies`).Scan(&n); err != nil {
+		return fmt.Errorf("count policies: %w", err)
+	}
+	if n >= db.limits.MaxPolicies {
+		return training.Quotaf("this service holds %d policies, its limit (--max-policies %d); no policy was created", n, db.limits.MaxPolicies)
+	}
+	return nil
 }

@@ -31,6 +31,9 @@ func scanSnapshot(row pgx.Row) (training.Snapshot, error) {
 	return s, err
 }
 
+// snapshotQuotaLockClass namespaces the per-policy lock of the snapshot count.
+const snapshotQuotaLockClass = 0x71747371
+
 // CreateSnapshot freezes a policy's live table under a name. One statement
 // reads the revision and the rows, so they agree without holding up
 // training.
@@ -39,7 +42,19 @@ func (db *DB) CreateSnapshot(ctx context.Context, policy, name string) (training
 	if err != nil {
 		return training.Snapshot{}, err
 	}
-	s, err := scanSnapshot(db.pool.QueryRow(ctx, `
+	var s training.Snapshot
+	err = db.WithTx(ctx, func(tx pgx.Tx) error {
+		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, snapshotQuotaLockClass, p.ID); err != nil {
+			return fmt.Errorf("snapshot quota lock: %w", err)
+		}
+		var n int
+		if err := tx.QueryRow(ctx, `SELECT count(*) FROM snapshots WHERE policy_id = $1`, p.ID).Scan(&n); err != nil {
+			return fmt.Errorf("count snapshots: %w", err)
+		}
+		if n >= db.limits.MaxSnapshotsPerPolicy {
+			return training.Quotaf("policy %q has %d snapshots, its limit (--max-snapshots-per-policy %d); delete one first", policy, n, db.limits.MaxSnapshotsPerPolicy)
+		}
+		s, err = scanSnapshot(tx.QueryRow(ctx, `
 		WITH snap AS (
 			INSERT INTO snapshots (policy_id, name, revision, actions, initial_q, trained_through_seq, states, pairs)
 			SELECT p.policy_id, $2, p.revision, p.actions, p.initial_q, p.trained_through_seq,
@@ -53,6 +68,8 @@ func (db *DB) CreateSnapshot(ctx context.Context, policy, name string) (training
 			FROM q_values q, snap WHERE q.policy_id = $1
 		)
 		SELECT `+snapshotColumns+` FROM snap`, p.ID, name))
+		return err
+	})
 	if isUniqueViolation(err) {
 		return s, training.Conflictf("policy %q already has a snapshot named %q", policy, name)
 	}
@@ -340,6 +357,9 @@ func (db *DB) RestoreSnapshot(ctx context.Context, policy, snapshot string) (tra
 			return fmt.Errorf("restore rows: %w", err)
 		}
 		ch.Pairs = int(tag.RowsAffected())
+		if err := admitTableStates(ctx, tx, p); err != nil {
+			return err
+		}
 		return notifyPolicy(ctx, tx, p.ID)
 	})
 	return ch, err
@@ -372,6 +392,9 @@ func (db *DB) ImportTable(ctx context.Context, policy string, rows []training.Ta
 			return fmt.Errorf("import rows: %w", err)
 		}
 		ch.Pairs = int(n)
+		if err := admitTableStates(ctx, tx, p); err != nil {
+			return err
+		}
 		return notifyPolicy(ctx, tx, p.ID)
 	})
 	return ch, err

@@ -29,17 +29,28 @@ type Episode struct {
 	Steps []Step `json:"steps"`
 }
 
-// Limits bound what one ingest request may carry.
+// Limits bound what one ingest request may carry, and what the service
+// keeps: each API process holds a slot per action for every state of the
+// policies it serves, so states x actions is bounded per policy, and the
+// policies, snapshots and queued work are counted.
 type Limits struct {
 	MaxEpisodes    int
 	MaxSteps       int
 	MaxIDLength    int
 	MaxStateLength int
+
+	// MaxPairsPerPolicy bounds max_states x actions of every policy.
+	MaxPairsPerPolicy     int64
+	MaxPolicies           int
+	MaxSnapshotsPerPolicy int
+	// MaxOpenJobsPerPolicy bounds a policy's queued and running jobs.
+	MaxOpenJobsPerPolicy int
 }
 
 // DefaultLimits are the limits unless configured otherwise.
 func DefaultLimits() Limits {
-	return Limits{MaxEpisodes: 10_000, MaxSteps: 10_000, MaxIDLength: 128, MaxStateLength: 256}
+	return Limits{MaxEpisodes: 10_000, MaxSteps: 10_000, MaxIDLength: 128, MaxStateLength: 256,
+		MaxPairsPerPolicy: 1_000_000, MaxPolicies: 1000, MaxSnapshotsPerPolicy: 100, MaxOpenJobsPerPolicy: 4}
 }
 
 // MaxAbsReward bounds a reward's magnitude so that returns and Q stay

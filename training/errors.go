@@ -15,7 +15,25 @@ var (
 	ErrUnauthenticated = errors.New("unauthenticated")
 	// ErrForbidden: the token may not do what the request asks.
 	ErrForbidden = errors.New("forbidden")
+	// ErrQuota: the request would take a policy or the service past a
+	// configured limit.
+	ErrQuota = errors.New("quota exceeded")
 )
+
+// Quotaf returns an error that is ErrQuota with the given message.
+func Quotaf(format string, args ...any) error {
+	return &kindError{ErrQuota, fmt.Sprintf(format, args...)}
+}
+
+// QuotaError is a request refused for a quota, with where in the request
+// each item beyond it is.
+type QuotaError struct {
+	Detail   string
+	Problems []FieldError
+}
+
+func (e *QuotaError) Error() string { return e.Detail }
+func (e *QuotaError) Unwrap() error { return ErrQuota }
 
 // kindError is a domain error with a message fit to show a client.
 type kindError struct {

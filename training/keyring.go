@@ -121,3 +121,20 @@ func (k *Keyring) lookupFresh(ctx context.Context, id int64) (*keyEntry, error) 
 
 // Len is the number of active tokens in the copy.
 func (k *Keyring) Len() int { return len(*k.tokens.Load()) }
+
+// Active returns the active token with this id, or an ErrUnauthenticated
+// error when it is unknown or revoked. Like Verify, a miss may reload the
+// copy within the miss budget.
+func (k *Keyring) Active(ctx context.Context, id int64) (*Token, error) {
+	e := (*k.tokens.Load())[id]
+	if e == nil {
+		var err error
+		if e, err = k.lookupFresh(ctx, id); err != nil {
+			return nil, err
+		}
+	}
+	if e == nil {
+		return nil, Unauthenticatedf("the token of this session is unknown or revoked")
+	}
+	return e.token, nil
+}

@@ -47,6 +47,33 @@ type Settings struct {
 	// EpsilonDecayVisits is k in epsilon(s) = max(epsilon_min, epsilon*k/(k+N(s)));
 	// 0 turns the decay off.
 	EpsilonDecayVisits float64 `json:"epsilon_decay_visits,omitempty" validate:"gte=0,finite"`
+	// MaxStates is the most states the policy accepts; episodes bringing
+	// more new states are refused. 0 when put: DefaultMaxStates, or the
+	// policy's current value when it exists (SetStateQuota).
+	MaxStates int64 `json:"max_states" validate:"gte=0"`
+}
+
+// DefaultMaxStates is a new policy's state quota unless it sets one (or its
+// actions make that many states exceed the service's pairs per policy).
+const DefaultMaxStates = 100_000
+
+// SetStateQuota fills in max_states when the client left it out, keeping
+// the current value of an existing policy (current > 0), and checks that
+// max_states x actions stays within maxPairs.
+func (s *Settings) SetStateQuota(current, maxPairs int64) error {
+	if s.MaxStates == 0 && current > 0 {
+		s.MaxStates = current
+		return nil
+	}
+	actions := int64(max(len(s.Actions), 1))
+	if s.MaxStates == 0 {
+		s.MaxStates = max(1, min(DefaultMaxStates, maxPairs/actions))
+	}
+	if s.MaxStates > maxPairs/actions {
+		return Invalid(-1, -1, "max_states", "%d states of %d actions would be %d pairs; this service keeps at most %d pairs per policy, so at most %d states",
+			s.MaxStates, actions, s.MaxStates*actions, maxPairs, maxPairs/actions)
+	}
+	return nil
 }
 
 // DefaultSettings are used for every field a client leaves out.
