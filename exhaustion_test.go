@@ -364,7 +364,7 @@ func TestQuotasRefuseBeyondTheirLimits(t *testing.T) {
 	r.decode(t, &refused)
 	first := refused.Errors[0]
 	// New state number 977 is the first beyond 976: episode 9, step 76.
-	if refused.Type != "urn:qtally:problem:quota-exceeded" || first.Episode == nil || *first.Episode != 9 ||
+	if refused.Type != defaultProblemDocs+"#quota-exceeded" || first.Episode == nil || *first.Episode != 9 ||
 		first.Step == nil || *first.Step != 76 || first.Field != "state" || !strings.Contains(refused.Detail, "max_states") {
 		t.Fatalf("refusal of 30,000 new states: %s", r.Body)
 	}

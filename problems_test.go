@@ -43,7 +43,7 @@ func provokeProblems(t *testing.T, s *service) map[string]string {
 		"invalid-input":   typeOf(s.call("POST", "/v1/policies/pay/episodes", map[string]any{"episodes": []episodeJSON{{ID: "e1", Steps: []stepJSON{{State: "s", Action: "fly", Reward: 1}}}}}, 400)),
 		"conflict":        typeOf(s.call("POST", "/v1/policies/pay/snapshots", map[string]any{"name": "first"}, 409)),
 		"unauthenticated": typeOf(anonymous),
-		"forbidden":       typeOf(s.as(chooseOnly).call("GET", "/v1/policies/pay", nil, 403)),
+		"forbidden":       typeOf(s.as(chooseOnly).call("GET", "/v1/policies/pay/snapshots", nil, 403)),
 	}
 }
 

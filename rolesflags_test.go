@@ -14,7 +14,9 @@ import (
 func TestWorkerHelpListsOnlyWhatTheWorkerReads(t *testing.T) {
 	workerFlags := []string{
 		flagDatabaseURL, flagListen, flagLogFormat, flagPollInterval, flagShutdownGrace, flagDBMaxConns, flagPprofListen,
-		flagProblemDocs,                      // the health server answers problems too
+		flagProblemDocs, // the health server answers problems too
+		// and bounds slow and idle clients like the API's
+		flagReadHeaderTimeout, flagReadTimeout, flagWriteTimeout, flagIdleTimeout, flagMaxHeaderBytes,
 		flagHistoryBucket, flagHistoryWindow, // the worker writes the training history and drops old buckets
 		flagBatchEpisodes, flagEpisodeRetention, flagPruneInterval, flagPruneBatch, flagJobStaleAfter,
 	}

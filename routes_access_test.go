@@ -129,6 +129,7 @@ func TestEveryRouteEnforcesAccess(t *testing.T) {
 		"GET /metrics":              {want: 200},
 		"GET /sign-in":              {want: 200},
 		"POST /sign-in":             {body: func() (string, []byte) { return "application/x-www-form-urlencoded", []byte("token=") }, want: 400},
+		"POST /sign-out":            {body: func() (string, []byte) { return "application/x-www-form-urlencoded", nil }, want: 303},
 		"GET /v1/openapi.json":      {want: 200},
 		"GET /v1/policies":          {want: 200},
 		"GET /v1/audit":             {want: 200},

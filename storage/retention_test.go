@@ -117,7 +117,10 @@ func must(t *testing.T, err error) {
 func TestPruningRacingQueuedJobsLosesNoWindowEpisodes(t *testing.T) {
 	ctx := context.Background()
 	url := pgtest.NewDatabase(t)
-	db, err := storage.Open(ctx, url, 20, training.DefaultLimits())
+	// Every round queues a replay that no runner takes: room for all.
+	limits := training.DefaultLimits()
+	limits.MaxOpenJobsPerPolicy = 40
+	db, err := storage.Open(ctx, url, 20, limits)
 	must(t, err)
 	t.Cleanup(db.Close)
 	conn, err := pgx.Connect(ctx, url)
@@ -126,7 +129,7 @@ func TestPruningRacingQueuedJobsLosesNoWindowEpisodes(t *testing.T) {
 	_, _, err = db.PutPolicy(ctx, "renewals", training.Settings{Actions: []string{"a", "b"}, Gamma: 1, Alpha: 0.1, Visit: training.FirstVisit})
 	must(t, err)
 
-	for round := range 40 {
+	for round := range limits.MaxOpenJobsPerPolicy {
 		batch := make([]training.Episode, 10)
 		for i := range batch {
 			batch[i] = training.Episode{ID: fmt.Sprintf("%d-%d", round, i), Steps: []training.Step{{State: "s", Action: "a", Reward: 1}}}
