@@ -139,7 +139,7 @@ func (s *service) table(policy string, states []string) map[pair]estimate {
 	return out
 }
 
-func compareTables(t *testing.T, got, want map[pair]estimate) {
+func compareTables(t testing.TB, got, want map[pair]estimate) {
 	t.Helper()
 	if len(got) != len(want) {
 		t.Fatalf("service has %d learned pairs, reference %d", len(got), len(want))
