@@ -9,8 +9,9 @@ import (
 // PruneEpisodes deletes trained episodes received longer than retention
 // ago, policy by policy, in transactions of at most batch episodes, and
 // reports how many it deleted per policy name. Untrained episodes are never
-// deleted. Rows a training batch holds are skipped, not waited for, so
-// pruning never holds up training; choosing does not read episodes at all.
+// deleted: only episodes at or below the policy's training watermark go,
+// which training never reads again, so pruning never holds up training
+// (rows another pruner holds are skipped); choosing does not read episodes.
 func (db *DB) PruneEpisodes(ctx context.Context, retention time.Duration, batch int) (map[string]int64, error) {
 	policies, err := db.ListPolicies(ctx)
 	if err != nil {
@@ -21,11 +22,11 @@ func (db *DB) PruneEpisodes(ctx context.Context, retention time.Duration, batch 
 		for {
 			tag, err := db.pool.Exec(ctx, `
 				DELETE FROM episodes WHERE ctid = ANY(ARRAY(
-					SELECT ctid FROM episodes
-					WHERE policy_id = $1 AND trained_at IS NOT NULL
-					  AND received_at < now() - make_interval(secs => $2)
-					ORDER BY seq LIMIT $3
-					FOR UPDATE SKIP LOCKED))`, p.ID, retention.Seconds(), batch)
+					SELECT e.ctid FROM episodes e JOIN policies p USING (policy_id)
+					WHERE e.policy_id = $1 AND NOT (`+untrained+`)
+					  AND e.received_at < now() - make_interval(secs => $2)
+					ORDER BY e.seq LIMIT $3
+					FOR UPDATE OF e SKIP LOCKED))`, p.ID, retention.Seconds(), batch)
 			if err != nil {
 				return pruned, mapError(fmt.Errorf("prune episodes of %q: %w", p.Name, err))
 			}

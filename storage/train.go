@@ -22,7 +22,7 @@ const trainingLockClass = 0x71746c79
 func (db *DB) TrainBatch(ctx context.Context, maxEpisodes int, learn func(training.BatchInput) training.BatchResult) (training.BatchReport, bool, error) {
 	rows, err := db.pool.Query(ctx, `
 		SELECT policy_id FROM policies p
-		WHERE EXISTS (SELECT 1 FROM episodes e WHERE e.policy_id = p.policy_id AND e.trained_at IS NULL)
+		WHERE EXISTS (SELECT 1 FROM episodes e WHERE e.policy_id = p.policy_id AND `+untrained+`)
 		ORDER BY random()`)
 	if err != nil {
 		return training.BatchReport{}, false, mapError(fmt.Errorf("find backlog: %w", err))
@@ -57,7 +57,11 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 		if err != nil {
 			return fmt.Errorf("read policy %d: %w", policyID, err)
 		}
-		episodes, err := untrainedEpisodes(ctx, tx, policyID, maxEpisodes)
+		through, err := trainedThrough(ctx, tx, policyID)
+		if err != nil {
+			return err
+		}
+		episodes, err := untrainedEpisodes(ctx, tx, policyID, through, maxEpisodes)
 		if err != nil {
 			return err
 		}
@@ -88,11 +92,29 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 	return report, true, nil
 }
 
-func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, limit int) ([]training.StoredEpisode, error) {
+// untrained is the SQL condition for episode e of policy p not being
+// trained yet. The episode log is append-only: training advances its
+// policy's watermark (policies.trained_through, the seq of the last episode
+// it applied) in the batch's transaction instead of marking episodes. That
+// is exact because a policy's episodes commit in seq order (Ingest) and are
+// trained in seq order.
+const untrained = `e.seq > p.trained_through`
+
+// trainedThrough reads the seq of the last episode training applied to the
+// policy (0: none).
+func trainedThrough(ctx context.Context, tx pgx.Tx, policyID int32) (int64, error) {
+	var seq int64
+	if err := tx.QueryRow(ctx, `SELECT trained_through FROM policies WHERE policy_id = $1`, policyID).Scan(&seq); err != nil {
+		return 0, fmt.Errorf("read training watermark: %w", err)
+	}
+	return seq, nil
+}
+
+func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, after int64, limit int) ([]training.StoredEpisode, error) {
 	rows, err := tx.Query(ctx, `
 		SELECT seq, received_at, episode_id, states, actions, rewards, probabilities
-		FROM episodes WHERE policy_id = $1 AND trained_at IS NULL
-		ORDER BY seq LIMIT $2`, policyID, limit)
+		FROM episodes WHERE policy_id = $1 AND seq > $2
+		ORDER BY seq LIMIT $3`, policyID, after, limit)
 	if err != nil {
 		return nil, fmt.Errorf("read untrained episodes: %w", err)
 	}
@@ -133,8 +155,8 @@ func estimatesOfStates(ctx context.Context, tx pgx.Tx, policyID int32, states []
 // API process further behind than that reloads its copy whole.
 const changesKept = 1000
 
-// writeBatch writes every updated pair with one upsert, marks the episodes
-// trained, adds the batch to the training history and announces the new
+// writeBatch writes every updated pair with one upsert, advances the
+// policy's training watermark past the episodes, adds the batch to the training history and announces the new
 // revision, in one round trip.
 func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []training.StoredEpisode, res training.BatchResult,
 	history HistorySettings, summary training.BatchSummary) (int64, error) {
@@ -144,13 +166,10 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []train
 	for i, pr := range res.Pairs {
 		states[i], actions[i], qs[i], visits[i], deltas[i] = pr.State, pr.Action, pr.Q, pr.Visits, pr.LastDelta
 	}
-	seqs := make([]int64, len(episodes))
-	for i, ep := range episodes {
-		seqs[i] = ep.Seq
-	}
 	var revision int64
 	batch := &pgx.Batch{}
-	batch.Queue(`UPDATE policies SET revision = revision + 1, last_trained_at = now() WHERE policy_id = $1 RETURNING revision`, policyID).
+	batch.Queue(`UPDATE policies SET revision = revision + 1, last_trained_at = now(), trained_through = $2
+		WHERE policy_id = $1 RETURNING revision`, policyID, episodes[len(episodes)-1].Seq).
 		QueryRow(func(row pgx.Row) error { return row.Scan(&revision) })
 	// One statement records the changed keys for readers (q_changes) and
 	// upserts the pairs, so the key arrays cross the wire once.
@@ -170,7 +189,6 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []train
 		policyID, states, actions, qs, visits, deltas)
 	batch.Queue(`DELETE FROM q_changes WHERE policy_id = $1
 		AND revision <= (SELECT revision FROM policies WHERE policy_id = $1) - $2`, policyID, changesKept)
-	batch.Queue(`UPDATE episodes SET trained_at = now() WHERE policy_id = $1 AND seq = ANY($2)`, policyID, seqs)
 	queueHistory(batch, policyID, history, summary)
 	batch.Queue(`SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, policyID)
 	if err := tx.SendBatch(ctx, batch).Close(); err != nil {
