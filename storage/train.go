@@ -74,7 +74,7 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 		}
 		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}
 		result := learn(in)
-		revision, err := writeBatch(ctx, tx, policyID, episodes, result, db.history, training.SummarizeBatch(in, result))
+		revision, err := writeBatch(ctx, tx, policyID, episodes[len(episodes)-1].Seq, result, db.history, training.SummarizeBatch(in, result))
 		if err != nil {
 			return err
 		}
@@ -156,9 +156,9 @@ func estimatesOfStates(ctx context.Context, tx pgx.Tx, policyID int32, states []
 const changesKept = 1000
 
 // writeBatch writes every updated pair with one upsert, advances the
-// policy's training watermark past the episodes, adds the batch to the training history and announces the new
+// policy's training watermark to trainedThrough (if that is further), adds the batch to the training history and announces the new
 // revision, in one round trip.
-func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []training.StoredEpisode, res training.BatchResult,
+func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, trainedThrough int64, res training.BatchResult,
 	history HistorySettings, summary training.BatchSummary) (int64, error) {
 	n := len(res.Pairs)
 	states, actions := make([]string, n), make([]int16, n)
@@ -168,8 +168,9 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []train
 	}
 	var revision int64
 	batch := &pgx.Batch{}
-	batch.Queue(`UPDATE policies SET revision = revision + 1, last_trained_at = now(), trained_through = $2
-		WHERE policy_id = $1 RETURNING revision`, policyID, episodes[len(episodes)-1].Seq).
+	batch.Queue(`UPDATE policies SET revision = revision + 1, last_trained_at = now(),
+		trained_through = greatest(trained_through, $2)
+		WHERE policy_id = $1 RETURNING revision`, policyID, trainedThrough).
 		QueryRow(func(row pgx.Row) error { return row.Scan(&revision) })
 	// One statement records the changed keys for readers (q_changes) and
 	// upserts the pairs, so the key arrays cross the wire once.
