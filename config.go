@@ -43,6 +43,7 @@ const (
 	flagDatabaseURL    = "database-url"
 	flagListen         = "listen"
 	flagBatchEpisodes  = "batch-episodes"
+	flagWarmPairs      = "warm-pairs"
 	flagPollInterval   = "poll-interval"
 	flagMaxBodyBytes   = "max-body-bytes"
 	flagMaxEpisodes    = "max-episodes-per-request"
@@ -81,6 +82,7 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 	return []cli.Flag{
 		&cli.StringFlag{Name: flagListen, Value: listenDefault, Usage: "HTTP listen address", Sources: env("QTALLY_LISTEN")},
 		&cli.IntFlag{Name: flagBatchEpisodes, Value: 10_000, Usage: "most episodes one training transaction takes (a batch takes what is waiting, up to this)", Sources: env("QTALLY_BATCH_EPISODES")},
+		&cli.IntFlag{Name: flagWarmPairs, Value: storage.DefaultWarmPairs, Usage: "estimates the worker keeps in memory between batches of the policies it trains, so it need not read them again (0: read every batch; about 60 bytes a pair)", Sources: env("QTALLY_WARM_PAIRS")},
 		&cli.DurationFlag{Name: flagPollInterval, Value: 2 * time.Second, Usage: "fallback poll for work and changes when notifications are missed", Sources: env("QTALLY_POLL_INTERVAL")},
 		&cli.Int64Flag{Name: flagMaxBodyBytes, Value: 16 << 20, Usage: "largest request body accepted (bytes)", Sources: env("QTALLY_MAX_BODY_BYTES")},
 		&cli.IntFlag{Name: flagMaxEpisodes, Value: lim.MaxEpisodes, Usage: "most episodes in one request", Sources: env("QTALLY_MAX_EPISODES_PER_REQUEST")},
@@ -106,6 +108,7 @@ type serviceConfig struct {
 	DatabaseURL   string
 	Listen        string
 	BatchEpisodes int
+	WarmPairs     int
 	PollInterval  time.Duration
 	Limits        training.Limits
 	HTTP          api.Config
@@ -133,6 +136,7 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		DatabaseURL:   cmd.String(flagDatabaseURL),
 		Listen:        cmd.String(flagListen),
 		BatchEpisodes: cmd.Int(flagBatchEpisodes),
+		WarmPairs:     cmd.Int(flagWarmPairs),
 		PollInterval:  cmd.Duration(flagPollInterval),
 		Limits: training.Limits{
 			MaxEpisodes:    cmd.Int(flagMaxEpisodes),
@@ -159,6 +163,9 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		if v < 1 {
 			return cfg, fmt.Errorf("--%s must be at least 1, got %d", name, v)
 		}
+	}
+	if cfg.WarmPairs < 0 {
+		return cfg, fmt.Errorf("--%s must not be negative, got %d", flagWarmPairs, cfg.WarmPairs)
 	}
 	if cfg.CoverageVisits < 1 {
 		return cfg, fmt.Errorf("--%s must be at least 1, got %d", flagCoverageVisits, cfg.CoverageVisits)

@@ -31,6 +31,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	if err := db.SetHistory(cfg.History); err != nil {
 		return err
 	}
+	db.SetWarmPairs(cfg.WarmPairs)
 
 	reg := prometheus.NewRegistry()
 	m := metrics.New(reg)

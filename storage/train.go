@@ -45,6 +45,8 @@ var errSkip = errors.New("policy busy or drained")
 func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, learn func(training.BatchInput) training.BatchResult) (training.BatchReport, bool, error) {
 	start := time.Now()
 	var report training.BatchReport
+	var warm *warmTable
+	var wrote warmVersion
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		var locked bool
 		if err := tx.QueryRow(ctx, `SELECT pg_try_advisory_xact_lock($1, $2)`, trainingLockClass, policyID).Scan(&locked); err != nil {
@@ -68,16 +70,24 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 		if len(episodes) == 0 {
 			return errSkip
 		}
-		current, err := estimatesOfStates(ctx, tx, policyID, training.TouchedStates(episodes))
-		if err != nil {
-			return err
+		// Estimates this process wrote and still current need no reading.
+		warm = db.warm.take(policyID, versionOf(p))
+		states := training.TouchedStates(episodes)
+		if missing := warm.unknown(states); len(missing) > 0 {
+			read, err := estimatesOfStates(ctx, tx, policyID, missing)
+			if err != nil {
+				return err
+			}
+			warm.learn(missing, read, len(p.Actions))
 		}
-		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}
+		in := training.BatchInput{Policy: p, Episodes: episodes, Current: warm.current(states)}
 		result := learn(in)
 		revision, err := writeBatch(ctx, tx, policyID, episodes[len(episodes)-1].Seq, result, db.history, training.SummarizeBatch(in, result))
 		if err != nil {
 			return err
 		}
+		warm.apply(result.Pairs)
+		wrote = warmVersion{revision: revision, epoch: p.TableEpoch, updatedAt: p.UpdatedAt}
 		report = training.BatchReport{PolicyID: policyID, PolicyName: p.Name, Revision: revision,
 			Episodes: len(episodes), Result: result}
 		return nil
@@ -88,6 +98,7 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 	if err != nil {
 		return report, false, err
 	}
+	db.warm.put(policyID, warm, wrote)
 	report.Duration = time.Since(start)
 	return report, true, nil
 }
