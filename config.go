@@ -44,6 +44,7 @@ const (
 	flagListen         = "listen"
 	flagBatchEpisodes  = "batch-episodes"
 	flagWarmPairs      = "warm-pairs"
+	flagBatchTarget    = "batch-target"
 	flagPollInterval   = "poll-interval"
 	flagMaxBodyBytes   = "max-body-bytes"
 	flagMaxEpisodes    = "max-episodes-per-request"
@@ -82,6 +83,7 @@ func serviceFlags(env flagEnv, listenDefault string) []cli.Flag {
 	return []cli.Flag{
 		&cli.StringFlag{Name: flagListen, Value: listenDefault, Usage: "HTTP listen address", Sources: env("QTALLY_LISTEN")},
 		&cli.IntFlag{Name: flagBatchEpisodes, Value: 10_000, Usage: "most episodes one training transaction takes (a batch takes what is waiting, up to this)", Sources: env("QTALLY_BATCH_EPISODES")},
+		&cli.DurationFlag{Name: flagBatchTarget, Value: 300 * time.Millisecond, Usage: "how long a training batch should take while training keeps up; a policy that is behind gets batches that double up to --batch-episodes (0: always up to --batch-episodes)", Sources: env("QTALLY_BATCH_TARGET")},
 		&cli.IntFlag{Name: flagWarmPairs, Value: storage.DefaultWarmPairs, Usage: "estimates the worker keeps in memory between batches of the policies it trains, so it need not read them again (0: read every batch; about 60 bytes a pair)", Sources: env("QTALLY_WARM_PAIRS")},
 		&cli.DurationFlag{Name: flagPollInterval, Value: 2 * time.Second, Usage: "fallback poll for work and changes when notifications are missed", Sources: env("QTALLY_POLL_INTERVAL")},
 		&cli.Int64Flag{Name: flagMaxBodyBytes, Value: 16 << 20, Usage: "largest request body accepted (bytes)", Sources: env("QTALLY_MAX_BODY_BYTES")},
@@ -109,6 +111,7 @@ type serviceConfig struct {
 	Listen        string
 	BatchEpisodes int
 	WarmPairs     int
+	BatchTarget   time.Duration
 	PollInterval  time.Duration
 	Limits        training.Limits
 	HTTP          api.Config
@@ -137,6 +140,7 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		Listen:        cmd.String(flagListen),
 		BatchEpisodes: cmd.Int(flagBatchEpisodes),
 		WarmPairs:     cmd.Int(flagWarmPairs),
+		BatchTarget:   cmd.Duration(flagBatchTarget),
 		PollInterval:  cmd.Duration(flagPollInterval),
 		Limits: training.Limits{
 			MaxEpisodes:    cmd.Int(flagMaxEpisodes),
@@ -163,6 +167,9 @@ func readServiceConfig(cmd *cli.Command) (serviceConfig, error) {
 		if v < 1 {
 			return cfg, fmt.Errorf("--%s must be at least 1, got %d", name, v)
 		}
+	}
+	if cfg.BatchTarget < 0 {
+		return cfg, fmt.Errorf("--%s must not be negative, got %v", flagBatchTarget, cfg.BatchTarget)
 	}
 	if cfg.WarmPairs < 0 {
 		return cfg, fmt.Errorf("--%s must not be negative, got %d", flagWarmPairs, cfg.WarmPairs)

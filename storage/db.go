@@ -31,6 +31,7 @@ type DB struct {
 	limits   training.Limits
 	history  HistorySettings
 	warm     *warmTables
+	sizer    *training.BatchSizer
 }
 
 // Open connects to PostgreSQL. It does not apply migrations.

@@ -44,6 +44,10 @@ var errSkip = errors.New("policy busy or drained")
 
 func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, learn func(training.BatchInput) training.BatchResult) (training.BatchReport, bool, error) {
 	start := time.Now()
+	limit := maxEpisodes
+	if db.sizer != nil {
+		limit = db.sizer.Limit(policyID, maxEpisodes)
+	}
 	var report training.BatchReport
 	var warm *warmTable
 	var wrote warmVersion
@@ -63,7 +67,7 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 		if err != nil {
 			return err
 		}
-		episodes, err := untrainedEpisodes(ctx, tx, policyID, through, maxEpisodes)
+		episodes, err := untrainedEpisodes(ctx, tx, policyID, through, limit)
 		if err != nil {
 			return err
 		}
@@ -100,6 +104,9 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 	}
 	db.warm.put(policyID, warm, wrote)
 	report.Duration = time.Since(start)
+	if db.sizer != nil {
+		db.sizer.Observe(policyID, report.Episodes, limit, report.Duration)
+	}
 	return report, true, nil
 }
 
@@ -245,3 +252,9 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, trainedThrough i
 	return revision, nil
 }
 
+// SetBatchSizer makes each policy's batches as large as s says, up to the
+// maximum TrainBatch is given (nil: always up to that maximum). Call it
+// before training.
+func (db *DB) SetBatchSizer(s *training.BatchSizer) {
+	db.sizer = s
+}
