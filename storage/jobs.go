@@ -335,7 +335,7 @@ func (db *DB) LearnBatch(ctx context.Context, policyID int32, episodes []trainin
 		result = learn(in)
 		// The episodes belong to the source: the target's training
 		// watermark stays where it is.
-		revision, err = writeBatch(ctx, tx, policyID, 0, result, in.Current, db.history, training.SummarizeBatch(in, result))
+		revision, err = writeBatch(ctx, tx, policyID, 0, result, db.history, training.SummarizeBatch(in, result))
 		return err
 	})
 	return revision, result, err

@@ -86,7 +86,7 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 		}
 		in := training.BatchInput{Policy: p, Episodes: episodes, Current: warm.current(states)}
 		result := learn(in)
-		revision, err := writeBatch(ctx, tx, policyID, episodes[len(episodes)-1].Seq, result, in.Current, db.history, training.SummarizeBatch(in, result))
+		revision, err := writeBatch(ctx, tx, policyID, episodes[len(episodes)-1].Seq, result, db.history, training.SummarizeBatch(in, result))
 		if err != nil {
 			return err
 		}
@@ -173,81 +173,45 @@ func estimatesOfStates(ctx context.Context, tx pgx.Tx, policyID int32, states []
 // API process further behind than that reloads its copy whole.
 const changesKept = 1000
 
-// pairColumns holds pairs as the arrays one statement unnests.
-type pairColumns struct {
-	states  []string
-	actions []int16
-	qs      []float64
-	visits  []int64
-	deltas  []float64
-}
-
-func (c *pairColumns) add(p training.PairResult) {
-	c.states, c.actions = append(c.states, p.State), append(c.actions, p.Action)
-	c.qs, c.visits, c.deltas = append(c.qs, p.Q), append(c.visits, p.Visits), append(c.deltas, p.LastDelta)
-}
-
-// writePairs records a batch's changed keys for readers (q_changes),
-// updates the pairs already stored and inserts the new ones, in one
-// statement, so each key crosses the wire once. An UPDATE of known keys
-// costs less than INSERT ... ON CONFLICT, which tries the insert first; the
-// caller knows which keys are stored because it read (or kept) them under
-// the policy's training lock. Should that knowledge be wrong, the counts
-// differ (a stored key missing) or the insert fails (a new key present),
-// and the batch rolls back.
-const writePairs = `
-	WITH rev AS (SELECT revision FROM policies WHERE policy_id = $1),
-	changes AS (
-		INSERT INTO q_changes (policy_id, revision, states, actions)
-		SELECT $1, rev.revision, $2::text[] || $7::text[], $3::int2[] || $8::int2[] FROM rev
-	),
-	updated AS (
-		UPDATE q_values t
-		SET q = u.q, visits = u.visits, last_delta = u.last_delta, updated_at = now(), revision = rev.revision
-		FROM unnest($2::text[], $3::int2[], $4::float8[], $5::int8[], $6::float8[]) AS u(state, action, q, visits, last_delta), rev
-		WHERE t.policy_id = $1 AND t.state = u.state AND t.action = u.action
-		RETURNING 1
-	),
-	inserted AS (
-		INSERT INTO q_values (policy_id, state, action, q, visits, last_delta, updated_at, revision)
-		SELECT $1, u.state, u.action, u.q, u.visits, u.last_delta, now(), rev.revision
-		FROM unnest($7::text[], $8::int2[], $9::float8[], $10::int8[], $11::float8[]) AS u(state, action, q, visits, last_delta), rev
-		RETURNING 1
-	)
-	SELECT (SELECT count(*) FROM updated), (SELECT count(*) FROM inserted)`
-
-// writeBatch writes every updated pair (stored holds the pairs the table
-// had before the batch), advances the policy's training watermark to
-// trainedThrough (if that is further), adds the batch to the training
-// history and announces the new revision, in one round trip.
-func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, trainedThrough int64, res training.BatchResult, stored map[training.PairKey]training.Estimate,
+// writeBatch writes every updated pair with one upsert, advances the
+// policy's training watermark to trainedThrough (if that is further), adds the batch to the training history and announces the new
+// revision, in one round trip.
+func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, trainedThrough int64, res training.BatchResult,
 	history HistorySettings, summary training.BatchSummary) (int64, error) {
-	var old, fresh pairColumns
-	for _, pr := range res.Pairs {
-		if _, ok := stored[pr.PairKey]; ok {
-			old.add(pr)
-		} else {
-			fresh.add(pr)
-		}
+	n := len(res.Pairs)
+	states, actions := make([]string, n), make([]int16, n)
+	qs, visits, deltas := make([]float64, n), make([]int64, n), make([]float64, n)
+	for i, pr := range res.Pairs {
+		states[i], actions[i], qs[i], visits[i], deltas[i] = pr.State, pr.Action, pr.Q, pr.Visits, pr.LastDelta
 	}
-	var revision, updated, inserted int64
+	var revision int64
 	batch := &pgx.Batch{}
 	batch.Queue(`UPDATE policies SET revision = revision + 1, last_trained_at = now(),
 		trained_through = greatest(trained_through, $2)
 		WHERE policy_id = $1 RETURNING revision`, policyID, trainedThrough).
 		QueryRow(func(row pgx.Row) error { return row.Scan(&revision) })
-	batch.Queue(writePairs, policyID, old.states, old.actions, old.qs, old.visits, old.deltas,
-		fresh.states, fresh.actions, fresh.qs, fresh.visits, fresh.deltas).
-		QueryRow(func(row pgx.Row) error { return row.Scan(&updated, &inserted) })
+	// One statement records the changed keys for readers (q_changes) and
+	// upserts the pairs, so the key arrays cross the wire once.
+	batch.Queue(`
+		WITH rev AS (SELECT revision FROM policies WHERE policy_id = $1),
+		changes AS (
+			INSERT INTO q_changes (policy_id, revision, states, actions)
+			SELECT $1, rev.revision, $2::text[], $3::int2[] FROM rev
+		)
+		INSERT INTO q_values (policy_id, state, action, q, visits, last_delta, updated_at, revision)
+		SELECT $1, u.state, u.action, u.q, u.visits, u.last_delta, now(), rev.revision
+		FROM unnest($2::text[], $3::int2[], $4::float8[], $5::int8[], $6::float8[])
+		     AS u(state, action, q, visits, last_delta), rev
+		ON CONFLICT (policy_id, state, action) DO UPDATE
+		SET q = excluded.q, visits = excluded.visits, last_delta = excluded.last_delta,
+		    updated_at = excluded.updated_at, revision = excluded.revision`,
+		policyID, states, actions, qs, visits, deltas)
 	batch.Queue(`DELETE FROM q_changes WHERE policy_id = $1
 		AND revision <= (SELECT revision FROM policies WHERE policy_id = $1) - $2`, policyID, changesKept)
 	queueHistory(batch, policyID, history, summary)
 	batch.Queue(`SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, policyID)
 	if err := tx.SendBatch(ctx, batch).Close(); err != nil {
 		return 0, fmt.Errorf("write training batch: %w", err)
-	}
-	if updated != int64(len(old.states)) || inserted != int64(len(fresh.states)) {
-		return 0, fmt.Errorf("write training batch: updated %d of %d stored pairs and inserted %d of %d new ones", updated, len(old.states), inserted, len(fresh.states))
 	}
 	return revision, nil
 }
