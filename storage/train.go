@@ -1,9 +1,11 @@
 package storage
 
 import (
+	"cmp"
 	"context"
 	"errors"
 	"fmt"
+	"slices"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -128,11 +130,19 @@ func trainedThrough(ctx context.Context, tx pgx.Tx, policyID int32) (int64, erro
 	return seq, nil
 }
 
+// untrainedEpisodes reads the first limit episodes after seq after, in seq
+// order. The range is found on the seqs alone and the rows are put in order
+// here: asked for wide rows in order with a limit, the planner may instead
+// fetch every untrained row and sort them all (it did, on a fresh backlog
+// with no statistics yet: a 40 MB sort on disk for a 10,000-episode batch).
 func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, after int64, limit int) ([]training.StoredEpisode, error) {
 	rows, err := tx.Query(ctx, `
+		WITH batch AS (
+			SELECT max(seq) AS last FROM (
+				SELECT seq FROM episodes WHERE policy_id = $1 AND seq > $2 ORDER BY seq LIMIT $3) first
+		)
 		SELECT seq, received_at, episode_id, states, actions, rewards, probabilities
-		FROM episodes WHERE policy_id = $1 AND seq > $2
-		ORDER BY seq LIMIT $3`, policyID, after, limit)
+		FROM episodes, batch WHERE policy_id = $1 AND seq > $2 AND seq <= batch.last`, policyID, after, limit)
 	if err != nil {
 		return nil, fmt.Errorf("read untrained episodes: %w", err)
 	}
@@ -146,6 +156,7 @@ func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, after int
 	if err != nil {
 		return nil, fmt.Errorf("read untrained episodes: %w", err)
 	}
+	slices.SortFunc(out, func(a, b training.StoredEpisode) int { return cmp.Compare(a.Seq, b.Seq) })
 	return out, nil
 }
 
