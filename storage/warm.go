@@ -8,7 +8,7 @@ import (
 )
 
 // DefaultWarmPairs is how many pairs a worker keeps warm by default, over
-// all policies (some 60 bytes each).
+// all policies (some 65 bytes each).
 const DefaultWarmPairs = 2_000_000
 
 // warmTables keeps, per policy this process trained, the estimates of the
