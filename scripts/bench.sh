@@ -239,6 +239,9 @@ qtally_load mixed --policy bench --states "$STATES" --rate "$RATE" --choose-ever
 #    in batches; SUSTAIN_TRIALS runs of SUSTAIN_S seconds find the highest
 #    rate with a flat backlog, starting at a quarter of what the vegeta
 #    choose figure allows at 20 chooses an episode.
+#    The mixed run's backlog is trained first, so the worker serves only
+#    the sustained loop.
+"$QT" load wait --url "$API" --json --policy bench --duration 30m >/dev/null
 CHOOSE_RPS=$(json_field "$OUT/choose.json" throughput_per_s)
 START=$(awk -v c="$CHOOSE_RPS" 'BEGIN { r = int(0.25 * c / 20); print (r < 1 ? 1 : r) }')
 say "sustained loop: $SUSTAIN_TRIALS runs of ${SUSTAIN_S}s from $START episodes/s ..."
