@@ -43,6 +43,8 @@ const (
 	flagDatabaseURL    = "database-url"
 	flagListen         = "listen"
 	flagBatchEpisodes  = "batch-episodes"
+	flagWarmPairs      = "warm-pairs"
+	flagBatchTarget    = "batch-target"
 	flagPollInterval   = "poll-interval"
 	flagMaxBodyBytes   = "max-body-bytes"
 	flagMaxEpisodes    = "max-episodes-per-request"
@@ -137,6 +139,8 @@ func serviceFlags(env flagEnv, listenDefault string, roles serviceRoles) []cli.F
 	if roles.worker {
 		flags = append(flags,
 			&cli.IntFlag{Name: flagBatchEpisodes, Value: 10_000, Usage: "most episodes one training transaction takes (a batch takes what is waiting, up to this)", Sources: env("QTALLY_BATCH_EPISODES")},
+			&cli.DurationFlag{Name: flagBatchTarget, Value: 300 * time.Millisecond, Usage: "how long a training batch should take while training keeps up; a policy that is behind gets batches that double up to --batch-episodes (0: always up to --batch-episodes)", Sources: env("QTALLY_BATCH_TARGET")},
+			&cli.IntFlag{Name: flagWarmPairs, Value: storage.DefaultWarmPairs, Usage: "estimates the worker keeps in memory between batches of the policies it trains, so it need not read them again (0: read every batch; about 65 bytes a pair)", Sources: env("QTALLY_WARM_PAIRS")},
 			&cli.DurationFlag{Name: flagEpisodeRetention, Usage: "keep trained episodes this long for evaluation and replay, then delete them (0 keeps them forever; untrained episodes are always kept)", Sources: env("QTALLY_EPISODE_RETENTION")},
 			&cli.DurationFlag{Name: flagPruneInterval, Value: time.Minute, Usage: "how often the worker deletes episodes older than the retention", Sources: env("QTALLY_PRUNE_INTERVAL")},
 			&cli.IntFlag{Name: flagPruneBatch, Value: 1000, Usage: "most episodes one pruning transaction deletes", Sources: env("QTALLY_PRUNE_BATCH")},
@@ -151,6 +155,8 @@ type serviceConfig struct {
 	DatabaseURL   string
 	Listen        string
 	BatchEpisodes int
+	WarmPairs     int
+	BatchTarget   time.Duration
 	PollInterval  time.Duration
 	Limits        training.Limits
 	HTTP          api.Config
@@ -240,6 +246,8 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 	}
 	if roles.worker {
 		cfg.BatchEpisodes = cmd.Int(flagBatchEpisodes)
+		cfg.BatchTarget = cmd.Duration(flagBatchTarget)
+		cfg.WarmPairs = cmd.Int(flagWarmPairs)
 		cfg.EpisodeRetention = cmd.Duration(flagEpisodeRetention)
 		cfg.PruneInterval = cmd.Duration(flagPruneInterval)
 		cfg.PruneBatch = cmd.Int(flagPruneBatch)
@@ -250,6 +258,12 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 		}
 		if cfg.JobStaleAfter < 2*jobReportInterval {
 			return cfg, fmt.Errorf("--%s must be at least %v (twice the progress report interval)", flagJobStaleAfter, 2*jobReportInterval)
+		}
+		if cfg.BatchTarget < 0 {
+			return cfg, fmt.Errorf("--%s must not be negative, got %v", flagBatchTarget, cfg.BatchTarget)
+		}
+		if cfg.WarmPairs < 0 {
+			return cfg, fmt.Errorf("--%s must not be negative, got %d", flagWarmPairs, cfg.WarmPairs)
 		}
 	}
 	for name, d := range map[string]time.Duration{flagReadHeaderTimeout: cfg.Server.ReadHeaderTimeout, flagReadTimeout: cfg.Server.ReadTimeout,

@@ -274,8 +274,8 @@ func storedOrder(t testing.TB, databaseURL, policy string) (ids, untrained []str
 	}
 	defer conn.Close(ctx)
 	rows, err := conn.Query(ctx, `
-		SELECT e.episode_id, e.trained_at IS NULL FROM episodes e
-		WHERE e.policy_id = (SELECT policy_id FROM policies WHERE name = $1)
+		SELECT e.episode_id, e.seq > p.trained_through FROM episodes e JOIN policies p USING (policy_id)
+		WHERE p.name = $1
 		ORDER BY e.seq`, policy)
 	if err != nil {
 		t.Fatalf("read stored episodes: %v", err)

@@ -83,6 +83,27 @@ func TestLoadScenariosAgainstService(t *testing.T) {
 			len(mixed.Visibility), len(mixed.Backlog), mixed.MemoryStart, mixed.MemoryEnd)
 	}
 
+	var sustain load.SustainReport
+	runLoad(t, &sustain, append([]string{"sustain", "--duration", "3s", "--trials", "2", "--rate", "20", "--workers", "8",
+		"--episodes-per-post", "20", "--database-url", databaseURL}, common...)...)
+	if len(sustain.Trials) != 2 || sustain.ChoosesPerEpisode != 20 || sustain.StepsPerEpisode != 20 {
+		t.Fatalf("sustain: %+v", sustain)
+	}
+	// The second rate follows from the first: doubled when it kept up,
+	// halved when not.
+	first, second := sustain.Trials[0], sustain.Trials[1]
+	if want := map[bool]float64{true: 40, false: 10}[first.Flat]; first.OfferedPerSec != 20 || second.OfferedPerSec != want {
+		t.Fatalf("sustain tried %v then %v episodes/s (first flat: %v)", first.OfferedPerSec, second.OfferedPerSec, first.Flat)
+	}
+	for i, tr := range sustain.Trials {
+		if tr.ArrivalProbes == 0 || tr.ArrivalP50 <= 0 || tr.ArrivalP99 < tr.ArrivalP50 || tr.Errors != 0 {
+			t.Fatalf("sustain run %d: %+v", i, tr)
+		}
+		if tr.Flat && sustain.Best < i {
+			t.Fatalf("sustain: run %d was flat, best is %d", i, sustain.Best)
+		}
+	}
+
 	var mem load.MemoryReport
 	runLoad(t, &mem, append([]string{"memory", "--pairs", "4000", "--pprof-url", "http://" + pprofAddr}, common...)...)
 	if mem.Pairs != 4000 || mem.Before.HeapBytes == 0 || mem.After.RSSBytes == 0 {

@@ -94,6 +94,29 @@ func loadCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 					}
 					return show(cmd, r)
 				}},
+			{Name: "sustain", Usage: "the highest episode rate at which the whole loop keeps up: mixed runs of --duration each from --rate episodes/s, doubling, halving and bisecting over --trials runs; each measures arrival to served (a worker must run)",
+				Flags: append(common, &cli.IntFlag{Name: "choose-every", Value: 1, Usage: "choose at every n-th step (1: every step)"},
+					&cli.IntFlag{Name: "posters", Value: 16, Usage: "posts of finished episodes under way at once"},
+					&cli.IntFlag{Name: "trials", Value: 6, Usage: "rates to try"},
+					&cli.DurationFlag{Name: "drain-within", Value: 5 * time.Minute, Usage: "longest wait for the backlog to empty between trials"},
+					databaseFlag(env, false)),
+				Action: func(ctx context.Context, cmd *cli.Command) error {
+					opt := load.SustainOptions{Trials: cmd.Int("trials"), Drain: cmd.Duration("drain-within"),
+						Mixed: load.MixedOptions{ChooseEvery: cmd.Int("choose-every"), Posters: cmd.Int("posters")}}
+					if u := cmd.String(flagDatabaseURL); u != "" {
+						obs, err := openObserver(ctx, u, stderr)
+						if err != nil {
+							return err
+						}
+						defer obs.Close()
+						opt.Mixed.Observer = obs
+					}
+					r, err := load.Sustain(ctx, config(cmd), opt)
+					if err != nil {
+						return err
+					}
+					return show(cmd, r)
+				}},
 			{Name: "memory", Usage: "fill a fresh policy with --pairs trained pairs (a worker must run), then measure what loading it into the API process costs",
 				Flags: append(common, &cli.IntFlag{Name: "pairs", Value: 1_000_000, Usage: "distinct pairs to train"}, pprofURLFlag),
 				Action: func(ctx context.Context, cmd *cli.Command) error {

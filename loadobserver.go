@@ -13,8 +13,8 @@ import (
 
 // dbObserver follows a policy's training straight from PostgreSQL for the
 // load command: commit notifications give when each batch committed, and
-// the backlog comes from the untrained-episode index rather than the
-// status route's full counts.
+// the backlog counts the episodes past the policy's training watermark
+// rather than the status route's full counts.
 type dbObserver struct {
 	db     *storage.DB
 	logger *slog.Logger

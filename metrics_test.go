@@ -111,7 +111,7 @@ func TestMetricsPassPromtoolAndFollowRoles(t *testing.T) {
 	rng := rand.New(rand.NewPCG(5, 6))
 	feedLearningWork(t, apiOnly, policy, rng, 0)
 	st := apiOnly.waitTrained(policy, 20)
-	waitFor(t, 10*time.Second, "the API's copy to reach the trained revision", func() bool {
+	waitFor(t, 30*time.Second, "the API's copy to reach the trained revision", func() bool {
 		_, f := apiOnly.scrape()
 		return gaugeOf(f, "qtally_q_copy_revision", policy) >= float64(st.Revision)
 	})
@@ -239,7 +239,7 @@ func TestVisitMetricsFollowTheTable(t *testing.T) {
 		// notification.
 		s.call("POST", "/v1/policies/"+policy+"/choose", map[string]any{"state": "day 0/bucket"}, 200)
 		var families map[string]*dto.MetricFamily
-		waitFor(t, 10*time.Second, "the copy to reach the trained revision", func() bool {
+		waitFor(t, 30*time.Second, "the copy to reach the trained revision", func() bool {
 			_, families = s.scrape()
 			return gaugeOf(families, "qtally_q_copy_revision", policy) == float64(st.Revision)
 		})

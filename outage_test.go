@@ -92,10 +92,10 @@ func TestDatabaseOutage(t *testing.T) {
 			l.postUntil(ctx, uint64(30+c), fmt.Sprintf("client%d", c), 0, []string{api.URL}, []policySpec{ps})
 		})
 	}
-	waitFor(t, 10*time.Second, "some episodes to be trained", func() bool { return s.status(ps.name).Revision > 2 })
+	waitFor(t, 30*time.Second, "some episodes to be trained", func() bool { return s.status(ps.name).Revision > 2 })
 	pr := &probe{readyCodes: map[int]int{}, authorization: s.authorization}
 	clients.Go(func() { pr.run(ctx, api.URL, ps.name) })
-	waitFor(t, 10*time.Second, "choose to answer", func() bool { return pr.ready() == http.StatusOK })
+	waitFor(t, 30*time.Second, "choose to answer", func() bool { return pr.ready() == http.StatusOK })
 
 	// A stop of some seconds.
 	_, unavailableBefore, _, _ := l.counts()
@@ -105,8 +105,8 @@ func TestDatabaseOutage(t *testing.T) {
 		t.Fatal(err)
 	}
 	halted := time.Now()
-	waitFor(t, 10*time.Second, "/readyz to report the outage", func() bool { return pr.ready() == http.StatusServiceUnavailable })
-	waitFor(t, 10*time.Second, "a post to be answered 503", func() bool {
+	waitFor(t, 30*time.Second, "/readyz to report the outage", func() bool { return pr.ready() == http.StatusServiceUnavailable })
+	waitFor(t, 30*time.Second, "a post to be answered 503", func() bool {
 		_, unavailable, _, _ := l.counts()
 		return unavailable > unavailableBefore
 	})
@@ -127,9 +127,9 @@ func TestDatabaseOutage(t *testing.T) {
 		t.Fatal(err)
 	}
 	resumed := time.Now()
-	waitFor(t, 20*time.Second, "/readyz after the outage", func() bool { return pr.ready() == http.StatusOK })
+	waitFor(t, time.Minute, "/readyz after the outage", func() bool { return pr.ready() == http.StatusOK })
 	_, _, _, acceptedBefore := l.counts()
-	waitFor(t, 20*time.Second, "posting to resume", func() bool {
+	waitFor(t, time.Minute, "posting to resume", func() bool {
 		_, _, _, accepted := l.counts()
 		return accepted > acceptedBefore
 	})
@@ -141,7 +141,7 @@ func TestDatabaseOutage(t *testing.T) {
 		t.Fatal(err)
 	}
 	_, _, _, acceptedBefore = l.counts()
-	waitFor(t, 20*time.Second, "posting to resume after a restart", func() bool {
+	waitFor(t, time.Minute, "posting to resume after a restart", func() bool {
 		_, _, _, accepted := l.counts()
 		return accepted > acceptedBefore
 	})
@@ -157,9 +157,11 @@ func TestDatabaseOutage(t *testing.T) {
 
 	verifyLearnedOnce(t, s, databaseURL, ps, l.episodes(ps.name))
 	final := s.status(ps.name).Revision
-	waitFor(t, 5*time.Second, fmt.Sprintf("choose to see the final revision %d", final), func() bool {
+	// The final revision committed after the server came back, so the copy
+	// holding it was confirmed since then.
+	waitFor(t, time.Minute, fmt.Sprintf("choose to see the final revision %d", final), func() bool {
 		c, err := choose(api.client(30*time.Second), api.URL, ps.name, "day 1/bucket")
-		return err == nil && c.Revision == final && c.CopyAge < 1
+		return err == nil && c.Revision == final && c.CopyAge < time.Since(resumed).Seconds()
 	})
 	// The worker retried with a doubling backoff.
 	failed := worker.metric("qtally_training_errors_total")

@@ -19,6 +19,11 @@ import (
 	"github.com/qtally/qtally/training"
 )
 
+// minBatchEpisodes is the smallest batch limit while training keeps up:
+// below it, a batch's fixed costs (its round trips and durable commit)
+// outweigh its episodes.
+const minBatchEpisodes = 100
+
 // runService runs the API, the worker, or both, until ctx ends, then shuts
 // down within the grace period: in-flight requests finish and the worker
 // commits or rolls back its batch.
@@ -30,6 +35,10 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	defer db.Close()
 	if err := db.SetHistory(cfg.History); err != nil {
 		return err
+	}
+	db.SetWarmPairs(cfg.WarmPairs)
+	if cfg.BatchTarget > 0 {
+		db.SetBatchSizer(&training.BatchSizer{Target: cfg.BatchTarget, Min: minBatchEpisodes})
 	}
 
 	reg := prometheus.NewRegistry()

@@ -91,7 +91,7 @@ const trainingLockClass = 0x71746c79
 
 // Freeze a table, learn on, compare, then roll back: the restore waits for
 // the training lock, choose serves the restored table at once in the
-// process that restored and within a second in another, states learned
+// process that restored and, on its notification, in another; states learned
 // after the snapshot are gone everywhere, and training continues from the
 // restored values.
 func TestSnapshotDiffAndRestoreRollBack(t *testing.T) {
@@ -213,7 +213,7 @@ func TestSnapshotDiffAndRestoreRollBack(t *testing.T) {
 	if c := s.choose("routing", "angry reply"); c.KnownState {
 		t.Fatalf("a state learned after the snapshot is still served: %+v", c)
 	}
-	waitFor(t, time.Second, "the other API process to drop the rows the restore removed", func() bool {
+	waitFor(t, 30*time.Second, "the other API process to drop the rows the restore removed", func() bool {
 		c := other.choose("routing", "angry reply")
 		return !c.KnownState && other.choose("routing", "late invoice").Action == "call"
 	})

@@ -35,6 +35,8 @@ type MixedOptions struct {
 	// once: a post waits for a durable commit, and clients must not wait
 	// for it.
 	Posters int
+	// ProbeArrival also measures arrival to served: see probeArrival.
+	ProbeArrival bool
 }
 
 // MixedReport is what the mixed scenario saw.
@@ -60,6 +62,15 @@ type MixedReport struct {
 	VisibilityP99    time.Duration   `json:"commit_to_choose_p99"`
 	VisibilityMax    time.Duration   `json:"commit_to_choose_max"`
 	VisibilitySource string          `json:"commit_to_choose_source"`
+	// ArrivalToServed is, for each probe episode, the time from its post's
+	// 202 to the first choose that knows its state (with ProbeArrival).
+	ArrivalToServed []time.Duration `json:"arrival_to_served,omitempty"`
+	ArrivalP50      time.Duration   `json:"arrival_to_served_p50"`
+	ArrivalP99      time.Duration   `json:"arrival_to_served_p99"`
+	ArrivalMax      time.Duration   `json:"arrival_to_served_max"`
+	// ArrivalUnserved counts probe episodes accepted but not yet served
+	// when the run ended (not in the figures above).
+	ArrivalUnserved int64 `json:"arrival_unserved"`
 	// MemoryStart and MemoryEnd are the API process's memory, when read.
 	MemoryStart *MemoryReading `json:"memory_start,omitempty"`
 	MemoryEnd   *MemoryReading `json:"memory_end,omitempty"`
@@ -97,6 +108,9 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	finished := make(chan episode, 4*cfg.EpisodesPerPost)
 	var wg sync.WaitGroup
 	wg.Add(3)
+	if opt.ProbeArrival {
+		wg.Go(func() { rep.ArrivalToServed, rep.ArrivalUnserved = probeArrival(runCtx, c, cfg, &errs) })
+	}
 	go func() {
 		defer wg.Done()
 		postFinished(runCtx, c, cfg, opt.Posters, finished, &episodes, &errs)
@@ -121,6 +135,8 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	rep.ChoosesPerSec = float64(rep.Chooses) / secs
 	rep.VisibilityP50, rep.VisibilityP99 = percentile(rep.Visibility, 0.5), percentile(rep.Visibility, 0.99)
 	rep.VisibilityMax = percentile(rep.Visibility, 1)
+	rep.ArrivalP50, rep.ArrivalP99 = percentile(rep.ArrivalToServed, 0.5), percentile(rep.ArrivalToServed, 0.99)
+	rep.ArrivalMax = percentile(rep.ArrivalToServed, 1)
 	rep.BacklogSlopePer = slope(rep.Backlog)
 	if len(rep.Backlog) > 0 {
 		rep.BacklogMax = slices.Max(rep.Backlog)
@@ -303,6 +319,48 @@ func probeVisibility(ctx context.Context, c *client, obs Observer, policy string
 			time.Sleep(time.Millisecond)
 		}
 	}
+}
+
+// arrivalProbePause is the time between one probe episode being served and
+// the next being posted.
+const arrivalProbePause = 100 * time.Millisecond
+
+// probeArrival posts, one after another, single episodes of a state no
+// other traffic uses, each as its own request beside the load, and for
+// each measures the time from the post's 202 to the first choose (polled
+// every 5 ms) that knows the state: the episode waited behind whatever
+// backlog there was, was trained, and reached the API's copy.
+func probeArrival(ctx context.Context, c *client, cfg Config, errs *atomic.Int64) (served []time.Duration, unserved int64) {
+	run := time.Now().UnixNano()
+	for n := 0; ctx.Err() == nil; n++ {
+		state := fmt.Sprintf("arrival-probe-%d-%d", run, n)
+		ep := episode{ID: state, Steps: []step{{State: state, Action: cfg.Actions[0], Reward: 1, Probability: 1}}}
+		if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/episodes", map[string]any{"episodes": []episode{ep}}, nil); err != nil {
+			if ctx.Err() == nil {
+				errs.Add(1)
+			}
+			continue
+		}
+		accepted := time.Now()
+		unserved++
+		for ctx.Err() == nil {
+			var r struct {
+				KnownState bool `json:"known_state"`
+			}
+			if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/choose",
+				map[string]string{"state": state, "mode": "greedy"}, &r); err == nil && r.KnownState {
+				served = append(served, time.Since(accepted))
+				unserved--
+				break
+			}
+			time.Sleep(5 * time.Millisecond)
+		}
+		select {
+		case <-ctx.Done():
+		case <-time.After(arrivalProbePause):
+		}
+	}
+	return served, unserved
 }
 
 // statusObserver follows training through the status route: no database

@@ -24,6 +24,7 @@ const (
 	FileDrain     = "drain.json"
 	FileMixed     = "mixed.json"
 	FileMemory    = "memory.json"
+	FileSustain   = "sustain.json"
 )
 
 // Ceiling is one figure of the ceilings script's JSON output.
@@ -51,6 +52,8 @@ const (
 	targetDrainRatio    = 0.5
 	targetDrainVsNaive  = 20
 	targetVisibilityP99 = time.Second
+	targetSustainRatio  = 0.5
+	targetArrivalP99    = time.Second
 	targetMemory1M      = 200e6
 	// A backlog is bounded when its trend is below this share of the
 	// posting rate, and a run's heap does not grow when it grows by less
@@ -109,6 +112,10 @@ func Report(dir string) (string, error) {
 					mb(float64(mixed.MemoryStart.RSSBytes)), mb(float64(mixed.MemoryEnd.RSSBytes))),
 				"< "+mb(memoryGrowthLimit), growth < memoryGrowthLimit)
 		}
+	}
+	var sustain SustainReport
+	if err := readJSON(filepath.Join(dir, FileSustain), &sustain); t.ok("sustained loop", err) {
+		t.sustained(sustain)
 	}
 	var mem MemoryReport
 	if err := readJSON(filepath.Join(dir, FileMemory), &mem); t.ok("memory", err) {
@@ -187,6 +194,49 @@ func (t *table) info(label, value, ceiling string, raw float64) {
 		}
 	}
 	t.rows = append(t.rows, row)
+}
+
+// sustained adds the sustained-loop rows: the highest flat episode rate
+// against the bound the ceilings give for that work (the smaller of the
+// choose ceiling over the chooses of an episode and the COPY ceiling over
+// its steps), and arrival to served at that rate.
+func (t *table) sustained(s SustainReport) {
+	flat := 0
+	for _, tr := range s.Trials {
+		if tr.Flat {
+			flat++
+		}
+	}
+	label := fmt.Sprintf("sustained loop: highest flat rate (%.0f chooses and %d steps an episode; %d of %d trials of %.0f s flat)",
+		s.ChoosesPerEpisode, s.StepsPerEpisode, flat, len(s.Trials), s.TrialSec)
+	row := [6]string{label, "no rate kept up", "", "", fmt.Sprintf(">= %gx", targetSustainRatio), "no"}
+	choose, okChoose := t.ceilings["echo_get_lookup_rps"]
+	store, okStore := t.ceilings["episode_copy_steps_per_s"]
+	var bound float64
+	if okChoose && okStore && s.ChoosesPerEpisode > 0 && s.StepsPerEpisode > 0 {
+		bound = min(choose.Median/s.ChoosesPerEpisode, store.Median/float64(s.StepsPerEpisode))
+		row[2] = fmt.Sprintf("min(`echo_get_lookup_rps` / %.0f, `episode_copy_steps_per_s` / %d) %s episodes/s",
+			s.ChoosesPerEpisode, s.StepsPerEpisode, human(bound))
+	} else {
+		row[2] = "`echo_get_lookup_rps` or `episode_copy_steps_per_s` missing"
+	}
+	if s.Best < 0 || s.Best >= len(s.Trials) {
+		t.rows = append(t.rows, row)
+		return
+	}
+	best := s.Trials[s.Best]
+	row[1] = fmt.Sprintf("%s episodes/s (%s chooses/s)", human(best.EpisodesPerSec), human(best.ChoosesPerSec))
+	if bound > 0 {
+		r := best.EpisodesPerSec / bound
+		row[3] = fmt.Sprintf("%.2fx", r)
+		if r >= targetSustainRatio {
+			row[5] = "yes"
+		}
+	}
+	t.rows = append(t.rows, row)
+	t.verdict(fmt.Sprintf("sustained loop: arrival to served p99 at that rate (%d probes, %d unserved at the end)", best.ArrivalProbes, best.ArrivalUnserved),
+		fmtDuration(best.ArrivalP99)+" (p50 "+fmtDuration(best.ArrivalP50)+", max "+fmtDuration(best.ArrivalMax)+")",
+		"<= "+fmtDuration(targetArrivalP99), best.ArrivalProbes > 0 && best.ArrivalP99 <= targetArrivalP99)
 }
 
 func (t *table) verdict(label, value, target string, met bool) {

@@ -66,3 +66,48 @@ func TestWrkDurations(t *testing.T) {
 		t.Error("a duration without a unit was read")
 	}
 }
+
+// testdata/sustain holds the sustain.json of a real `qtally load sustain`
+// run at --quick size (three 10 s runs, on a busy machine) beside the
+// ceilings.json of testdata/run: the rows' shapes and arithmetic are what is
+// checked, not the figures.
+func TestReportSustainedLoop(t *testing.T) {
+	table, err := Report("testdata/sustain")
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, want := range []string{
+		// Best run: 79.8 episodes/s posted. Bound: min(4658 req/s / 20
+		// chooses, 61,168 steps/s / 20 steps) = 233 episodes/s; 79.8 / 233
+		// = 0.34.
+		"| sustained loop: highest flat rate (20 chooses and 20 steps an episode; 2 of 3 trials of 10 s flat) | 79.8 episodes/s (1595 chooses/s) | min(`echo_get_lookup_rps` / 20, `episode_copy_steps_per_s` / 20) 233 episodes/s | 0.34x | >= 0.5x | no |",
+		"| sustained loop: arrival to served p99 at that rate (50 probes, 0 unserved at the end) | 444.22 ms (p50 42.78 ms, max 444.22 ms) |  |  | <= 1.00 s | yes |",
+	} {
+		if !strings.Contains(table, want) {
+			t.Errorf("the table lacks\n%s\nin\n%s", want, table)
+		}
+	}
+
+	// No flat run at all: the row says so and fails.
+	dir := t.TempDir()
+	for _, f := range []string{FileCeilings, FileSustain} {
+		data, err := os.ReadFile(filepath.Join("testdata/sustain", f))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if f == FileSustain {
+			data = []byte(strings.Replace(string(data), `"best": 1`, `"best": -1`, 1))
+		}
+		if err := os.WriteFile(filepath.Join(dir, f), data, 0o600); err != nil {
+			t.Fatal(err)
+		}
+	}
+	table, err = Report(dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(table, "| no rate kept up | min(`echo_get_lookup_rps` / 20, `episode_copy_steps_per_s` / 20) 233 episodes/s |  | >= 0.5x | no |") ||
+		strings.Contains(table, "arrival to served") {
+		t.Errorf("a run with no flat rate gave:\n%s", table)
+	}
+}

@@ -5,7 +5,7 @@
 # and prints a markdown table of figures, ceilings, ratios and targets
 # (BENCHMARKS.md explains each figure).
 #
-#   --quick    short runs (about 4 minutes instead of 10): a smoke check, noisy
+#   --quick    short runs (about 5 minutes instead of 17): a smoke check, noisy
 #   --long     the mixed run lasts 10 minutes instead of 1
 #   --profile  also take CPU profiles of the API under choose and post load
 #   --record   write the table into BENCHMARKS.md
@@ -41,9 +41,9 @@ done
 
 # Durations (seconds) and sizes.
 if [ "$QUICK" = 1 ]; then
-  LOAD_S=3 MIXED_S=10 DRAIN_EPISODES=10000 MEMORY_PAIRS=250000 CEIL_ARGS=(--quick)
+  LOAD_S=3 MIXED_S=10 DRAIN_EPISODES=10000 MEMORY_PAIRS=250000 SUSTAIN_S=10 SUSTAIN_TRIALS=3 CEIL_ARGS=(--quick)
 else
-  LOAD_S=10 MIXED_S=60 DRAIN_EPISODES=50000 MEMORY_PAIRS=1000000 CEIL_ARGS=()
+  LOAD_S=10 MIXED_S=60 DRAIN_EPISODES=50000 MEMORY_PAIRS=1000000 SUSTAIN_S=60 SUSTAIN_TRIALS=6 CEIL_ARGS=()
 fi
 [ "$LONG" = 1 ] && MIXED_S=600
 POST_WORKERS=${POST_WORKERS:-16}   # concurrent posting clients
@@ -236,6 +236,19 @@ RATE=$(awk -v s="$BASIS_STEPS" 'BEGIN { r = int(0.8 * s / 20); print (r < 1 ? 1 
 say "mixed: ${MIXED_S}s at $RATE episodes/s (80% of the $MIXED_BASIS figure) ..."
 qtally_load mixed --policy bench --states "$STATES" --rate "$RATE" --choose-every 20 --workers 256 --posters "$POST_WORKERS" \
   --duration "${MIXED_S}s" --database-url "$DB_URL" --pprof-url "$PPROF" >"$OUT/mixed.json"
+
+# 7. Sustained loop: clients choose at every step and post finished episodes
+#    in batches; SUSTAIN_TRIALS runs of SUSTAIN_S seconds find the highest
+#    rate with a flat backlog, starting at a quarter of what the vegeta
+#    choose figure allows at 20 chooses an episode.
+#    The mixed run's backlog is trained first, so the worker serves only
+#    the sustained loop.
+"$QT" load wait --url "$API" --json --policy bench --duration 30m >/dev/null
+CHOOSE_RPS=$(json_field "$OUT/choose.json" throughput_per_s)
+START=$(awk -v c="$CHOOSE_RPS" 'BEGIN { r = int(0.25 * c / 20); print (r < 1 ? 1 : r) }')
+say "sustained loop: $SUSTAIN_TRIALS runs of ${SUSTAIN_S}s from $START episodes/s ..."
+qtally_load sustain --policy sustain --states "$STATES" --rate "$START" --choose-every 1 --workers 256 --posters "$POST_WORKERS" \
+  --trials "$SUSTAIN_TRIALS" --duration "${SUSTAIN_S}s" --database-url "$DB_URL" >"$OUT/sustain.json"
 
 stop_pid "$WORKER_PID"; WORKER_PID=
 stop_pid "$API_PID"; API_PID=

@@ -30,6 +30,8 @@ type DB struct {
 	sqlDB    *sql.DB
 	limits   training.Limits
 	history  HistorySettings
+	warm     *warmTables
+	sizer    *training.BatchSizer
 }
 
 // Open connects to PostgreSQL. It does not apply migrations.
@@ -50,7 +52,8 @@ func Open(ctx context.Context, databaseURL string, maxConns int32, limits traini
 		pool.Close()
 		return nil, err
 	}
-	return &DB{pool: pool, migrator: migrator, sqlDB: sqlDB, limits: limits, history: DefaultHistory()}, nil
+	return &DB{pool: pool, migrator: migrator, sqlDB: sqlDB, limits: limits, history: DefaultHistory(),
+		warm: newWarmTables(DefaultWarmPairs)}, nil
 }
 
 // Close releases every connection.

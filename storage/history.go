@@ -57,8 +57,8 @@ func (db *DB) History() HistorySettings {
 // transaction (the primary key makes both touch only a few rows). The
 // backlog is counted by the first batch of each bucket only: counting costs
 // time in proportion to the backlog, and a policy that is behind should not
-// pay that on every batch. The statement must follow the one that marks
-// the batch's episodes trained, so that the count excludes them.
+// pay that on every batch. The statement must follow the one that advances
+// the policy's training watermark, so that the count excludes the batch.
 const historyWrite = `
 	WITH pruned AS (
 		DELETE FROM training_history
@@ -70,7 +70,7 @@ const historyWrite = `
 		sum_abs_delta, updates, greedy_changes, new_states, new_pairs, backlog, last_batch_at)
 	SELECT $1, b.start, 1, $4, $5, $6, $7, $8, $9, $10, $11,
 		CASE WHEN NOT EXISTS (SELECT 1 FROM training_history x WHERE x.policy_id = $1 AND x.bucket_start = b.start)
-		     THEN (SELECT count(*) FROM episodes e WHERE e.policy_id = $1 AND e.trained_at IS NULL)
+		     THEN (SELECT count(*) FROM episodes e JOIN policies p USING (policy_id) WHERE e.policy_id = $1 AND ` + untrained + `)
 		     ELSE 0 END, -- never stored: a later batch of the bucket keeps the first one's count
 		now()
 	FROM bucket b

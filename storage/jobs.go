@@ -448,8 +448,9 @@ func (db *DB) LearnBatch(ctx context.Context, policyID int32, episodes []trainin
 		}
 		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}
 		result = learn(in)
-		// No episodes of this policy to mark: they belong to the source.
-		revision, err = writeBatch(ctx, tx, policyID, nil, lastSeq(episodes), result, db.history, training.SummarizeBatch(in, result))
+		// The episodes belong to the source: the target's training
+		// watermark stays where it is, its table's position moves.
+		revision, err = writeBatch(ctx, tx, policyID, 0, lastSeq(episodes), result, db.history, training.SummarizeBatch(in, result))
 		return err
 	})
 	return revision, result, err

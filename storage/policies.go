@@ -162,8 +162,8 @@ func (db *DB) ListPolicies(ctx context.Context) ([]training.Policy, error) {
 const statusQuery = `
 	SELECT ` + policyColumns + `,
 	       (SELECT count(*) FROM episodes e WHERE e.policy_id = p.policy_id),
-	       (SELECT count(*) FROM episodes e WHERE e.policy_id = p.policy_id AND e.trained_at IS NULL),
-	       (SELECT min(received_at) FROM episodes e WHERE e.policy_id = p.policy_id AND e.trained_at IS NULL),
+	       (SELECT count(*) FROM episodes e WHERE e.policy_id = p.policy_id AND ` + untrained + `),
+	       (SELECT min(received_at) FROM episodes e WHERE e.policy_id = p.policy_id AND ` + untrained + `),
 	       (SELECT count(DISTINCT state) FROM q_values q WHERE q.policy_id = p.policy_id),
 	       (SELECT count(*) FROM q_values q WHERE q.policy_id = p.policy_id),
 	       p.last_trained_at
@@ -209,7 +209,7 @@ func (db *DB) ListPolicyStatus(ctx context.Context) ([]training.PolicyStatus, er
 func (db *DB) Backlogs(ctx context.Context) ([]training.Backlog, error) {
 	rows, err := db.pool.Query(ctx, `
 		SELECT p.name, count(e.seq), min(e.received_at)
-		FROM policies p LEFT JOIN episodes e ON e.policy_id = p.policy_id AND e.trained_at IS NULL
+		FROM policies p LEFT JOIN episodes e ON e.policy_id = p.policy_id AND `+untrained+`
 		GROUP BY p.name ORDER BY p.name`)
 	if err != nil {
 		return nil, mapError(fmt.Errorf("read backlog: %w", err))

@@ -24,10 +24,11 @@ func lockPins(ctx context.Context, tx pgx.Tx, policyID int32) error {
 // PruneEpisodes deletes trained episodes received longer than retention
 // ago, policy by policy, in transactions of at most batch episodes, and
 // reports how many it deleted per policy name. Untrained episodes are never
-// deleted, nor are those in the window of a queued or running evaluation
-// or replay: a job reads every episode its window held when it was queued.
-// Rows a training batch holds are skipped, not waited for, so pruning never
-// holds up training; choosing does not read episodes at all.
+// deleted (only episodes at or below the policy's training watermark go,
+// which training never reads again), nor are those in the window of a
+// queued or running evaluation or replay: a job reads every episode its
+// window held when it was queued. Rows another pruner holds are skipped,
+// so pruning never holds up training; choosing does not read episodes.
 func (db *DB) PruneEpisodes(ctx context.Context, retention time.Duration, batch int) (map[string]int64, error) {
 	policies, err := db.ListPolicies(ctx)
 	if err != nil {
@@ -43,8 +44,8 @@ func (db *DB) PruneEpisodes(ctx context.Context, retention time.Duration, batch 
 				}
 				tag, err := tx.Exec(ctx, `
 					DELETE FROM episodes WHERE ctid = ANY(ARRAY(
-						SELECT e.ctid FROM episodes e
-						WHERE e.policy_id = $1 AND e.trained_at IS NOT NULL
+						SELECT e.ctid FROM episodes e JOIN policies p USING (policy_id)
+						WHERE e.policy_id = $1 AND NOT (`+untrained+`)
 						  AND e.received_at < now() - make_interval(secs => $2)
 						  AND NOT EXISTS (
 						      SELECT 1 FROM jobs j

@@ -1,9 +1,11 @@
 package storage
 
 import (
+	"cmp"
 	"context"
 	"errors"
 	"fmt"
+	"slices"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -22,7 +24,7 @@ const trainingLockClass = 0x71746c79
 func (db *DB) TrainBatch(ctx context.Context, maxEpisodes int, learn func(training.BatchInput) training.BatchResult) (training.BatchReport, bool, error) {
 	rows, err := db.pool.Query(ctx, `
 		SELECT policy_id FROM policies p
-		WHERE EXISTS (SELECT 1 FROM episodes e WHERE e.policy_id = p.policy_id AND e.trained_at IS NULL)
+		WHERE EXISTS (SELECT 1 FROM episodes e WHERE e.policy_id = p.policy_id AND `+untrained+`)
 		ORDER BY random()`)
 	if err != nil {
 		return training.BatchReport{}, false, mapError(fmt.Errorf("find backlog: %w", err))
@@ -44,7 +46,13 @@ var errSkip = errors.New("policy busy or drained")
 
 func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, learn func(training.BatchInput) training.BatchResult) (training.BatchReport, bool, error) {
 	start := time.Now()
+	limit := maxEpisodes
+	if db.sizer != nil {
+		limit = db.sizer.Limit(policyID, maxEpisodes)
+	}
 	var report training.BatchReport
+	var warm *warmTable
+	var wrote warmVersion
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		var locked bool
 		if err := tx.QueryRow(ctx, `SELECT pg_try_advisory_xact_lock($1, $2)`, trainingLockClass, policyID).Scan(&locked); err != nil {
@@ -57,23 +65,36 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 		if err != nil {
 			return fmt.Errorf("read policy %d: %w", policyID, err)
 		}
-		episodes, err := untrainedEpisodes(ctx, tx, policyID, maxEpisodes)
+		through, err := trainedThrough(ctx, tx, policyID)
+		if err != nil {
+			return err
+		}
+		episodes, err := untrainedEpisodes(ctx, tx, policyID, through, limit)
 		if err != nil {
 			return err
 		}
 		if len(episodes) == 0 {
 			return errSkip
 		}
-		current, err := estimatesOfStates(ctx, tx, policyID, training.TouchedStates(episodes))
-		if err != nil {
-			return err
+		// Estimates this process wrote and still current need no reading.
+		warm = db.warm.take(policyID, versionOf(p))
+		states := training.TouchedStates(episodes)
+		if missing := warm.unknown(states); len(missing) > 0 {
+			read, err := estimatesOfStates(ctx, tx, policyID, missing)
+			if err != nil {
+				return err
+			}
+			warm.learn(missing, read, len(p.Actions))
 		}
-		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}
+		in := training.BatchInput{Policy: p, Episodes: episodes, Current: warm.current(states)}
 		result := learn(in)
-		revision, err := writeBatch(ctx, tx, policyID, episodes, lastSeq(episodes), result, db.history, training.SummarizeBatch(in, result))
+		last := episodes[len(episodes)-1].Seq
+		revision, err := writeBatch(ctx, tx, policyID, last, last, result, db.history, training.SummarizeBatch(in, result))
 		if err != nil {
 			return err
 		}
+		warm.apply(result.Pairs)
+		wrote = warmVersion{revision: revision, epoch: p.TableEpoch, updatedAt: p.UpdatedAt}
 		report = training.BatchReport{PolicyID: policyID, PolicyName: p.Name, Revision: revision,
 			Episodes: len(episodes), Result: result}
 		return nil
@@ -84,17 +105,45 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 	if err != nil {
 		return report, false, err
 	}
+	db.warm.put(policyID, warm, wrote)
 	report.Duration = time.Since(start)
+	if db.sizer != nil {
+		db.sizer.Observe(policyID, report.Episodes, limit, report.Duration)
+	}
 	return report, true, nil
 }
 
-// untrainedEpisodes reads what learning uses: not the allowed sets, which
-// only evaluation needs.
-func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, limit int) ([]training.StoredEpisode, error) {
+// untrained is the SQL condition for episode e of policy p not being
+// trained yet. The episode log is append-only: training advances its
+// policy's watermark (policies.trained_through, the seq of the last episode
+// it applied) in the batch's transaction instead of marking episodes. That
+// is exact because a policy's episodes commit in seq order (Ingest) and are
+// trained in seq order.
+const untrained = `e.seq > p.trained_through`
+
+// trainedThrough reads the seq of the last episode training applied to the
+// policy (0: none).
+func trainedThrough(ctx context.Context, tx pgx.Tx, policyID int32) (int64, error) {
+	var seq int64
+	if err := tx.QueryRow(ctx, `SELECT trained_through FROM policies WHERE policy_id = $1`, policyID).Scan(&seq); err != nil {
+		return 0, fmt.Errorf("read training watermark: %w", err)
+	}
+	return seq, nil
+}
+
+// untrainedEpisodes reads the first limit episodes after seq after, in seq
+// order. The range is found on the seqs alone and the rows are put in order
+// here: asked for wide rows in order with a limit, the planner may instead
+// fetch every untrained row and sort them all (it did, on a fresh backlog
+// with no statistics yet: a 40 MB sort on disk for a 10,000-episode batch).
+func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, after int64, limit int) ([]training.StoredEpisode, error) {
 	rows, err := tx.Query(ctx, `
+		WITH batch AS (
+			SELECT max(seq) AS last FROM (
+				SELECT seq FROM episodes WHERE policy_id = $1 AND seq > $2 ORDER BY seq LIMIT $3) first
+		)
 		SELECT seq, received_at, episode_id, states, actions, rewards, probabilities
-		FROM episodes WHERE policy_id = $1 AND trained_at IS NULL
-		ORDER BY seq LIMIT $2`, policyID, limit)
+		FROM episodes, batch WHERE policy_id = $1 AND seq > $2 AND seq <= batch.last`, policyID, after, limit)
 	if err != nil {
 		return nil, fmt.Errorf("read untrained episodes: %w", err)
 	}
@@ -108,6 +157,7 @@ func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, limit int
 	if err != nil {
 		return nil, fmt.Errorf("read untrained episodes: %w", err)
 	}
+	slices.SortFunc(out, func(a, b training.StoredEpisode) int { return cmp.Compare(a.Seq, b.Seq) })
 	return out, nil
 }
 
@@ -144,11 +194,13 @@ func lastSeq(episodes []training.StoredEpisode) int64 {
 	return last
 }
 
-// writeBatch writes every updated pair with one upsert, marks the episodes
-// trained, moves the table's training position to trainedThrough (the
-// largest seq the batch learned from), adds the batch to the training
-// history and announces the new revision, in one round trip.
-func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []training.StoredEpisode, trainedThrough int64, res training.BatchResult,
+// writeBatch writes every updated pair with one upsert, advances the
+// policy's training watermark to trainedThrough and its table's training
+// position to learnedThrough (each only if that is further: a replay moves
+// the position over its source's episodes and leaves the watermark of the
+// target's own alone), adds the batch to the training history and
+// announces the new revision, in one round trip.
+func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, trainedThrough, learnedThrough int64, res training.BatchResult,
 	history HistorySettings, summary training.BatchSummary) (int64, error) {
 	n := len(res.Pairs)
 	states, actions := make([]string, n), make([]int16, n)
@@ -156,14 +208,11 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []train
 	for i, pr := range res.Pairs {
 		states[i], actions[i], qs[i], visits[i], deltas[i] = pr.State, pr.Action, pr.Q, pr.Visits, pr.LastDelta
 	}
-	seqs := make([]int64, len(episodes))
-	for i, ep := range episodes {
-		seqs[i] = ep.Seq
-	}
 	var revision int64
 	batch := &pgx.Batch{}
 	batch.Queue(`UPDATE policies SET revision = revision + 1, last_trained_at = now(),
-		trained_through_seq = greatest(trained_through_seq, $2) WHERE policy_id = $1 RETURNING revision`, policyID, trainedThrough).
+		trained_through = greatest(trained_through, $2), trained_through_seq = greatest(trained_through_seq, $3)
+		WHERE policy_id = $1 RETURNING revision`, policyID, trainedThrough, learnedThrough).
 		QueryRow(func(row pgx.Row) error { return row.Scan(&revision) })
 	// One statement records the changed keys for readers (q_changes) and
 	// upserts the pairs, so the key arrays cross the wire once.
@@ -183,11 +232,17 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, episodes []train
 		policyID, states, actions, qs, visits, deltas)
 	batch.Queue(`DELETE FROM q_changes WHERE policy_id = $1
 		AND revision <= (SELECT revision FROM policies WHERE policy_id = $1) - $2`, policyID, changesKept)
-	batch.Queue(`UPDATE episodes SET trained_at = now() WHERE policy_id = $1 AND seq = ANY($2)`, policyID, seqs)
 	queueHistory(batch, policyID, history, summary)
 	batch.Queue(`SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, policyID)
 	if err := tx.SendBatch(ctx, batch).Close(); err != nil {
 		return 0, fmt.Errorf("write training batch: %w", err)
 	}
 	return revision, nil
+}
+
+// SetBatchSizer makes each policy's batches as large as s says, up to the
+// maximum TrainBatch is given (nil: always up to that maximum). Call it
+// before training.
+func (db *DB) SetBatchSizer(s *training.BatchSizer) {
+	db.sizer = s
 }

@@ -152,18 +152,18 @@ func BenchmarkTrainBatchVersusNaive(b *testing.B) {
 // Statements of the one-statement-per-step worker.
 const (
 	naiveEpisodes = `SELECT seq, states, actions, rewards FROM episodes
-		WHERE policy_id = $1 AND trained_at IS NULL ORDER BY seq`
+		WHERE policy_id = $1 AND seq > (SELECT trained_through FROM policies WHERE policy_id = $1) ORDER BY seq`
 	naiveUpsert = `INSERT INTO q_values AS t (policy_id, state, action, q, visits, last_delta, updated_at, revision)
 		VALUES ($1, $2, $3, $4::float8 + $5::float8 * ($6::float8 - $4::float8), 1, $5::float8 * ($6::float8 - $4::float8), now(), 0)
 		ON CONFLICT (policy_id, state, action) DO UPDATE
 		SET q = t.q + $5::float8 * ($6::float8 - t.q), visits = t.visits + 1,
 		    last_delta = $5::float8 * ($6::float8 - t.q), updated_at = now()`
-	naiveMark = `UPDATE episodes SET trained_at = now() WHERE policy_id = $1 AND seq = $2`
+	naiveMark = `UPDATE policies SET trained_through = $2 WHERE policy_id = $1`
 )
 
 // trainNaively trains a policy's backlog with one autocommit statement per
-// update (every visit), the returns computed backwards, then marks each
-// episode trained.
+// update (every visit), the returns computed backwards, then advances the
+// training watermark past each episode.
 func trainNaively(ctx context.Context, conn *pgx.Conn, p training.Policy) (int, error) {
 	rows, err := conn.Query(ctx, naiveEpisodes, p.ID)
 	if err != nil {

@@ -21,7 +21,7 @@ type BatchTrainer interface {
 	// TrainBatch picks a policy that has untrained episodes and that no
 	// other worker is training, reads up to maxEpisodes of them in arrival
 	// order with the estimates they touch, calls learn, and writes the
-	// result and marks the episodes trained in one transaction. It reports
+	// result and records them as trained in one transaction. It reports
 	// false when no policy had work waiting.
 	TrainBatch(ctx context.Context, maxEpisodes int, learn func(BatchInput) BatchResult) (BatchReport, bool, error)
 }

@@ -1,0 +1,50 @@
+package training_test
+
+import (
+	"testing"
+	"time"
+
+	"github.com/qtally/qtally/training"
+)
+
+// Batches stay near the target time while training keeps up, double while
+// they come back full (the policy is behind), and return to the small size
+// with the first batch that is not full; each policy has its own history.
+func TestBatchSizerKeepsUpSmallAndCatchesUpLarge(t *testing.T) {
+	s := &training.BatchSizer{Target: 300 * time.Millisecond, Min: 50}
+	const most = 10_000
+	if got := s.Limit(1, most); got != most {
+		t.Fatalf("a policy with no batch yet gets %d, want the maximum %d", got, most)
+	}
+	// 200 episodes waiting, taken whole in 200 ms: 1 ms an episode, so 300
+	// fit in the target.
+	s.Observe(1, 200, most, 200*time.Millisecond)
+	if got := s.Limit(1, most); got != 300 {
+		t.Fatalf("keeping up at 1 ms an episode: limit %d, want 300", got)
+	}
+	// Full batches: behind, so the limit doubles up to the maximum.
+	want := []int{600, 1200, 2400, 4800, 9600, most, most}
+	for i, w := range want {
+		limit := s.Limit(1, most)
+		s.Observe(1, limit, limit, time.Duration(limit)*time.Millisecond)
+		if got := s.Limit(1, most); got != w {
+			t.Fatalf("after full batch %d: limit %d, want %d", i+1, got, w)
+		}
+	}
+	// Caught up: back to what fits in the target.
+	s.Observe(1, 30, most, 30*time.Millisecond)
+	if got := s.Limit(1, most); got != 300 {
+		t.Fatalf("caught up at 1 ms an episode: limit %d, want 300", got)
+	}
+	// Another policy is unaffected; a slow one is held at the minimum.
+	if got := s.Limit(2, most); got != most {
+		t.Fatalf("policy 2 with no batch yet: limit %d", got)
+	}
+	s.Observe(2, 10, most, 10*time.Second)
+	if got := s.Limit(2, most); got != 50 {
+		t.Fatalf("a policy at 1 s an episode: limit %d, want the minimum 50", got)
+	}
+	if got := s.Limit(1, 100); got != 100 {
+		t.Fatalf("a smaller maximum: limit %d, want 100", got)
+	}
+}
