@@ -77,8 +77,8 @@ func TestWatermarkMigrationKeepsTrainingPosition(t *testing.T) {
 	}
 	defer conn.Close()
 	for _, name := range []string{"half", "all", "none", "empty"} {
-		if _, err := conn.Exec(`INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q)
-			VALUES ($1, '{go}', 1, 0.5, 0.1, 0.1, 'every', 0)`, name); err != nil {
+		if _, err := conn.Exec(`INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q, max_states)
+			VALUES ($1, '{go}', 1, 0.5, 0.1, 0.1, 'every', 0, 1000)`, name); err != nil {
 			t.Fatal(err)
 		}
 	}
@@ -142,8 +142,8 @@ func TestWatermarkMigrationRefusesAGap(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer conn.Close()
-	if _, err := conn.Exec(`INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q)
-		VALUES ('gappy', '{go}', 1, 0.5, 0.1, 0.1, 'every', 0)`); err != nil {
+	if _, err := conn.Exec(`INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q, max_states)
+		VALUES ('gappy', '{go}', 1, 0.5, 0.1, 0.1, 'every', 0, 1000)`); err != nil {
 		t.Fatal(err)
 	}
 	oldEpisodes(t, conn, "gappy", true, false, true)
