@@ -14,8 +14,8 @@ import (
 func TestWorkerHelpListsOnlyWhatTheWorkerReads(t *testing.T) {
 	workerFlags := []string{
 		flagDatabaseURL, flagListen, flagLogFormat, flagPollInterval, flagShutdownGrace, flagDBMaxConns, flagPprofListen,
-		flagProblemDocs,                      // the health server answers problems too
-		flagHistoryBucket, flagHistoryWindow, // the worker writes the training history and drops old buckets
+		flagProblemDocs,                                                           // the health server answers problems too
+		flagHistoryBucket, flagHistoryWindow, flagHistoryFine, flagHistoryFineFor, // the worker writes the training history, rolls it up and drops old buckets
 		flagBatchEpisodes, flagEpisodeRetention, flagPruneInterval, flagPruneBatch, flagJobStaleAfter,
 	}
 	apiFlags := []string{flagMaxBodyBytes, flagMaxEpisodes, flagMaxSteps, flagMaxIDLength, flagMaxStateLength, flagCoverageVisits, flagNoAuth, flagNoWorker}

@@ -47,6 +47,16 @@ type Settings struct {
 	// EpsilonDecayVisits is k in epsilon(s) = max(epsilon_min, epsilon*k/(k+N(s)));
 	// 0 turns the decay off.
 	EpsilonDecayVisits float64 `json:"epsilon_decay_visits,omitempty" validate:"gte=0,finite"`
+	// ReturnTarget is a mean return the application knows to aim for (an
+	// exact optimum, or a goal); the status page draws it beside the
+	// learning curve. It changes nothing in learning.
+	ReturnTarget *ReturnTarget `json:"return_target,omitempty"`
+}
+
+// ReturnTarget is a mean return to compare learning with, and what it is.
+type ReturnTarget struct {
+	Value *float64 `json:"value" validate:"required,finite,gte=-1e15,lte=1e15"`
+	Label string  `json:"label" validate:"max=64,actionname"`
 }
 
 // DefaultSettings are used for every field a client leaves out.
