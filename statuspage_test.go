@@ -217,9 +217,9 @@ func pointValue(t *testing.T, label string) float64 {
 // the JSON API's, and names with markup in them show as text.
 func TestStatusPageInBrowser(t *testing.T) {
 	ctx := newBrowser(t)
-	// One-second history buckets, so that a few batches a second apart
-	// give the charts several points.
-	s := startService(t, pgtest.NewDatabase(t), "serve", "--history-bucket", "1s", "--batch-episodes", "1000")
+	// Recent history is kept per second (the default), so a few batches a
+	// second apart give the charts several points.
+	s := startService(t, pgtest.NewDatabase(t), "serve", "--batch-episodes", "1000")
 	const policy = "dunning.eu-west_2"
 	actions := []string{"wait & see", "<i>call</i>", `"email"`}
 	const gamma = 0.9
@@ -279,20 +279,28 @@ func TestStatusPageInBrowser(t *testing.T) {
 			}
 		}
 	}
-	for id, series := range map[string]int{"return": 1, "drift": 1, "churn": 1, "backlog": 1, "coverage": 2} {
+	for id, series := range map[string]int{"learning": 1, "return": 1, "drift": 1, "churn": 1, "backlog": 1, "coverage": 2} {
 		if len(charts[id]) != series {
 			t.Fatalf("chart %s has %d series, want %d (charts: %v)", id, len(charts[id]), series, charts)
 		}
 		for _, points := range charts[id] {
-			if len(points) != batches {
+			// The backlog is sampled at most every few seconds.
+			if len(points) != batches && (id != "backlog" || len(points) < 1 || len(points) > batches) {
 				t.Fatalf("chart %s has %d points, want one per batch (%d): %q", id, len(points), batches, points)
 			}
 		}
 	}
+	var trained int64
 	for i, label := range charts["return"][0] {
 		// Four significant digits are shown.
 		if got, want := pointValue(t, label), wantMeans[i]; math.Abs(got-want) > 5e-4*math.Max(1, math.Abs(want)) {
 			t.Fatalf("return point %d reads %q; the batch's mean G0 is %v", i, label, want)
+		}
+		// The learning curve has the same means, after each batch's episodes.
+		trained += int64(15 + 5*i)
+		if want := fmt.Sprintf("after %s episodes mean return: ", formatThousands(trained)); !strings.HasPrefix(charts["learning"][0][i], want) ||
+			pointValue(t, charts["learning"][0][i]) != pointValue(t, label) {
+			t.Fatalf("learning curve point %d reads %q; want %q and the return chart's %q", i, charts["learning"][0][i], want, label)
 		}
 	}
 	for i, label := range charts["backlog"][0] {
@@ -361,6 +369,15 @@ func TestStatusPageInBrowser(t *testing.T) {
 	if int64(len(seen)) != st.States {
 		t.Fatalf("the state pages list %d states; the policy has %d", len(seen), st.States)
 	}
+}
+
+// formatThousands prints n with a comma between each group of three digits.
+func formatThousands(n int64) string {
+	s := strconv.FormatInt(n, 10)
+	for i := len(s) - 3; i > 0; i -= 3 {
+		s = s[:i] + "," + s[i:]
+	}
+	return s
 }
 
 func contains(list []string, s string) bool {

@@ -162,7 +162,9 @@ type windowLink struct {
 type policyView struct {
 	pageBase
 	policyRow
-	Window      string
+	// Span names what the charts cover: the window, or the policy's
+	// training so far when it began within the window.
+	Span        string
 	Windows     []windowLink
 	Charts      []chartView
 	MostDrift   []stateRow
@@ -188,7 +190,7 @@ func handlePolicyPage(in Inspector, cfg Config) echo.HandlerFunc {
 		v := policyView{
 			pageBase:    pageBase{Title: name, Now: now, Refresh: 30},
 			policyRow:   newPolicyRow(report.Status, now),
-			Window:      formatDuration(window),
+			Span:        chartSpan(report),
 			Charts:      historyCharts(report),
 			MostDrift:   newStateRows(report.MostDrift, now),
 			MostVisited: newStateRows(report.MostVisited, now),
@@ -214,6 +216,16 @@ func windowParam(c echo.Context, kept time.Duration) (time.Duration, error) {
 		return 0, training.Invalid(-1, -1, "window", "must be a duration such as 90m or 6h, from %v to the %v of history kept", lo, kept)
 	}
 	return w, nil
+}
+
+// chartSpan names what the time charts cover.
+func chartSpan(r training.PolicyReport) string {
+	last := "Last " + formatDuration(r.Window)
+	// A minute's slack: the oldest row kept may start just inside the window.
+	if len(r.Buckets) > 0 && r.Buckets[0].Start.After(r.Now.Add(-r.Window+time.Minute)) {
+		return last + ": training began " + formatDuration(r.Now.Sub(r.Buckets[0].Start)) + " ago"
+	}
+	return last
 }
 
 // maxChartPoints bounds the points of a chart, whatever the span.
