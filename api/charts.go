@@ -36,6 +36,9 @@ type chartSeries struct {
 type chartTick struct {
 	Pos   float64
 	Label string
+	// Anchor aligns an x label to its tick: "end" at the right edge, so
+	// that the label stays inside the chart.
+	Anchor string
 }
 
 // chartTarget is a horizontal line at a value the client named, such as
@@ -152,7 +155,11 @@ func newChart(id, title, note string, axis xAxis, zeroBased bool, targets []targ
 		c.YTicks = append(c.YTicks, chartTick{Pos: round2(y(v)), Label: formatNumber(v)})
 	}
 	for _, v := range axis.ticks {
-		c.XTicks = append(c.XTicks, chartTick{Pos: round2(x(v)), Label: axis.label(v)})
+		tick := chartTick{Pos: round2(x(v)), Label: axis.label(v), Anchor: "middle"}
+		if tick.Pos >= c.PlotRight-1 {
+			tick.Anchor = "end"
+		}
+		c.XTicks = append(c.XTicks, tick)
 	}
 	for _, t := range targets {
 		c.Targets = append(c.Targets, chartTarget{Y: round2(y(t.value)), Label: t.label + " " + formatNumber(t.value)})

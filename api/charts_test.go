@@ -2,8 +2,8 @@ package api
 
 import (
 	"math"
-	"strings"
 	"math/rand/v2"
+	"strings"
 	"testing"
 	"time"
 )

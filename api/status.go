@@ -260,7 +260,7 @@ func historyCharts(r training.PolicyReport) []chartView {
 		// The policy is older than the history shown: count from its start.
 		counted += " since " + progress.From.UTC().Format("15:04")
 	}
-	learning := newChart("learning", "Learning curve", "mean discounted return G0 against "+counted+", per "+formatDuration(progress.Step)+" of training",
+	learning := newChart("learning", "Learning curve", "mean discounted return G0 as played (exploring included) against "+counted+", per "+formatDuration(progress.Step)+" of training",
 		countAxis(trained, "episodes"), false, targets, curve)
 
 	line := r.Timeline(maxChartPoints)

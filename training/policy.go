@@ -56,7 +56,7 @@ type Settings struct {
 // ReturnTarget is a mean return to compare learning with, and what it is.
 type ReturnTarget struct {
 	Value *float64 `json:"value" validate:"required,finite,gte=-1e15,lte=1e15"`
-	Label string  `json:"label" validate:"max=64,actionname"`
+	Label string   `json:"label" validate:"max=64,actionname"`
 }
 
 // DefaultSettings are used for every field a client leaves out.
