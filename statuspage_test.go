@@ -479,9 +479,10 @@ func TestLearningCurveInBrowser(t *testing.T) {
 	}
 
 	// The curve rises: the mean of its last fifth of points is well above
-	// that of its first fifth, by at least a third of the way from there to
-	// the optimum (6,000 episodes are a fifth of the demo's full run, and
-	// the curve is of exploring behaviour, which stays below the optimum).
+	// that of its first fifth, by at least a quarter of the way from there
+	// to the optimum (6,000 episodes are a fifth of the demo's full run, and
+	// the curve is of exploring behaviour, which stays below the optimum;
+	// runs here rose by about 40% of the way).
 	curve := charts["learning"]
 	fifth := len(curve) / 5
 	mean := func(labels []string) float64 {
@@ -493,7 +494,7 @@ func TestLearningCurveInBrowser(t *testing.T) {
 	}
 	early, late := mean(curve[:fifth]), mean(curve[len(curve)-fifth:])
 	t.Logf("learning curve: %d points, early mean %.3f, late mean %.3f, optimum %.3f", len(curve), early, late, report.Optimal)
-	if late-early < (report.Optimal-early)/3 {
+	if late-early < (report.Optimal-early)/4 {
 		t.Fatalf("the learning curve does not rise: early mean %.3f, late mean %.3f, optimum %.3f", early, late, report.Optimal)
 	}
 	lastLabel := curve[len(curve)-1]

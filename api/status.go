@@ -258,7 +258,7 @@ func historyCharts(r training.PolicyReport) []chartView {
 	counted := "episodes trained"
 	if r.Status.CreatedAt.Before(r.Now.Add(-r.Window)) {
 		// The policy is older than the history shown: count from its start.
-		counted += " since " + progress.From.UTC().Format("15:04")
+		counted += " since " + progress.From.UTC().Format("Jan 2 15:04")
 	}
 	learning := newChart("learning", "Learning curve", "mean discounted return G0 as played (exploring included) against "+counted+", per "+formatDuration(progress.Step)+" of training",
 		countAxis(trained, "episodes"), false, targets, curve)
