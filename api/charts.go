@@ -219,7 +219,7 @@ func niceTicks(lo, hi float64, n int) []float64 {
 
 // timeTicks returns up to about n round clock times within [from, to].
 func timeTicks(from, to time.Time, n int) []time.Time {
-	steps := []time.Duration{time.Second, 5 * time.Second, 15 * time.Second, 30 * time.Second,
+	steps := []time.Duration{time.Second, 2 * time.Second, 5 * time.Second, 10 * time.Second, 15 * time.Second, 30 * time.Second,
 		time.Minute, 5 * time.Minute, 15 * time.Minute, 30 * time.Minute,
 		time.Hour, 2 * time.Hour, 3 * time.Hour, 6 * time.Hour, 12 * time.Hour, 24 * time.Hour}
 	step := steps[len(steps)-1]
