@@ -1,4 +1,4 @@
-.PHONY: test build fmt-check dev image bench release
+.PHONY: test build fmt-check dev screenshot image bench release
 
 # Installs what the tests need when missing, vets and tests everything, then
 # runs every benchmark once (-short: smaller volumes) so that none of them
@@ -20,6 +20,15 @@ fmt-check:
 dev:
 	scripts/setup-test-machine.sh postgresql
 	go run . dev --demo
+
+# Runs the demo as `make dev` does, on a private PostgreSQL, and saves the
+# policy page as headless Chromium shows it: docs/images/policy-page.png, the
+# README's picture (the test also checks the learning curve on the way).
+screenshot:
+	scripts/setup-test-machine.sh postgresql chromium
+	QTALLY_SCREENSHOT_DEMO=full go test -count=1 -run '^TestLearningCurveInBrowser$$' .
+	mkdir -p docs/images
+	cp test-output/policy-page.png docs/images/policy-page.png
 
 # Container image (deploy/Dockerfile); needs a Docker engine.
 IMAGE ?= qtally:dev

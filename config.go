@@ -58,6 +58,8 @@ const (
 	flagCoverageVisits = "coverage-visits"
 	flagHistoryBucket  = "history-bucket"
 	flagHistoryWindow  = "history-window"
+	flagHistoryFine    = "history-fine-bucket"
+	flagHistoryFineFor = "history-fine-window"
 	flagPprofListen    = "pprof-listen"
 	flagProblemDocs    = "problem-docs"
 )
@@ -116,6 +118,8 @@ func serviceFlags(env flagEnv, listenDefault string, roles serviceRoles) []cli.F
 		&cli.Int32Flag{Name: flagDBMaxConns, Value: 20, Usage: "most PostgreSQL connections of this process", Sources: env("QTALLY_DB_MAX_CONNS")},
 		&cli.DurationFlag{Name: flagHistoryBucket, Value: storage.DefaultHistory().Bucket, Usage: "stretch of time one row of training history sums up", Sources: env("QTALLY_HISTORY_BUCKET")},
 		&cli.DurationFlag{Name: flagHistoryWindow, Value: storage.DefaultHistory().Window, Usage: "how long training history is kept", Sources: env("QTALLY_HISTORY_WINDOW")},
+		&cli.DurationFlag{Name: flagHistoryFine, Value: storage.DefaultHistory().FineBucket, Usage: "stretch of time one row of recent training history sums up", Sources: env("QTALLY_HISTORY_FINE_BUCKET")},
+		&cli.DurationFlag{Name: flagHistoryFineFor, Value: storage.DefaultHistory().FineWindow, Usage: "how long training history stays fine before it is rolled up into --history-bucket rows", Sources: env("QTALLY_HISTORY_FINE_WINDOW")},
 		&cli.StringFlag{Name: flagPprofListen, Usage: "serve Go profiles (net/http/pprof) on this loopback address, e.g. 127.0.0.1:6060; off when empty", Sources: env("QTALLY_PPROF_LISTEN")},
 		&cli.StringFlag{Name: flagProblemDocs, Value: api.DefaultProblemDocs, Usage: "address of the problem type documentation (docs/problems.md); each problem type URI is this address, # and the problem's name", Sources: env("QTALLY_PROBLEM_DOCS")},
 		logFlag(env),
@@ -197,8 +201,9 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 		Limits:        training.DefaultLimits(),
 		ShutdownGrace: cmd.Duration(flagShutdownGrace),
 		DBMaxConns:    cmd.Int32(flagDBMaxConns),
-		History:       storage.HistorySettings{Bucket: cmd.Duration(flagHistoryBucket), Window: cmd.Duration(flagHistoryWindow)},
-		PprofListen:   cmd.String(flagPprofListen),
+		History: storage.HistorySettings{FineBucket: cmd.Duration(flagHistoryFine), FineWindow: cmd.Duration(flagHistoryFineFor),
+			Bucket: cmd.Duration(flagHistoryBucket), Window: cmd.Duration(flagHistoryWindow)},
+		PprofListen: cmd.String(flagPprofListen),
 		Server: serverLimits{
 			ReadHeaderTimeout: cmd.Duration(flagReadHeaderTimeout),
 			ReadTimeout:       cmd.Duration(flagReadTimeout),
@@ -284,7 +289,7 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 		return cfg, fmt.Errorf("--%s must be positive", flagPollInterval)
 	}
 	if err := cfg.History.Validate(); err != nil {
-		return cfg, fmt.Errorf("--%s, --%s: %w", flagHistoryBucket, flagHistoryWindow, err)
+		return cfg, fmt.Errorf("--%s, --%s, --%s, --%s: %w", flagHistoryFine, flagHistoryFineFor, flagHistoryBucket, flagHistoryWindow, err)
 	}
 	return cfg, nil
 }

@@ -17,7 +17,10 @@ func TestWorkerHelpListsOnlyWhatTheWorkerReads(t *testing.T) {
 		flagProblemDocs, // the health server answers problems too
 		// and bounds slow and idle clients like the API's
 		flagReadHeaderTimeout, flagReadTimeout, flagWriteTimeout, flagIdleTimeout, flagMaxHeaderBytes,
-		flagHistoryBucket, flagHistoryWindow, // the worker writes the training history and drops old buckets
+		// the worker writes the training history, rolls it up and drops old buckets
+		flagHistoryBucket, flagHistoryWindow, flagHistoryFine, flagHistoryFineFor,
+		// and trains in batches sized to the backlog, with warm estimates
+		flagBatchTarget, flagWarmPairs,
 		flagBatchEpisodes, flagEpisodeRetention, flagPruneInterval, flagPruneBatch, flagJobStaleAfter,
 	}
 	apiFlags := []string{flagMaxBodyBytes, flagMaxEpisodes, flagMaxSteps, flagMaxIDLength, flagMaxStateLength, flagCoverageVisits, flagNoAuth, flagNoWorker}

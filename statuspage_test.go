@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"io"
 	"math"
 	"math/rand/v2"
 	"os"
@@ -17,6 +18,7 @@ import (
 
 	"github.com/chromedp/chromedp"
 
+	"github.com/qtally/qtally/demo"
 	"github.com/qtally/qtally/storage/pgtest"
 )
 
@@ -217,9 +219,9 @@ func pointValue(t *testing.T, label string) float64 {
 // the JSON API's, and names with markup in them show as text.
 func TestStatusPageInBrowser(t *testing.T) {
 	ctx := newBrowser(t)
-	// One-second history buckets, so that a few batches a second apart
-	// give the charts several points.
-	s := startService(t, pgtest.NewDatabase(t), "serve", "--history-bucket", "1s", "--batch-episodes", "1000")
+	// Recent history is kept per second (the default), so a few batches a
+	// second apart give the charts several points.
+	s := startService(t, pgtest.NewDatabase(t), "serve", "--batch-episodes", "1000")
 	const policy = "dunning.eu-west_2"
 	actions := []string{"wait & see", "<i>call</i>", `"email"`}
 	const gamma = 0.9
@@ -279,20 +281,28 @@ func TestStatusPageInBrowser(t *testing.T) {
 			}
 		}
 	}
-	for id, series := range map[string]int{"return": 1, "drift": 1, "churn": 1, "backlog": 1, "coverage": 2} {
+	for id, series := range map[string]int{"learning": 1, "return": 1, "drift": 1, "churn": 1, "backlog": 1, "coverage": 2} {
 		if len(charts[id]) != series {
 			t.Fatalf("chart %s has %d series, want %d (charts: %v)", id, len(charts[id]), series, charts)
 		}
 		for _, points := range charts[id] {
-			if len(points) != batches {
+			// The backlog is sampled at most every few seconds.
+			if len(points) != batches && (id != "backlog" || len(points) < 1 || len(points) > batches) {
 				t.Fatalf("chart %s has %d points, want one per batch (%d): %q", id, len(points), batches, points)
 			}
 		}
 	}
+	var trained int64
 	for i, label := range charts["return"][0] {
 		// Four significant digits are shown.
 		if got, want := pointValue(t, label), wantMeans[i]; math.Abs(got-want) > 5e-4*math.Max(1, math.Abs(want)) {
 			t.Fatalf("return point %d reads %q; the batch's mean G0 is %v", i, label, want)
+		}
+		// The learning curve has the same means, after each batch's episodes.
+		trained += int64(15 + 5*i)
+		if want := fmt.Sprintf("after %s episodes mean return: ", formatThousands(trained)); !strings.HasPrefix(charts["learning"][0][i], want) ||
+			pointValue(t, charts["learning"][0][i]) != pointValue(t, label) {
+			t.Fatalf("learning curve point %d reads %q; want %q and the return chart's %q", i, charts["learning"][0][i], want, label)
 		}
 	}
 	for i, label := range charts["backlog"][0] {
@@ -363,6 +373,15 @@ func TestStatusPageInBrowser(t *testing.T) {
 	}
 }
 
+// formatThousands prints n with a comma between each group of three digits.
+func formatThousands(n int64) string {
+	s := strconv.FormatInt(n, 10)
+	for i := len(s) - 3; i > 0; i -= 3 {
+		s = s[:i] + "," + s[i:]
+	}
+	return s
+}
+
 func contains(list []string, s string) bool {
 	for _, x := range list {
 		if x == s {
@@ -393,5 +412,178 @@ func TestStatusPagesRefuseBadInput(t *testing.T) {
 	r = s.send("GET", "/policies/plain/states?sort=alphabet", "", nil, true)
 	if r.Status != 400 || !strings.Contains(string(r.Body), `"field":"sort"`) {
 		t.Fatalf("sort=alphabet: %d %s", r.Status, r.Body)
+	}
+}
+
+// A new user's first minute: the demo's customers run against a fresh
+// service, and the policy page shows the learning curve. The charts span
+// the policy's life in one-second points, the learning curve rises towards
+// the demo's exact optimum, drawn as the policy's return target, and the
+// page is a screenshot for the README (make screenshot).
+func TestLearningCurveInBrowser(t *testing.T) {
+	ctx := newBrowser(t)
+	s := startService(t, pgtest.NewDatabase(t), "serve")
+	cfg := demo.DefaultConfig()
+	// Thousands of episodes, paced so that they span most of a minute
+	// (on a machine too slow for the pace they take longer);
+	// QTALLY_SCREENSHOT_DEMO=full runs what `make dev` runs instead.
+	if os.Getenv("QTALLY_SCREENSHOT_DEMO") != "full" {
+		cfg.Episodes, cfg.Rate, cfg.BatchSize = 6000, 150, 50
+	}
+	cfg.BaseURL = s.URL
+	cfg.Token = strings.TrimPrefix(s.authorization, "Bearer ")
+	cfg.SettleTimeout = 2 * time.Minute
+	runCtx, cancel := context.WithTimeout(context.Background(), 10*time.Minute)
+	defer cancel()
+	report, err := demo.Run(runCtx, cfg, io.Discard)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Logf("\n%s", report)
+	if report.Untrained != 0 {
+		t.Fatalf("%d episodes were still untrained", report.Untrained)
+	}
+
+	var policy struct {
+		ReturnTarget *struct {
+			Value float64 `json:"value"`
+			Label string  `json:"label"`
+		} `json:"return_target"`
+	}
+	s.call("GET", "/v1/policies/"+cfg.Policy, nil, 200).decode(t, &policy)
+	if policy.ReturnTarget == nil || policy.ReturnTarget.Value != report.Optimal || policy.ReturnTarget.Label != "exact optimum" {
+		t.Fatalf("the demo's policy has return target %+v, want its exact optimum %v", policy.ReturnTarget, report.Optimal)
+	}
+
+	s.signIn(t, ctx)
+	page := s.open(t, ctx, "/policies/"+cfg.Policy, "section.figures")
+	if page.Injected != 0 {
+		t.Fatalf("the page has %d script or injected elements; the charts must draw without script", page.Injected)
+	}
+	screenshotCharts(t, ctx, "policy-page.png")
+	charts := map[string][]string{}
+	for _, c := range page.Charts {
+		if len(c.Series) > 0 {
+			charts[c.ID] = c.Series[0].Points
+		}
+		for _, sr := range c.Series {
+			if sr.Outside > 0 {
+				t.Fatalf("chart %s series %s draws %d of its points outside the plot", c.ID, sr.Name, sr.Outside)
+			}
+		}
+	}
+	for _, id := range []string{"learning", "return"} {
+		if n := len(charts[id]); n < 30 {
+			t.Fatalf("chart %s has %d points after a %s run of %d episodes; want at least 30", id, n, report.Elapsed.Round(time.Second), report.Episodes)
+		}
+	}
+
+	// The curve rises: the mean of its last fifth of points is well above
+	// that of its first fifth, by at least a quarter of the way from there
+	// to the optimum (6,000 episodes are a fifth of the demo's full run, and
+	// the curve is of exploring behaviour, which stays below the optimum;
+	// runs here rose by about 40% of the way).
+	curve := charts["learning"]
+	fifth := len(curve) / 5
+	mean := func(labels []string) float64 {
+		sum := 0.0
+		for _, l := range labels {
+			sum += pointValue(t, l)
+		}
+		return sum / float64(len(labels))
+	}
+	early, late := mean(curve[:fifth]), mean(curve[len(curve)-fifth:])
+	t.Logf("learning curve: %d points, early mean %.3f, late mean %.3f, optimum %.3f", len(curve), early, late, report.Optimal)
+	if late-early < (report.Optimal-early)/4 {
+		t.Fatalf("the learning curve does not rise: early mean %.3f, late mean %.3f, optimum %.3f", early, late, report.Optimal)
+	}
+	lastLabel := curve[len(curve)-1]
+	if want := "after " + formatThousands(int64(report.Episodes)) + " episodes"; !strings.HasPrefix(lastLabel, want) {
+		t.Fatalf("the learning curve ends at %q; want %q (every episode trained)", lastLabel, want)
+	}
+
+	// The target line is drawn on both return charts.
+	targets, err := chromedp.Run(ctx, chromedp.Evaluate[[]string](`[...document.querySelectorAll('figure.chart g.target')].map(g => g.closest('figure').dataset.chart + ': ' + g.dataset.target)`))
+	if err != nil {
+		t.Fatal(err)
+	}
+	label := "exact optimum " + strconv.FormatFloat(report.Optimal, 'f', -1, 64)
+	if len(targets) != 2 || !strings.HasPrefix(targets[0], "learning: exact optimum ") || !strings.HasPrefix(targets[1], "return: exact optimum ") {
+		t.Fatalf("target lines %q, want the learning and return charts to show %s", targets, label)
+	}
+}
+
+// screenshotCharts saves the top of the page, down to the charts, as a
+// PNG under test-output/.
+func screenshotCharts(t *testing.T, ctx context.Context, name string) {
+	t.Helper()
+	bottom, err := chromedp.Run(ctx, chromedp.Evaluate[float64](`document.querySelector('section.charts').getBoundingClientRect().bottom + window.scrollY + 16`))
+	if err != nil {
+		t.Fatalf("find the charts: %v", err)
+	}
+	if err := chromedp.Do(ctx, chromedp.EmulateViewport(browserWidth, int64(bottom))); err != nil {
+		t.Fatalf("resize the viewport: %v", err)
+	}
+	png, err := chromedp.Run(ctx, chromedp.CaptureScreenshot())
+	if err != nil {
+		t.Fatalf("screenshot: %v", err)
+	}
+	if err := os.MkdirAll("test-output", 0o755); err != nil {
+		t.Fatal(err)
+	}
+	path := filepath.Join("test-output", name)
+	if err := os.WriteFile(path, png, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	t.Logf("screenshot: %s", path)
+}
+
+// A policy's return target is a setting of its own: stored and answered
+// as given, replaced by the next PUT, drawn on the page, and refused with
+// the field named when it is incomplete or out of range.
+func TestReturnTargetIsAPolicySetting(t *testing.T) {
+	s := startService(t, pgtest.NewDatabase(t))
+	const path = "/v1/policies/shipping"
+	put := func(target any, status int) reply {
+		t.Helper()
+		body := map[string]any{"actions": []string{"courier", "post"}}
+		if target != nil {
+			body["return_target"] = target
+		}
+		return s.send("PUT", path, "application/json", must(json.Marshal(body)), status >= 400)
+	}
+	if r := put(map[string]any{"value": 12.5, "label": "best rule of the old system"}, 201); r.Status != 201 ||
+		!strings.Contains(string(r.Body), `"return_target":{"value":12.5,"label":"best rule of the old system"}`) {
+		t.Fatalf("PUT with a target: %d %s", r.Status, r.Body)
+	}
+	if body := string(s.call("GET", path, nil, 200).Body); !strings.Contains(body, `"return_target":{"value":12.5,"label":"best rule of the old system"}`) {
+		t.Fatalf("the status does not carry the target: %s", body)
+	}
+	page := string(s.call("GET", "/policies/shipping", nil, 200).Body)
+	if strings.Count(page, `data-target="best rule of the old system 12.5"`) != 2 {
+		t.Fatal("the page should draw the target on the learning curve and the mean return chart")
+	}
+	if r := put(nil, 200); strings.Contains(string(r.Body), "return_target") {
+		t.Fatalf("a PUT without a target keeps one: %s", r.Body)
+	}
+	if page := string(s.call("GET", "/policies/shipping", nil, 200).Body); strings.Contains(page, "data-target") {
+		t.Fatal("a policy without a target has a target line")
+	}
+	for _, c := range []struct {
+		target any
+		field  string
+	}{
+		{map[string]any{"label": "goal"}, "return_target.value"},
+		{map[string]any{"value": 1e16}, "return_target.value"},
+		{map[string]any{"value": 1, "label": strings.Repeat("x", 65)}, "return_target.label"},
+		{map[string]any{"value": 1, "label": "goal\n"}, "return_target.label"},
+	} {
+		r := put(c.target, 400)
+		if r.Status != 400 || !strings.Contains(string(r.Body), `"field":"`+c.field+`"`) {
+			t.Fatalf("target %v: %d %s; want 400 naming %s", c.target, r.Status, r.Body, c.field)
+		}
+	}
+	if body := string(s.call("GET", path, nil, 200).Body); strings.Contains(body, "return_target") {
+		t.Fatalf("a refused PUT changed the policy: %s", body)
 	}
 }

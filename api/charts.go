@@ -36,6 +36,16 @@ type chartSeries struct {
 type chartTick struct {
 	Pos   float64
 	Label string
+	// Anchor aligns an x label to its tick: "end" at the right edge, so
+	// that the label stays inside the chart.
+	Anchor string
+}
+
+// chartTarget is a horizontal line at a value the client named, such as
+// the optimum the mean return should approach.
+type chartTarget struct {
+	Y     float64
+	Label string
 }
 
 type chartView struct {
@@ -46,21 +56,72 @@ type chartView struct {
 	PlotTop         float64
 	PlotBottom      float64
 	Series          []chartSeries
+	Targets         []chartTarget
 	YTicks, XTicks  []chartTick
 	Empty           bool
 }
 
-// seriesData is one line of a chart before it is placed.
+// seriesData is one line of a chart before it is placed: values at
+// positions on the x axis.
 type seriesData struct {
 	name   string
-	times  []time.Time
+	xs     []float64
 	values []float64
 }
 
-// newChart lays out series over [from, to]. Values of zeroBased charts
-// (counts) keep zero in view. Consecutive points further apart than gap are
-// not joined.
-func newChart(id, title, note string, from, to time.Time, gap time.Duration, zeroBased bool, series ...seriesData) chartView {
+func (s *seriesData) add(x, v float64) {
+	s.xs = append(s.xs, x)
+	s.values = append(s.values, v)
+}
+
+// targetLine is a value to draw across a chart, and what it is.
+type targetLine struct {
+	value float64
+	label string
+}
+
+// xAxis says where the x axis starts and ends, where its labelled ticks
+// go, and how to name a position.
+type xAxis struct {
+	lo, hi float64
+	ticks  []float64
+	// label names a tick; point names a point's position in its tooltip.
+	label, point func(float64) string
+	// gap: consecutive points further apart are not joined.
+	gap float64
+}
+
+// timeAxis spans [from, to]; positions are Unix seconds.
+func timeAxis(from, to time.Time, gap time.Duration) xAxis {
+	clock := "15:04"
+	if to.Sub(from) <= 10*time.Minute {
+		clock = "15:04:05"
+	}
+	at := func(x float64) time.Time { return time.Unix(0, int64(math.Round(x*1e9))).UTC() }
+	a := xAxis{lo: unixSeconds(from), hi: unixSeconds(to), gap: gap.Seconds(),
+		label: func(x float64) string { return at(x).Format(clock) },
+		point: func(x float64) string { return at(x).Format("15:04:05") }}
+	for _, t := range timeTicks(from, to, chartXLabels) {
+		a.ticks = append(a.ticks, unixSeconds(t))
+	}
+	return a
+}
+
+func unixSeconds(t time.Time) float64 { return float64(t.UnixNano()) / 1e9 }
+
+// countAxis spans 0 to a round number at or above most; positions are
+// counts, named by noun.
+func countAxis(most float64, noun string) xAxis {
+	ticks := niceTicks(0, math.Max(most, 1), chartXLabels)
+	return xAxis{lo: 0, hi: ticks[len(ticks)-1], ticks: ticks, gap: math.Inf(1),
+		label: func(x float64) string { return formatCount(int64(math.Round(x))) },
+		point: func(x float64) string { return "after " + formatCount(int64(math.Round(x))) + " " + noun }}
+}
+
+// newChart lays out series and target lines over the x axis. Values of
+// zeroBased charts (counts) keep zero in view; target lines are always in
+// view.
+func newChart(id, title, note string, axis xAxis, zeroBased bool, targets []targetLine, series ...seriesData) chartView {
 	c := chartView{ID: id, Title: title, Note: note, Width: chartWidth, Height: chartHeight,
 		PlotLeft: chartLeft, PlotRight: chartWidth - chartRight, PlotTop: chartTop, PlotBottom: chartHeight - chartBottom}
 	lo, hi := math.Inf(1), math.Inf(-1)
@@ -70,7 +131,10 @@ func newChart(id, title, note string, from, to time.Time, gap time.Duration, zer
 		}
 	}
 	c.Empty = math.IsInf(lo, 1)
-	if c.Empty {
+	for _, t := range targets {
+		lo, hi = math.Min(lo, t.value), math.Max(hi, t.value)
+	}
+	if math.IsInf(lo, 1) {
 		lo, hi = 0, 1
 	}
 	if zeroBased {
@@ -82,26 +146,31 @@ func newChart(id, title, note string, from, to time.Time, gap time.Duration, zer
 	ticks := niceTicks(lo, hi, chartYTicks)
 	lo, hi = ticks[0], ticks[len(ticks)-1]
 	y := func(v float64) float64 { return c.PlotBottom - (v-lo)/(hi-lo)*(c.PlotBottom-c.PlotTop) }
-	span := to.Sub(from).Seconds()
-	x := func(t time.Time) float64 { return c.PlotLeft + t.Sub(from).Seconds()/span*(c.PlotRight-c.PlotLeft) }
+	span := axis.hi - axis.lo
+	if span <= 0 {
+		span = 1
+	}
+	x := func(v float64) float64 { return c.PlotLeft + (v-axis.lo)/span*(c.PlotRight-c.PlotLeft) }
 	for _, v := range ticks {
 		c.YTicks = append(c.YTicks, chartTick{Pos: round2(y(v)), Label: formatNumber(v)})
 	}
-	clock := "15:04"
-	if to.Sub(from) <= 10*time.Minute {
-		clock = "15:04:05"
+	for _, v := range axis.ticks {
+		tick := chartTick{Pos: round2(x(v)), Label: axis.label(v), Anchor: "middle"}
+		if tick.Pos >= c.PlotRight-1 {
+			tick.Anchor = "end"
+		}
+		c.XTicks = append(c.XTicks, tick)
 	}
-	for _, t := range timeTicks(from, to, chartXLabels) {
-		c.XTicks = append(c.XTicks, chartTick{Pos: round2(x(t)), Label: t.UTC().Format(clock)})
+	for _, t := range targets {
+		c.Targets = append(c.Targets, chartTarget{Y: round2(y(t.value)), Label: t.label + " " + formatNumber(t.value)})
 	}
 	for i, s := range series {
 		cs := chartSeries{Name: s.name, Class: "s" + strconv.Itoa(i)}
 		var path strings.Builder
-		for j, t := range s.times {
-			p := chartPoint{X: round2(x(t)), Y: round2(y(s.values[j])),
-				Label: fmt.Sprintf("%s %s: %s", t.UTC().Format("15:04:05"), s.name, formatNumber(s.values[j]))}
-			move := j == 0 || t.Sub(s.times[j-1]) > gap
-			if move {
+		for j, at := range s.xs {
+			p := chartPoint{X: round2(x(at)), Y: round2(y(s.values[j])),
+				Label: fmt.Sprintf("%s %s: %s", axis.point(at), s.name, formatNumber(s.values[j]))}
+			if j == 0 || at-s.xs[j-1] > axis.gap {
 				fmt.Fprintf(&path, "M%g %g", p.X, p.Y)
 			} else {
 				fmt.Fprintf(&path, "L%g %g", p.X, p.Y)
@@ -150,7 +219,7 @@ func niceTicks(lo, hi float64, n int) []float64 {
 
 // timeTicks returns up to about n round clock times within [from, to].
 func timeTicks(from, to time.Time, n int) []time.Time {
-	steps := []time.Duration{time.Second, 5 * time.Second, 15 * time.Second, 30 * time.Second,
+	steps := []time.Duration{time.Second, 2 * time.Second, 5 * time.Second, 10 * time.Second, 15 * time.Second, 30 * time.Second,
 		time.Minute, 5 * time.Minute, 15 * time.Minute, 30 * time.Minute,
 		time.Hour, 2 * time.Hour, 3 * time.Hour, 6 * time.Hour, 12 * time.Hour, 24 * time.Hour}
 	step := steps[len(steps)-1]

@@ -3,6 +3,7 @@ package api
 import (
 	"math"
 	"math/rand/v2"
+	"strings"
 	"testing"
 	"time"
 )
@@ -70,9 +71,9 @@ func TestChartBreaksLinesAcrossGaps(t *testing.T) {
 	var s seriesData
 	s.name = "mean return"
 	for _, m := range []int{5, 6, 7, 30, 31} {
-		s.add(from.Add(time.Duration(m)*time.Minute), float64(m))
+		s.add(unixSeconds(from.Add(time.Duration(m)*time.Minute)), float64(m))
 	}
-	c := newChart("return", "Mean return", "", from, to, 3*time.Minute, false, s)
+	c := newChart("return", "Mean return", "", timeAxis(from, to, 3*time.Minute), false, nil, s)
 	moves := 0
 	for _, ch := range c.Series[0].Path {
 		if ch == 'M' {
@@ -86,5 +87,34 @@ func TestChartBreaksLinesAcrossGaps(t *testing.T) {
 		if p.X < c.PlotLeft || p.X > c.PlotRight || p.Y < c.PlotTop || p.Y > c.PlotBottom {
 			t.Fatalf("point %+v outside the plot", p)
 		}
+	}
+}
+
+// A target line is always in view, labelled with its value, and a
+// learning curve's x axis counts episodes from zero to a round number.
+func TestChartShowsTargetAndCountsEpisodes(t *testing.T) {
+	var s seriesData
+	s.name = "mean return"
+	for i, v := range []float64{-2, -1, 0.5, 1} {
+		s.add(float64(1000*(i+1)), v)
+	}
+	c := newChart("learning", "Learning curve", "", countAxis(4000, "episodes"), false, []targetLine{{value: 7.95, label: "exact optimum"}}, s)
+	if len(c.Targets) != 1 || c.Targets[0].Label != "exact optimum 7.95" {
+		t.Fatalf("targets %+v", c.Targets)
+	}
+	if y := c.Targets[0].Y; y < c.PlotTop || y > c.PlotBottom {
+		t.Fatalf("target at y %v outside the plot [%v, %v]", y, c.PlotTop, c.PlotBottom)
+	}
+	if top := c.YTicks[len(c.YTicks)-1].Label; top != "8" && top != "10" {
+		t.Fatalf("the y axis ends at %s, want a round number just above the target", top)
+	}
+	if first, last := c.XTicks[0], c.XTicks[len(c.XTicks)-1]; first.Label != "0" || last.Label != "4,000" || first.Pos != c.PlotLeft || last.Pos != c.PlotRight {
+		t.Fatalf("x ticks %+v, want 0 to 4,000 across the plot", c.XTicks)
+	}
+	if got := c.Series[0].Points[1].Label; got != "after 2,000 episodes mean return: -1" {
+		t.Fatalf("point label %q", got)
+	}
+	if strings.Count(c.Series[0].Path, "M") != 1 {
+		t.Fatalf("a learning curve is one line: %q", c.Series[0].Path)
 	}
 }

@@ -164,7 +164,9 @@ type windowLink struct {
 type policyView struct {
 	pageBase
 	policyRow
-	Window      string
+	// Span names what the charts cover: the window, or the policy's
+	// training so far when it began within the window.
+	Span        string
 	Windows     []windowLink
 	Charts      []chartView
 	MostDrift   []stateRow
@@ -190,13 +192,13 @@ func handlePolicyPage(in Inspector, cfg Config) echo.HandlerFunc {
 		v := policyView{
 			pageBase:    pageBase{Title: name, Now: now, Refresh: 30, SignOut: inSession(c)},
 			policyRow:   newPolicyRow(report.Status, now),
-			Window:      formatDuration(window),
-			Charts:      historyCharts(report, now),
+			Span:        chartSpan(report),
+			Charts:      historyCharts(report),
 			MostDrift:   newStateRows(report.MostDrift, now),
 			MostVisited: newStateRows(report.MostVisited, now),
 			StatesURL:   "/policies/" + url.PathEscape(name) + "/states",
 		}
-		for _, w := range []time.Duration{time.Hour, 6 * time.Hour, 24 * time.Hour, 48 * time.Hour} {
+		for _, w := range []time.Duration{10 * time.Minute, time.Hour, 6 * time.Hour, 24 * time.Hour, 48 * time.Hour} {
 			if w <= cfg.HistoryWindow {
 				v.Windows = append(v.Windows, windowLink{Label: formatDuration(w), URL: "?window=" + formatDuration(w), Current: w == window})
 			}
@@ -218,40 +220,82 @@ func windowParam(c echo.Context, kept time.Duration) (time.Duration, error) {
 	return w, nil
 }
 
+// chartSpan names what the time charts cover.
+func chartSpan(r training.PolicyReport) string {
+	last := "Last " + formatDuration(r.Window)
+	// A minute's slack: the oldest row kept may start just inside the window.
+	if len(r.Buckets) > 0 && r.Buckets[0].Start.After(r.Now.Add(-r.Window+time.Minute)) {
+		return last + ": training began " + formatDuration(r.Now.Sub(r.Buckets[0].Start)) + " ago"
+	}
+	return last
+}
+
+// maxChartPoints bounds the points of a chart, whatever the span.
+const maxChartPoints = 180
+
 // historyCharts draws the report's history: what to look at to tell
-// whether a policy learns (return rises, drift falls), is stuck (backlog
-// grows) or keeps changing its mind (churn).
-func historyCharts(r training.PolicyReport, now time.Time) []chartView {
-	from := now.Add(-r.Window)
-	gap := 3 * r.Step
+// whether a policy learns (return rises towards its target, drift falls),
+// is stuck (backlog grows) or keeps changing its mind (churn).
+func historyCharts(r training.PolicyReport) []chartView {
+	var targets []targetLine
+	if t := r.Status.ReturnTarget; t != nil && t.Value != nil {
+		label := t.Label
+		if label == "" {
+			label = "target"
+		}
+		targets = append(targets, targetLine{value: *t.Value, label: label})
+	}
+
+	// The learning curve: mean return against episodes trained.
+	progress := r.Progress(maxChartPoints)
+	var curve seriesData
+	curve.name = "mean return"
+	trained := 0.0
+	for _, p := range progress.Points {
+		trained += float64(p.Episodes)
+		if p.Episodes > 0 {
+			curve.add(trained, p.MeanReturn())
+		}
+	}
+	counted := "episodes trained"
+	if r.Status.CreatedAt.Before(r.Now.Add(-r.Window)) {
+		// The policy is older than the history shown: count from its start.
+		counted += " since " + progress.From.UTC().Format("Jan 2 15:04")
+	}
+	learning := newChart("learning", "Learning curve", "mean discounted return G0 as played (exploring included) against "+counted+", per "+formatDuration(progress.Step)+" of training",
+		countAxis(trained, "episodes"), false, targets, curve)
+
+	line := r.Timeline(maxChartPoints)
+	axis := timeAxis(line.From, line.To, 3*line.Step)
 	var ret, drift, churn, backlog, states, pairs seriesData
 	ret.name, drift.name, churn.name, backlog.name = "mean return", "mean |ΔQ|", "greedy changes", "backlog"
 	states.name, pairs.name = "states", "pairs"
-	for _, p := range r.History {
+	for _, p := range line.Points {
+		at := unixSeconds(p.Start)
 		if p.Episodes > 0 {
-			ret.add(p.Start, p.MeanReturn())
+			ret.add(at, p.MeanReturn())
 		}
 		if p.Updates > 0 {
-			drift.add(p.Start, p.MeanDrift())
+			drift.add(at, p.MeanDrift())
 		}
-		churn.add(p.Start, float64(p.GreedyChanges))
-		backlog.add(p.Start, float64(p.Backlog))
-		states.add(p.Start, float64(p.States))
-		pairs.add(p.Start, float64(p.Pairs))
+		churn.add(at, float64(p.GreedyChanges))
+		if p.Backlog != nil {
+			backlog.add(at, float64(*p.Backlog))
+		}
+		states.add(at, float64(p.States))
+		pairs.add(at, float64(p.Pairs))
 	}
-	step := formatDuration(r.Step)
+	// Samples of the backlog may be further apart than points.
+	backlogAxis := timeAxis(line.From, line.To, 3*max(line.Step, training.BacklogSampleEvery))
+	step := formatDuration(line.Step)
 	return []chartView{
-		newChart("return", "Mean return", "discounted return G0 of the episodes trained, per "+step, from, now, gap, false, ret),
-		newChart("drift", "Mean |ΔQ| per update", "how far updates move the estimates, per "+step, from, now, gap, true, drift),
-		newChart("churn", "Greedy changes", "states whose greedy action changed, per "+step, from, now, gap, true, churn),
-		newChart("backlog", "Backlog", "episodes waiting, sampled once per "+step, from, now, gap, true, backlog),
-		newChart("coverage", "Coverage", "states and (state, action) pairs with an estimate", from, now, gap, true, states, pairs),
+		learning,
+		newChart("return", "Mean return", "discounted return G0 of the episodes trained, per "+step, axis, false, targets, ret),
+		newChart("drift", "Mean |ΔQ| per update", "how far updates move the estimates, per "+step, axis, true, nil, drift),
+		newChart("churn", "Greedy changes", "states whose greedy action changed, per "+step, axis, true, nil, churn),
+		newChart("backlog", "Backlog", "episodes waiting, sampled at most every "+formatDuration(max(line.Step, training.BacklogSampleEvery)), backlogAxis, true, nil, backlog),
+		newChart("coverage", "Coverage", "states and (state, action) pairs with an estimate", axis, true, nil, states, pairs),
 	}
-}
-
-func (s *seriesData) add(t time.Time, v float64) {
-	s.times = append(s.times, t)
-	s.values = append(s.values, v)
 }
 
 type statesView struct {

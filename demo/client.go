@@ -413,10 +413,14 @@ func sleep(ctx context.Context, d time.Duration) error {
 }
 
 func (c *client) putPolicy(ctx context.Context) error {
+	// The exact optimum is what the status page's learning curve should
+	// approach.
+	optimum := Optimal(c.cfg.Settings.Gamma).Start()
 	body := struct {
 		Actions []string `json:"actions"`
 		PolicySettings
-	}{ActionNames(), c.cfg.Settings}
+		ReturnTarget returnTarget `json:"return_target"`
+	}{ActionNames(), c.cfg.Settings, returnTarget{Value: optimum, Label: "exact optimum"}}
 	if _, err := c.do(ctx, http.MethodPut, "", body, nil); err != nil {
 		var problem *ProblemError
 		if errors.As(err, &problem) && problem.Status == http.StatusConflict {
@@ -425,6 +429,11 @@ func (c *client) putPolicy(ctx context.Context) error {
 		return err
 	}
 	return nil
+}
+
+type returnTarget struct {
+	Value float64 `json:"value"`
+	Label string  `json:"label"`
 }
 
 type policyStatus struct {

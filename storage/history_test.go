@@ -26,8 +26,8 @@ func readHistory(t *testing.T, conn *pgx.Conn) []historyRow {
 	t.Helper()
 	rows, err := conn.Query(context.Background(), `
 		SELECT bucket_start, batches, episodes, steps, sum_return, sum_abs_delta, updates, greedy_changes,
-		       new_states, new_pairs, backlog
-		FROM training_history ORDER BY bucket_start`)
+		       new_states, new_pairs, coalesce(backlog, -1)
+		FROM training_history ORDER BY bucket_start, fine`)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -90,7 +90,7 @@ func train(t *testing.T, db *storage.DB, max int) training.BatchReport {
 // first batch samples the backlog.
 func TestHistoryAddsBatchesOfABucket(t *testing.T) {
 	// Buckets so long that the test cannot straddle two.
-	db, conn := setup(t, storage.HistorySettings{Bucket: 1000 * time.Hour, Window: 2000 * time.Hour})
+	db, conn := setup(t, storage.HistorySettings{FineBucket: 1000 * time.Hour, FineWindow: 2000 * time.Hour, Bucket: 1000 * time.Hour, Window: 2000 * time.Hour})
 	ingest(t, db, "a", 10)
 	var want historyRow
 	for range 3 {
@@ -135,7 +135,7 @@ func TestHistoryAddsBatchesOfABucket(t *testing.T) {
 // The worker drops buckets that left the window as it writes new ones, and
 // the report works coverage back from today's counts.
 func TestHistoryKeepsOnlyTheWindow(t *testing.T) {
-	db, conn := setup(t, storage.HistorySettings{Bucket: time.Second, Window: 3 * time.Second})
+	db, conn := setup(t, storage.HistorySettings{FineBucket: time.Second, FineWindow: 2 * time.Second, Bucket: time.Second, Window: 3 * time.Second})
 	for i := range 6 {
 		if i > 0 {
 			time.Sleep(1100 * time.Millisecond)
@@ -163,14 +163,76 @@ func TestHistoryKeepsOnlyTheWindow(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if len(report.History) != len(rows) {
-		t.Fatalf("the report has %d points for %d stored buckets", len(report.History), len(rows))
+	points := report.Timeline(180).Points
+	if len(points) != len(rows) {
+		t.Fatalf("the report has %d points for %d stored buckets", len(points), len(rows))
 	}
-	last := report.History[len(report.History)-1]
+	last := points[len(points)-1]
 	if last.States != report.Status.States || last.Pairs != report.Status.Pairs {
 		t.Fatalf("coverage ends at %d states, %d pairs; the policy has %d and %d", last.States, last.Pairs, report.Status.States, report.Status.Pairs)
 	}
 	if len(report.MostVisited) != 3 || report.MostVisited[0].State != "depot" {
 		t.Fatalf("most visited: %+v", report.MostVisited)
+	}
+}
+
+// Fine rows that leave the fine window are rolled up into coarse rows as
+// the worker writes: nothing is lost or counted twice, coarse rows are
+// whole coarse buckets, and the fine rows stay within their bound.
+func TestHistoryRollsFineRowsUpIntoCoarseOnes(t *testing.T) {
+	h := storage.HistorySettings{FineBucket: 100 * time.Millisecond, FineWindow: 500 * time.Millisecond, Bucket: time.Second, Window: time.Hour}
+	db, conn := setup(t, h)
+	var want historyRow
+	for i := range 16 {
+		time.Sleep(150 * time.Millisecond)
+		ingest(t, db, fmt.Sprint("b", i), 3)
+		r := train(t, db, 1000)
+		want.Batches++
+		want.Episodes += int64(r.Episodes)
+		want.Steps += int64(r.Result.Steps)
+		for _, g := range r.Result.EpisodeReturns {
+			want.SumReturn += g
+		}
+	}
+	ctx := context.Background()
+	var got historyRow
+	var fine, coarse, misaligned, tooOld int64
+	err := conn.QueryRow(ctx, `
+		SELECT sum(batches)::bigint, sum(episodes)::bigint, sum(steps)::bigint, sum(sum_return),
+		       sum(new_states)::bigint, sum(new_pairs)::bigint,
+		       count(*) FILTER (WHERE fine), count(*) FILTER (WHERE NOT fine),
+		       count(*) FILTER (WHERE NOT fine AND bucket_start <> date_trunc('second', bucket_start)),
+		       count(*) FILTER (WHERE fine AND bucket_start < (SELECT max(last_batch_at) FROM training_history) - interval '500 milliseconds')
+		FROM training_history`).Scan(&got.Batches, &got.Episodes, &got.Steps, &got.SumReturn, &got.NewStates, &got.NewPairs,
+		&fine, &coarse, &misaligned, &tooOld)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if got.Batches != want.Batches || got.Episodes != want.Episodes || got.Steps != want.Steps || math.Abs(got.SumReturn-want.SumReturn) > 1e-9*math.Abs(want.SumReturn) {
+		t.Fatalf("history sums to %+v after rolling up; the batches trained %+v", got, want)
+	}
+	var states, pairs int64
+	if err := conn.QueryRow(ctx, `SELECT count(DISTINCT state), count(*) FROM q_values`).Scan(&states, &pairs); err != nil {
+		t.Fatal(err)
+	}
+	if got.NewStates != states || got.NewPairs != pairs {
+		t.Fatalf("history counts %d new states and %d new pairs; the table has %d and %d", got.NewStates, got.NewPairs, states, pairs)
+	}
+	if coarse == 0 || misaligned != 0 {
+		t.Fatalf("%d coarse rows, %d of them not whole seconds; want some, all whole", coarse, misaligned)
+	}
+	if tooOld != 0 || fine > int64(h.FineWindow/h.FineBucket)+1 {
+		t.Fatalf("%d fine rows, %d older than the fine window at the last write", fine, tooOld)
+	}
+	// The backlog is sampled at most every training.BacklogSampleEvery, less
+	// a coarse bucket when the last sample was rolled up (its row starts
+	// earlier), over however long the batches spanned.
+	var sampled int64
+	var spanned time.Duration
+	if err := conn.QueryRow(ctx, `SELECT count(backlog), max(last_batch_at) - min(bucket_start) FROM training_history`).Scan(&sampled, &spanned); err != nil {
+		t.Fatal(err)
+	}
+	if most := 1 + int64(spanned/(training.BacklogSampleEvery-h.Bucket)); sampled < 1 || sampled > most {
+		t.Fatalf("%d backlog samples over %v of training; want 1 to %d", sampled, spanned, most)
 	}
 }

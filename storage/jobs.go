@@ -188,9 +188,9 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		}
 		var targetID int32
 		err = tx.QueryRow(ctx, `
-			INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q, max_states)
-			VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10) RETURNING policy_id`,
-			string(req.Target), s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, s.MaxStates).
+			INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q, max_states, return_target)
+			VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11) RETURNING policy_id`,
+			string(req.Target), s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, s.MaxStates, s.ReturnTarget).
 			Scan(&targetID)
 		if isUniqueViolation(err) {
 			return training.Conflictf("a policy named %q exists already; a replay creates a new policy", req.Target)

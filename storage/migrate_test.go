@@ -3,6 +3,7 @@ package storage_test
 import (
 	"context"
 	"testing"
+	"time"
 
 	"github.com/jackc/pgx/v5"
 	"github.com/jackc/pgx/v5/stdlib"
@@ -98,5 +99,85 @@ func TestTrainingPositionsOfExistingTables(t *testing.T) {
 		if c.got != c.want {
 			t.Errorf("%s: position %d, want %d", c.what, c.got, c.want)
 		}
+	}
+}
+
+// Migration 13 keeps the history rows stored so far as coarse rows, with
+// their backlog samples; rolling it back folds fine rows into one-minute
+// rows without losing their sums.
+func TestHistoryTiersKeepStoredRows(t *testing.T) {
+	ctx := context.Background()
+	url := pgtest.NewDatabase(t)
+	config, err := pgx.ParseConfig(url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	sqlDB := stdlib.OpenDB(*config)
+	defer sqlDB.Close()
+	provider, err := goose.NewProvider(goose.DialectPostgres, sqlDB, migrations.Files)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := provider.DownTo(ctx, 12); err != nil {
+		t.Fatalf("roll back to before migration 13: %v", err)
+	}
+	conn, err := pgx.Connect(ctx, url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close(ctx)
+	exec := func(sql string, args ...any) {
+		t.Helper()
+		if _, err := conn.Exec(ctx, sql, args...); err != nil {
+			t.Fatal(err)
+		}
+	}
+	var id int32
+	if err := conn.QueryRow(ctx, `INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q)
+		VALUES ('kept', '{a,b}', 1, 0.1, 0.1, 0, 'first', 0) RETURNING policy_id`).Scan(&id); err != nil {
+		t.Fatal(err)
+	}
+	exec(`INSERT INTO training_history (policy_id, bucket_start, batches, episodes, steps, sum_return, sum_abs_delta,
+		updates, greedy_changes, new_states, new_pairs, backlog, last_batch_at)
+		VALUES ($1, '2026-01-01T10:00:00Z', 3, 30, 90, 12.5, 4, 80, 2, 5, 9, 17, '2026-01-01T10:00:40Z')`, id)
+	if _, err := provider.UpTo(ctx, 13); err != nil {
+		t.Fatalf("migration 13: %v", err)
+	}
+	var fine bool
+	var episodes, backlog int64
+	if err := conn.QueryRow(ctx, `SELECT fine, episodes, backlog FROM training_history WHERE policy_id = $1`, id).Scan(&fine, &episodes, &backlog); err != nil {
+		t.Fatal(err)
+	}
+	if fine || episodes != 30 || backlog != 17 {
+		t.Fatalf("the stored row is now fine=%v with %d episodes, backlog %d; want a coarse row as it was", fine, episodes, backlog)
+	}
+
+	// Two fine seconds of the same minute, one without a backlog sample.
+	exec(`INSERT INTO training_history (policy_id, fine, bucket_start, batches, episodes, steps, sum_return, sum_abs_delta,
+		updates, greedy_changes, new_states, new_pairs, backlog, last_batch_at) VALUES
+		($1, true, '2026-01-01T10:00:50Z', 1, 10, 30, 2.5, 1, 20, 1, 1, 1, NULL, '2026-01-01T10:00:50Z'),
+		($1, true, '2026-01-01T10:01:05Z', 1, 5, 15, 1, 1, 10, 0, 0, 0, 4, '2026-01-01T10:01:05Z')`, id)
+	if _, err := provider.DownTo(ctx, 12); err != nil {
+		t.Fatalf("roll back migration 13: %v", err)
+	}
+	rows, err := conn.Query(ctx, `SELECT bucket_start, episodes, sum_return, backlog FROM training_history WHERE policy_id = $1 ORDER BY bucket_start`, id)
+	if err != nil {
+		t.Fatal(err)
+	}
+	type row struct {
+		Start     time.Time
+		Episodes  int64
+		SumReturn float64
+		Backlog   int64
+	}
+	got, err := pgx.CollectRows(rows, pgx.RowToStructByPos[row])
+	if err != nil {
+		t.Fatal(err)
+	}
+	minute := time.Date(2026, 1, 1, 10, 0, 0, 0, time.UTC)
+	want := []row{{minute, 40, 15, 17}, {minute.Add(time.Minute), 5, 1, 4}}
+	if len(got) != 2 || !got[0].Start.Equal(want[0].Start) || !got[1].Start.Equal(want[1].Start) ||
+		got[0].Episodes != 40 || got[0].SumReturn != 15 || got[0].Backlog != 17 || got[1].Episodes != 5 || got[1].Backlog != 4 {
+		t.Fatalf("after rolling back: %+v, want %+v", got, want)
 	}
 }

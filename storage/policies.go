@@ -12,13 +12,13 @@ import (
 )
 
 const policyColumns = `policy_id, name, actions, gamma, alpha, epsilon, epsilon_min,
-	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at, table_epoch, max_states`
+	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at, table_epoch, max_states, return_target`
 
 func scanPolicy(row pgx.Row) (training.Policy, error) {
 	var p training.Policy
 	var visit string
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
-		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch, &p.MaxStates)
+		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch, &p.MaxStates, &p.ReturnTarget)
 	p.Visit = training.VisitRule(visit)
 	return p, err
 }
@@ -63,10 +63,10 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 				return err
 			}
 			p, err = scanPolicy(tx.QueryRow(ctx, `
-				INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q, max_states)
-				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10)
+				INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q, max_states, return_target)
+				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11)
 				RETURNING `+policyColumns,
-				name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, s.MaxStates))
+				name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, s.MaxStates, s.ReturnTarget))
 			if err != nil {
 				return fmt.Errorf("insert policy: %w", err)
 			}
@@ -100,11 +100,11 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 			}
 			p, err = scanPolicy(tx.QueryRow(ctx, `
 				UPDATE policies SET actions = $2, gamma = $3, alpha = $4, epsilon = $5, epsilon_min = $6,
-					epsilon_decay_visits = $7, visit = $8, initial_q = $9, max_states = $11, updated_at = now(),
+					epsilon_decay_visits = $7, visit = $8, initial_q = $9, max_states = $11, return_target = $12, updated_at = now(),
 					revision = revision + $10, table_epoch = table_epoch + $10
 				WHERE policy_id = $1
 				RETURNING `+policyColumns,
-				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, rewrite, s.MaxStates))
+				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, rewrite, s.MaxStates, s.ReturnTarget))
 			if err != nil {
 				return fmt.Errorf("update policy: %w", err)
 			}
@@ -174,7 +174,7 @@ func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
 	var visit string
 	p := &st.Policy
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
-		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch, &p.MaxStates,
+		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch, &p.MaxStates, &p.ReturnTarget,
 		&st.Episodes, &st.Backlog, &st.OldestUntrained, &st.States, &st.Pairs, &st.LastTrainedAt)
 	p.Visit = training.VisitRule(visit)
 	return st, err

@@ -51,6 +51,10 @@ type Settings struct {
 	// more new states are refused. 0 when put: DefaultMaxStates, or the
 	// policy's current value when it exists (SetStateQuota).
 	MaxStates int64 `json:"max_states" validate:"gte=0"`
+	// ReturnTarget is a mean return the application knows to aim for (an
+	// exact optimum, or a goal); the status page draws it beside the
+	// learning curve. It changes nothing in learning.
+	ReturnTarget *ReturnTarget `json:"return_target,omitempty"`
 }
 
 // DefaultMaxStates is a new policy's state quota unless it sets one (or its
@@ -74,6 +78,12 @@ func (s *Settings) SetStateQuota(current, maxPairs int64) error {
 			s.MaxStates, actions, s.MaxStates*actions, maxPairs, maxPairs/actions)
 	}
 	return nil
+}
+
+// ReturnTarget is a mean return to compare learning with, and what it is.
+type ReturnTarget struct {
+	Value *float64 `json:"value" validate:"required,finite,gte=-1e15,lte=1e15"`
+	Label string   `json:"label" validate:"max=64,actionname"`
 }
 
 // DefaultSettings are used for every field a client leaves out.
