@@ -133,8 +133,8 @@ func TestHistoryTiersKeepStoredRows(t *testing.T) {
 		}
 	}
 	var id int32
-	if err := conn.QueryRow(ctx, `INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q)
-		VALUES ('kept', '{a,b}', 1, 0.1, 0.1, 0, 'first', 0) RETURNING policy_id`).Scan(&id); err != nil {
+	if err := conn.QueryRow(ctx, `INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q, max_states)
+		VALUES ('kept', '{a,b}', 1, 0.1, 0.1, 0, 'first', 0, 1000) RETURNING policy_id`).Scan(&id); err != nil {
 		t.Fatal(err)
 	}
 	exec(`INSERT INTO training_history (policy_id, bucket_start, batches, episodes, steps, sum_return, sum_abs_delta,
