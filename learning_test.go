@@ -265,16 +265,16 @@ func TestChooseSeesTrainingWithinOneSecond(t *testing.T) {
 
 func TestChangingActionsAfterLearningIsRefused(t *testing.T) {
 	s := startService(t, pgtest.NewDatabase(t))
-	s.call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b"}}, 201)
+	etag := s.call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b"}}, 201).Header.Get("ETag")
 	// Before anything is stored, actions may change.
-	s.call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b", "c"}}, 200)
+	etag = s.withHeader("If-Match", etag).call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b", "c"}}, 200).Header.Get("ETag")
 	s.call("POST", "/v1/policies/offers/episodes", map[string]any{"episodes": []episodeJSON{{ID: "1", Steps: []stepJSON{{State: "s", Action: "c", Reward: 1}}}}}, 202)
-	r := s.call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b"}}, 409)
+	r := s.withHeader("If-Match", etag).call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b"}}, 409)
 	if !strings.Contains(string(r.Body), "actions cannot change") {
 		t.Fatalf("409 without a reason: %s", r.Body)
 	}
 	// Other settings may still change.
-	s.call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b", "c"}, "epsilon": 0.3}, 200)
+	s.withHeader("If-Match", etag).call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b", "c"}, "epsilon": 0.3}, 200)
 	var list struct {
 		Policies []struct {
 			Name    string  `json:"name"`

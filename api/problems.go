@@ -29,6 +29,10 @@ const (
 	problemUnauthenticated problemName = "unauthenticated"
 	problemForbidden       problemName = "forbidden"
 	problemUnavailable     problemName = "unavailable"
+	// The two conditional-request problems of settings changes (RFC 9110
+	// section 13.1.1 and RFC 6585 section 3).
+	problemPreconditionFailed   problemName = "precondition-failed"
+	problemPreconditionRequired problemName = "precondition-required"
 )
 
 // problemDefinition is what every answer of one problem type carries.
@@ -38,12 +42,14 @@ type problemDefinition struct {
 }
 
 var problemDefinitions = map[problemName]problemDefinition{
-	problemInvalidInput:    {"Invalid input", http.StatusBadRequest},
-	problemNotFound:        {"Not found", http.StatusNotFound},
-	problemConflict:        {"Conflict", http.StatusConflict},
-	problemUnauthenticated: {"Unauthenticated", http.StatusUnauthorized},
-	problemForbidden:       {"Forbidden", http.StatusForbidden},
-	problemUnavailable:     {"Temporarily unavailable", http.StatusServiceUnavailable},
+	problemInvalidInput:         {"Invalid input", http.StatusBadRequest},
+	problemNotFound:             {"Not found", http.StatusNotFound},
+	problemConflict:             {"Conflict", http.StatusConflict},
+	problemUnauthenticated:      {"Unauthenticated", http.StatusUnauthorized},
+	problemForbidden:            {"Forbidden", http.StatusForbidden},
+	problemUnavailable:          {"Temporarily unavailable", http.StatusServiceUnavailable},
+	problemPreconditionFailed:   {"Precondition failed", http.StatusPreconditionFailed},
+	problemPreconditionRequired: {"Precondition required", http.StatusPreconditionRequired},
 }
 
 // problemTypes makes problems whose type URIs lead to the documentation at

@@ -23,6 +23,8 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 	e.GET("/v1/policies", handleListPolicies(d.Policies), admin)
 	e.GET("/v1/policies/:policy", handleGetPolicy(d.Policies), admin)
 	e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg), admin)
+	e.PATCH("/v1/policies/:policy", handlePatchPolicy(d.Policies, cfg), admin)
+	e.GET("/v1/policies/:policy/settings-history", handleSettingsHistory(d.History), admin)
 	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg), ingest)
 	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg), choose)
 	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect), choose)
@@ -52,6 +54,6 @@ func addStatusRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 		e.POST(signInPath, handleSignIn(g.auth))
 	}
 	e.GET("/", handleOverview(d.Policies), admin)
-	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, cfg), admin)
+	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, d.History, cfg), admin)
 	e.GET("/policies/:policy/states", handleStatesPage(d.Inspect), admin)
 }

@@ -168,9 +168,15 @@ type policyView struct {
 	MostDrift   []stateRow
 	MostVisited []stateRow
 	StatesURL   string
+	// Changes are the latest settings changes, newest first.
+	Changes []training.SettingsChangeRecord
 }
 
-func handlePolicyPage(in Inspector, cfg Config) echo.HandlerFunc {
+// shownChanges bounds the settings changes the policy page lists; the
+// API pages through all of them.
+const shownChanges = 10
+
+func handlePolicyPage(in Inspector, h SettingsHistory, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
@@ -184,8 +190,13 @@ func handlePolicyPage(in Inspector, cfg Config) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
+		changes, err := h.SettingsHistory(c.Request().Context(), name, 0, shownChanges)
+		if err != nil {
+			return err
+		}
 		now := time.Now()
 		v := policyView{
+			Changes:     changes.Changes,
 			pageBase:    pageBase{Title: name, Now: now, Refresh: 30},
 			policyRow:   newPolicyRow(report.Status, now),
 			Window:      formatDuration(window),

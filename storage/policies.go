@@ -30,17 +30,37 @@ func nullIfZero(x float64) *float64 {
 	return &x
 }
 
-// PutPolicy creates a policy or replaces its settings, reporting whether it
-// created it. Changing the actions of a policy that has stored episodes or
-// learned values is a conflict: stored indexes would point at other actions.
+// PutPolicy creates a policy or replaces its settings without a
+// precondition, reporting whether it created it.
 func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (training.Policy, bool, error) {
+	return db.ChangePolicy(ctx, name, training.SettingsChange{Replace: &s, Unconditional: true})
+}
+
+// ChangePolicy creates a policy or changes its settings as the change says,
+// checking its precondition against the stored settings under a row lock and
+// recording what changed in settings_changes, all in one transaction. It
+// reports whether it created the policy. Changing the actions of a policy
+// that has stored episodes or learned values is a conflict: stored indexes
+// would point at other actions.
+func (db *DB) ChangePolicy(ctx context.Context, name string, change training.SettingsChange) (training.Policy, bool, error) {
 	var p training.Policy
 	var created bool
 	put := func(tx pgx.Tx) error {
+		var current *training.Policy
 		existing, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1 FOR UPDATE`, name))
 		switch {
 		case errors.Is(err, pgx.ErrNoRows):
-			created = true
+		case err != nil:
+			return fmt.Errorf("read policy: %w", err)
+		default:
+			current = &existing
+		}
+		s, kind, err := change.Resolve(name, current)
+		if err != nil {
+			return err
+		}
+		created = current == nil
+		if created {
 			p, err = scanPolicy(tx.QueryRow(ctx, `
 				INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q)
 				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9)
@@ -49,10 +69,7 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 			if err != nil {
 				return fmt.Errorf("insert policy: %w", err)
 			}
-		case err != nil:
-			return fmt.Errorf("read policy: %w", err)
-		default:
-			created = false
+		} else {
 			if !slices.Equal(existing.Actions, s.Actions) {
 				var used bool
 				if err := tx.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM episodes WHERE policy_id = $1)
@@ -73,6 +90,20 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 				return fmt.Errorf("update policy: %w", err)
 			}
 		}
+		var old *training.Settings
+		if current != nil {
+			old = &current.Settings
+		}
+		// Diff what was stored, so that the history shows what the table
+		// holds (a setting the schema drops would not be recorded as kept).
+		if diff := training.DiffSettings(old, p.Settings); len(diff) > 0 {
+			if _, err := tx.Exec(ctx, `
+				INSERT INTO settings_changes (policy_id, kind, token_id, token_label, fields)
+				VALUES ($1, $2, $3, $4, $5)`,
+				p.ID, string(kind), change.By.TokenID, nullIfEmpty(change.By.TokenLabel), diff); err != nil {
+				return fmt.Errorf("record settings change: %w", err)
+			}
+		}
 		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, p.ID)
 		return err
 	}
@@ -82,6 +113,46 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 		err = db.WithTx(ctx, put)
 	}
 	return p, created, err
+}
+
+func nullIfEmpty(s string) *string {
+	if s == "" {
+		return nil
+	}
+	return &s
+}
+
+// SettingsHistory reads a page of a policy's settings changes, newest
+// first, starting after the change with id before (0: from the newest).
+func (db *DB) SettingsHistory(ctx context.Context, policy string, before int64, limit int) (training.SettingsHistoryPage, error) {
+	var page training.SettingsHistoryPage
+	p, err := db.PolicyByName(ctx, policy)
+	if err != nil {
+		return page, err
+	}
+	rows, err := db.pool.Query(ctx, `
+		SELECT change_id, changed_at, kind, token_id, coalesce(token_label, ''), fields
+		FROM settings_changes
+		WHERE policy_id = $1 AND ($2 = 0 OR change_id < $2)
+		ORDER BY change_id DESC LIMIT $3`, p.ID, before, limit+1)
+	if err != nil {
+		return page, mapError(fmt.Errorf("read settings history: %w", err))
+	}
+	page.Changes, err = pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.SettingsChangeRecord, error) {
+		var c training.SettingsChangeRecord
+		var kind string
+		err := r.Scan(&c.ID, &c.ChangedAt, &kind, &c.TokenID, &c.TokenLabel, &c.Fields)
+		c.Kind = training.ChangeKind(kind)
+		return c, err
+	})
+	if err != nil {
+		return page, mapError(fmt.Errorf("read settings history: %w", err))
+	}
+	if len(page.Changes) > limit {
+		page.Changes = page.Changes[:limit]
+		page.Next = page.Changes[limit-1].ID
+	}
+	return page, nil
 }
 
 // PolicyByName reads one policy.
