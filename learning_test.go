@@ -215,7 +215,8 @@ func TestLearnedTableEqualsSequentialReference(t *testing.T) {
 // A training commit must reach choose within one second.
 func TestChooseSeesTrainingWithinOneSecond(t *testing.T) {
 	s := startService(t, pgtest.NewDatabase(t))
-	s.call("PUT", "/v1/policies/handoff", map[string]any{"actions": []string{"bot", "person"}, "alpha": 1, "epsilon": 0.2}, 201)
+	// Untried actions may be greedy here, so that the unseen state has an answer.
+	s.call("PUT", "/v1/policies/handoff", map[string]any{"actions": []string{"bot", "person"}, "alpha": 1, "epsilon": 0.2, "greedy_untried": true}, 201)
 	type chooseReply struct {
 		Action       string  `json:"action"`
 		Probability  float64 `json:"probability"`

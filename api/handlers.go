@@ -259,7 +259,11 @@ type chooseResponse struct {
 	Explored     bool    `json:"explored"`
 	GreedyAction string  `json:"greedy_action"`
 	KnownState   bool    `json:"known_state"`
-	Revision     int64   `json:"revision"`
+	// Visits is how often the chosen action was tried in the state.
+	Visits int64 `json:"visits"`
+	// Fallback is true when the action is the policy's greedy_fallback.
+	Fallback bool  `json:"fallback"`
+	Revision int64 `json:"revision"`
 	// CopyAgeSeconds is how long ago this process last confirmed its
 	// in-memory copy was current.
 	CopyAgeSeconds float64 `json:"copy_age_seconds"`
@@ -289,7 +293,7 @@ func handleChoose(ch Chooser, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
 		m.Choices.WithLabelValues(name, string(req.Mode), strconv.FormatBool(res.Explored), strconv.FormatBool(res.KnownState)).Inc()
 		return c.JSON(http.StatusOK, chooseResponse{
 			Action: res.Action, Probability: res.Probability, Explored: res.Explored,
-			GreedyAction: res.GreedyAction, KnownState: res.KnownState, Revision: res.Revision,
+			GreedyAction: res.GreedyAction, KnownState: res.KnownState, Visits: res.Visits, Fallback: res.Fallback, Revision: res.Revision,
 			CopyAgeSeconds: res.Staleness.Seconds(),
 		})
 	}

@@ -33,6 +33,7 @@ const (
 	// section 13.1.1 and RFC 6585 section 3).
 	problemPreconditionFailed   problemName = "precondition-failed"
 	problemPreconditionRequired problemName = "precondition-required"
+	problemNoGreedyAnswer       problemName = "no-greedy-answer"
 )
 
 // problemDefinition is what every answer of one problem type carries.
@@ -50,6 +51,7 @@ var problemDefinitions = map[problemName]problemDefinition{
 	problemUnavailable:          {"Temporarily unavailable", http.StatusServiceUnavailable},
 	problemPreconditionFailed:   {"Precondition failed", http.StatusPreconditionFailed},
 	problemPreconditionRequired: {"Precondition required", http.StatusPreconditionRequired},
+	problemNoGreedyAnswer:       {"No greedy answer", http.StatusConflict},
 }
 
 // problemTypes makes problems whose type URIs lead to the documentation at

@@ -110,6 +110,9 @@ type actionQ struct {
 	Action string
 	Q      float64
 	Greedy bool
+	// Untried: never tried in the state, so Q is the initial value, not
+	// something learned.
+	Untried bool
 }
 
 type stateRow struct {
@@ -128,12 +131,17 @@ func newStateRows(states []training.StateSummary, now time.Time) []stateRow {
 	for i, s := range states {
 		r := stateRow{StateSummary: s, Ago: formatAgo(now, &s.UpdatedAt)}
 		for _, a := range s.Actions {
-			r.Best = append(r.Best, actionQ{Action: a.Action, Q: a.Q, Greedy: a.Action == s.GreedyAction})
+			r.Best = append(r.Best, actionQ{Action: a.Action, Q: a.Q, Greedy: a.Action == s.GreedyAction, Untried: a.Visits == 0})
 		}
 		slices.SortStableFunc(r.Best, func(a, b actionQ) int {
 			switch {
 			case a.Greedy != b.Greedy:
 				if a.Greedy {
+					return -1
+				}
+				return 1
+			case a.Untried != b.Untried:
+				if b.Untried {
 					return -1
 				}
 				return 1

@@ -22,6 +22,11 @@ type Choice struct {
 	Explored bool
 	// Greedy is a greedy action (the chosen one when it is greedy).
 	Greedy int
+	// Fallback is true when the chosen action is the fallback standing in
+	// for actions not tried enough.
+	Fallback bool
+	// NoAnswer is true when greedy mode has no action to answer.
+	NoAnswer bool
 }
 
 // ActionProbability is the chance the rule gives an action whose value is
@@ -55,45 +60,37 @@ func (sharedRandom) IntN(n int) int   { return rand.IntN(n) }
 // safe from any goroutine.
 var SharedRandom Random = sharedRandom{}
 
-// Choose picks an action among the allowed ones given their values q.
-// Ties at the top are split uniformly at random. It does not allocate.
+// Choose picks an action among the allowed ones given their values q, each
+// counted as tried enough. Ties at the top are split uniformly at random.
+// It does not allocate.
 func Choose(q []float64, mode Mode, epsilon float64, rng Random) Choice {
+	return ChooseWith(q, nil, GreedyRule{Untried: true}, -1, mode, epsilon, rng)
+}
+
+// ChooseWith picks an action among the allowed ones given their values q,
+// their visit counts in the state and the greedy rule; fallback is the
+// fallback action's position among them, or -1. Choice.NoAnswer is set when
+// greedy mode has nothing it can answer. It does not allocate.
+func ChooseWith(q []float64, visits []int64, rule GreedyRule, fallback int, mode Mode, epsilon float64, rng Random) Choice {
 	n := len(q)
-	top := q[0]
-	ties := 0
-	for _, v := range q {
-		switch {
-		case v > top:
-			top, ties = v, 1
-		case v == top:
-			ties++
-		}
+	g := rule.Find(q, visits, fallback, mode)
+	if g.Size == 0 {
+		return Choice{Action: -1, Greedy: -1, NoAnswer: true}
 	}
-	greedy := nthTie(q, top, rng.IntN(ties))
+	greedy := g.nth(q, visits, rng.IntN(g.Size))
 	chosen := greedy
 	if mode == Explore && epsilon > 0 && rng.Float64() < epsilon {
 		chosen = rng.IntN(n)
 	}
-	isGreedy := q[chosen] == top
+	isGreedy := g.Has(chosen, q, visits)
 	if isGreedy {
 		greedy = chosen
 	}
 	return Choice{
 		Action:      chosen,
-		Probability: ActionProbability(mode, epsilon, n, ties, isGreedy),
+		Probability: ActionProbability(mode, epsilon, n, g.Size, isGreedy),
 		Explored:    !isGreedy,
 		Greedy:      greedy,
+		Fallback:    chosen == g.Fallback,
 	}
-}
-
-func nthTie(q []float64, top float64, k int) int {
-	for i, v := range q {
-		if v == top {
-			if k == 0 {
-				return i
-			}
-			k--
-		}
-	}
-	panic("training: tie index out of range")
 }

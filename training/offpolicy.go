@@ -149,13 +149,18 @@ func BootstrapIS(ctx context.Context, s []WeightedReturn, resamples int, level f
 
 // TargetPolicy is the policy an evaluation asks about: greedy with respect
 // to a Q table, or its epsilon-soft version. Greedy ties split the greedy
-// probability evenly, as choosing does.
+// probability evenly, and the settings' greedy rule (visits needed,
+// untried actions, fallback) decides which actions may be greedy, as
+// choosing does; where greedy has no answer every action has probability 0.
 type TargetPolicy struct {
 	table *QTable
 	mode  Mode
 	// epsilon of explore mode: a fixed rate, or the settings' per-state rule.
 	epsilon  *float64
 	settings Settings
+	// fallback is the index of the settings' greedy fallback in the
+	// table's actions, -1 for none.
+	fallback int
 	cache    map[string][]float64
 }
 
@@ -163,7 +168,8 @@ type TargetPolicy struct {
 // Explore) policy of a table. In explore mode the rate is epsilon when given,
 // else the settings' rule applied to the state's visits, as choose does.
 func NewTargetPolicy(table *QTable, mode Mode, epsilon *float64, settings Settings) *TargetPolicy {
-	return &TargetPolicy{table: table, mode: mode, epsilon: epsilon, settings: settings, cache: map[string][]float64{}}
+	return &TargetPolicy{table: table, mode: mode, epsilon: epsilon, settings: settings,
+		fallback: slices.Index(table.Actions, settings.GreedyFallback), cache: map[string][]float64{}}
 }
 
 // Probability is pi(action | state).
@@ -171,21 +177,15 @@ func (t *TargetPolicy) Probability(state string, action int16) float64 {
 	probs, ok := t.cache[state]
 	if !ok {
 		s := t.table.state(state)
-		n := len(s.Q)
-		top := maxOf(s.Q)
-		ties := 0
-		for _, v := range s.Q {
-			if v == top {
-				ties++
-			}
-		}
+		// The greedy actions follow the policy's rule, as choosing does.
+		g := t.settings.GreedyRule().Find(s.Q, s.Visits, t.fallback, t.mode)
 		eps := t.settings.EpsilonFor(s.Total)
 		if t.epsilon != nil {
 			eps = *t.epsilon
 		}
-		probs = make([]float64, n)
-		for a, v := range s.Q {
-			probs[a] = ActionProbability(t.mode, eps, n, ties, v == top)
+		probs = make([]float64, len(s.Q))
+		for a := range s.Q {
+			probs[a] = g.Probability(t.mode, eps, a, s.Q, s.Visits)
 		}
 		t.cache[state] = probs
 	}

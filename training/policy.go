@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 	"reflect"
+	"slices"
 	"time"
 	"unicode"
 	"unicode/utf8"
@@ -47,6 +48,15 @@ type Settings struct {
 	// EpsilonDecayVisits is k in epsilon(s) = max(epsilon_min, epsilon*k/(k+N(s)));
 	// 0 turns the decay off.
 	EpsilonDecayVisits float64 `json:"epsilon_decay_visits,omitempty" validate:"gte=0,finite"`
+	// GreedyMinVisits is how often an action must have been tried in a
+	// state before it may be greedy there.
+	GreedyMinVisits int64 `json:"greedy_min_visits" validate:"gte=0"`
+	// GreedyUntried lets an action never tried in a state be greedy there,
+	// at initial_q (an optimistic start needs it).
+	GreedyUntried bool `json:"greedy_untried"`
+	// GreedyFallback is the action greedy answers where no allowed action
+	// is tried enough; "" for none: greedy then has no answer.
+	GreedyFallback string `json:"greedy_fallback,omitempty"`
 }
 
 // DefaultSettings are used for every field a client leaves out.
@@ -163,15 +173,18 @@ var ruleMessages = map[string]string{
 
 // Validate reports every invalid setting, each with its JSON field name.
 func (s Settings) Validate() error {
+	var l problemList
+	if s.GreedyFallback != "" && !slices.Contains(s.Actions, s.GreedyFallback) {
+		l.add(-1, -1, "greedy_fallback", "%q is not one of the policy's actions", truncate(s.GreedyFallback, 64))
+	}
 	err := settingsValidator.Struct(s)
 	if err == nil {
-		return nil
+		return l.err()
 	}
 	var fieldErrs validator.ValidationErrors
 	if !errors.As(err, &fieldErrs) {
 		return fmt.Errorf("validate settings: %w", err)
 	}
-	var l problemList
 	for _, fe := range fieldErrs {
 		msg, ok := ruleMessages[fe.Tag()]
 		if !ok {

@@ -46,6 +46,8 @@ type replicaTable struct {
 	mu       sync.RWMutex
 	policy   Policy
 	index    map[string]int16
+	// fallback is the index of the policy's greedy fallback action, -1 for none.
+	fallback int16
 	states   map[string]*stateValues
 	revision int64
 	pairs    int
@@ -85,7 +87,12 @@ type ChooseResult struct {
 	Explored     bool
 	GreedyAction string
 	KnownState   bool
-	Revision     int64
+	// Visits is how often the chosen action was tried in the state.
+	Visits int64
+	// Fallback is true when the action is the policy's greedy_fallback,
+	// standing in for actions not tried enough.
+	Fallback bool
+	Revision int64
 	// Staleness is how long ago the copy was last confirmed current.
 	Staleness time.Duration
 }
@@ -101,6 +108,7 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 		return ChooseResult{}, err
 	}
 	var qBuf [maxStackActions]float64
+	var visitsBuf [maxStackActions]int64
 	var idxBuf [maxStackActions]int16
 	t.mu.RLock()
 	defer t.mu.RUnlock()
@@ -123,29 +131,51 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 			allowed = append(allowed, a)
 		}
 	}
-	q := qBuf[:0]
+	q, visits := qBuf[:0], visitsBuf[:0]
 	sv, known := t.states[req.State]
-	var visits int64
-	for _, a := range allowed {
+	var total int64
+	fallback := -1
+	for i, a := range allowed {
 		if known {
-			q = append(q, sv.q[a])
+			q, visits = append(q, sv.q[a]), append(visits, sv.visits[a])
 		} else {
-			q = append(q, t.policy.InitialQ)
+			q, visits = append(q, t.policy.InitialQ), append(visits, 0)
+		}
+		if a == t.fallback {
+			fallback = i
 		}
 	}
 	if known {
-		visits = sv.total
+		total = sv.total
 	}
-	c := Choose(q, req.Mode, t.policy.EpsilonFor(visits), SharedRandom)
+	c := ChooseWith(q, visits, t.policy.GreedyRule(), fallback, req.Mode, t.policy.EpsilonFor(total), SharedRandom)
+	if c.NoAnswer {
+		return ChooseResult{}, noAnswer(t.policy, req.State)
+	}
 	return ChooseResult{
 		Action:       t.policy.Actions[allowed[c.Action]],
 		Probability:  c.Probability,
 		Explored:     c.Explored,
 		GreedyAction: t.policy.Actions[allowed[c.Greedy]],
 		KnownState:   known,
+		Visits:       visits[c.Action],
+		Fallback:     c.Fallback,
 		Revision:     t.revision,
 		Staleness:    time.Since(time.Unix(0, t.syncedAt.Load())),
 	}, nil
+}
+
+// noAnswer explains why greedy has no answer in a state.
+func noAnswer(p Policy, state string) error {
+	tried := "tried there"
+	if p.GreedyMinVisits > 1 {
+		tried = fmt.Sprintf("tried there at least %d times (greedy_min_visits)", p.GreedyMinVisits)
+	}
+	why := "the policy has no greedy_fallback"
+	if p.GreedyFallback != "" {
+		why = fmt.Sprintf("its greedy_fallback %q is not among the allowed actions", truncate(p.GreedyFallback, 64))
+	}
+	return &kindError{ErrNoAnswer, fmt.Sprintf("greedy has no answer in state %q: no allowed action has been %s, and %s; choose with mode explore, set greedy_fallback, or allow the fallback", truncate(state, 64), tried, why)}
 }
 
 // table returns a policy's table, loading it on first use.
@@ -168,7 +198,7 @@ func (r *Replica) load(ctx context.Context, p Policy) (*replicaTable, error) {
 	r.mu.Lock()
 	t, ok := r.byID[p.ID]
 	if !ok {
-		t = &replicaTable{policy: p, index: p.ActionIndex(), states: map[string]*stateValues{}, pairsByVisits: map[int64]int64{}}
+		t = &replicaTable{policy: p, index: p.ActionIndex(), fallback: -1, states: map[string]*stateValues{}, pairsByVisits: map[int64]int64{}}
 		r.byID[p.ID] = t
 	}
 	r.mu.Unlock()
@@ -200,7 +230,7 @@ func (r *Replica) sync(ctx context.Context, t *replicaTable, p Policy) error {
 			return fmt.Errorf("refresh policy %q: %w", p.Name, err)
 		}
 		t.mu.Lock()
-		t.policy, t.index, t.states = fresh.policy, fresh.index, fresh.states
+		t.policy, t.index, t.fallback, t.states = fresh.policy, fresh.index, fresh.fallback, fresh.states
 		t.pairs, t.visits, t.pairsByVisits = fresh.pairs, fresh.visits, fresh.pairsByVisits
 		// p was read before the rows, so they hold at least its revision.
 		t.epoch, t.revision = p.TableEpoch, max(fresh.revision, p.Revision)
@@ -228,6 +258,10 @@ func (t *replicaTable) setPolicy(p Policy) {
 		t.clear()
 	}
 	t.policy, t.index = p, p.ActionIndex()
+	t.fallback = -1
+	if a, ok := t.index[p.GreedyFallback]; ok {
+		t.fallback = a
+	}
 }
 
 func (t *replicaTable) applyRow(row QRow) {
