@@ -43,9 +43,9 @@ type replicaTable struct {
 	// loadMu serialises loads of this table so rows arrive in order.
 	loadMu sync.Mutex
 
-	mu       sync.RWMutex
-	policy   Policy
-	index    map[string]int16
+	mu     sync.RWMutex
+	policy Policy
+	index  map[string]int16
 	// fallback is the index of the policy's greedy fallback action, -1 for none.
 	fallback int16
 	states   map[string]*stateValues
