@@ -176,7 +176,9 @@ func (s *service) send(method, path, contentType string, body []byte, raw bool) 
 		if err := openapi3filter.ValidateRequest(context.Background(), in); err != nil {
 			s.t.Fatalf("request %s %s does not match the OpenAPI document: %v", method, path, err)
 		}
-		req.Body = io.NopCloser(bytes.NewReader(body))
+		// Validation may fill in defaults and re-encode the body; send the
+		// client's own bytes.
+		req.Body, req.ContentLength = io.NopCloser(bytes.NewReader(body)), int64(len(body))
 	}
 	resp, err := s.client.Do(req)
 	if err != nil {

@@ -13,14 +13,14 @@ import (
 
 const policyColumns = `policy_id, name, actions, gamma, alpha, epsilon, epsilon_min,
 	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at, table_epoch,
-	greedy_min_visits, greedy_untried, coalesce(greedy_fallback, '')`
+	greedy_min_visits, greedy_untried, coalesce(greedy_fallback, ''), state_shape, require_probability`
 
 func scanPolicy(row pgx.Row) (training.Policy, error) {
 	var p training.Policy
 	var visit string
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
 		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch,
-		&p.GreedyMinVisits, &p.GreedyUntried, &p.GreedyFallback)
+		&p.GreedyMinVisits, &p.GreedyUntried, &p.GreedyFallback, &p.StateShape, &p.RequireProbability)
 	p.Visit = training.VisitRule(visit)
 	return p, err
 }
@@ -65,11 +65,11 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 		if created {
 			p, err = scanPolicy(tx.QueryRow(ctx, `
 				INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q,
-					greedy_min_visits, greedy_untried, greedy_fallback)
-				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12)
+					greedy_min_visits, greedy_untried, greedy_fallback, state_shape, require_probability)
+				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14)
 				RETURNING `+policyColumns,
 				name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ,
-				s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback)))
+				s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback), s.StateShape, s.RequireProbability))
 			if err != nil {
 				return fmt.Errorf("insert policy: %w", err)
 			}
@@ -87,11 +87,12 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 			p, err = scanPolicy(tx.QueryRow(ctx, `
 				UPDATE policies SET actions = $2, gamma = $3, alpha = $4, epsilon = $5, epsilon_min = $6,
 					epsilon_decay_visits = $7, visit = $8, initial_q = $9,
-					greedy_min_visits = $10, greedy_untried = $11, greedy_fallback = $12, updated_at = now()
+					greedy_min_visits = $10, greedy_untried = $11, greedy_fallback = $12,
+					state_shape = $13, require_probability = $14, updated_at = now()
 				WHERE policy_id = $1
 				RETURNING `+policyColumns,
 				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ,
-				s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback)))
+				s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback), s.StateShape, s.RequireProbability))
 			if err != nil {
 				return fmt.Errorf("update policy: %w", err)
 			}
@@ -216,7 +217,7 @@ func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
 	p := &st.Policy
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
 		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch,
-		&p.GreedyMinVisits, &p.GreedyUntried, &p.GreedyFallback,
+		&p.GreedyMinVisits, &p.GreedyUntried, &p.GreedyFallback, &p.StateShape, &p.RequireProbability,
 		&st.Episodes, &st.Backlog, &st.OldestUntrained, &st.States, &st.Pairs, &st.LastTrainedAt)
 	p.Visit = training.VisitRule(visit)
 	return st, err

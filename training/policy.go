@@ -57,6 +57,11 @@ type Settings struct {
 	// GreedyFallback is the action greedy answers where no allowed action
 	// is tried enough; "" for none: greedy then has no answer.
 	GreedyFallback string `json:"greedy_fallback,omitempty"`
+	// StateShape, when set, is the form every state must have.
+	StateShape *StateShape `json:"state_shape,omitempty"`
+	// RequireProbability refuses steps without a behaviour probability
+	// (off-policy evaluation needs one on every step).
+	RequireProbability bool `json:"require_probability"`
 }
 
 // DefaultSettings are used for every field a client leaves out.
@@ -176,6 +181,9 @@ func (s Settings) Validate() error {
 	var l problemList
 	if s.GreedyFallback != "" && !slices.Contains(s.Actions, s.GreedyFallback) {
 		l.add(-1, -1, "greedy_fallback", "%q is not one of the policy's actions", truncate(s.GreedyFallback, 64))
+	}
+	if s.StateShape != nil {
+		s.StateShape.check(&l)
 	}
 	err := settingsValidator.Struct(s)
 	if err == nil {

@@ -112,6 +112,9 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 	var idxBuf [maxStackActions]int16
 	t.mu.RLock()
 	defer t.mu.RUnlock()
+	if err := t.policy.CheckState(req.State); err != nil {
+		return ChooseResult{}, err
+	}
 	allowed := idxBuf[:0]
 	if len(req.Allowed) == 0 {
 		for i := range t.policy.Actions {
