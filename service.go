@@ -112,7 +112,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 
 	var handler http.Handler
 	if cfg.RunAPI {
-		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, History: db, Episodes: db, States: db,
+		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, History: db, Eraser: db, Episodes: db, States: db,
 			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth,
 			Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db})
 	} else {

@@ -219,6 +219,38 @@ func handleSettingsHistory(h SettingsHistory) echo.HandlerFunc {
 	}
 }
 
+// handleEraseEpisode deletes one episode's stored record.
+func handleEraseEpisode(e Eraser) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		id, err := pathParam(c, "episode")
+		if err != nil {
+			return err
+		}
+		if err := e.EraseEpisode(c.Request().Context(), name, id); err != nil {
+			return err
+		}
+		return c.NoContent(http.StatusNoContent)
+	}
+}
+
+// handleDeletePolicy deletes a policy with everything it owns.
+func handleDeletePolicy(e Eraser) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		if err := e.DeletePolicy(c.Request().Context(), name); err != nil {
+			return err
+		}
+		return c.NoContent(http.StatusNoContent)
+	}
+}
+
 func handlePostEpisodes(e Episodes, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)

@@ -23,6 +23,13 @@ type Policies interface {
 	ListPolicyStatus(ctx context.Context) ([]training.PolicyStatus, error)
 }
 
+// Eraser deletes stored data about people: one episode's record, or a
+// policy with everything it owns.
+type Eraser interface {
+	EraseEpisode(ctx context.Context, policy, episodeID string) error
+	DeletePolicy(ctx context.Context, name string) error
+}
+
 // SettingsHistory reads the recorded changes of a policy's settings.
 type SettingsHistory interface {
 	SettingsHistory(ctx context.Context, policy string, before int64, limit int) (training.SettingsHistoryPage, error)
@@ -69,6 +76,7 @@ type Deps struct {
 	Logger   *slog.Logger
 	Policies Policies
 	History  SettingsHistory
+	Eraser   Eraser
 	Episodes Episodes
 	States   States
 	Chooser  Chooser

@@ -307,10 +307,30 @@ func (r *Replica) Refresh(ctx context.Context, policyID int32) error {
 		return nil
 	}
 	p, err := r.source.PolicyByID(ctx, policyID)
+	if errors.Is(err, ErrNotFound) {
+		r.drop(policyID)
+		return nil
+	}
 	if err != nil {
 		return err
 	}
 	return r.renamed(t, p, r.sync(ctx, t, p))
+}
+
+// drop forgets a deleted policy's table.
+func (r *Replica) drop(policyID int32) {
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	t, ok := r.byID[policyID]
+	if !ok {
+		return
+	}
+	delete(r.byID, policyID)
+	for name, held := range r.byName {
+		if held == t {
+			delete(r.byName, name)
+		}
+	}
 }
 
 // renamed keeps the name index right after a sync (names never change
@@ -331,6 +351,22 @@ func (r *Replica) RefreshAll(ctx context.Context) error {
 	policies, err := r.source.ListPolicies(ctx)
 	if err != nil {
 		return err
+	}
+	// Tables of policies deleted meanwhile are dropped.
+	exists := make(map[int32]bool, len(policies))
+	for _, p := range policies {
+		exists[p.ID] = true
+	}
+	r.mu.RLock()
+	var gone []int32
+	for id := range r.byID {
+		if !exists[id] {
+			gone = append(gone, id)
+		}
+	}
+	r.mu.RUnlock()
+	for _, id := range gone {
+		r.drop(id)
 	}
 	var errs []error
 	for _, p := range policies {
