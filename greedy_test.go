@@ -139,7 +139,7 @@ func TestGreedyAnswersOnlyWithTriedActions(t *testing.T) {
 		t.Fatalf("state view names %q greedy, want the tried text_reminder", view.GreedyAction)
 	}
 	page := string(s.send("GET", "/policies/renewals/states", "", nil, false).Body)
-	if !strings.Contains(page, "write_off <i>untried</i>") {
+	if !strings.Contains(page, "write_off <em>untried</em>") {
 		t.Fatalf("the states page does not show write_off as untried:\n%s", page)
 	}
 }
