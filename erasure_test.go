@@ -50,6 +50,20 @@ func TestErasingAnEpisodeAndDeletingAPolicy(t *testing.T) {
 	if v.Known {
 		t.Fatalf("the rebuilt table still knows the erased episode's state: %+v", v)
 	}
+	// The replay's policy has the source's settings, and its history says
+	// where it came from.
+	var h settingsHistory
+	s.call("GET", "/v1/policies/renewals-rebuilt/settings-history", nil, 200).decode(t, &h)
+	if len(h.Changes) != 1 || h.Changes[0].Kind != "create" || h.Changes[0].TokenLabel != "replay of renewals" || h.Changes[0].TokenID != nil {
+		t.Fatalf("replayed policy's history: %+v", h)
+	}
+	var rebuilt struct {
+		GreedyUntried bool `json:"greedy_untried"`
+	}
+	s.call("GET", "/v1/policies/renewals-rebuilt", nil, 200).decode(t, &rebuilt)
+	if !rebuilt.GreedyUntried {
+		t.Fatal("the replay did not keep the source's greedy settings")
+	}
 
 	// Deleting a policy removes every row it owns, in every table.
 	tables := []string{"policies", "episodes", "q_values", "q_changes", "training_history", "snapshots", "snapshot_values", "jobs", "settings_changes"}

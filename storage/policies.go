@@ -63,15 +63,8 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 		}
 		created = current == nil
 		if created {
-			p, err = scanPolicy(tx.QueryRow(ctx, `
-				INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q,
-					greedy_min_visits, greedy_untried, greedy_fallback, state_shape, require_probability)
-				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14)
-				RETURNING `+policyColumns,
-				name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ,
-				s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback), s.StateShape, s.RequireProbability))
-			if err != nil {
-				return fmt.Errorf("insert policy: %w", err)
+			if p, err = insertPolicy(ctx, tx, name, s); err != nil {
+				return err
 			}
 		} else {
 			if !slices.Equal(existing.Actions, s.Actions) {
@@ -103,13 +96,8 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 		}
 		// Diff what was stored, so that the history shows what the table
 		// holds (a setting the schema drops would not be recorded as kept).
-		if diff := training.DiffSettings(old, p.Settings); len(diff) > 0 {
-			if _, err := tx.Exec(ctx, `
-				INSERT INTO settings_changes (policy_id, kind, token_id, token_label, fields)
-				VALUES ($1, $2, $3, $4, $5)`,
-				p.ID, string(kind), change.By.TokenID, nullIfEmpty(change.By.TokenLabel), diff); err != nil {
-				return fmt.Errorf("record settings change: %w", err)
-			}
+		if err := recordSettingsChange(ctx, tx, p.ID, kind, change.By, training.DiffSettings(old, p.Settings)); err != nil {
+			return err
 		}
 		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, p.ID)
 		return err
@@ -120,6 +108,37 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 		err = db.WithTx(ctx, put)
 	}
 	return p, created, err
+}
+
+// insertPolicy creates a policy with its settings.
+func insertPolicy(ctx context.Context, tx pgx.Tx, name string, s training.Settings) (training.Policy, error) {
+	p, err := scanPolicy(tx.QueryRow(ctx, `
+		INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q,
+			greedy_min_visits, greedy_untried, greedy_fallback, state_shape, require_probability)
+		VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14)
+		RETURNING `+policyColumns,
+		name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ,
+		s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback), s.StateShape, s.RequireProbability))
+	if err != nil {
+		return p, fmt.Errorf("insert policy: %w", err)
+	}
+	return p, nil
+}
+
+// recordSettingsChange adds a change to the policy's settings history,
+// unless nothing changed.
+func recordSettingsChange(ctx context.Context, tx pgx.Tx, policyID int32, kind training.ChangeKind, by training.Actor, diff []training.SettingDiff) error {
+	if len(diff) == 0 {
+		return nil
+	}
+	_, err := tx.Exec(ctx, `
+		INSERT INTO settings_changes (policy_id, kind, token_id, token_label, fields)
+		VALUES ($1, $2, $3, $4, $5)`,
+		policyID, string(kind), by.TokenID, nullIfEmpty(by.TokenLabel), diff)
+	if err != nil {
+		return fmt.Errorf("record settings change: %w", err)
+	}
+	return nil
 }
 
 func nullIfEmpty(s string) *string {

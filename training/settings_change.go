@@ -9,6 +9,7 @@ import (
 	"errors"
 	"fmt"
 	"slices"
+	"strings"
 	"time"
 )
 
@@ -114,8 +115,8 @@ func (c SettingsChange) Resolve(name string, current *Policy) (Settings, ChangeK
 // etagListHas reports whether an If-Match list ("a", "b") names etag.
 // Weak tags never match: If-Match uses strong comparison (RFC 9110, 13.1.1).
 func etagListHas(list, etag string) bool {
-	for _, t := range bytes.Split([]byte(list), []byte(",")) {
-		if string(bytes.TrimSpace(t)) == etag {
+	for _, t := range strings.Split(list, ",") {
+		if strings.TrimSpace(t) == etag {
 			return true
 		}
 	}
