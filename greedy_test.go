@@ -97,6 +97,9 @@ func TestGreedyAnswersOnlyWithTriedActions(t *testing.T) {
 	if c := choose("day=3", "greedy"); c.Action != "wait" || !c.Fallback || c.Visits != 1 {
 		t.Fatalf("under-visited known state: %+v, want the fallback wait", c)
 	}
+	if page := string(s.send("GET", "/policies/renewals", "", nil, false).Body); !strings.Contains(page, "greedy needs 2 visits, else wait") {
+		t.Errorf("the policy page does not state the greedy rule")
+	}
 	// A fallback masked out leaves no answer.
 	nothing("day=9", "text_reminder", "write_off")
 	s.call("POST", base+"/episodes", map[string]any{"episodes": []episodeJSON{
