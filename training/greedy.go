@@ -19,16 +19,21 @@ func (s Settings) GreedyRule() GreedyRule {
 	return GreedyRule{MinVisits: s.GreedyMinVisits, Untried: s.GreedyUntried}
 }
 
-func (r GreedyRule) eligible(visits int64) bool {
-	return visits >= r.MinVisits && (r.Untried || visits > 0)
+// threshold is the fewest visits that make an action eligible.
+func (r GreedyRule) threshold() int64 {
+	if r.Untried {
+		return r.MinVisits
+	}
+	return max(r.MinVisits, 1)
 }
 
 // GreedySet is which of a state's allowed actions are greedy. Choosing and
 // evaluation's target policy both take it from GreedyRule.Find, so that an
 // evaluation evaluates what choose serves.
 type GreedySet struct {
-	rule GreedyRule
-	top  float64
+	top float64
+	// least is the fewest visits of an eligible action.
+	least int64
 	// Size counts the greedy actions; 0 means greedy has no answer.
 	Size int
 	// Fallback is the position of the fallback action when, nothing being
@@ -46,9 +51,21 @@ type GreedySet struct {
 // fallback is the only one, and without one greedy mode has no answer while
 // explore mode treats every action as tied. It does not allocate.
 func (r GreedyRule) Find(q []float64, visits []int64, fallback int, mode Mode) GreedySet {
-	g := GreedySet{rule: r, Fallback: -1}
+	g := GreedySet{least: r.threshold(), Fallback: -1}
+	if visits == nil {
+		g.top, g.Size = q[0], 0
+		for _, v := range q {
+			switch {
+			case v > g.top:
+				g.top, g.Size = v, 1
+			case v == g.top:
+				g.Size++
+			}
+		}
+		return g
+	}
 	for i, v := range q {
-		if visits != nil && !r.eligible(visits[i]) {
+		if visits[i] < g.least {
 			continue
 		}
 		switch {
@@ -69,22 +86,26 @@ func (r GreedyRule) Find(q []float64, visits []int64, fallback int, mode Mode) G
 }
 
 // Has reports whether action i is greedy.
-func (g GreedySet) Has(i int, q []float64, visits []int64) bool {
+func (g *GreedySet) Has(i int, q []float64, visits []int64) bool {
 	switch {
 	case g.Fallback >= 0:
 		return i == g.Fallback
 	case g.all:
 		return true
-	case g.Size == 0:
-		return false
 	}
-	return q[i] == g.top && (visits == nil || g.rule.eligible(visits[i]))
+	return g.Size > 0 && q[i] == g.top && (visits == nil || visits[i] >= g.least)
 }
 
 // nth is the position of the k-th greedy action.
-func (g GreedySet) nth(q []float64, visits []int64, k int) int {
-	for i := range q {
-		if g.Has(i, q, visits) {
+func (g *GreedySet) nth(q []float64, visits []int64, k int) int {
+	switch {
+	case g.Fallback >= 0:
+		return g.Fallback
+	case g.all:
+		return k
+	}
+	for i, v := range q {
+		if v == g.top && (visits == nil || visits[i] >= g.least) {
 			if k == 0 {
 				return i
 			}
@@ -96,7 +117,7 @@ func (g GreedySet) nth(q []float64, visits []int64, k int) int {
 
 // Probability is the chance the rule gives action i in this set: see
 // ActionProbability; 0 for every action when greedy has no answer.
-func (g GreedySet) Probability(mode Mode, epsilon float64, i int, q []float64, visits []int64) float64 {
+func (g *GreedySet) Probability(mode Mode, epsilon float64, i int, q []float64, visits []int64) float64 {
 	if g.Size == 0 {
 		return 0
 	}
