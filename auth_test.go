@@ -76,7 +76,7 @@ func TestTokensScopesAndPolicies(t *testing.T) {
 		return "POST", "/v1/policies/" + p + "/episodes", oneStepBody(id)
 	}
 	choose := func(p string) (string, string, any) {
-		return "POST", "/v1/policies/" + p + "/choose", map[string]any{"state": "s"}
+		return "POST", "/v1/policies/" + p + "/choose", map[string]any{"state": "s", "mode": "explore"}
 	}
 	state := func(p string) (string, string, any) { return "GET", "/v1/policies/" + p + "/states/s", nil }
 	getPolicy := func(p string) (string, string, any) { return "GET", "/v1/policies/" + p, nil }
@@ -120,7 +120,8 @@ func TestTokensScopesAndPolicies(t *testing.T) {
 			if body != nil {
 				data, ctype = must(json.Marshal(body)), "application/json"
 			}
-			r := s.as(c.secret).send(method, path, ctype, data, false)
+			// If-Match: * lets the PUT replace the existing policy's settings.
+			r := s.as(c.secret).withHeader("If-Match", "*").send(method, path, ctype, data, false)
 			if r.Status != c.want || !strings.Contains(string(r.Body), c.detail) {
 				t.Fatalf("%s %s: %d %s, want %d mentioning %q", method, path, r.Status, r.Body, c.want, c.detail)
 			}
@@ -178,14 +179,14 @@ func TestRevokedTokensStopWorking(t *testing.T) {
 	s.call("PUT", "/v1/policies/alpha", map[string]any{"actions": []string{"a", "b"}}, 201)
 
 	secret := createToken(t, s.databaseURL, "--label", "to revoke", "--scope", "choose")
-	s.as(secret).call("POST", "/v1/policies/alpha/choose", map[string]any{"state": "s"}, 200)
+	s.as(secret).call("POST", "/v1/policies/alpha/choose", map[string]any{"state": "s", "mode": "explore"}, 200)
 	out, err := s.qtally("token", "revoke", tokenID(t, secret))
 	if err != nil || !strings.Contains(out, "revoked") {
 		t.Fatalf("revoke: %v\n%s", err, out)
 	}
 	revoked := time.Now()
 	waitFor(t, 30*time.Second, "the revoked token to be refused", func() bool {
-		return s.as(secret).send("POST", "/v1/policies/alpha/choose", "application/json", []byte(`{"state":"s"}`), false).Status == 401
+		return s.as(secret).send("POST", "/v1/policies/alpha/choose", "application/json", []byte(`{"state":"s","mode":"explore"}`), false).Status == 401
 	})
 	t.Logf("refused %v after revocation (notification)", time.Since(revoked))
 
@@ -193,12 +194,12 @@ func TestRevokedTokensStopWorking(t *testing.T) {
 	// periodic reload (1 s here) must still catch it.
 	quiet := createToken(t, s.databaseURL, "--label", "revoked quietly", "--scope", "choose")
 	waitFor(t, 30*time.Second, "a new token to be accepted", func() bool {
-		return s.as(quiet).send("POST", "/v1/policies/alpha/choose", "application/json", []byte(`{"state":"s"}`), false).Status == 200
+		return s.as(quiet).send("POST", "/v1/policies/alpha/choose", "application/json", []byte(`{"state":"s","mode":"explore"}`), false).Status == 200
 	})
 	pgtest.Exec(t, s.databaseURL, `UPDATE api_tokens SET revoked_at = now() WHERE token_id = $1`, must(strconv.ParseInt(tokenID(t, quiet), 10, 64)))
 	revoked = time.Now()
 	waitFor(t, 30*time.Second, "the quietly revoked token to be refused", func() bool {
-		return s.as(quiet).send("POST", "/v1/policies/alpha/choose", "application/json", []byte(`{"state":"s"}`), false).Status == 401
+		return s.as(quiet).send("POST", "/v1/policies/alpha/choose", "application/json", []byte(`{"state":"s","mode":"explore"}`), false).Status == 401
 	})
 	t.Logf("refused %v after revocation (periodic reload every 1 s)", time.Since(revoked))
 
@@ -220,7 +221,7 @@ func TestTokenRateLimit(t *testing.T) {
 	s := startService(t, pgtest.NewDatabase(t), "serve", "--token-rate", "1000", "--token-burst", "1000")
 	s.call("PUT", "/v1/policies/alpha", map[string]any{"actions": []string{"a", "b"}}, 201)
 	slow := createToken(t, s.databaseURL, "--label", "slow", "--scope", "choose", "--rate", "0.2", "--burst", "3")
-	body := []byte(`{"state":"s"}`)
+	body := []byte(`{"state":"s","mode":"explore"}`)
 	for i := range 3 {
 		if r := s.as(slow).send("POST", "/v1/policies/alpha/choose", "application/json", body, false); r.Status != 200 {
 			t.Fatalf("request %d within the burst: %d %s", i, r.Status, r.Body)
@@ -235,7 +236,7 @@ func TestTokenRateLimit(t *testing.T) {
 		t.Fatalf("Retry-After %q, want 4 or 5 seconds", r.Header.Get("Retry-After"))
 	}
 	// The server-wide rate applies to the harness's token, far from exhausted.
-	s.call("POST", "/v1/policies/alpha/choose", map[string]any{"state": "s"}, 200)
+	s.call("POST", "/v1/policies/alpha/choose", map[string]any{"state": "s", "mode": "explore"}, 200)
 }
 
 // Token digests are keyed with the server's pepper, here read from a file:

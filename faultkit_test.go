@@ -242,9 +242,10 @@ type choice struct {
 	CopyAge  float64 `json:"copy_age_seconds"`
 }
 
-// choose asks for a greedy action; anything but 200 is an error.
+// choose asks for an action, exploring so that a state not trained yet has
+// an answer too; anything but 200 is an error.
 func choose(client *http.Client, baseURL, policy, state string) (choice, error) {
-	body := must(json.Marshal(map[string]any{"state": state, "mode": "greedy"}))
+	body := must(json.Marshal(map[string]any{"state": state, "mode": "explore"}))
 	resp, err := client.Post(baseURL+"/v1/policies/"+policy+"/choose", "application/json", bytes.NewReader(body))
 	if err != nil {
 		return choice{}, fmt.Errorf("choose: %w", err)

@@ -42,6 +42,8 @@ type service struct {
 	// token with every scope that the harness creates, as an operator would.
 	authorization string
 	databaseURL   string
+	// headers are sent with every request (If-Match and the like).
+	headers map[string]string
 }
 
 type lockedBuffer struct {
@@ -173,6 +175,9 @@ func (s *service) send(method, path, contentType string, body []byte, raw bool) 
 	}
 	if s.authorization != "" {
 		req.Header.Set("Authorization", s.authorization)
+	}
+	for k, v := range s.headers {
+		req.Header.Set(k, v)
 	}
 	route, params, err := s.router.FindRoute(req)
 	if err != nil {

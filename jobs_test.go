@@ -21,9 +21,10 @@ func TestAJobWhoseRunnerDiesIsTakenOver(t *testing.T) {
 	reader := startProcess(t, bin, env, "serve", "--no-worker")
 	s, r := first.api(), reader.api()
 
-	// The target is the empty table's greedy policy: it ties both actions,
-	// so every ratio is 0.5 / 0.5 = 1 and the bootstrap has no shortcut.
-	s.call("PUT", "/v1/policies/queue", map[string]any{"actions": []string{"now", "later"}, "gamma": 1}, 201)
+	// The target is the empty table's greedy policy: with untried actions
+	// allowed to be greedy it ties both actions, so every ratio is
+	// 0.5 / 0.5 = 1 and the bootstrap has no shortcut.
+	s.call("PUT", "/v1/policies/queue", map[string]any{"actions": []string{"now", "later"}, "gamma": 1, "greedy_untried": true}, 201)
 	s.call("POST", "/v1/policies/queue/snapshots", map[string]any{"name": "blank"}, 201)
 	half := 0.5
 	eps := make([]episodeJSON, 20000)

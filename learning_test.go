@@ -218,7 +218,8 @@ func TestLearnedTableEqualsSequentialReference(t *testing.T) {
 // arrives.
 func TestChooseSeesEveryTrainingCommit(t *testing.T) {
 	s := startService(t, pgtest.NewDatabase(t))
-	s.call("PUT", "/v1/policies/handoff", map[string]any{"actions": []string{"bot", "person"}, "alpha": 1, "epsilon": 0.2}, 201)
+	// Untried actions may be greedy here, so that the unseen state has an answer.
+	s.call("PUT", "/v1/policies/handoff", map[string]any{"actions": []string{"bot", "person"}, "alpha": 1, "epsilon": 0.2, "greedy_untried": true}, 201)
 	type chooseReply struct {
 		Action       string  `json:"action"`
 		Probability  float64 `json:"probability"`
@@ -268,16 +269,16 @@ func TestChooseSeesEveryTrainingCommit(t *testing.T) {
 
 func TestChangingActionsAfterLearningIsRefused(t *testing.T) {
 	s := startService(t, pgtest.NewDatabase(t))
-	s.call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b"}}, 201)
+	etag := s.call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b"}}, 201).Header.Get("ETag")
 	// Before anything is stored, actions may change.
-	s.call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b", "c"}}, 200)
+	etag = s.withHeader("If-Match", etag).call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b", "c"}}, 200).Header.Get("ETag")
 	s.call("POST", "/v1/policies/offers/episodes", map[string]any{"episodes": []episodeJSON{{ID: "1", Steps: []stepJSON{{State: "s", Action: "c", Reward: 1}}}}}, 202)
-	r := s.call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b"}}, 409)
+	r := s.withHeader("If-Match", etag).call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b"}}, 409)
 	if !strings.Contains(string(r.Body), "actions cannot change") {
 		t.Fatalf("409 without a reason: %s", r.Body)
 	}
 	// Other settings may still change.
-	s.call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b", "c"}, "epsilon": 0.3}, 200)
+	s.withHeader("If-Match", etag).call("PUT", "/v1/policies/offers", map[string]any{"actions": []string{"a", "b", "c"}, "epsilon": 0.3}, 200)
 	var list struct {
 		Policies []struct {
 			Name    string  `json:"name"`

@@ -151,7 +151,7 @@ func BenchmarkOnePostgres(b *testing.B) {
 	// The first choice of a policy loads its table; that is not choosing.
 	for _, name := range names {
 		var res struct{ Action string }
-		if err := postJSON(ctx, client, chooserProc.URL+"/v1/policies/"+name+"/choose", []byte(`{"state":"s00000"}`), &res); err != nil {
+		if err := postJSON(ctx, client, chooserProc.URL+"/v1/policies/"+name+"/choose", []byte(`{"state":"s00000","mode":"explore"}`), &res); err != nil {
 			b.Fatal(err)
 		}
 	}

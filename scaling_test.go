@@ -396,7 +396,11 @@ func greedyOf(table map[pair]estimate, state string, actions []string) (string, 
 	best, unique := "", false
 	bestQ := math.Inf(-1)
 	for _, a := range actions {
-		q := table[pair{state, a}].q // unvisited pairs hold initial_q, 0 here
+		e, tried := table[pair{state, a}]
+		if !tried {
+			continue // an untried action is never greedy (by default)
+		}
+		q := e.q
 		switch {
 		case q > bestQ:
 			best, bestQ, unique = a, q, true

@@ -125,7 +125,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 
 	var handler http.Handler
 	if cfg.RunAPI {
-		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, Episodes: db, States: db,
+		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, History: db, Eraser: db, Episodes: db, States: db,
 			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth, Sessions: sessions,
 			Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db, Audit: db})
 	} else {

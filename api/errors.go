@@ -81,6 +81,12 @@ func (pt problemTypes) toProblem(err error) Problem {
 		return pt.problem(problemNotFound, err.Error())
 	case errors.Is(err, training.ErrConflict):
 		return pt.problem(problemConflict, err.Error())
+	case errors.Is(err, training.ErrNoAnswer):
+		return pt.problem(problemNoGreedyAnswer, err.Error())
+	case errors.Is(err, training.ErrPreconditionFailed):
+		return pt.problem(problemPreconditionFailed, err.Error())
+	case errors.Is(err, training.ErrPreconditionRequired):
+		return pt.problem(problemPreconditionRequired, err.Error())
 	case errors.Is(err, training.ErrUnauthenticated):
 		return pt.problem(problemUnauthenticated, err.Error())
 	case errors.Is(err, training.ErrForbidden):

@@ -5,6 +5,7 @@ import (
 	"context"
 	"encoding/json"
 	"errors"
+	"fmt"
 	"io"
 	"net/http"
 	"net/url"
@@ -94,17 +95,20 @@ func handleGetPolicy(p Policies) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
+		c.Response().Header().Set(headerETag, training.SettingsETag(st.Policy))
 		return c.JSON(http.StatusOK, st)
 	}
 }
 
+// handlePutPolicy creates a policy or replaces all its settings: fields the
+// client leaves out take their defaults. Replacing needs If-Match with the
+// settings' ETag, so that no client overwrites settings it has not seen.
 func handlePutPolicy(p Policies, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
 			return err
 		}
-		// Fields the client leaves out keep their defaults.
 		settings := training.DefaultSettings()
 		if err := bindJSON(c, cfg.MaxBodyBytes, &settings); err != nil {
 			return err
@@ -112,7 +116,8 @@ func handlePutPolicy(p Policies, cfg Config) echo.HandlerFunc {
 		if err := settings.Validate(); err != nil {
 			return err
 		}
-		policy, created, err := p.PutPolicy(c.Request().Context(), name, settings)
+		policy, created, err := p.ChangePolicy(c.Request().Context(), name, training.SettingsChange{
+			IfMatch: c.Request().Header.Get("If-Match"), Replace: &settings, By: training.ActorOf(requestToken(c))})
 		if err != nil {
 			return err
 		}
@@ -120,7 +125,129 @@ func handlePutPolicy(p Policies, cfg Config) echo.HandlerFunc {
 		if created {
 			status = http.StatusCreated
 		}
+		c.Response().Header().Set(headerETag, training.SettingsETag(policy))
 		return c.JSON(status, policy)
+	}
+}
+
+const (
+	mediaMergePatch = "application/merge-patch+json"
+	headerETag      = "ETag"
+)
+
+// handlePatchPolicy changes the settings a JSON merge patch (RFC 7396)
+// names and keeps the others; null gives a setting its default again.
+// If-Match is optional: a patch overwrites only what it names.
+func handlePatchPolicy(p Policies, cfg Config) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		patch, _, err := readBody(c, cfg.MaxBodyBytes, mediaMergePatch)
+		if err != nil {
+			return err
+		}
+		var fields map[string]json.RawMessage
+		if err := decodeStrict(patch, &fields, -1); err != nil {
+			return err
+		}
+		if fields == nil {
+			return training.Invalid(-1, -1, "", "a settings patch must be a JSON object")
+		}
+		apply := func(current training.Settings) (training.Settings, error) {
+			doc, err := json.Marshal(current)
+			if err != nil {
+				return current, fmt.Errorf("encode settings: %w", err)
+			}
+			merged, err := training.MergePatch(doc, patch)
+			if err != nil {
+				return current, fmt.Errorf("apply merge patch: %w", err)
+			}
+			next := training.DefaultSettings()
+			return next, decodeStrict(merged, &next, -1)
+		}
+		policy, _, err := p.ChangePolicy(c.Request().Context(), name, training.SettingsChange{
+			IfMatch: c.Request().Header.Get("If-Match"), Patch: apply, By: training.ActorOf(requestToken(c))})
+		if err != nil {
+			return err
+		}
+		c.Response().Header().Set(headerETag, training.SettingsETag(policy))
+		return c.JSON(http.StatusOK, policy)
+	}
+}
+
+type settingsHistoryResponse struct {
+	Changes    []training.SettingsChangeRecord `json:"changes"`
+	NextCursor string                          `json:"next_cursor,omitempty"`
+}
+
+func handleSettingsHistory(h SettingsHistory) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		limit := training.DefaultHistoryPage
+		if s := c.QueryParam("limit"); s != "" {
+			n, err := strconv.Atoi(s)
+			if err != nil || n < 1 || n > training.MaxHistoryPage {
+				return training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", training.MaxHistoryPage)
+			}
+			limit = n
+		}
+		var before int64
+		if s := c.QueryParam("cursor"); s != "" {
+			n, err := strconv.ParseInt(s, 10, 64)
+			if err != nil || n < 1 {
+				return training.Invalid(-1, -1, "cursor", "is not a cursor this service handed out; start the listing again without it")
+			}
+			before = n
+		}
+		page, err := h.SettingsHistory(c.Request().Context(), name, before, limit)
+		if err != nil {
+			return err
+		}
+		res := settingsHistoryResponse{Changes: page.Changes}
+		if res.Changes == nil {
+			res.Changes = []training.SettingsChangeRecord{}
+		}
+		if page.Next > 0 {
+			res.NextCursor = strconv.FormatInt(page.Next, 10)
+		}
+		return c.JSON(http.StatusOK, res)
+	}
+}
+
+// handleEraseEpisode deletes one episode's stored record.
+func handleEraseEpisode(e Eraser) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		id, err := pathParam(c, "episode")
+		if err != nil {
+			return err
+		}
+		if err := e.EraseEpisode(c.Request().Context(), name, id); err != nil {
+			return err
+		}
+		return c.NoContent(http.StatusNoContent)
+	}
+}
+
+// handleDeletePolicy deletes a policy with everything it owns.
+func handleDeletePolicy(e Eraser) echo.HandlerFunc {
+	return func(c echo.Context) error {
+		name, err := policyParam(c)
+		if err != nil {
+			return err
+		}
+		if err := e.DeletePolicy(c.Request().Context(), name); err != nil {
+			return err
+		}
+		return c.NoContent(http.StatusNoContent)
 	}
 }
 
@@ -214,8 +341,12 @@ type chooseResponse struct {
 	KnownState   bool    `json:"known_state"`
 	// Allowed is the set the action was chosen from; posted with the step
 	// (beside the probability), it lets evaluation recompute the choice.
-	Allowed  []string `json:"allowed"`
-	Revision int64    `json:"revision"`
+	Allowed []string `json:"allowed"`
+	// Visits is how often the chosen action was tried in the state.
+	Visits int64 `json:"visits"`
+	// Fallback is true when the action is the policy's greedy_fallback.
+	Fallback bool  `json:"fallback"`
+	Revision int64 `json:"revision"`
 	// CopyAgeSeconds is how long ago this process last confirmed its
 	// in-memory copy was current.
 	CopyAgeSeconds float64 `json:"copy_age_seconds"`
@@ -245,7 +376,7 @@ func handleChoose(ch Chooser, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
 		m.Choices.WithLabelValues(name, string(req.Mode), strconv.FormatBool(res.Explored), strconv.FormatBool(res.KnownState)).Inc()
 		return c.JSON(http.StatusOK, chooseResponse{
 			Action: res.Action, Probability: res.Probability, Explored: res.Explored,
-			GreedyAction: res.GreedyAction, KnownState: res.KnownState, Allowed: res.Allowed, Revision: res.Revision,
+			GreedyAction: res.GreedyAction, KnownState: res.KnownState, Allowed: res.Allowed, Visits: res.Visits, Fallback: res.Fallback, Revision: res.Revision,
 			CopyAgeSeconds: res.Staleness.Seconds(),
 		})
 	}

@@ -30,6 +30,11 @@ const (
 	problemForbidden       problemName = "forbidden"
 	problemUnavailable     problemName = "unavailable"
 	problemQuotaExceeded   problemName = "quota-exceeded"
+	// The two conditional-request problems of settings changes (RFC 9110
+	// section 13.1.1 and RFC 6585 section 3).
+	problemPreconditionFailed   problemName = "precondition-failed"
+	problemPreconditionRequired problemName = "precondition-required"
+	problemNoGreedyAnswer       problemName = "no-greedy-answer"
 )
 
 // problemDefinition is what every answer of one problem type carries.
@@ -39,13 +44,16 @@ type problemDefinition struct {
 }
 
 var problemDefinitions = map[problemName]problemDefinition{
-	problemInvalidInput:    {"Invalid input", http.StatusBadRequest},
-	problemNotFound:        {"Not found", http.StatusNotFound},
-	problemConflict:        {"Conflict", http.StatusConflict},
-	problemUnauthenticated: {"Unauthenticated", http.StatusUnauthorized},
-	problemForbidden:       {"Forbidden", http.StatusForbidden},
-	problemUnavailable:     {"Temporarily unavailable", http.StatusServiceUnavailable},
-	problemQuotaExceeded:   {"Quota exceeded", http.StatusConflict},
+	problemInvalidInput:         {"Invalid input", http.StatusBadRequest},
+	problemNotFound:             {"Not found", http.StatusNotFound},
+	problemConflict:             {"Conflict", http.StatusConflict},
+	problemUnauthenticated:      {"Unauthenticated", http.StatusUnauthorized},
+	problemForbidden:            {"Forbidden", http.StatusForbidden},
+	problemUnavailable:          {"Temporarily unavailable", http.StatusServiceUnavailable},
+	problemQuotaExceeded:        {"Quota exceeded", http.StatusConflict},
+	problemPreconditionFailed:   {"Precondition failed", http.StatusPreconditionFailed},
+	problemPreconditionRequired: {"Precondition required", http.StatusPreconditionRequired},
+	problemNoGreedyAnswer:       {"No greedy answer", http.StatusConflict},
 }
 
 // problemTypes makes problems whose type URIs lead to the documentation at

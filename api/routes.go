@@ -30,6 +30,10 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoute
 	audit.add(e.GET("/v1/policies/:policy", handleGetPolicy(d.Policies),
 		g.requireScope(training.ScopeAdmin, training.ScopeChoose, training.ScopeIngest)))
 	audit.add(e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg), admin))
+	audit.add(e.PATCH("/v1/policies/:policy", handlePatchPolicy(d.Policies, cfg), admin))
+	audit.add(e.DELETE("/v1/policies/:policy", handleDeletePolicy(d.Eraser), admin))
+	audit.add(e.GET("/v1/policies/:policy/settings-history", handleSettingsHistory(d.History), admin))
+	audit.add(e.DELETE("/v1/policies/:policy/episodes/:episode", handleEraseEpisode(d.Eraser), admin))
 	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg), ingest, bulk)
 	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg), choose)
 	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect), choose)
@@ -64,6 +68,6 @@ func addStatusRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 		e.POST(signOutPath, s.handleSignOut())
 	}
 	e.GET("/", handleOverview(d.Policies), admin)
-	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, cfg), admin)
+	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, d.History, cfg), admin)
 	e.GET("/policies/:policy/states", handleStatesPage(d.Inspect), admin)
 }

@@ -20,9 +20,21 @@ import (
 
 // Policies creates, updates and reads policies.
 type Policies interface {
-	PutPolicy(ctx context.Context, name string, s training.Settings) (training.Policy, bool, error)
+	ChangePolicy(ctx context.Context, name string, change training.SettingsChange) (training.Policy, bool, error)
 	PolicyStatus(ctx context.Context, name string) (training.PolicyStatus, error)
 	ListPolicyStatus(ctx context.Context) ([]training.PolicyStatus, error)
+}
+
+// Eraser deletes stored data about people: one episode's record, or a
+// policy with everything it owns.
+type Eraser interface {
+	EraseEpisode(ctx context.Context, policy, episodeID string) error
+	DeletePolicy(ctx context.Context, name string) error
+}
+
+// SettingsHistory reads the recorded changes of a policy's settings.
+type SettingsHistory interface {
+	SettingsHistory(ctx context.Context, policy string, before int64, limit int) (training.SettingsHistoryPage, error)
 }
 
 // Episodes stores posted episodes.
@@ -78,6 +90,8 @@ type Config struct {
 type Deps struct {
 	Logger   *slog.Logger
 	Policies Policies
+	History  SettingsHistory
+	Eraser   Eraser
 	Episodes Episodes
 	States   States
 	Chooser  Chooser

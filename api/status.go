@@ -112,6 +112,9 @@ type actionQ struct {
 	Action string
 	Q      float64
 	Greedy bool
+	// Untried: never tried in the state, so Q is the initial value, not
+	// something learned.
+	Untried bool
 }
 
 type stateRow struct {
@@ -130,12 +133,17 @@ func newStateRows(states []training.StateSummary, now time.Time) []stateRow {
 	for i, s := range states {
 		r := stateRow{StateSummary: s, Ago: formatAgo(now, &s.UpdatedAt)}
 		for _, a := range s.Actions {
-			r.Best = append(r.Best, actionQ{Action: a.Action, Q: a.Q, Greedy: a.Action == s.GreedyAction})
+			r.Best = append(r.Best, actionQ{Action: a.Action, Q: a.Q, Greedy: a.Action == s.GreedyAction, Untried: a.Visits == 0})
 		}
 		slices.SortStableFunc(r.Best, func(a, b actionQ) int {
 			switch {
 			case a.Greedy != b.Greedy:
 				if a.Greedy {
+					return -1
+				}
+				return 1
+			case a.Untried != b.Untried:
+				if b.Untried {
 					return -1
 				}
 				return 1
@@ -172,9 +180,15 @@ type policyView struct {
 	MostDrift   []stateRow
 	MostVisited []stateRow
 	StatesURL   string
+	// Changes are the latest settings changes, newest first.
+	Changes []training.SettingsChangeRecord
 }
 
-func handlePolicyPage(in Inspector, cfg Config) echo.HandlerFunc {
+// shownChanges bounds the settings changes the policy page lists; the
+// API pages through all of them.
+const shownChanges = 10
+
+func handlePolicyPage(in Inspector, h SettingsHistory, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
@@ -188,8 +202,13 @@ func handlePolicyPage(in Inspector, cfg Config) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
+		changes, err := h.SettingsHistory(c.Request().Context(), name, 0, shownChanges)
+		if err != nil {
+			return err
+		}
 		now := time.Now()
 		v := policyView{
+			Changes:     changes.Changes,
 			pageBase:    pageBase{Title: name, Now: now, Refresh: 30, SignOut: inSession(c)},
 			policyRow:   newPolicyRow(report.Status, now),
 			Span:        chartSpan(report),

@@ -347,6 +347,11 @@ const maxAttempts = 5
 // after the Retry-After it asks for; every request the demo makes is safe
 // to repeat (episode ids make posts idempotent).
 func (c *client) do(ctx context.Context, method, path string, body, result any) (int, error) {
+	return c.doWith(ctx, method, path, nil, body, result)
+}
+
+// doWith is do with extra request headers.
+func (c *client) doWith(ctx context.Context, method, path string, header http.Header, body, result any) (int, error) {
 	var payload []byte
 	if body != nil {
 		var err error
@@ -363,6 +368,9 @@ func (c *client) do(ctx context.Context, method, path string, body, result any) 
 			req.Header.Set("Content-Type", "application/json")
 		}
 		req.Header.Set("Accept", "application/json")
+		for k, v := range header {
+			req.Header[k] = v
+		}
 		if c.cfg.Token != "" {
 			req.Header.Set("Authorization", "Bearer "+c.cfg.Token)
 		}
@@ -421,8 +429,14 @@ func (c *client) putPolicy(ctx context.Context) error {
 		PolicySettings
 		ReturnTarget returnTarget `json:"return_target"`
 	}{ActionNames(), c.cfg.Settings, returnTarget{Value: optimum, Label: "exact optimum"}}
-	if _, err := c.do(ctx, http.MethodPut, "", body, nil); err != nil {
-		var problem *ProblemError
+	_, err := c.do(ctx, http.MethodPut, "", body, nil)
+	var problem *ProblemError
+	if errors.As(err, &problem) && problem.Status == http.StatusPreconditionRequired {
+		// The policy exists from an earlier run. The demo owns it, so its
+		// settings replace whatever is there, on purpose: If-Match: *.
+		_, err = c.doWith(ctx, http.MethodPut, "", http.Header{"If-Match": {"*"}}, body, nil)
+	}
+	if err != nil {
 		if errors.As(err, &problem) && problem.Status == http.StatusConflict {
 			return fmt.Errorf("policy %q already learned with other actions; choose another policy name: %w", c.cfg.Policy, err)
 		}

@@ -113,6 +113,9 @@ func (c *client) do(ctx context.Context, method, path string, body any, out any)
 
 // ensurePolicy creates the scenario's policy (or keeps it as it is).
 func (c *client) ensurePolicy(ctx context.Context, cfg Config) error {
+	if status, err := c.do(ctx, http.MethodGet, "/v1/policies/"+cfg.Policy, nil, nil); err == nil && status == http.StatusOK {
+		return nil
+	}
 	_, err := c.do(ctx, http.MethodPut, "/v1/policies/"+cfg.Policy,
 		map[string]any{"actions": cfg.Actions, "gamma": 0.99, "alpha": 0.05, "epsilon": 0.1}, nil)
 	return err

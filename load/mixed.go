@@ -312,7 +312,7 @@ func probeVisibility(ctx context.Context, c *client, obs Observer, policy string
 				Revision int64 `json:"revision"`
 			}
 			if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+policy+"/choose",
-				map[string]string{"state": "visibility-probe", "mode": "greedy"}, &r); err == nil && r.Revision >= cm.revision {
+				map[string]string{"state": "visibility-probe", "mode": "explore"}, &r); err == nil && r.Revision >= cm.revision {
 				out = append(out, time.Since(cm.at))
 				break
 			}

@@ -43,7 +43,7 @@ func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Epi
 		if err != nil {
 			return err
 		}
-		fresh, err := withoutStored(ctx, tx, p.ID, records)
+		fresh, err := withoutStored(ctx, tx, p, records)
 		if err != nil {
 			return err
 		}
@@ -83,32 +83,54 @@ func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Epi
 	return res, err
 }
 
-// withoutStored drops the episodes whose ids the policy already has.
-func withoutStored(ctx context.Context, tx pgx.Tx, policyID int32, records []training.EpisodeRecord) ([]training.EpisodeRecord, error) {
+// withoutStored drops the episodes whose ids the policy already has with
+// the same content, and refuses the batch when one has other content. Only
+// the rows of ids already stored are read back and compared.
+func withoutStored(ctx context.Context, tx pgx.Tx, p training.Policy, records []training.EpisodeRecord) ([]training.EpisodeRecord, error) {
 	ids := make([]string, len(records))
 	for i, r := range records {
 		ids[i] = r.ID
 	}
-	rows, err := tx.Query(ctx, `SELECT episode_id FROM episodes WHERE policy_id = $1 AND episode_id = ANY($2)`, policyID, ids)
+	rows, err := tx.Query(ctx, `SELECT episode_id, states, actions, rewards, probabilities
+		FROM episodes WHERE policy_id = $1 AND episode_id = ANY($2)`, p.ID, ids)
 	if err != nil {
 		return nil, fmt.Errorf("look up episode ids: %w", err)
 	}
-	stored, err := pgx.CollectRows(rows, pgx.RowTo[string])
+	stored, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.EpisodeRecord, error) {
+		var e training.EpisodeRecord
+		err := r.Scan(&e.ID, &e.States, &e.Actions, &e.Rewards, &e.Probabilities)
+		return e, err
+	})
 	if err != nil {
 		return nil, fmt.Errorf("look up episode ids: %w", err)
 	}
 	if len(stored) == 0 {
 		return records, nil
 	}
-	known := make(map[string]bool, len(stored))
-	for _, id := range stored {
-		known[id] = true
+	known := make(map[string]training.EpisodeRecord, len(stored))
+	for _, e := range stored {
+		known[e.ID] = e
 	}
+	const listed = 10
+	var differences []string
+	more := 0
 	fresh := make([]training.EpisodeRecord, 0, len(records)-len(stored))
-	for _, r := range records {
-		if !known[r.ID] {
+	for i, r := range records {
+		old, ok := known[r.ID]
+		if !ok {
 			fresh = append(fresh, r)
+			continue
 		}
+		if diff := training.EpisodeDifference(old, r, p.Actions); diff != "" {
+			if len(differences) == listed {
+				more++
+				continue
+			}
+			differences = append(differences, fmt.Sprintf("episode %d (id %q): %s", i, r.ID, diff))
+		}
+	}
+	if len(differences) > 0 {
+		return nil, training.RepostConflict(differences, more)
 	}
 	return fresh, nil
 }

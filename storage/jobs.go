@@ -186,17 +186,18 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		if err := db.checkPolicyCount(ctx, tx); err != nil {
 			return err
 		}
-		var targetID int32
-		err = tx.QueryRow(ctx, `
-			INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q, max_states, return_target)
-			VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11) RETURNING policy_id`,
-			string(req.Target), s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, s.MaxStates, s.ReturnTarget).
-			Scan(&targetID)
+		target, err := insertPolicy(ctx, tx, string(req.Target), s)
+		targetID := target.ID
 		if isUniqueViolation(err) {
 			return training.Conflictf("a policy named %q exists already; a replay creates a new policy", req.Target)
 		}
 		if err != nil {
 			return fmt.Errorf("create target policy: %w", err)
+		}
+		// No token made this policy, the replay did: the label says so.
+		by := training.Actor{TokenLabel: fmt.Sprintf("replay of %s", policy)}
+		if err := recordSettingsChange(ctx, tx, targetID, training.ChangeCreate, by, training.DiffSettings(nil, target.Settings)); err != nil {
+			return err
 		}
 		id, err = db.queueJob(ctx, tx, p.ID, training.ReplayJobKind,
 			training.ReplayJob{Request: req, PolicyID: p.ID, TargetPolicyID: targetID, Episodes: span})

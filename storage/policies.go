@@ -12,13 +12,15 @@ import (
 )
 
 const policyColumns = `policy_id, name, actions, gamma, alpha, epsilon, epsilon_min,
-	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at, table_epoch, max_states, return_target`
+	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at, table_epoch, max_states, return_target,
+	greedy_min_visits, greedy_untried, coalesce(greedy_fallback, ''), state_shape, require_probability`
 
 func scanPolicy(row pgx.Row) (training.Policy, error) {
 	var p training.Policy
 	var visit string
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
-		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch, &p.MaxStates, &p.ReturnTarget)
+		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch, &p.MaxStates, &p.ReturnTarget,
+		&p.GreedyMinVisits, &p.GreedyUntried, &p.GreedyFallback, &p.StateShape, &p.RequireProbability)
 	p.Visit = training.VisitRule(visit)
 	return p, err
 }
@@ -30,14 +32,22 @@ func nullIfZero(x float64) *float64 {
 	return &x
 }
 
-// PutPolicy creates a policy or replaces its settings, reporting whether it
-// created it. Changing the actions of a policy that has stored episodes or
-// learned values is a conflict: stored indexes would point at other actions.
+// PutPolicy creates a policy or replaces its settings without a
+// precondition, reporting whether it created it.
 func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (training.Policy, bool, error) {
+	return db.ChangePolicy(ctx, name, training.SettingsChange{Replace: &s, Unconditional: true})
+}
+
+// ChangePolicy creates a policy or changes its settings as the change says,
+// checking its precondition against the stored settings under a row lock and
+// recording what changed in settings_changes, all in one transaction. It
+// reports whether it created the policy. Changing the actions of a policy
+// that has stored episodes or learned values is a conflict: stored indexes
+// would point at other actions.
+func (db *DB) ChangePolicy(ctx context.Context, name string, change training.SettingsChange) (training.Policy, bool, error) {
 	var p training.Policy
 	var created bool
 	put := func(tx pgx.Tx) error {
-		s := s // a retry starts from the request's settings again
 		// A new initial value changes what the table means, so a settings
 		// change waits for the policy's training lock (taken before the row
 		// lock, in the order training takes them): no batch learns under
@@ -52,33 +62,36 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 		case !errors.Is(err, pgx.ErrNoRows):
 			return fmt.Errorf("read policy: %w", err)
 		}
+		var current *training.Policy
 		existing, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1 FOR UPDATE`, name))
 		switch {
 		case errors.Is(err, pgx.ErrNoRows):
-			created = true
+		case err != nil:
+			return fmt.Errorf("read policy: %w", err)
+		default:
+			current = &existing
+		}
+		s, kind, err := change.Resolve(name, current)
+		if err != nil {
+			return err
+		}
+		created = current == nil
+		if created {
 			if err := s.SetStateQuota(0, db.limits.MaxPairsPerPolicy); err != nil {
 				return err
 			}
 			if err := db.checkPolicyCount(ctx, tx); err != nil {
 				return err
 			}
-			p, err = scanPolicy(tx.QueryRow(ctx, `
-				INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q, max_states, return_target)
-				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11)
-				RETURNING `+policyColumns,
-				name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, s.MaxStates, s.ReturnTarget))
-			if err != nil {
-				return fmt.Errorf("insert policy: %w", err)
+			if p, err = insertPolicy(ctx, tx, name, s); err != nil {
+				return err
 			}
-		case err != nil:
-			return fmt.Errorf("read policy: %w", err)
-		default:
-			created = false
-			current := existing.MaxStates
+		} else {
+			quota := existing.MaxStates
 			if !slices.Equal(existing.Actions, s.Actions) {
-				current = 0 // other actions: the bound on pairs applies anew
+				quota = 0 // other actions: the bound on pairs applies anew
 			}
-			if err := s.SetStateQuota(current, db.limits.MaxPairsPerPolicy); err != nil {
+			if err := s.SetStateQuota(quota, db.limits.MaxPairsPerPolicy); err != nil {
 				return err
 			}
 			if !slices.Equal(existing.Actions, s.Actions) {
@@ -100,14 +113,27 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 			}
 			p, err = scanPolicy(tx.QueryRow(ctx, `
 				UPDATE policies SET actions = $2, gamma = $3, alpha = $4, epsilon = $5, epsilon_min = $6,
-					epsilon_decay_visits = $7, visit = $8, initial_q = $9, max_states = $11, return_target = $12, updated_at = now(),
+					epsilon_decay_visits = $7, visit = $8, initial_q = $9, max_states = $11, return_target = $12,
+					greedy_min_visits = $13, greedy_untried = $14, greedy_fallback = $15,
+					state_shape = $16, require_probability = $17, updated_at = now(),
 					revision = revision + $10, table_epoch = table_epoch + $10
 				WHERE policy_id = $1
 				RETURNING `+policyColumns,
-				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, rewrite, s.MaxStates, s.ReturnTarget))
+				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ,
+				rewrite, s.MaxStates, s.ReturnTarget,
+				s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback), s.StateShape, s.RequireProbability))
 			if err != nil {
 				return fmt.Errorf("update policy: %w", err)
 			}
+		}
+		var old *training.Settings
+		if current != nil {
+			old = &current.Settings
+		}
+		// Diff what was stored, so that the history shows what the table
+		// holds (a setting the schema drops would not be recorded as kept).
+		if err := recordSettingsChange(ctx, tx, p.ID, kind, change.By, training.DiffSettings(old, p.Settings)); err != nil {
+			return err
 		}
 		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, p.ID)
 		return err
@@ -118,6 +144,77 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 		err = db.WithTx(ctx, put)
 	}
 	return p, created, err
+}
+
+// insertPolicy creates a policy with its settings.
+func insertPolicy(ctx context.Context, tx pgx.Tx, name string, s training.Settings) (training.Policy, error) {
+	p, err := scanPolicy(tx.QueryRow(ctx, `
+		INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q,
+			greedy_min_visits, greedy_untried, greedy_fallback, state_shape, require_probability, max_states, return_target)
+		VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16)
+		RETURNING `+policyColumns,
+		name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ,
+		s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback), s.StateShape, s.RequireProbability, s.MaxStates, s.ReturnTarget))
+	if err != nil {
+		return p, fmt.Errorf("insert policy: %w", err)
+	}
+	return p, nil
+}
+
+// recordSettingsChange adds a change to the policy's settings history,
+// unless nothing changed.
+func recordSettingsChange(ctx context.Context, tx pgx.Tx, policyID int32, kind training.ChangeKind, by training.Actor, diff []training.SettingDiff) error {
+	if len(diff) == 0 {
+		return nil
+	}
+	_, err := tx.Exec(ctx, `
+		INSERT INTO settings_changes (policy_id, kind, token_id, token_label, fields)
+		VALUES ($1, $2, $3, $4, $5)`,
+		policyID, string(kind), by.TokenID, nullIfEmpty(by.TokenLabel), diff)
+	if err != nil {
+		return fmt.Errorf("record settings change: %w", err)
+	}
+	return nil
+}
+
+func nullIfEmpty(s string) *string {
+	if s == "" {
+		return nil
+	}
+	return &s
+}
+
+// SettingsHistory reads a page of a policy's settings changes, newest
+// first, starting after the change with id before (0: from the newest).
+func (db *DB) SettingsHistory(ctx context.Context, policy string, before int64, limit int) (training.SettingsHistoryPage, error) {
+	var page training.SettingsHistoryPage
+	p, err := db.PolicyByName(ctx, policy)
+	if err != nil {
+		return page, err
+	}
+	rows, err := db.pool.Query(ctx, `
+		SELECT change_id, changed_at, kind, token_id, coalesce(token_label, ''), fields
+		FROM settings_changes
+		WHERE policy_id = $1 AND ($2 = 0 OR change_id < $2)
+		ORDER BY change_id DESC LIMIT $3`, p.ID, before, limit+1)
+	if err != nil {
+		return page, mapError(fmt.Errorf("read settings history: %w", err))
+	}
+	page.Changes, err = pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.SettingsChangeRecord, error) {
+		var c training.SettingsChangeRecord
+		var kind string
+		err := r.Scan(&c.ID, &c.ChangedAt, &kind, &c.TokenID, &c.TokenLabel, &c.Fields)
+		c.Kind = training.ChangeKind(kind)
+		return c, err
+	})
+	if err != nil {
+		return page, mapError(fmt.Errorf("read settings history: %w", err))
+	}
+	if len(page.Changes) > limit {
+		page.Changes = page.Changes[:limit]
+		page.Next = page.Changes[limit-1].ID
+	}
+	return page, nil
 }
 
 // PolicyByName reads one policy.
@@ -175,6 +272,7 @@ func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
 	p := &st.Policy
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
 		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch, &p.MaxStates, &p.ReturnTarget,
+		&p.GreedyMinVisits, &p.GreedyUntried, &p.GreedyFallback, &p.StateShape, &p.RequireProbability,
 		&st.Episodes, &st.Backlog, &st.OldestUntrained, &st.States, &st.Pairs, &st.LastTrainedAt)
 	p.Visit = training.VisitRule(visit)
 	return st, err

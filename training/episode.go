@@ -148,6 +148,10 @@ func EncodeEpisodes(p Settings, actionIndex map[string]int16, episodes []Episode
 		for j, st := range ep.Steps {
 			if problem := stateProblem(st.State, lim.MaxStateLength); problem != "" {
 				l.add(i, j, "state", "%s", problem)
+			} else if p.StateShape != nil {
+				if problem := p.StateShape.Problem(st.State); problem != "" {
+					l.add(i, j, "state", "%s", problem)
+				}
 			}
 			if _, ok := actionIndex[st.Action]; !ok {
 				if st.Action == "" {
@@ -163,6 +167,8 @@ func EncodeEpisodes(p Settings, actionIndex map[string]int16, episodes []Episode
 			}
 			if pr := st.Probability; pr != nil && !(*pr > 0 && *pr <= 1) {
 				l.add(i, j, "probability", "must be in (0, 1], got %v", *pr)
+			} else if pr == nil && p.RequireProbability {
+				l.add(i, j, "probability", "is missing; the policy's require_probability asks for it on every step")
 			}
 			if st.Allowed != nil {
 				checkAllowed(&l, i, j, st, actionIndex, ActionSet(allowed[i][j*width:(j+1)*width]))

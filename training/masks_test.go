@@ -45,7 +45,7 @@ func TestProbabilitiesAmongMatchChoosingAmongTheAllowedActions(t *testing.T) {
 	const draws = 100_000
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
-			want := ProbabilitiesAmong(tc.q, setOf(len(tc.q), tc.allowed...), tc.mode, tc.epsilon)
+			want := ProbabilitiesAmong(tc.q, nil, setOf(len(tc.q), tc.allowed...), GreedyRule{Untried: true}, -1, tc.mode, tc.epsilon)
 			sum := 0.0
 			for a, p := range want {
 				sum += p
@@ -96,7 +96,7 @@ func TestProbabilitiesAmongMatchChoosingAmongTheAllowedActions(t *testing.T) {
 func TestProbabilitiesAmongWithoutASetIsTheWholePolicy(t *testing.T) {
 	q := []float64{1, 3, 3, 0}
 	for _, mode := range []Mode{Explore, Greedy} {
-		got := ProbabilitiesAmong(q, nil, mode, 0.2)
+		got := ProbabilitiesAmong(q, nil, nil, GreedyRule{Untried: true}, -1, mode, 0.2)
 		for a, v := range q {
 			if want := ActionProbability(mode, 0.2, len(q), 2, v == 3); got[a] != want {
 				t.Errorf("%s: action %d has %v, want %v", mode, a, got[a], want)
@@ -129,7 +129,11 @@ func TestTargetProbabilitiesFollowEachStepsAllowedSet(t *testing.T) {
 	optimistic := NewQTable([]string{"a", "b", "c"}, 10)
 	optimistic.Set("s", 0, 1, 5)
 	optimistic.Set("s", 1, 0, 5)
-	greedy := NewTargetPolicy(optimistic, Greedy, nil, DefaultSettings())
+	// Untried actions may be greedy here, at the initial value, so that
+	// only the mask keeps c out.
+	untried := DefaultSettings()
+	untried.GreedyUntried = true
+	greedy := NewTargetPolicy(optimistic, Greedy, nil, untried)
 	if got := greedy.Probability("s", ab, 0); got != 1 {
 		t.Errorf("greedy among {a, b} takes a with %v, want 1", got)
 	}

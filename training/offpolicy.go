@@ -523,13 +523,19 @@ func (s ISSample) stdErrs(estimate [statCount]float64, c centres) (stdErr, magni
 
 // TargetPolicy is the policy an evaluation asks about: greedy with respect
 // to a Q table, or its epsilon-soft version, choosing among a step's
-// allowed actions as choose does (ProbabilitiesAmong).
+// allowed actions as choose does (ProbabilitiesAmong): the settings' greedy
+// rule (visits needed, untried actions, fallback) decides which actions may
+// be greedy, greedy ties split the greedy probability evenly, and where
+// greedy has no answer every action has probability 0.
 type TargetPolicy struct {
 	table *QTable
 	mode  Mode
 	// epsilon of explore mode: a fixed rate, or the settings' per-state rule.
 	epsilon  *float64
 	settings Settings
+	// fallback is the index of the settings' greedy fallback in the
+	// table's actions, -1 for none.
+	fallback int
 	// cache holds, per state, the probabilities under each allowed set seen
 	// (keyed by the set's bytes; "" is no set).
 	cache map[string]map[string][]float64
@@ -539,7 +545,8 @@ type TargetPolicy struct {
 // Explore) policy of a table. In explore mode the rate is epsilon when given,
 // else the settings' rule applied to the state's visits, as choose does.
 func NewTargetPolicy(table *QTable, mode Mode, epsilon *float64, settings Settings) *TargetPolicy {
-	return &TargetPolicy{table: table, mode: mode, epsilon: epsilon, settings: settings, cache: map[string]map[string][]float64{}}
+	return &TargetPolicy{table: table, mode: mode, epsilon: epsilon, settings: settings,
+		fallback: slices.Index(table.Actions, settings.GreedyFallback), cache: map[string]map[string][]float64{}}
 }
 
 // Probability is pi(action | state) when choosing among the allowed
@@ -557,7 +564,7 @@ func (t *TargetPolicy) Probability(state string, allowed ActionSet, action int16
 		if t.epsilon != nil {
 			eps = *t.epsilon
 		}
-		probs = ProbabilitiesAmong(s.Q, allowed, t.mode, eps)
+		probs = ProbabilitiesAmong(s.Q, s.Visits, allowed, t.settings.GreedyRule(), t.fallback, t.mode, eps)
 		bySet[string(allowed)] = probs
 	}
 	return probs[action]

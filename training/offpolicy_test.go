@@ -2,9 +2,12 @@ package training_test
 
 import (
 	"context"
+	"errors"
 	"math"
 	"math/rand/v2"
 	"strings"
+
+	"slices"
 	"testing"
 
 	"gonum.org/v1/gonum/stat"
@@ -146,9 +149,16 @@ func TestTargetProbabilitiesAndRatios(t *testing.T) {
 	if p := []float64{greedy.Probability("tied", nil, 0), greedy.Probability("tied", nil, 1), greedy.Probability("tied", nil, 2)}; p[0] != 0.5 || p[1] != 0.5 || p[2] != 0 {
 		t.Fatalf("greedy with a tie: %v, want [0.5 0.5 0]", p)
 	}
-	// An unknown state has every action tied at the initial value.
-	if p := greedy.Probability("unseen", nil, 1); math.Abs(p-1.0/3) > 1e-15 {
-		t.Fatalf("unseen state: %v, want 1/3", p)
+	// In an unknown state no action is tried: greedy has no answer, so the
+	// target takes none of them; with untried actions allowed to be greedy
+	// every action ties at the initial value.
+	if p := greedy.Probability("unseen", nil, 1); p != 0 {
+		t.Fatalf("unseen state: %v, want 0", p)
+	}
+	untried := training.DefaultSettings()
+	untried.GreedyUntried = true
+	if p := training.NewTargetPolicy(table, training.Greedy, nil, untried).Probability("unseen", nil, 1); math.Abs(p-1.0/3) > 1e-15 {
+		t.Fatalf("unseen state, untried actions allowed: %v, want 1/3", p)
 	}
 	eps := 0.3
 	soft := training.NewTargetPolicy(table, training.Explore, &eps, training.DefaultSettings())
@@ -337,4 +347,87 @@ func TestPerDecisionReturnOnHandWorkedNumbers(t *testing.T) {
 	if got := s.PerDecision(); math.Abs(got-3.5) > 1e-12 || s.Ordinary() != 0 {
 		t.Fatalf("per-decision %v, ordinary %v; want 3.5 and 0", got, s.Ordinary())
 	}
+}
+
+// Evaluation must evaluate what choose serves: for every state of a table
+// and every greedy setting, the target policy's probabilities are the
+// probabilities choose reports for its answers, and choose never answers
+// an action the target gives 0.
+func TestTargetPolicyFollowsTheGreedyRuleOfChoose(t *testing.T) {
+	actions := []string{"email", "text", "wait"}
+	table := training.NewQTable(actions, 1)
+	table.Set("tried-all", 0, -1, 5)
+	table.Set("tried-all", 1, -2, 1)
+	table.Set("tried-all", 2, -3, 9)
+	table.Set("one-tried", 1, -4, 2)
+	rows := []training.QRow{}
+	for name, s := range table.States {
+		for a := range s.Q {
+			if s.Visits[a] > 0 {
+				rows = append(rows, training.QRow{State: name, Action: int16(a), Q: s.Q[a], Visits: s.Visits[a], Revision: 1})
+			}
+		}
+	}
+	for _, tc := range []struct {
+		name     string
+		settings func(*training.Settings)
+	}{
+		{"defaults", func(*training.Settings) {}},
+		{"untried compete", func(s *training.Settings) { s.GreedyUntried = true }},
+		{"fallback after 3 visits", func(s *training.Settings) { s.GreedyMinVisits, s.GreedyFallback = 3, "wait" }},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			p := training.Policy{ID: 1, Name: "renewals", Settings: training.DefaultSettings()}
+			p.Actions, p.InitialQ, p.Revision = actions, 1, 1
+			tc.settings(&p.Settings)
+			r := training.NewReplica(staticSource{p, rows})
+			for _, mode := range []training.Mode{training.Greedy, training.Explore} {
+				target := training.NewTargetPolicy(table, mode, nil, p.Settings)
+				// Every action, or email and wait only (a mask of bits 0 and 2).
+				for _, mask := range []struct {
+					names []string
+					set   training.ActionSet
+				}{{nil, nil}, {[]string{"email", "wait"}, training.ActionSet{0b101}}} {
+					for _, state := range []string{"tried-all", "one-tried", "unseen"} {
+						for range 200 {
+							c, err := r.Choose(context.Background(), "renewals", training.ChooseRequest{State: state, Mode: mode, Allowed: mask.names})
+							if errors.Is(err, training.ErrNoAnswer) {
+								for a := range actions {
+									if pr := target.Probability(state, mask.set, int16(a)); pr != 0 {
+										t.Fatalf("%s %s: choose has no answer, target gives %s %v", mode, state, actions[a], pr)
+									}
+								}
+								break
+							}
+							if err != nil {
+								t.Fatal(err)
+							}
+							a := slices.Index(actions, c.Action)
+							if pr := target.Probability(state, mask.set, int16(a)); math.Abs(pr-c.Probability) > 1e-15 || pr == 0 {
+								t.Fatalf("%s %s among %v: choose answered %s with %v, target gives %v", mode, state, mask.names, c.Action, c.Probability, pr)
+							}
+						}
+					}
+				}
+			}
+		})
+	}
+}
+
+// staticSource serves one policy and its rows.
+type staticSource struct {
+	p    training.Policy
+	rows []training.QRow
+}
+
+func (s staticSource) PolicyByName(context.Context, string) (training.Policy, error) { return s.p, nil }
+func (s staticSource) PolicyByID(context.Context, int32) (training.Policy, error)    { return s.p, nil }
+func (s staticSource) ListPolicies(context.Context) ([]training.Policy, error) {
+	return []training.Policy{s.p}, nil
+}
+func (s staticSource) QRowsSince(_ context.Context, _ int32, _ int64, fn func(training.QRow)) error {
+	for _, r := range s.rows {
+		fn(r)
+	}
+	return nil
 }

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 	"reflect"
+	"slices"
 	"time"
 	"unicode"
 	"unicode/utf8"
@@ -55,6 +56,20 @@ type Settings struct {
 	// exact optimum, or a goal); the status page draws it beside the
 	// learning curve. It changes nothing in learning.
 	ReturnTarget *ReturnTarget `json:"return_target,omitempty"`
+	// GreedyMinVisits is how often an action must have been tried in a
+	// state before it may be greedy there.
+	GreedyMinVisits int64 `json:"greedy_min_visits" validate:"gte=0"`
+	// GreedyUntried lets an action never tried in a state be greedy there,
+	// at initial_q (an optimistic start needs it).
+	GreedyUntried bool `json:"greedy_untried"`
+	// GreedyFallback is the action greedy answers where no allowed action
+	// is tried enough; "" for none: greedy then has no answer.
+	GreedyFallback string `json:"greedy_fallback,omitempty"`
+	// StateShape, when set, is the form every state must have.
+	StateShape *StateShape `json:"state_shape,omitempty"`
+	// RequireProbability refuses steps without a behaviour probability
+	// (off-policy evaluation needs one on every step).
+	RequireProbability bool `json:"require_probability"`
 }
 
 // DefaultMaxStates is a new policy's state quota unless it sets one (or its
@@ -207,15 +222,21 @@ var ruleMessages = map[string]string{
 
 // Validate reports every invalid setting, each with its JSON field name.
 func (s Settings) Validate() error {
+	var l problemList
+	if s.GreedyFallback != "" && !slices.Contains(s.Actions, s.GreedyFallback) {
+		l.add(-1, -1, "greedy_fallback", "%q is not one of the policy's actions", truncate(s.GreedyFallback, 64))
+	}
+	if s.StateShape != nil {
+		s.StateShape.check(&l)
+	}
 	err := settingsValidator.Struct(s)
 	if err == nil {
-		return nil
+		return l.err()
 	}
 	var fieldErrs validator.ValidationErrors
 	if !errors.As(err, &fieldErrs) {
 		return fmt.Errorf("validate settings: %w", err)
 	}
-	var l problemList
 	for _, fe := range fieldErrs {
 		msg, ok := ruleMessages[fe.Tag()]
 		if !ok {

@@ -43,9 +43,11 @@ type replicaTable struct {
 	// loadMu serialises loads of this table so rows arrive in order.
 	loadMu sync.Mutex
 
-	mu       sync.RWMutex
-	policy   Policy
-	index    map[string]int16
+	mu     sync.RWMutex
+	policy Policy
+	index  map[string]int16
+	// fallback is the index of the policy's greedy fallback action, -1 for none.
+	fallback int16
 	states   map[string]*stateValues
 	revision int64
 	pairs    int
@@ -88,7 +90,12 @@ type ChooseResult struct {
 	// Allowed is the set the action was chosen from: the request's, or
 	// every action when it gave none. A step posted with it (and the
 	// probability) lets evaluation recompute this choice.
-	Allowed  []string
+	Allowed []string
+	// Visits is how often the chosen action was tried in the state.
+	Visits int64
+	// Fallback is true when the action is the policy's greedy_fallback,
+	// standing in for actions not tried enough.
+	Fallback bool
 	Revision int64
 	// Staleness is how long ago the copy was last confirmed current.
 	Staleness time.Duration
@@ -105,9 +112,13 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 		return ChooseResult{}, err
 	}
 	var qBuf [maxStackActions]float64
+	var visitsBuf [maxStackActions]int64
 	var idxBuf [maxStackActions]int16
 	t.mu.RLock()
 	defer t.mu.RUnlock()
+	if err := t.policy.CheckState(req.State); err != nil {
+		return ChooseResult{}, err
+	}
 	allowed, allowedNames := idxBuf[:0], req.Allowed
 	if len(req.Allowed) == 0 {
 		// The policy's list is replaced, never changed in place, so the
@@ -130,20 +141,27 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 			allowed = append(allowed, a)
 		}
 	}
-	q := qBuf[:0]
+	q, visits := qBuf[:0], visitsBuf[:0]
 	sv, known := t.states[req.State]
-	var visits int64
-	for _, a := range allowed {
+	var total int64
+	fallback := -1
+	for i, a := range allowed {
 		if known {
-			q = append(q, sv.q[a])
+			q, visits = append(q, sv.q[a]), append(visits, sv.visits[a])
 		} else {
-			q = append(q, t.policy.InitialQ)
+			q, visits = append(q, t.policy.InitialQ), append(visits, 0)
+		}
+		if a == t.fallback {
+			fallback = i
 		}
 	}
 	if known {
-		visits = sv.total
+		total = sv.total
 	}
-	c := Choose(q, req.Mode, t.policy.EpsilonFor(visits), SharedRandom)
+	c := ChooseWith(q, visits, t.policy.GreedyRule(), fallback, req.Mode, t.policy.EpsilonFor(total), SharedRandom)
+	if c.NoAnswer {
+		return ChooseResult{}, noAnswer(t.policy, req.State)
+	}
 	return ChooseResult{
 		Action:       t.policy.Actions[allowed[c.Action]],
 		Probability:  c.Probability,
@@ -151,9 +169,24 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 		GreedyAction: t.policy.Actions[allowed[c.Greedy]],
 		KnownState:   known,
 		Allowed:      allowedNames,
+		Visits:       visits[c.Action],
+		Fallback:     c.Fallback,
 		Revision:     t.revision,
 		Staleness:    time.Since(time.Unix(0, t.syncedAt.Load())),
 	}, nil
+}
+
+// noAnswer explains why greedy has no answer in a state.
+func noAnswer(p Policy, state string) error {
+	tried := "tried there"
+	if p.GreedyMinVisits > 1 {
+		tried = fmt.Sprintf("tried there at least %d times (greedy_min_visits)", p.GreedyMinVisits)
+	}
+	why := "the policy has no greedy_fallback"
+	if p.GreedyFallback != "" {
+		why = fmt.Sprintf("its greedy_fallback %q is not among the allowed actions", truncate(p.GreedyFallback, 64))
+	}
+	return &kindError{ErrNoAnswer, fmt.Sprintf("greedy has no answer in state %q: no allowed action has been %s, and %s; choose with mode explore, set greedy_fallback, or allow the fallback", truncate(state, 64), tried, why)}
 }
 
 // table returns a policy's table, loading it on first use.
@@ -176,7 +209,7 @@ func (r *Replica) load(ctx context.Context, p Policy) (*replicaTable, error) {
 	r.mu.Lock()
 	t, ok := r.byID[p.ID]
 	if !ok {
-		t = &replicaTable{policy: p, index: p.ActionIndex(), states: map[string]*stateValues{}, pairsByVisits: map[int64]int64{}}
+		t = &replicaTable{policy: p, index: p.ActionIndex(), fallback: -1, states: map[string]*stateValues{}, pairsByVisits: map[int64]int64{}}
 		r.byID[p.ID] = t
 	}
 	r.mu.Unlock()
@@ -208,7 +241,7 @@ func (r *Replica) sync(ctx context.Context, t *replicaTable, p Policy) error {
 			return fmt.Errorf("refresh policy %q: %w", p.Name, err)
 		}
 		t.mu.Lock()
-		t.policy, t.index, t.states = fresh.policy, fresh.index, fresh.states
+		t.policy, t.index, t.fallback, t.states = fresh.policy, fresh.index, fresh.fallback, fresh.states
 		t.pairs, t.visits, t.pairsByVisits = fresh.pairs, fresh.visits, fresh.pairsByVisits
 		// p was read before the rows, so they hold at least its revision.
 		t.epoch, t.revision = p.TableEpoch, max(fresh.revision, p.Revision)
@@ -236,6 +269,10 @@ func (t *replicaTable) setPolicy(p Policy) {
 		t.clear()
 	}
 	t.policy, t.index = p, p.ActionIndex()
+	t.fallback = -1
+	if a, ok := t.index[p.GreedyFallback]; ok {
+		t.fallback = a
+	}
 }
 
 func (t *replicaTable) applyRow(row QRow) {
@@ -278,10 +315,30 @@ func (r *Replica) Refresh(ctx context.Context, policyID int32) error {
 		return nil
 	}
 	p, err := r.source.PolicyByID(ctx, policyID)
+	if errors.Is(err, ErrNotFound) {
+		r.drop(policyID)
+		return nil
+	}
 	if err != nil {
 		return err
 	}
 	return r.renamed(t, p, r.sync(ctx, t, p))
+}
+
+// drop forgets a deleted policy's table.
+func (r *Replica) drop(policyID int32) {
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	t, ok := r.byID[policyID]
+	if !ok {
+		return
+	}
+	delete(r.byID, policyID)
+	for name, held := range r.byName {
+		if held == t {
+			delete(r.byName, name)
+		}
+	}
 }
 
 // renamed keeps the name index right after a sync (names never change
@@ -302,6 +359,22 @@ func (r *Replica) RefreshAll(ctx context.Context) error {
 	policies, err := r.source.ListPolicies(ctx)
 	if err != nil {
 		return err
+	}
+	// Tables of policies deleted meanwhile are dropped.
+	exists := make(map[int32]bool, len(policies))
+	for _, p := range policies {
+		exists[p.ID] = true
+	}
+	r.mu.RLock()
+	var gone []int32
+	for id := range r.byID {
+		if !exists[id] {
+			gone = append(gone, id)
+		}
+	}
+	r.mu.RUnlock()
+	for _, id := range gone {
+		r.drop(id)
 	}
 	var errs []error
 	for _, p := range policies {

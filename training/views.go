@@ -1,6 +1,9 @@
 package training
 
-import "time"
+import (
+	"slices"
+	"time"
+)
 
 // PolicyStatus is a policy with where its data and training stand.
 type PolicyStatus struct {
@@ -35,11 +38,12 @@ type StateView struct {
 }
 
 // NewStateView fills in the actions the table lacks with the initial value
-// and names the greedy action (the first of any tie, so that reading is
-// deterministic; choosing splits ties at random).
+// and names the action greedy mode answers with every action allowed (the
+// first of any tie, so that reading is deterministic; choosing splits ties
+// at random), "" when it has none.
 func NewStateView(p Policy, state string, stored map[int16]ActionValue) StateView {
 	v := StateView{State: state, Known: len(stored) > 0, Actions: make([]ActionValue, len(p.Actions))}
-	best := 0
+	q, visits := make([]float64, len(p.Actions)), make([]int64, len(p.Actions))
 	for i, name := range p.Actions {
 		av, ok := stored[int16(i)]
 		if !ok {
@@ -48,11 +52,12 @@ func NewStateView(p Policy, state string, stored map[int16]ActionValue) StateVie
 		av.Action = name
 		v.Actions[i] = av
 		v.Visits += av.Visits
-		if av.Q > v.Actions[best].Q {
-			best = i
-		}
+		q[i], visits[i] = av.Q, av.Visits
 	}
-	v.GreedyAction = p.Actions[best]
+	g := p.GreedyRule().Find(q, visits, slices.Index(p.Actions, p.GreedyFallback), Greedy)
+	if g.Size > 0 {
+		v.GreedyAction = p.Actions[g.nth(q, visits, 0)]
+	}
 	return v
 }
 
