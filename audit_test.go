@@ -48,7 +48,7 @@ func TestAuditLogRecordsAdminActions(t *testing.T) {
 	s.call("POST", "/v1/policies/alpha/replays", map[string]any{"target": "alpha-copy"}, 202)
 	s.as(alphaAdmin).call("GET", "/v1/policies/beta", nil, 403)
 	s.as(alphaAdmin).call("GET", "/v1/policies/alpha/diff?to_policy=beta", nil, 403)
-	s.as(alphaAdmin).call("PUT", "/v1/policies/alpha", map[string]any{"actions": []string{"a", "b"}, "epsilon": 0.2}, 200)
+	s.as(alphaAdmin).withHeader("If-Match", "*").call("PUT", "/v1/policies/alpha", map[string]any{"actions": []string{"a", "b"}, "epsilon": 0.2}, 200)
 	s.as(chooser).call("PUT", "/v1/policies/alpha", map[string]any{"actions": []string{"a", "b"}}, 403)
 	s.as(chooser).call("POST", "/v1/policies/alpha/choose", map[string]any{"state": "s"}, 200)
 	if r := s.as("").send("GET", "/v1/policies/alpha", "", nil, true); r.Status != 401 {

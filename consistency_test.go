@@ -44,7 +44,8 @@ func waitChoice(t *testing.T, s *service, name, policy, state, want string, revi
 func TestInitialValueChangeReachesEveryProcess(t *testing.T) {
 	db := pgtest.NewDatabase(t)
 	warm := startService(t, db, "serve")
-	warm.call("PUT", "/v1/policies/checkout", map[string]any{"actions": []string{"upsell", "plain"}, "alpha": 0.1, "initial_q": 0}, 201)
+	// Untried actions compete at the initial value: that is what changes.
+	warm.call("PUT", "/v1/policies/checkout", map[string]any{"actions": []string{"upsell", "plain"}, "alpha": 0.1, "initial_q": 0, "greedy_untried": true}, 201)
 	warm.post("checkout", oneStep("e1", "cart", "upsell", 1))
 	warm.waitTrained("checkout", 1)
 	// Q(cart, upsell) = 0.1 beats plain, never updated, at 0.
@@ -52,7 +53,7 @@ func TestInitialValueChangeReachesEveryProcess(t *testing.T) {
 		t.Fatalf("before the change: %+v", c)
 	}
 	var changed policySettingsView
-	warm.call("PUT", "/v1/policies/checkout", map[string]any{"actions": []string{"upsell", "plain"}, "alpha": 0.1, "initial_q": 5}, 200).decode(t, &changed)
+	warm.withHeader("If-Match", "*").call("PUT", "/v1/policies/checkout", map[string]any{"actions": []string{"upsell", "plain"}, "alpha": 0.1, "initial_q": 5, "greedy_untried": true}, 200).decode(t, &changed)
 
 	fresh := startService(t, db, "serve", "--no-worker")
 	// plain, never updated, is now worth 5.
@@ -66,7 +67,7 @@ func TestInitialValueChangeReachesEveryProcess(t *testing.T) {
 	}
 	// Settings that leave the table's meaning alone do not make copies reload.
 	var same policySettingsView
-	warm.call("PUT", "/v1/policies/checkout", map[string]any{"actions": []string{"upsell", "plain"}, "alpha": 0.2, "initial_q": 5}, 200).decode(t, &same)
+	warm.withHeader("If-Match", "*").call("PUT", "/v1/policies/checkout", map[string]any{"actions": []string{"upsell", "plain"}, "alpha": 0.2, "initial_q": 5, "greedy_untried": true}, 200).decode(t, &same)
 	if same.Revision != changed.Revision {
 		t.Fatalf("a change of alpha moved the revision from %d to %d", changed.Revision, same.Revision)
 	}
@@ -80,7 +81,7 @@ func TestRestoredSnapshotIsTheTableEvaluated(t *testing.T) {
 	s := startService(t, db, "serve")
 	other := startService(t, db, "serve", "--no-worker")
 	settings := func(initialQ float64) map[string]any {
-		return map[string]any{"actions": []string{"email", "call"}, "alpha": 0.5, "gamma": 1, "initial_q": initialQ}
+		return map[string]any{"actions": []string{"email", "call"}, "alpha": 0.5, "gamma": 1, "initial_q": initialQ, "greedy_untried": true}
 	}
 	s.call("PUT", "/v1/policies/dunning", settings(0), 201)
 	half := 0.5
@@ -102,7 +103,7 @@ func TestRestoredSnapshotIsTheTableEvaluated(t *testing.T) {
 	}
 	s.post("dunning", eps...)
 	s.waitTrained("dunning", 40)
-	s.call("PUT", "/v1/policies/dunning", settings(5), 200)
+	s.withHeader("If-Match", "*").call("PUT", "/v1/policies/dunning", settings(5), 200)
 
 	request := func(table string) map[string]any {
 		return map[string]any{"target": map[string]any{"table": table}, "window": map[string]any{"last": 40}, "seed": 7, "resamples": 200}
@@ -138,7 +139,7 @@ func TestRestoredSnapshotIsTheTableEvaluated(t *testing.T) {
 	waitChoice(t, s, "restoring", "dunning", "overdue", "email", change.Revision)
 
 	// An import of the exported document brings its initial value too.
-	s.call("PUT", "/v1/policies/dunning", settings(5), 200)
+	s.withHeader("If-Match", "*").call("PUT", "/v1/policies/dunning", settings(5), 200)
 	waitChoice(t, other, "other", "dunning", "overdue", "call", 0)
 	var imported struct {
 		Revision int64   `json:"revision"`

@@ -410,7 +410,7 @@ func TestQuotasRefuseBeyondTheirLimits(t *testing.T) {
 
 	// A table rewrite is held to max_states too: "third" knows "s"; with room
 	// for two states, a table of three changes nothing.
-	s.call("PUT", "/v1/policies/third", map[string]any{"actions": []string{"a", "b"}, "max_states": 2}, 200)
+	s.withHeader("If-Match", "*").call("PUT", "/v1/policies/third", map[string]any{"actions": []string{"a", "b"}, "max_states": 2}, 200)
 	rows := []map[string]any{}
 	for _, st := range []string{"s", "t", "u"} {
 		rows = append(rows, map[string]any{"state": st, "action": "a", "q": 1, "visits": 1})

@@ -29,6 +29,11 @@ type routeCase struct {
 	want int
 	// prepare runs before each request that may go through.
 	prepare func()
+	// header is sent with every request.
+	header http.Header
+	// policy is the path's policy of the requests that may go through, when
+	// not alpha (a route that deletes its policy needs one of its own).
+	policy string
 }
 
 func jsonBody(make func() any) func() (string, []byte) {
@@ -134,7 +139,16 @@ func TestEveryRouteEnforcesAccess(t *testing.T) {
 		"GET /v1/policies":          {want: 200},
 		"GET /v1/audit":             {want: 200},
 		"GET /v1/policies/{policy}": {want: 200},
-		"PUT /v1/policies/{policy}": {body: jsonBody(func() any { return map[string]any{"actions": []string{"a", "b"}} }), want: 200},
+		"PUT /v1/policies/{policy}": {body: jsonBody(func() any { return map[string]any{"actions": []string{"a", "b"}} }), want: 200,
+			header: http.Header{"If-Match": {"*"}}},
+		"PATCH /v1/policies/{policy}": {want: 200, body: func() (string, []byte) {
+			return "application/merge-patch+json", []byte(`{"epsilon":0.2}`)
+		}},
+		"DELETE /v1/policies/{policy}": {policy: "doomed-policy", want: 204,
+			prepare: func() { s.call("PUT", "/v1/policies/doomed-policy", map[string]any{"actions": []string{"a", "b"}}, 201) }},
+		"GET /v1/policies/{policy}/settings-history": {want: 200},
+		"DELETE /v1/policies/{policy}/episodes/{episode}": {params: map[string]string{"episode": "doomed-episode"}, want: 204,
+			prepare: func() { s.post("alpha", oneStep("doomed-episode", "s", "a", 1)) }},
 		"POST /v1/policies/{policy}/episodes": {want: 202, body: jsonBody(func() any {
 			return map[string]any{"episodes": []episodeJSON{oneStep(unique("ep"), "s", "a", 1)}}
 		})},
@@ -211,7 +225,17 @@ func checkRouteAccess(t *testing.T, s *service, method, path string, op *openapi
 		return c.body()
 	}
 	send := func(secret, policy string, query url.Values, ctype string, data []byte) reply {
-		return s.as(secret).send(method, concrete(policy, query), ctype, data, true)
+		sender := s.as(secret)
+		for k, vs := range c.header {
+			for _, v := range vs {
+				sender = sender.withHeader(k, v)
+			}
+		}
+		return sender.send(method, concrete(policy, query), ctype, data, true)
+	}
+	through := "alpha"
+	if c.policy != "" {
+		through = c.policy
 	}
 	page := method == "GET" && !strings.HasPrefix(path, "/v1/")
 
@@ -244,7 +268,7 @@ func checkRouteAccess(t *testing.T, s *service, method, path string, op *openapi
 			c.prepare()
 		}
 		ctype, data := body()
-		r := send(unlimited[sc], "alpha", c.query, ctype, data)
+		r := send(unlimited[sc], through, c.query, ctype, data)
 		if allowed {
 			if r.Status != c.want {
 				t.Fatalf("%s token: %d %s, want %d", sc, r.Status, r.Body, c.want)

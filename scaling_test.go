@@ -38,6 +38,11 @@ var distributionExceptions = map[string]string{
 	// Page sessions belong to signed-in browsers, not to a policy: a small
 	// table read by key, kept whole on every node like the tokens.
 	"page_sessions_pkey": "page_sessions",
+	// The audit log belongs to the service: an entry may name several
+	// policies or none, and it is read across them; it stays on the
+	// coordinator, written once per admin request.
+	"audit_log_pkey":   "audit_log",
+	"audit_log_policy": "audit_log",
 	// The migration tool's bookkeeping; it stays on the coordinator.
 	"goose_db_version_pkey": "goose_db_version",
 }
