@@ -145,7 +145,9 @@ func TestEveryRouteEnforcesAccess(t *testing.T) {
 			return "application/merge-patch+json", []byte(`{"epsilon":0.2}`)
 		}},
 		"DELETE /v1/policies/{policy}": {policy: "doomed-policy", want: 204,
-			prepare: func() { s.call("PUT", "/v1/policies/doomed-policy", map[string]any{"actions": []string{"a", "b"}}, 201) }},
+			prepare: func() {
+				s.call("PUT", "/v1/policies/doomed-policy", map[string]any{"actions": []string{"a", "b"}}, 201)
+			}},
 		"GET /v1/policies/{policy}/settings-history": {want: 200},
 		"DELETE /v1/policies/{policy}/episodes/{episode}": {params: map[string]string{"episode": "doomed-episode"}, want: 204,
 			prepare: func() { s.post("alpha", oneStep("doomed-episode", "s", "a", 1)) }},
