@@ -83,13 +83,19 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		})
 	}
 	var auth api.Authenticator
+	var keeper training.Keeper
 	if cfg.RunAPI {
 		auth = startKeyring(ctx, cfg.Auth, db, subs, goBackground, logger, stdout)
+		batcher := db.NewDecisionBatcher(decisionBatchWindow, decisionBatchMax)
+		batcher.Observe = m.Open.ObserveDecisionBatch
+		goBackground("decision recorder", batcher.Run)
+		keeper = training.Keeper{Replica: replica, Recorder: batcher}
 	}
 	if cfg.RunWorker {
 		subs[storage.ChannelEpisodes] = storage.Subscription{Notify: func(int32) { nudge(wake) }, CatchUp: func() { nudge(wake) }}
 		reg.MustRegister(metrics.NewTableCollector(db, 5*time.Second, logger))
-		startHousekeeping(cfg, db, reg, logger, subs, goBackground)
+		reg.MustRegister(metrics.NewOpenEpisodeCollector(db, 5*time.Second, logger))
+		startHousekeeping(cfg, db, reg, m, logger, subs, goBackground)
 	}
 	goBackground("notification listener", func(ctx context.Context) error {
 		return db.Listen(ctx, logger, subs)
@@ -113,7 +119,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	var handler http.Handler
 	if cfg.RunAPI {
 		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, Episodes: db, States: db,
-			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth,
+			Chooser: replica, Recorder: keeper, OpenEpisodes: db, Inspect: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth,
 			Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db, Audit: db})
 	} else {
 		handler = api.NewHealthServer(cfg.HTTP, api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})
@@ -156,6 +162,13 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	stopBackground()
 	return nil
 }
+
+// Group commit of recorded decisions: a batch gathers for this long after
+// its first decision, or until it holds this many.
+const (
+	decisionBatchWindow = time.Millisecond
+	decisionBatchMax    = 256
+)
 
 // nudge wakes the worker without blocking; one pending wake is enough.
 func nudge(wake chan<- struct{}) {

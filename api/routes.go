@@ -30,7 +30,11 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoute
 		g.requireScope(training.ScopeAdmin, training.ScopeChoose, training.ScopeIngest)))
 	audit.add(e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg), admin))
 	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg), ingest)
-	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg), choose)
+	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Recorder, d.Metrics, cfg), choose)
+	e.POST("/v1/policies/:policy/open-episodes/:episode/rewards", handleAddReward(d.OpenEpisodes, d.Metrics, cfg), ingest)
+	e.POST("/v1/policies/:policy/open-episodes/:episode/end", handleEndEpisode(d.OpenEpisodes, d.Metrics, cfg), ingest)
+	e.GET("/v1/policies/:policy/open-episodes/:episode", handleGetOpenEpisode(d.OpenEpisodes, cfg),
+		g.requireScope(training.ScopeIngest, training.ScopeChoose))
 	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect), choose)
 	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States, cfg), choose)
 
@@ -60,6 +64,6 @@ func addStatusRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 		e.POST(signInPath, handleSignIn(g.auth))
 	}
 	e.GET("/", handleOverview(d.Policies), admin)
-	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, cfg), admin)
+	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, d.OpenEpisodes, cfg), admin)
 	e.GET("/policies/:policy/states", handleStatesPage(d.Inspect), admin)
 }

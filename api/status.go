@@ -168,9 +168,11 @@ type policyView struct {
 	MostDrift   []stateRow
 	MostVisited []stateRow
 	StatesURL   string
+	// Open is the policy's open episodes: how many, ended and abandoned.
+	Open training.OpenEpisodeFigures
 }
 
-func handlePolicyPage(in Inspector, cfg Config) echo.HandlerFunc {
+func handlePolicyPage(in Inspector, open OpenEpisodes, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
@@ -184,8 +186,13 @@ func handlePolicyPage(in Inspector, cfg Config) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
+		figures, err := open.PolicyOpenEpisodes(c.Request().Context(), name)
+		if err != nil {
+			return err
+		}
 		now := time.Now()
 		v := policyView{
+			Open:        figures,
 			pageBase:    pageBase{Title: name, Now: now, Refresh: 30},
 			policyRow:   newPolicyRow(report.Status, now),
 			Window:      formatDuration(window),

@@ -12,15 +12,26 @@ import (
 )
 
 const policyColumns = `policy_id, name, actions, gamma, alpha, epsilon, epsilon_min,
-	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at, table_epoch`
+	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at, table_epoch,
+	open_episode_idle_limit, on_idle, max_open_episodes, max_open_episode_steps`
 
 func scanPolicy(row pgx.Row) (training.Policy, error) {
 	var p training.Policy
-	var visit string
+	var visit, onIdle string
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
-		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch)
+		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch,
+		&p.OpenEpisodeIdleLimit, &onIdle, &p.MaxOpenEpisodes, &p.MaxOpenEpisodeSteps)
 	p.Visit = training.VisitRule(visit)
+	p.OnIdle = training.IdleRule(onIdle)
 	return p, err
+}
+
+// idleRule stores a rule left empty as the default, ending.
+func idleRule(r training.IdleRule) string {
+	if r == "" {
+		return string(training.IdleEnd)
+	}
+	return string(r)
 }
 
 func nullIfZero(x float64) *float64 {
@@ -56,10 +67,12 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 		case errors.Is(err, pgx.ErrNoRows):
 			created = true
 			p, err = scanPolicy(tx.QueryRow(ctx, `
-				INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q)
-				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9)
+				INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q,
+					open_episode_idle_limit, on_idle, max_open_episodes, max_open_episode_steps)
+				VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13)
 				RETURNING `+policyColumns,
-				name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ))
+				name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ,
+				s.OpenEpisodeIdleLimit, idleRule(s.OnIdle), s.OpenEpisodeLimit(), s.OpenEpisodeStepLimit()))
 			if err != nil {
 				return fmt.Errorf("insert policy: %w", err)
 			}
@@ -70,7 +83,8 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 			if !slices.Equal(existing.Actions, s.Actions) {
 				var used bool
 				if err := tx.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM episodes WHERE policy_id = $1)
-					OR EXISTS (SELECT 1 FROM q_values WHERE policy_id = $1)`, existing.ID).Scan(&used); err != nil {
+					OR EXISTS (SELECT 1 FROM q_values WHERE policy_id = $1)
+					OR EXISTS (SELECT 1 FROM open_episodes WHERE policy_id = $1)`, existing.ID).Scan(&used); err != nil {
 					return fmt.Errorf("check policy use: %w", err)
 				}
 				if used {
@@ -87,10 +101,12 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 			p, err = scanPolicy(tx.QueryRow(ctx, `
 				UPDATE policies SET actions = $2, gamma = $3, alpha = $4, epsilon = $5, epsilon_min = $6,
 					epsilon_decay_visits = $7, visit = $8, initial_q = $9, updated_at = now(),
-					revision = revision + $10, table_epoch = table_epoch + $10
+					revision = revision + $10, table_epoch = table_epoch + $10,
+					open_episode_idle_limit = $11, on_idle = $12, max_open_episodes = $13, max_open_episode_steps = $14
 				WHERE policy_id = $1
 				RETURNING `+policyColumns,
-				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, rewrite))
+				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ, rewrite,
+				s.OpenEpisodeIdleLimit, idleRule(s.OnIdle), s.OpenEpisodeLimit(), s.OpenEpisodeStepLimit()))
 			if err != nil {
 				return fmt.Errorf("update policy: %w", err)
 			}
@@ -157,12 +173,13 @@ const statusQuery = `
 
 func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
 	var st training.PolicyStatus
-	var visit string
+	var visit, onIdle string
 	p := &st.Policy
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
 		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch,
+		&p.OpenEpisodeIdleLimit, &onIdle, &p.MaxOpenEpisodes, &p.MaxOpenEpisodeSteps,
 		&st.Episodes, &st.Backlog, &st.OldestUntrained, &st.States, &st.Pairs, &st.LastTrainedAt)
-	p.Visit = training.VisitRule(visit)
+	p.Visit, p.OnIdle = training.VisitRule(visit), training.IdleRule(onIdle)
 	return st, err
 }
 

@@ -100,9 +100,27 @@ const maxStackActions = 64
 
 // Choose picks an action for a state from the in-memory copy.
 func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) (ChooseResult, error) {
+	res, _, err := r.choose(ctx, policy, req, false)
+	return res, err
+}
+
+// chosenIn is what recording a choice needs beyond its answer: the policy,
+// the indexes of the chosen and greedy actions and the allowed set.
+type chosenIn struct {
+	policyID int32
+	actions  []string
+	action   int16
+	greedy   int16
+	allowed  ActionSet
+}
+
+// choose picks an action; with record it also says what recording needs
+// (which allocates the allowed set, so the plain path does not ask).
+func (r *Replica) choose(ctx context.Context, policy string, req ChooseRequest, record bool) (ChooseResult, chosenIn, error) {
+	var in chosenIn
 	t, err := r.table(ctx, policy)
 	if err != nil {
-		return ChooseResult{}, err
+		return ChooseResult{}, in, err
 	}
 	var qBuf [maxStackActions]float64
 	var idxBuf [maxStackActions]int16
@@ -120,11 +138,11 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 		for i, name := range req.Allowed {
 			a, ok := t.index[name]
 			if !ok {
-				return ChooseResult{}, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "%q is not one of the policy's actions", truncate(name, 64))
+				return ChooseResult{}, in, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "%q is not one of the policy's actions", truncate(name, 64))
 			}
 			for _, prev := range allowed {
 				if prev == a {
-					return ChooseResult{}, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "repeats %q", truncate(name, 64))
+					return ChooseResult{}, in, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "repeats %q", truncate(name, 64))
 				}
 			}
 			allowed = append(allowed, a)
@@ -144,6 +162,13 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 		visits = sv.total
 	}
 	c := Choose(q, req.Mode, t.policy.EpsilonFor(visits), SharedRandom)
+	if record {
+		in = chosenIn{policyID: t.policy.ID, actions: t.policy.Actions, action: allowed[c.Action], greedy: allowed[c.Greedy],
+			allowed: make(ActionSet, ActionSetWidth(len(t.policy.Actions)))}
+		for _, a := range allowed {
+			in.allowed.add(a)
+		}
+	}
 	return ChooseResult{
 		Action:       t.policy.Actions[allowed[c.Action]],
 		Probability:  c.Probability,
@@ -153,7 +178,7 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 		Allowed:      allowedNames,
 		Revision:     t.revision,
 		Staleness:    time.Since(time.Unix(0, t.syncedAt.Load())),
-	}, nil
+	}, in, nil
 }
 
 // table returns a policy's table, loading it on first use.
