@@ -1,6 +1,8 @@
 package api
 
 import (
+	"bytes"
+	"io"
 	"net/http"
 
 	"github.com/labstack/echo/v4"
@@ -57,10 +59,8 @@ func handleEndEpisode(o OpenEpisodes, m *metrics.Metrics, cfg Config) echo.Handl
 			return err
 		}
 		var req training.EndRequest
-		if c.Request().ContentLength != 0 {
-			if err := bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
-				return err
-			}
+		if err := bindOptionalJSON(c, cfg.MaxBodyBytes, &req); err != nil {
+			return err
 		}
 		if err := req.Validate(); err != nil {
 			return err
@@ -92,4 +92,20 @@ func handleGetOpenEpisode(o OpenEpisodes, cfg Config) echo.HandlerFunc {
 		}
 		return c.JSON(http.StatusOK, v)
 	}
+}
+
+// bindOptionalJSON binds a JSON body when the request has one: an empty
+// body leaves v as it is, whatever the Content-Type.
+func bindOptionalJSON(c echo.Context, limit int64, v any) error {
+	req := c.Request()
+	if req.ContentLength == 0 {
+		return nil
+	}
+	var first [1]byte
+	n, _ := io.ReadFull(req.Body, first[:])
+	if n == 0 {
+		return nil
+	}
+	req.Body = io.NopCloser(io.MultiReader(bytes.NewReader(first[:n]), req.Body))
+	return bindJSON(c, limit, v)
 }
