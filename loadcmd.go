@@ -59,6 +59,14 @@ func loadCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 					}
 					return show(cmd, f)
 				}},
+			{Name: "recorded-choose", Usage: "explore-mode choose requests that each record their decision in an open episode (durable, group-committed)", Flags: common,
+				Action: func(ctx context.Context, cmd *cli.Command) error {
+					f, err := load.RecordedChoose(ctx, config(cmd))
+					if err != nil {
+						return err
+					}
+					return show(cmd, f)
+				}},
 			{Name: "post", Usage: "episode posts only (episodes-per-post episodes of steps steps each)", Flags: common,
 				Action: func(ctx context.Context, cmd *cli.Command) error {
 					f, err := load.Post(ctx, config(cmd))

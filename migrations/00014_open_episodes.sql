@@ -60,14 +60,18 @@ CREATE TABLE open_episode_reward_keys (
     PRIMARY KEY (policy_id, episode_id, key)
 );
 
--- Per-policy counts, written under the policy's ingest lock: how many are
--- open (for the limit, without counting rows) and how many ended which way.
+-- Per-policy counts: how many are open (for the limit, without counting
+-- rows) and how many ended which way; a policy's figure is the sum of its
+-- rows. Batches that open episodes run concurrently, and each adds to a
+-- shard of its own choosing, so that they do not queue for one row.
 CREATE TABLE open_episode_counts (
-    policy_id  integer PRIMARY KEY,
+    policy_id  integer NOT NULL,
+    shard      smallint NOT NULL,
     open       bigint NOT NULL DEFAULT 0,
     ended      bigint NOT NULL DEFAULT 0,
     ended_idle bigint NOT NULL DEFAULT 0,
-    dropped    bigint NOT NULL DEFAULT 0
+    dropped    bigint NOT NULL DEFAULT 0,
+    PRIMARY KEY (policy_id, shard)
 );
 
 -- +goose Down

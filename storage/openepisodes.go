@@ -4,6 +4,8 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"math/rand/v2"
+	"sync"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -66,10 +68,18 @@ func (b *DecisionBatcher) Record(ctx context.Context, d training.Decision) (trai
 	}
 }
 
+// decisionCommitsInFlight is how many batches commit at once: while some
+// wait for their commit, the next gathers and goes, so throughput is not
+// one batch per commit latency.
+const decisionCommitsInFlight = 4
+
 // Run gathers and commits batches until ctx ends. It runs until after the
 // HTTP server has stopped, so requests in flight get their commit.
 func (b *DecisionBatcher) Run(ctx context.Context) error {
 	defer close(b.stopped)
+	slots := make(chan struct{}, decisionCommitsInFlight)
+	var committing sync.WaitGroup
+	defer committing.Wait()
 	timer := time.NewTimer(b.window)
 	timer.Stop()
 	for {
@@ -96,7 +106,11 @@ func (b *DecisionBatcher) Run(ctx context.Context) error {
 			default:
 			}
 		}
-		b.commit(ctx, batch)
+		slots <- struct{}{}
+		committing.Go(func() {
+			b.commit(ctx, batch)
+			<-slots
+		})
 	}
 }
 
@@ -138,15 +152,9 @@ type decisionOutcome struct {
 // sets each one's outcome. A deadlock or a unique violation (another
 // process opened the same episode meanwhile) is retried once.
 func (db *DB) recordDecisions(ctx context.Context, policyID int32, group []*pendingDecision) {
-	var outcomes []decisionOutcome
-	record := func(tx pgx.Tx) error {
-		var err error
-		outcomes, err = recordInTx(ctx, tx, policyID, group)
-		return err
-	}
-	err := db.WithTx(ctx, record)
+	outcomes, err := db.recordOnce(ctx, policyID, group)
 	if isUniqueViolation(err) || isDeadlock(err) {
-		err = db.WithTx(ctx, record)
+		outcomes, err = db.recordOnce(ctx, policyID, group)
 	}
 	for i, p := range group {
 		if err != nil {
@@ -155,6 +163,23 @@ func (db *DB) recordDecisions(ctx context.Context, policyID int32, group []*pend
 		}
 		p.stored, p.repeated, p.err = outcomes[i].stored, outcomes[i].repeated, outcomes[i].err
 	}
+}
+
+// recordOnce runs recordInTx on a connection of its own; the transaction
+// begins with the reads and commits with the writes, so it costs two
+// round trips. A connection left in a transaction by an error is rolled
+// back (or, if that fails, dropped by the pool on release).
+func (db *DB) recordOnce(ctx context.Context, policyID int32, group []*pendingDecision) ([]decisionOutcome, error) {
+	conn, err := db.pool.Acquire(ctx)
+	if err != nil {
+		return nil, mapError(fmt.Errorf("acquire a connection: %w", err))
+	}
+	defer conn.Release()
+	outcomes, err := recordInTx(ctx, conn.Conn(), policyID, group)
+	if conn.Conn().PgConn().TxStatus() != 'I' {
+		_, _ = conn.Exec(context.WithoutCancel(ctx), `ROLLBACK`)
+	}
+	return outcomes, err
 }
 
 func isDeadlock(err error) bool {
@@ -182,8 +207,10 @@ func scanDecision(row pgx.Row, policyID int32) (training.Decision, error) {
 }
 
 // recordInTx decides every decision of the group against what is stored
-// (new, a repeat of a stored step, or refused) and stores the new ones.
-func recordInTx(ctx context.Context, tx pgx.Tx, policyID int32, group []*pendingDecision) ([]decisionOutcome, error) {
+// (new, a repeat of a stored step, or refused) and stores the new ones, in
+// one transaction: BEGIN and the reads go in one pipelined round trip, the
+// writes and COMMIT in another, however large the batch.
+func recordInTx(ctx context.Context, conn *pgx.Conn, policyID int32, group []*pendingDecision) ([]decisionOutcome, error) {
 	var ids []string
 	seen := map[string]bool{}
 	opening := false
@@ -194,76 +221,97 @@ func recordInTx(ctx context.Context, tx pgx.Tx, policyID int32, group []*pending
 		}
 		opening = opening || p.d.Step == 0
 	}
-	// Opening an episode takes the lock posting takes, so that an id is
-	// either posted or kept open, never both (and the open count stays exact).
+
+	var reads pgx.Batch
+	reads.Queue(`BEGIN`).Exec(func(pgconn.CommandTag) error { return nil })
+	// Opening an episode takes the lock posting and ending take, shared:
+	// openings run side by side, but never beside a post or an end, so an
+	// id is either posted or kept open, never both. (Two batches opening
+	// the same id collide on its key, and the later one is retried.)
 	if opening {
-		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, policyID); err != nil {
-			return nil, fmt.Errorf("ingest lock: %w", err)
-		}
+		reads.Queue(`SELECT pg_advisory_xact_lock_shared($1, $2)`, ingestLockClass, policyID).Exec(func(pgconn.CommandTag) error { return nil })
 	}
 	var maxOpen, maxSteps int
 	var name string
-	if err := tx.QueryRow(ctx, `SELECT name, max_open_episodes, max_open_episode_steps FROM policies WHERE policy_id = $1`,
-		policyID).Scan(&name, &maxOpen, &maxSteps); err != nil {
-		return nil, fmt.Errorf("read policy limits: %w", err)
-	}
+	reads.Queue(`SELECT name, max_open_episodes, max_open_episode_steps FROM policies WHERE policy_id = $1`, policyID).
+		QueryRow(func(r pgx.Row) error { return r.Scan(&name, &maxOpen, &maxSteps) })
+	// Locked in one order by every process, so that batches sharing
+	// episodes do not deadlock.
 	count := map[string]int{}
-	// In one order for every process, so that batches sharing episodes
-	// lock them without deadlocking.
-	rows, err := tx.Query(ctx, `SELECT episode_id, steps FROM open_episodes
-		WHERE policy_id = $1 AND episode_id = ANY($2) ORDER BY episode_id FOR UPDATE`, policyID, ids)
-	if err != nil {
-		return nil, fmt.Errorf("read open episodes: %w", err)
-	}
-	var id string
-	var n int
-	if _, err := pgx.ForEachRow(rows, []any{&id, &n}, func() error { count[id] = n; return nil }); err != nil {
-		return nil, fmt.Errorf("read open episodes: %w", err)
-	}
-	var needEpisodes []string
-	var needSteps []int32
-	for _, p := range group {
-		if p.d.Step < count[p.d.Episode] {
-			needEpisodes, needSteps = append(needEpisodes, p.d.Episode), append(needSteps, int32(p.d.Step))
-		}
-	}
-	recorded := map[stepKey]training.Decision{}
-	if len(needEpisodes) > 0 {
-		rows, err := tx.Query(ctx, `SELECT `+decisionColumns+` FROM open_episode_steps
-			WHERE policy_id = $1 AND (episode_id, step) IN (SELECT * FROM unnest($2::text[], $3::integer[]))`,
-			policyID, needEpisodes, needSteps)
-		if err != nil {
-			return nil, fmt.Errorf("read recorded decisions: %w", err)
-		}
-		list, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.Decision, error) { return scanDecision(r, policyID) })
-		if err != nil {
-			return nil, fmt.Errorf("read recorded decisions: %w", err)
-		}
-		for _, d := range list {
-			recorded[stepKey{d.Episode, d.Step}] = d
-		}
-	}
-	var notOpen []string
-	for _, id := range ids {
-		if _, ok := count[id]; !ok {
-			notOpen = append(notOpen, id)
-		}
-	}
+	reads.Queue(`SELECT episode_id, steps FROM open_episodes
+		WHERE policy_id = $1 AND episode_id = ANY($2) ORDER BY episode_id FOR UPDATE`, policyID, ids).
+		Query(func(rows pgx.Rows) error {
+			var id string
+			var n int
+			_, err := pgx.ForEachRow(rows, []any{&id, &n}, func() error { count[id] = n; return nil })
+			return err
+		})
+	// Whether an episode about to open was posted (or ended) before. Ids of
+	// later steps that are not open are looked up below, only then: that
+	// is a refusal anyway, and rare.
 	finished := map[string]bool{}
-	if len(notOpen) > 0 {
-		stored, err := storedEpisodeIDs(ctx, tx, policyID, notOpen)
-		if err != nil {
-			return nil, err
+	queueFinished := func(b *pgx.Batch, ids []string) {
+		b.Queue(`SELECT episode_id FROM episodes WHERE policy_id = $1 AND episode_id = ANY($2)`, policyID, ids).
+			Query(func(rows pgx.Rows) error {
+				var id string
+				_, err := pgx.ForEachRow(rows, []any{&id}, func() error { finished[id] = true; return nil })
+				return err
+			})
+	}
+	if opening {
+		var openingIDs []string
+		for _, p := range group {
+			if p.d.Step == 0 {
+				openingIDs = append(openingIDs, p.d.Episode)
+			}
 		}
-		for _, id := range stored {
-			finished[id] = true
-		}
+		queueFinished(&reads, openingIDs)
 	}
 	var openNow int64
 	if opening {
-		if err := tx.QueryRow(ctx, `SELECT coalesce((SELECT open FROM open_episode_counts WHERE policy_id = $1), 0)`,
-			policyID).Scan(&openNow); err != nil {
-			return nil, fmt.Errorf("count open episodes: %w", err)
+		reads.Queue(`SELECT coalesce(sum(open), 0)::bigint FROM open_episode_counts WHERE policy_id = $1`, policyID).
+			QueryRow(func(r pgx.Row) error { return r.Scan(&openNow) })
+	}
+	if err := conn.SendBatch(ctx, &reads).Close(); err != nil {
+		return nil, fmt.Errorf("read open episodes: %w", err)
+	}
+	// Retries (a step already recorded) and refusals need more; a batch of
+	// next steps does not, and pays for none of it.
+	var more pgx.Batch
+	recorded := map[stepKey]training.Decision{}
+	var retryEpisodes []string
+	var retrySteps []int32
+	var unknown []string
+	for _, p := range group {
+		c, isOpen := count[p.d.Episode]
+		switch {
+		case p.d.Step < c:
+			retryEpisodes, retrySteps = append(retryEpisodes, p.d.Episode), append(retrySteps, int32(p.d.Step))
+		case !isOpen && p.d.Step > 0:
+			unknown = append(unknown, p.d.Episode)
+		}
+	}
+	if len(retryEpisodes) > 0 {
+		// LATERAL keeps this a key lookup per decision whatever plan the
+		// prepared statement settles on.
+		more.Queue(`SELECT s.* FROM unnest($2::text[], $3::integer[]) AS asked(episode_id, step)
+			JOIN LATERAL (SELECT `+decisionColumns+` FROM open_episode_steps o
+				WHERE o.policy_id = $1 AND o.episode_id = asked.episode_id AND o.step = asked.step) s ON true`,
+			policyID, retryEpisodes, retrySteps).
+			Query(func(rows pgx.Rows) error {
+				list, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.Decision, error) { return scanDecision(r, policyID) })
+				for _, d := range list {
+					recorded[stepKey{d.Episode, d.Step}] = d
+				}
+				return err
+			})
+	}
+	if len(unknown) > 0 {
+		queueFinished(&more, unknown)
+	}
+	if more.Len() > 0 {
+		if err := conn.SendBatch(ctx, &more).Close(); err != nil {
+			return nil, fmt.Errorf("read recorded decisions: %w", err)
 		}
 	}
 
@@ -278,8 +326,7 @@ func recordInTx(ctx context.Context, tx pgx.Tx, policyID int32, group []*pending
 		case finished[d.Episode]:
 			outcomes[i].err = training.Conflictf("episode %q of policy %q is stored as a finished episode (it ended, or was posted): its id takes no more decisions; name a new episode", d.Episode, name)
 		case d.Step < c:
-			key := stepKey{d.Episode, d.Step}
-			prev, ok := recorded[key]
+			prev, ok := recorded[stepKey{d.Episode, d.Step}]
 			if !ok {
 				return nil, fmt.Errorf("decision %d of episode %q is counted but not stored", d.Step, d.Episode)
 			}
@@ -309,11 +356,15 @@ func recordInTx(ctx context.Context, tx pgx.Tx, policyID int32, group []*pending
 		}
 	}
 	if len(fresh) == 0 {
+		// Nothing to write: release the locks without a durable commit.
+		if _, err := conn.Exec(ctx, `ROLLBACK`); err != nil {
+			return nil, fmt.Errorf("end read-only batch: %w", err)
+		}
 		return outcomes, nil
 	}
-	if err := insertDecisions(ctx, tx, policyID, fresh); err != nil {
-		return nil, err
-	}
+
+	var writes pgx.Batch
+	queueDecisions(&writes, policyID, fresh)
 	var touched []string
 	var steps []int32
 	for _, id := range ids {
@@ -321,22 +372,22 @@ func recordInTx(ctx context.Context, tx pgx.Tx, policyID int32, group []*pending
 			touched, steps = append(touched, id), append(steps, int32(c))
 		}
 	}
-	if _, err := tx.Exec(ctx, `
+	writes.Queue(`
 		INSERT INTO open_episodes (policy_id, episode_id, steps)
 		SELECT $1, e, n FROM unnest($2::text[], $3::integer[]) AS t(e, n)
 		ON CONFLICT (policy_id, episode_id) DO UPDATE SET steps = excluded.steps, last_active_at = now()`,
-		policyID, touched, steps); err != nil {
-		return nil, fmt.Errorf("update open episodes: %w", err)
-	}
+		policyID, touched, steps)
 	if opened > 0 {
-		if err := addCounts(ctx, tx, policyID, opened, 0, 0, 0); err != nil {
-			return nil, err
-		}
+		queueCounts(&writes, policyID, 1+rand.IntN(countShards-1), opened, 0, 0, 0)
+	}
+	writes.Queue(`COMMIT`)
+	if err := conn.SendBatch(ctx, &writes).Close(); err != nil {
+		return nil, fmt.Errorf("record decisions: %w", err)
 	}
 	return outcomes, nil
 }
 
-func insertDecisions(ctx context.Context, tx pgx.Tx, policyID int32, ds []training.Decision) error {
+func queueDecisions(b *pgx.Batch, policyID int32, ds []training.Decision) {
 	n := len(ds)
 	episodes, states, modes := make([]string, n), make([]string, n), make([]string, n)
 	steps := make([]int32, n)
@@ -351,29 +402,36 @@ func insertDecisions(ctx context.Context, tx pgx.Tx, policyID int32, ds []traini
 		actions[i], greedy[i], probs[i], allowed[i] = d.Action, d.Greedy, d.Probability, d.Allowed
 		explored[i], known[i], revisions[i], ages[i], chosen[i] = d.Explored, d.KnownState, d.Revision, d.CopyAge.Seconds(), d.ChosenAt
 	}
-	_, err := tx.Exec(ctx, `
+	b.Queue(`
 		INSERT INTO open_episode_steps (policy_id, `+decisionColumns+`)
 		SELECT $1, * FROM unnest($2::text[], $3::integer[], $4::text[], $5::smallint[], $6::smallint[],
 			$7::double precision[], $8::bytea[], $9::text[], $10::boolean[], $11::boolean[], $12::bigint[],
 			$13::double precision[], $14::timestamptz[])`,
 		policyID, episodes, steps, states, actions, greedy, probs, allowed, modes, explored, known, revisions, ages, chosen)
-	if err != nil {
-		return fmt.Errorf("record decisions: %w", err)
+}
+
+// countShards is how many rows a policy's open-episode counts spread over:
+// shard 0 for closings (which hold the ingest lock alone), the others
+// drawn at random by batches opening episodes.
+const countShards = 16
+
+// addCounts moves a policy's open-episode counts as a closing; callers
+// hold its ingest lock.
+func addCounts(ctx context.Context, tx pgx.Tx, policyID int32, open, ended, endedIdle, dropped int) error {
+	var b pgx.Batch
+	queueCounts(&b, policyID, 0, open, ended, endedIdle, dropped)
+	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
+		return fmt.Errorf("count open episodes: %w", err)
 	}
 	return nil
 }
 
-// addCounts moves a policy's open-episode counts; callers hold its ingest lock.
-func addCounts(ctx context.Context, tx pgx.Tx, policyID int32, open, ended, endedIdle, dropped int) error {
-	_, err := tx.Exec(ctx, `
-		INSERT INTO open_episode_counts AS c (policy_id, open, ended, ended_idle, dropped) VALUES ($1, $2, $3, $4, $5)
-		ON CONFLICT (policy_id) DO UPDATE SET open = c.open + excluded.open, ended = c.ended + excluded.ended,
+func queueCounts(b *pgx.Batch, policyID int32, shard, open, ended, endedIdle, dropped int) {
+	b.Queue(`
+		INSERT INTO open_episode_counts AS c (policy_id, shard, open, ended, ended_idle, dropped) VALUES ($1, $2, $3, $4, $5, $6)
+		ON CONFLICT (policy_id, shard) DO UPDATE SET open = c.open + excluded.open, ended = c.ended + excluded.ended,
 			ended_idle = c.ended_idle + excluded.ended_idle, dropped = c.dropped + excluded.dropped`,
-		policyID, open, ended, endedIdle, dropped)
-	if err != nil {
-		return fmt.Errorf("count open episodes: %w", err)
-	}
-	return nil
+		policyID, shard, open, ended, endedIdle, dropped)
 }
 
 func storedEpisodeIDs(ctx context.Context, tx pgx.Tx, policyID int32, ids []string) ([]string, error) {
@@ -768,7 +826,9 @@ const openFiguresQuery = `
 	SELECT p.name, coalesce(c.open, 0), coalesce(c.ended, 0), coalesce(c.ended_idle, 0), coalesce(c.dropped, 0),
 		(SELECT min(o.opened_at) FROM open_episodes o WHERE o.policy_id = p.policy_id),
 		(SELECT min(o.last_active_at) FROM open_episodes o WHERE o.policy_id = p.policy_id)
-	FROM policies p LEFT JOIN open_episode_counts c ON c.policy_id = p.policy_id`
+	FROM policies p LEFT JOIN LATERAL (
+		SELECT sum(open)::bigint AS open, sum(ended)::bigint AS ended, sum(ended_idle)::bigint AS ended_idle, sum(dropped)::bigint AS dropped
+		FROM open_episode_counts WHERE policy_id = p.policy_id) c ON true`
 
 func scanOpenFigures(r pgx.Row) (training.OpenEpisodeFigures, error) {
 	var f training.OpenEpisodeFigures
