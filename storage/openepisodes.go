@@ -758,6 +758,15 @@ func (db *DB) CloseIdleEpisodes(ctx context.Context, perPolicy int) ([]training.
 	}
 	var sweeps []training.IdleSweep
 	for _, p := range policies {
+		// Looked for first without the lock, which would hold up openings.
+		var idle bool
+		if err := db.pool.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM open_episodes
+			WHERE policy_id = $1 AND last_active_at < now() - make_interval(secs => $2))`, p.ID, p.OpenEpisodeIdleLimit).Scan(&idle); err != nil {
+			return sweeps, mapError(fmt.Errorf("find idle episodes: %w", err))
+		}
+		if !idle {
+			continue
+		}
 		sweep := training.IdleSweep{Policy: p.Name}
 		err := db.WithTx(ctx, func(tx pgx.Tx) error {
 			if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
