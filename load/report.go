@@ -25,7 +25,9 @@ const (
 	FilePost           = "post.json"
 	FileDrain          = "drain.json"
 	FileMixed          = "mixed.json"
-	FileMemory         = "memory.json"
+	// FileMixedKept: the mixed scenario with the episodes kept by qtally.
+	FileMixedKept = "mixed-kept.json"
+	FileMemory    = "memory.json"
 )
 
 // Ceiling is one figure of the ceilings script's JSON output.
@@ -103,6 +105,15 @@ func Report(dir string) (string, error) {
 		label := fmt.Sprintf("training drain (%s episodes, %s pairs)", human(float64(drain.Episodes)), human(float64(drain.Pairs)))
 		t.ratio(label, drain.StepsPerSec, "steps/s", "episode_copy_steps_per_s", targetDrainRatio, 0)
 		t.ratio("training drain vs one statement per update", drain.StepsPerSec, "steps/s", "q_naive_upsert_rows_per_s", targetDrainVsNaive, 0)
+	}
+	var kept MixedReport
+	if err := readJSON(filepath.Join(dir, FileMixedKept), &kept); t.ok("mixed, episodes kept by qtally", err) {
+		t.info(fmt.Sprintf("mixed: kept by qtally (offered %s episodes/s, %.0f s)", human(kept.OfferedPerSec), kept.DurationSec),
+			fmt.Sprintf("%s episodes/s, %s recorded chooses/s, %d errors, %d skipped", human(kept.EpisodesPerSec), human(kept.ChoosesPerSec), kept.Errors, kept.Skipped), "", 0)
+		bound := boundedSlopeShare * kept.EpisodesPerSec
+		t.verdict("mixed, kept: backlog trend (max "+human(float64(kept.BacklogMax))+")",
+			fmt.Sprintf("%.1f episodes/s", kept.BacklogSlopePer), fmt.Sprintf("< %.1f /s (2%% of ending)", bound),
+			kept.BacklogSlopePer < bound && kept.Errors == 0 && len(kept.Backlog) > 1)
 	}
 	var mixed MixedReport
 	if err := readJSON(filepath.Join(dir, FileMixed), &mixed); t.ok("mixed", err) {

@@ -237,6 +237,15 @@ say "mixed: ${MIXED_S}s at $RATE episodes/s (80% of the $MIXED_BASIS figure) ...
 qtally_load mixed --policy bench --states "$STATES" --rate "$RATE" --choose-every 20 --workers 256 --posters "$POST_WORKERS" \
   --duration "${MIXED_S}s" --database-url "$DB_URL" --pprof-url "$PPROF" >"$OUT/mixed.json"
 
+# 7. Mixed with the episodes kept by qtally: every step's choose recorded,
+#    its reward added, the episode ended; 80% of the recorded-choose rate
+#    (two requests a step) in episodes of 20 steps.
+KEPT_RPS=$(json_field "$OUT/recorded-choose.json" throughput_per_s)
+KEPT_RATE=$(awk -v s="$KEPT_RPS" 'BEGIN { r = int(0.8 * s / 40); print (r < 1 ? 1 : r) }')
+say "mixed, episodes kept by qtally: ${MIXED_S}s at $KEPT_RATE episodes/s ..."
+qtally_load mixed --keep-episodes --policy bench-kept --states "$STATES" --rate "$KEPT_RATE" --workers 256 \
+  --duration "${MIXED_S}s" --database-url "$DB_URL" >"$OUT/mixed-kept.json"
+
 stop_pid "$WORKER_PID"; WORKER_PID=
 stop_pid "$API_PID"; API_PID=
 
