@@ -712,11 +712,12 @@ func (db *DB) OpenEpisode(ctx context.Context, policy, episode string) (training
 		err = tx.QueryRow(ctx, `SELECT opened_at, last_active_at FROM open_episodes WHERE policy_id = $1 AND episode_id = $2`,
 			p.ID, episode).Scan(&v.OpenedAt, &v.LastActiveAt)
 		if errors.Is(err, pgx.ErrNoRows) {
-			if err := notOpen(ctx, tx, p, episode); errors.Is(err, training.ErrConflict) {
+			err := notOpen(ctx, tx, p, episode)
+			if errors.Is(err, training.ErrConflict) {
+				// Ended: no open episode by that id, and the answer says why.
 				return training.NotFoundf("%s", err.Error())
-			} else {
-				return err
 			}
+			return err
 		}
 		if err != nil {
 			return fmt.Errorf("read open episode: %w", err)

@@ -88,7 +88,7 @@ func (db *DB) PutPolicy(ctx context.Context, name string, s training.Settings) (
 					return fmt.Errorf("check policy use: %w", err)
 				}
 				if used {
-					return training.Conflictf("policy %q has stored episodes or learned values, so its actions cannot change (stored steps refer to actions by position); create a new policy instead", name)
+					return training.Conflictf("policy %q has stored or open episodes or learned values, so its actions cannot change (stored steps refer to actions by position); create a new policy instead", name)
 				}
 			}
 			// Pairs never updated are worth the initial value, so a new one
