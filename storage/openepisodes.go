@@ -167,18 +167,14 @@ func (db *DB) recordDecisions(ctx context.Context, policyID int32, group []*pend
 
 // recordOnce runs recordInTx on a connection of its own; the transaction
 // begins with the reads and commits with the writes, so it costs two
-// round trips. A connection left in a transaction by an error is rolled
-// back (or, if that fails, dropped by the pool on release).
+// round trips.
 func (db *DB) recordOnce(ctx context.Context, policyID int32, group []*pendingDecision) ([]decisionOutcome, error) {
-	conn, err := db.pool.Acquire(ctx)
-	if err != nil {
-		return nil, mapError(fmt.Errorf("acquire a connection: %w", err))
-	}
-	defer conn.Release()
-	outcomes, err := recordInTx(ctx, conn.Conn(), policyID, group)
-	if conn.Conn().PgConn().TxStatus() != 'I' {
-		_, _ = conn.Exec(context.WithoutCancel(ctx), `ROLLBACK`)
-	}
+	var outcomes []decisionOutcome
+	err := db.WithConn(ctx, func(conn *pgx.Conn) error {
+		var err error
+		outcomes, err = recordInTx(ctx, conn, policyID, group)
+		return err
+	})
 	return outcomes, err
 }
 
@@ -477,22 +473,42 @@ func notOpen(ctx context.Context, tx pgx.Tx, p training.Policy, episode string) 
 }
 
 // AddReward adds a reward to a decision of an open episode: the named step,
-// or the latest. Several additions to one decision sum.
+// or the latest. Several additions to one decision sum. It costs three
+// round trips: BEGIN with the reads, the writes, COMMIT.
 func (db *DB) AddReward(ctx context.Context, policy, episode string, add training.RewardAddition) (training.RewardResult, error) {
 	var res training.RewardResult
-	err := db.WithTx(ctx, func(tx pgx.Tx) error {
-		p, err := policyInTx(ctx, tx, policy)
-		if err != nil {
-			return err
-		}
-		var steps int
-		err = tx.QueryRow(ctx, `SELECT steps FROM open_episodes WHERE policy_id = $1 AND episode_id = $2 FOR UPDATE`,
-			p.ID, episode).Scan(&steps)
-		if errors.Is(err, pgx.ErrNoRows) {
-			return notOpen(ctx, tx, p, episode)
-		}
-		if err != nil {
+	err := db.WithConn(ctx, func(conn *pgx.Conn) error {
+		var reads pgx.Batch
+		reads.Queue(`BEGIN`)
+		var policyID *int32
+		reads.Queue(`SELECT policy_id FROM policies WHERE name = $1 FOR KEY SHARE`, policy).
+			QueryRow(func(r pgx.Row) error {
+				var id int32
+				err := r.Scan(&id)
+				if errors.Is(err, pgx.ErrNoRows) {
+					return nil
+				}
+				policyID = &id
+				return err
+			})
+		steps := -1
+		reads.Queue(`SELECT steps FROM open_episodes
+			WHERE policy_id = (SELECT policy_id FROM policies WHERE name = $1) AND episode_id = $2 FOR UPDATE`, policy, episode).
+			QueryRow(func(r pgx.Row) error {
+				err := r.Scan(&steps)
+				if errors.Is(err, pgx.ErrNoRows) {
+					return nil
+				}
+				return err
+			})
+		if err := conn.SendBatch(ctx, &reads).Close(); err != nil {
 			return fmt.Errorf("read open episode: %w", err)
+		}
+		if policyID == nil {
+			return training.NotFoundf("no policy named %q", policy)
+		}
+		if steps < 0 {
+			return notOpenConn(ctx, conn, policy, *policyID, episode)
 		}
 		step := steps - 1
 		if add.Step != nil {
@@ -501,40 +517,78 @@ func (db *DB) AddReward(ctx context.Context, policy, episode string, add trainin
 		if step >= steps {
 			return training.Invalid(-1, -1, "step", "episode %q has %d decisions recorded (steps 0 to %d); there is no step %d", episode, steps, steps-1, step)
 		}
-		if add.Key != "" {
-			var keyStep int
-			err := tx.QueryRow(ctx, `
-				WITH added AS (
-					INSERT INTO open_episode_reward_keys (policy_id, episode_id, key, step) VALUES ($1, $2, $3, $4)
-					ON CONFLICT DO NOTHING RETURNING step)
-				SELECT step FROM added`, p.ID, episode, add.Key, step).Scan(&keyStep)
-			if errors.Is(err, pgx.ErrNoRows) {
-				// Used before: answer what that addition went to, add nothing.
-				res.Repeated = true
-				if err := tx.QueryRow(ctx, `SELECT k.step, s.reward FROM open_episode_reward_keys k
-					JOIN open_episode_steps s USING (policy_id, episode_id, step)
-					WHERE k.policy_id = $1 AND k.episode_id = $2 AND k.key = $3`, p.ID, episode, add.Key).Scan(&res.Step, &res.Reward); err != nil {
-					return fmt.Errorf("read keyed reward: %w", err)
+		// A key used before adds nothing: the update finds no new key row.
+		added := false
+		var writes pgx.Batch
+		writes.Queue(`
+			WITH new_key AS (
+				INSERT INTO open_episode_reward_keys (policy_id, episode_id, key, step)
+				SELECT $1, $2, $5, $3 WHERE $5 <> ''
+				ON CONFLICT DO NOTHING RETURNING 1)
+			UPDATE open_episode_steps SET reward = reward + $4
+			WHERE policy_id = $1 AND episode_id = $2 AND step = $3 AND ($5 = '' OR EXISTS (SELECT 1 FROM new_key))
+			RETURNING reward`, *policyID, episode, step, add.Reward, add.Key).
+			QueryRow(func(r pgx.Row) error {
+				err := r.Scan(&res.Reward)
+				if errors.Is(err, pgx.ErrNoRows) {
+					return nil
 				}
-				return nil
-			}
-			if err != nil {
-				return fmt.Errorf("record reward key: %w", err)
-			}
-		}
-		res.Step = step
-		if err := tx.QueryRow(ctx, `UPDATE open_episode_steps SET reward = reward + $4
-			WHERE policy_id = $1 AND episode_id = $2 AND step = $3 RETURNING reward`,
-			p.ID, episode, step, add.Reward).Scan(&res.Reward); err != nil {
+				added = err == nil
+				return err
+			})
+		writes.Queue(`UPDATE open_episodes SET last_active_at = now() WHERE policy_id = $1 AND episode_id = $2`, *policyID, episode)
+		if err := conn.SendBatch(ctx, &writes).Close(); err != nil {
 			return fmt.Errorf("add reward: %w", err)
 		}
-		if res.Reward > training.MaxAbsReward || res.Reward < -training.MaxAbsReward {
+		res.Step = step
+		if !added {
+			// Used before: answer what that addition went to.
+			res.Repeated = true
+			if err := conn.QueryRow(ctx, `SELECT k.step, s.reward FROM open_episode_reward_keys k
+				JOIN open_episode_steps s USING (policy_id, episode_id, step)
+				WHERE k.policy_id = $1 AND k.episode_id = $2 AND k.key = $3`, *policyID, episode, add.Key).Scan(&res.Step, &res.Reward); err != nil {
+				return fmt.Errorf("read keyed reward: %w", err)
+			}
+		} else if res.Reward > training.MaxAbsReward || res.Reward < -training.MaxAbsReward {
 			return training.Invalid(-1, -1, "reward", "step %d's rewards would sum to %g, larger in magnitude than the limit of %g", step, res.Reward, training.MaxAbsReward)
 		}
-		_, err = tx.Exec(ctx, `UPDATE open_episodes SET last_active_at = now() WHERE policy_id = $1 AND episode_id = $2`, p.ID, episode)
-		return err
+		if _, err := conn.Exec(ctx, `COMMIT`); err != nil {
+			return fmt.Errorf("commit: %w", err)
+		}
+		return nil
 	})
 	return res, err
+}
+
+// WithConn runs fn on a connection of its own, for work that pipelines its
+// own BEGIN and COMMIT; a transaction fn leaves open (an error) is rolled
+// back, or the connection dropped.
+func (db *DB) WithConn(ctx context.Context, fn func(*pgx.Conn) error) error {
+	conn, err := db.pool.Acquire(ctx)
+	if err != nil {
+		return mapError(fmt.Errorf("acquire a connection: %w", err))
+	}
+	defer conn.Release()
+	err = fn(conn.Conn())
+	if conn.Conn().PgConn().TxStatus() != 'I' {
+		if _, rbErr := conn.Exec(context.WithoutCancel(ctx), `ROLLBACK`); rbErr != nil {
+			_ = conn.Conn().Close(context.WithoutCancel(ctx))
+		}
+	}
+	return mapError(err)
+}
+
+// notOpenConn is notOpen for a pipelined connection.
+func notOpenConn(ctx context.Context, conn *pgx.Conn, policy string, policyID int32, episode string) error {
+	var stored bool
+	if err := conn.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM episodes WHERE policy_id = $1 AND episode_id = $2)`,
+		policyID, episode).Scan(&stored); err != nil {
+		return fmt.Errorf("look up episode id: %w", err)
+	}
+	if stored {
+		return training.Conflictf("episode %q of policy %q is not open: it is stored as a finished episode (it ended, or was posted)", episode, policy)
+	}
+	return training.NotFoundf("policy %q has no open episode %q", policy, episode)
 }
 
 func policyInTx(ctx context.Context, tx pgx.Tx, name string) (training.Policy, error) {
