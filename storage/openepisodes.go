@@ -361,11 +361,16 @@ func recordInTx(ctx context.Context, conn *pgx.Conn, policyID int32, group []*pe
 
 	var writes pgx.Batch
 	queueDecisions(&writes, policyID, fresh)
+	// The episodes that took a new step: their count and last activity.
+	changed := map[string]bool{}
+	for _, d := range fresh {
+		changed[d.Episode] = true
+	}
 	var touched []string
 	var steps []int32
 	for _, id := range ids {
-		if c, ok := count[id]; ok {
-			touched, steps = append(touched, id), append(steps, int32(c))
+		if changed[id] {
+			touched, steps = append(touched, id), append(steps, int32(count[id]))
 		}
 	}
 	writes.Queue(`
