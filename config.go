@@ -232,6 +232,7 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 		cfg.CoverageVisits = cmd.Int64(flagCoverageVisits)
 		cfg.HTTP.MaxBodyBytes, cfg.HTTP.MaxStateLength = cmd.Int64(flagMaxBodyBytes), cfg.Limits.MaxStateLength
 		cfg.HTTP.BulkTimeout = cmd.Duration(flagBulkTimeout)
+		cfg.HTTP.MaxIDLength = cfg.Limits.MaxIDLength
 		atLeastOne[flagMaxEpisodes], atLeastOne[flagMaxSteps] = cfg.Limits.MaxEpisodes, cfg.Limits.MaxSteps
 		atLeastOne[flagMaxIDLength], atLeastOne[flagMaxStateLength] = cfg.Limits.MaxIDLength, cfg.Limits.MaxStateLength
 		atLeastOne[flagMaxPolicies], atLeastOne[flagMaxSnapshotsPerPolicy] = cfg.Limits.MaxPolicies, cfg.Limits.MaxSnapshotsPerPolicy

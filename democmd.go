@@ -20,6 +20,7 @@ func demoFlags(env flagEnv) []cli.Flag {
 		&cli.DurationFlag{Name: "demo-duration", Value: def.Duration, Usage: "longest the demo runs (0: no limit, stop by --demo-episodes)"},
 		&cli.IntFlag{Name: "demo-concurrency", Value: def.Concurrency, Usage: "simulated customers in flight at once"},
 		&cli.Uint64Flag{Name: "demo-seed", Value: def.Seed, Usage: "seed of the simulated customers"},
+		&cli.BoolFlag{Name: "demo-keep-episodes", Usage: "let qtally keep each customer's episode open (choose records every decision, rewards are added as they happen, the episode is ended when the case closes) instead of posting finished episodes"},
 		&cli.StringFlag{Name: "token", Usage: "API token for the demo client", Sources: env("QTALLY_TOKEN")},
 	}
 }
@@ -30,6 +31,7 @@ func demoConfig(cmd *cli.Command, baseURL string) demo.Config {
 	cfg.Policy, cfg.Rate = cmd.String("demo-policy"), cmd.Float("demo-rate")
 	cfg.Episodes, cfg.Duration = cmd.Int("demo-episodes"), cmd.Duration("demo-duration")
 	cfg.Concurrency, cfg.Seed = cmd.Int("demo-concurrency"), cmd.Uint64("demo-seed")
+	cfg.KeepEpisodes = cmd.Bool("demo-keep-episodes")
 	return cfg
 }
 

@@ -284,3 +284,14 @@ func must[T any](v T, err error) T {
 	}
 	return v
 }
+
+// grepLines keeps the lines of text that contain word, for failure messages.
+func grepLines(text, word string) string {
+	var out []string
+	for _, l := range strings.Split(text, "\n") {
+		if strings.Contains(l, word) {
+			out = append(out, l)
+		}
+	}
+	return strings.Join(out, "\n")
+}

@@ -18,11 +18,14 @@ import (
 const (
 	jobReportInterval = time.Second
 	jobMaxAttempts    = 3
+	// idleSweepBatch bounds the idle episodes one policy's sweep closes in
+	// one transaction; the next pass takes the rest.
+	idleSweepBatch = 1000
 )
 
 // startHousekeeping starts the worker role's background work besides
 // training: the job runner (evaluations, replays) and episode pruning.
-func startHousekeeping(cfg serviceConfig, db *storage.DB, reg prometheus.Registerer, logger *slog.Logger,
+func startHousekeeping(cfg serviceConfig, db *storage.DB, reg prometheus.Registerer, m *metrics.Metrics, logger *slog.Logger,
 	subs map[string]storage.Subscription, goBackground func(string, func(context.Context) error)) {
 	jobWake := make(chan struct{}, 1)
 	subs[storage.ChannelJobs] = storage.Subscription{Notify: func(int32) { nudge(jobWake) }, CatchUp: func() { nudge(jobWake) }}
@@ -33,6 +36,18 @@ func startHousekeeping(cfg serviceConfig, db *storage.DB, reg prometheus.Registe
 		Logger: logger,
 	}
 	goBackground("job runner", runner.Run)
+
+	// Open episodes idle past their policy's limit are ended or dropped;
+	// the poll interval keeps the overshoot small against limits in seconds.
+	goBackground("idle open episodes", func(ctx context.Context) error {
+		return every(ctx, cfg.PollInterval, func() {
+			sweeps, err := db.CloseIdleEpisodes(ctx, idleSweepBatch)
+			m.Open.ObserveIdleSweep(sweeps)
+			if err != nil && ctx.Err() == nil {
+				logger.Warn("closing idle open episodes", "error", err)
+			}
+		})
+	})
 
 	if cfg.EpisodeRetention <= 0 {
 		return

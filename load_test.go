@@ -70,6 +70,20 @@ func TestLoadScenariosAgainstService(t *testing.T) {
 		t.Fatalf("choose: %+v", choose)
 	}
 
+	var recorded load.Figures
+	runLoad(t, &recorded, append([]string{"recorded-choose", "--duration", "1s", "--workers", "4"}, common...)...)
+	if recorded.Requests == 0 || recorded.Success != 1 {
+		t.Fatalf("recorded choose: %+v", recorded)
+	}
+	var kept load.MixedReport
+	runLoad(t, &kept, append([]string{"mixed", "--keep-episodes", "--duration", "2s", "--rate", "20", "--steps", "5", "--workers", "4",
+		"--database-url", databaseURL}, common...)...)
+	// Five recorded chooses per ended episode; a client's episode under way
+	// at the end stays open.
+	if kept.Episodes == 0 || kept.Chooses < kept.Episodes*5 || kept.Chooses > (kept.Episodes+4)*5 || kept.Errors != 0 {
+		t.Fatalf("mixed, kept: %d episodes of 5 steps ended, %d chooses (want 5 each), %d errors", kept.Episodes, kept.Chooses, kept.Errors)
+	}
+
 	var mixed load.MixedReport
 	runLoad(t, &mixed, append([]string{"mixed", "--duration", "3s", "--rate", "100", "--choose-every", "5", "--workers", "8",
 		"--episodes-per-post", "20", "--database-url", databaseURL, "--pprof-url", "http://" + pprofAddr}, common...)...)

@@ -59,6 +59,14 @@ func loadCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 					}
 					return show(cmd, f)
 				}},
+			{Name: "recorded-choose", Usage: "explore-mode choose requests that each record their decision in an open episode (durable, group-committed)", Flags: common,
+				Action: func(ctx context.Context, cmd *cli.Command) error {
+					f, err := load.RecordedChoose(ctx, config(cmd))
+					if err != nil {
+						return err
+					}
+					return show(cmd, f)
+				}},
 			{Name: "post", Usage: "episode posts only (episodes-per-post episodes of steps steps each)", Flags: common,
 				Action: func(ctx context.Context, cmd *cli.Command) error {
 					f, err := load.Post(ctx, config(cmd))
@@ -70,9 +78,10 @@ func loadCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 			{Name: "mixed", Usage: "simulated clients choose during episodes and post them as they end, at --rate episodes/s (a worker must run)",
 				Flags: append(common, &cli.IntFlag{Name: "choose-every", Value: 1, Usage: "choose at every n-th step (1: every step)"},
 					&cli.IntFlag{Name: "posters", Value: 16, Usage: "posts of finished episodes under way at once"},
+					&cli.BoolFlag{Name: "keep-episodes", Usage: "let qtally keep the episodes: record every step's choose, add its reward, end the episode (instead of posting it)"},
 					databaseFlag(env, false), pprofURLFlag),
 				Action: func(ctx context.Context, cmd *cli.Command) error {
-					opt := load.MixedOptions{ChooseEvery: cmd.Int("choose-every"), Posters: cmd.Int("posters")}
+					opt := load.MixedOptions{ChooseEvery: cmd.Int("choose-every"), Posters: cmd.Int("posters"), KeepEpisodes: cmd.Bool("keep-episodes")}
 					if u := cmd.String(flagDatabaseURL); u != "" {
 						obs, err := openObserver(ctx, u, stderr)
 						if err != nil {

@@ -115,7 +115,11 @@ func TestMetricsPassPromtoolAndFollowRoles(t *testing.T) {
 	apiOnly.call("PUT", "/v1/policies/"+policy, map[string]any{"actions": []string{"call", "email", "wait"}, "epsilon": 0.5}, 201)
 	rng := rand.New(rand.NewPCG(5, 6))
 	feedLearningWork(t, apiOnly, policy, rng, 0)
-	st := apiOnly.waitTrained(policy, 20)
+	// One episode kept open and ended, so that the open-episode events exist.
+	apiOnly.record(policy, "kept-1", 0, "day 0")
+	apiOnly.call("POST", "/v1/policies/"+policy+"/open-episodes/kept-1/rewards", map[string]any{"reward": 1}, 200)
+	apiOnly.call("POST", "/v1/policies/"+policy+"/open-episodes/kept-1/end", nil, 200)
+	st := apiOnly.waitTrained(policy, 21)
 	waitFor(t, 30*time.Second, "the API's copy to reach the trained revision", func() bool {
 		_, f := apiOnly.scrape()
 		return gaugeOf(f, "qtally_q_copy_revision", policy) >= float64(st.Revision)
@@ -138,14 +142,17 @@ func TestMetricsPassPromtoolAndFollowRoles(t *testing.T) {
 			[]string{"qtally_episodes_received_total", "qtally_episodes_duplicate_total", "qtally_episodes_rejected_total",
 				"qtally_choices_total", "qtally_q_copy_age_seconds", "qtally_q_copy_revision", "qtally_q_states",
 				"qtally_q_pairs", "qtally_q_pair_visits", "qtally_q_coverage_ratio", "qtally_q_coverage_min_visits",
-				"qtally_http_request_duration_seconds"},
-			[]string{"qtally_backlog_episodes", "qtally_backlog_oldest_age_seconds", "qtally_episodes_trained_total"}},
+				"qtally_http_request_duration_seconds", "qtally_decisions_recorded_total", "qtally_open_episode_rewards_added_total",
+				"qtally_open_episodes_closed_total", "qtally_decision_batch_size", "qtally_decision_batch_duration_seconds"},
+			[]string{"qtally_backlog_episodes", "qtally_backlog_oldest_age_seconds", "qtally_episodes_trained_total",
+				"qtally_open_episodes", "qtally_open_episode_oldest_age_seconds", "qtally_open_episodes_closed_stored"}},
 		{"worker", worker,
 			[]string{"qtally_episodes_trained_total", "qtally_steps_trained_total", "qtally_q_updates_total",
 				"qtally_q_update_size", "qtally_greedy_changes_total", "qtally_episode_return",
 				"qtally_training_batch_duration_seconds", "qtally_training_last_batch_timestamp_seconds",
 				"qtally_training_errors_total", "qtally_backlog_episodes", "qtally_backlog_oldest_age_seconds",
-				"qtally_table_scrape_success"},
+				"qtally_table_scrape_success", "qtally_open_episodes", "qtally_open_episode_oldest_age_seconds",
+				"qtally_open_episode_longest_idle_seconds", "qtally_open_episodes_closed_stored"},
 			[]string{"qtally_q_copy_age_seconds", "qtally_q_pairs", "qtally_choices_total"}},
 	} {
 		t.Run(proc.name, func(t *testing.T) {

@@ -112,6 +112,9 @@ func TestEveryRouteEnforcesAccess(t *testing.T) {
 		s.waitTrained(p, 2)
 	}
 	s.call("POST", "/v1/policies/alpha/snapshots", map[string]any{"name": "keep"}, 201)
+	for _, id := range []string{"kept-open", "ends-once"} {
+		s.call("POST", "/v1/policies/alpha/choose", map[string]any{"state": "s", "episode": id, "step": 0}, 200)
+	}
 	var evaluation, replay struct {
 		ID int64 `json:"id"`
 	}
@@ -154,8 +157,14 @@ func TestEveryRouteEnforcesAccess(t *testing.T) {
 		"POST /v1/policies/{policy}/episodes": {want: 202, body: jsonBody(func() any {
 			return map[string]any{"episodes": []episodeJSON{oneStep(unique("ep"), "s", "a", 1)}}
 		})},
-		"POST /v1/policies/{policy}/choose":        {body: jsonBody(func() any { return map[string]any{"state": "s"} }), want: 200},
-		"GET /v1/policies/{policy}/states":         {want: 200},
+		"POST /v1/policies/{policy}/choose":                 {body: jsonBody(func() any { return map[string]any{"state": "s"} }), want: 200},
+		"GET /v1/policies/{policy}/states":                  {want: 200},
+		"GET /v1/policies/{policy}/open-episodes/{episode}": {params: map[string]string{"episode": "kept-open"}, want: 200},
+		"POST /v1/policies/{policy}/open-episodes/{episode}/rewards": {params: map[string]string{"episode": "kept-open"}, want: 200,
+			body: jsonBody(func() any { return map[string]any{"reward": 1} })},
+		// Ending an ended episode again answers 200 (already_ended).
+		"POST /v1/policies/{policy}/open-episodes/{episode}/end": {params: map[string]string{"episode": "ends-once"}, want: 200,
+			body: jsonBody(func() any { return map[string]any{"reward": 1} })},
 		"GET /v1/policies/{policy}/states/{state}": {params: map[string]string{"state": "s"}, want: 200},
 		"GET /":                           {want: 200},
 		"GET /policies/{policy}":          {want: 200},
@@ -259,13 +268,21 @@ func checkRouteAccess(t *testing.T, s *service, method, path string, op *openapi
 		t.Fatalf("without a token: %d %s, want 401", r.Status, r.Body)
 	}
 
+	// x-scope is "any", or the scopes that may use the route, separated by
+	// spaces; a token with none of them is told it lacks the first.
 	scope, _ := op.Extensions["x-scope"].(string)
-	if scope != "any" && !slices.Contains([]string{"ingest", "choose", "admin"}, scope) {
-		t.Fatalf("x-scope is %q; the document must say which scope each secured operation needs", scope)
+	scopes := strings.Fields(scope)
+	for _, sc := range scopes {
+		if scope != "any" && !slices.Contains([]string{"ingest", "choose", "admin"}, sc) {
+			t.Fatalf("x-scope is %q; the document must say which scope each secured operation needs", scope)
+		}
+	}
+	if len(scopes) == 0 {
+		t.Fatalf("x-scope is empty; the document must say which scope each secured operation needs")
 	}
 	// A token of each scope, for every policy.
 	for _, sc := range []string{"ingest", "choose", "admin"} {
-		allowed := scope == "any" || scope == sc
+		allowed := scope == "any" || slices.Contains(scopes, sc)
 		if allowed && c.prepare != nil {
 			c.prepare()
 		}
@@ -278,12 +295,12 @@ func checkRouteAccess(t *testing.T, s *service, method, path string, op *openapi
 			if scope == "admin" && !page {
 				checkAudited(t, s, method, path, sc+" only", c.want)
 			}
-		} else if r.Status != 403 || !strings.Contains(string(r.Body), "lacks the "+scope+" scope") {
-			t.Fatalf("%s token: %d %s, want 403 for lacking the %s scope", sc, r.Status, r.Body, scope)
+		} else if r.Status != 403 || !strings.Contains(string(r.Body), "lacks the "+scopes[0]+" scope") {
+			t.Fatalf("%s token: %d %s, want 403 for lacking the %s scope", sc, r.Status, r.Body, scopes[0])
 		}
 	}
 
-	own := scope
+	own := scopes[0]
 	if own == "any" {
 		own = "admin"
 	}

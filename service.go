@@ -93,16 +93,22 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	}
 	var auth api.Authenticator
 	var sessions api.PageSessions
+	var keeper training.Keeper
 	if cfg.RunAPI {
 		if keyring := startKeyring(ctx, cfg.Auth, db, subs, goBackground, logger, stdout); keyring != nil {
 			auth = keyring
 			sessions = training.PageSessions{Store: db, Tokens: keyring, Life: pageSessionLife, Key: training.SessionKey(cfg.Auth.Pepper)}
 		}
+		batcher := db.NewDecisionBatcher(decisionBatchWindow, decisionBatchMax)
+		batcher.Observe = m.Open.ObserveDecisionBatch
+		goBackground("decision recorder", batcher.Run)
+		keeper = training.Keeper{Replica: replica, Recorder: batcher}
 	}
 	if cfg.RunWorker {
 		subs[storage.ChannelEpisodes] = storage.Subscription{Notify: func(int32) { nudge(wake) }, CatchUp: func() { nudge(wake) }}
 		reg.MustRegister(metrics.NewTableCollector(db, 5*time.Second, logger))
-		startHousekeeping(cfg, db, reg, logger, subs, goBackground)
+		reg.MustRegister(metrics.NewOpenEpisodeCollector(db, 5*time.Second, logger))
+		startHousekeeping(cfg, db, reg, m, logger, subs, goBackground)
 	}
 	goBackground("notification listener", func(ctx context.Context) error {
 		return db.Listen(ctx, logger, subs)
@@ -126,7 +132,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	var handler http.Handler
 	if cfg.RunAPI {
 		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, History: db, Eraser: db, Episodes: db, States: db,
-			Chooser: replica, Inspect: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth, Sessions: sessions,
+			Chooser: replica, Recorder: keeper, OpenEpisodes: db, Inspect: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth, Sessions: sessions,
 			Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db, Audit: db})
 	} else {
 		handler = api.NewHealthServer(cfg.HTTP, api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})
@@ -170,6 +176,13 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	stopBackground()
 	return nil
 }
+
+// Group commit of recorded decisions: a batch gathers for this long after
+// its first decision, or until it holds this many.
+const (
+	decisionBatchWindow = time.Millisecond
+	decisionBatchMax    = 256
+)
 
 // nudge wakes the worker without blocking; one pending wake is enough.
 func nudge(wake chan<- struct{}) {

@@ -331,6 +331,10 @@ type chooseRequest struct {
 	State   string        `json:"state"`
 	Mode    training.Mode `json:"mode"`
 	Allowed []string      `json:"allowed"`
+	// Episode names an open episode to record the decision in, as its
+	// decision number Step (from 0); without it nothing is recorded.
+	Episode string `json:"episode"`
+	Step    *int   `json:"step"`
 }
 
 type chooseResponse struct {
@@ -350,9 +354,14 @@ type chooseResponse struct {
 	// CopyAgeSeconds is how long ago this process last confirmed its
 	// in-memory copy was current.
 	CopyAgeSeconds float64 `json:"copy_age_seconds"`
+	// Episode and Step repeat where the decision was recorded; Repeated
+	// says the step was recorded before and this is that answer.
+	Episode  string `json:"episode,omitempty"`
+	Step     *int   `json:"step,omitempty"`
+	Repeated *bool  `json:"repeated,omitempty"`
 }
 
-func handleChoose(ch Chooser, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
+func handleChoose(ch Chooser, rec RecordedChooser, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
@@ -369,17 +378,43 @@ func handleChoose(ch Chooser, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
 		if err := validateChoose(req, cfg); err != nil {
 			return err
 		}
-		res, err := ch.Choose(c.Request().Context(), name, training.ChooseRequest{State: req.State, Mode: req.Mode, Allowed: req.Allowed})
+		chooseReq := training.ChooseRequest{State: req.State, Mode: req.Mode, Allowed: req.Allowed}
+		if req.Episode != "" {
+			return chooseRecorded(c, rec, m, name, req, chooseReq)
+		}
+		res, err := ch.Choose(c.Request().Context(), name, chooseReq)
 		if err != nil {
 			return err
 		}
 		m.Choices.WithLabelValues(name, string(req.Mode), strconv.FormatBool(res.Explored), strconv.FormatBool(res.KnownState)).Inc()
-		return c.JSON(http.StatusOK, chooseResponse{
-			Action: res.Action, Probability: res.Probability, Explored: res.Explored,
-			GreedyAction: res.GreedyAction, KnownState: res.KnownState, Allowed: res.Allowed, Visits: res.Visits, Fallback: res.Fallback, Revision: res.Revision,
-			CopyAgeSeconds: res.Staleness.Seconds(),
-		})
+		return c.JSON(http.StatusOK, newChooseResponse(res))
 	}
+}
+
+func newChooseResponse(res training.ChooseResult) chooseResponse {
+	return chooseResponse{
+		Action: res.Action, Probability: res.Probability, Explored: res.Explored,
+		GreedyAction: res.GreedyAction, KnownState: res.KnownState, Allowed: res.Allowed, Visits: res.Visits, Fallback: res.Fallback,
+		Revision: res.Revision, CopyAgeSeconds: res.Staleness.Seconds(),
+	}
+}
+
+// chooseRecorded answers a choose that names an open episode once its
+// decision is durably recorded (or with the decision recorded before).
+func chooseRecorded(c echo.Context, rec RecordedChooser, m *metrics.Metrics, name string, req chooseRequest, chooseReq training.ChooseRequest) error {
+	res, err := rec.ChooseRecorded(c.Request().Context(), name, req.Episode, *req.Step, chooseReq)
+	if err != nil {
+		return err
+	}
+	if res.Repeated {
+		m.Open.DecisionsRepeated.WithLabelValues(name).Inc()
+	} else {
+		m.Open.DecisionsRecorded.WithLabelValues(name).Inc()
+		m.Choices.WithLabelValues(name, string(req.Mode), strconv.FormatBool(res.Explored), strconv.FormatBool(res.KnownState)).Inc()
+	}
+	out := newChooseResponse(res.ChooseResult)
+	out.Episode, out.Step, out.Repeated = res.Episode, &res.Step, &res.Repeated
+	return c.JSON(http.StatusOK, out)
 }
 
 func validateChoose(req chooseRequest, cfg Config) error {
@@ -391,8 +426,16 @@ func validateChoose(req chooseRequest, cfg Config) error {
 		return training.Invalid(-1, -1, "mode", "must be %q or %q", training.Explore, training.Greedy)
 	case req.Allowed != nil && len(req.Allowed) == 0:
 		return training.Invalid(-1, -1, "allowed", "must name at least one action when given")
+	case req.Step != nil && req.Episode == "":
+		return training.Invalid(-1, -1, "episode", "is missing: a step number is given only with the open episode it belongs to")
+	case req.Episode == "":
+		return nil
+	case req.Step == nil:
+		return training.Invalid(-1, -1, "step", "is missing: a decision recorded in an open episode needs its step number (0 for the first)")
+	case *req.Step < 0:
+		return training.Invalid(-1, -1, "step", "must be 0 or more, got %d", *req.Step)
 	}
-	return nil
+	return training.ValidateEpisodeID("episode", req.Episode, cfg.MaxIDLength)
 }
 
 func handleGetState(s States, cfg Config) echo.HandlerFunc {

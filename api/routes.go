@@ -35,7 +35,11 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoute
 	audit.add(e.GET("/v1/policies/:policy/settings-history", handleSettingsHistory(d.History), admin))
 	audit.add(e.DELETE("/v1/policies/:policy/episodes/:episode", handleEraseEpisode(d.Eraser), admin))
 	e.POST("/v1/policies/:policy/episodes", handlePostEpisodes(d.Episodes, d.Metrics, cfg), ingest, bulk)
-	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Metrics, cfg), choose)
+	e.POST("/v1/policies/:policy/choose", handleChoose(d.Chooser, d.Recorder, d.Metrics, cfg), choose)
+	e.POST("/v1/policies/:policy/open-episodes/:episode/rewards", handleAddReward(d.OpenEpisodes, d.Metrics, cfg), ingest)
+	e.POST("/v1/policies/:policy/open-episodes/:episode/end", handleEndEpisode(d.OpenEpisodes, d.Metrics, cfg), ingest)
+	e.GET("/v1/policies/:policy/open-episodes/:episode", handleGetOpenEpisode(d.OpenEpisodes, cfg),
+		g.requireScope(training.ScopeIngest, training.ScopeChoose))
 	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect), choose)
 	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States, cfg), choose)
 
@@ -68,6 +72,6 @@ func addStatusRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 		e.POST(signOutPath, s.handleSignOut())
 	}
 	e.GET("/", handleOverview(d.Policies), admin)
-	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, d.History, cfg), admin)
+	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, d.History, d.OpenEpisodes, cfg), admin)
 	e.GET("/policies/:policy/states", handleStatesPage(d.Inspect), admin)
 }

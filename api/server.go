@@ -55,6 +55,19 @@ type Chooser interface {
 	Choose(ctx context.Context, policy string, req training.ChooseRequest) (training.ChooseResult, error)
 }
 
+// RecordedChooser picks actions and records them in open episodes.
+type RecordedChooser interface {
+	ChooseRecorded(ctx context.Context, policy, episode string, step int, req training.ChooseRequest) (training.RecordedChoice, error)
+}
+
+// OpenEpisodes adds rewards to, ends and reads the episodes qtally keeps open.
+type OpenEpisodes interface {
+	AddReward(ctx context.Context, policy, episode string, add training.RewardAddition) (training.RewardResult, error)
+	EndOpenEpisode(ctx context.Context, policy, episode string, req training.EndRequest) (training.EndResult, error)
+	OpenEpisode(ctx context.Context, policy, episode string) (training.OpenEpisodeView, error)
+	PolicyOpenEpisodes(ctx context.Context, policy string) (training.OpenEpisodeFigures, error)
+}
+
 // Readiness tells whether the service can do its work.
 type Readiness interface {
 	Ready(ctx context.Context) error
@@ -66,6 +79,8 @@ type Config struct {
 	MaxBodyBytes int64
 	// MaxStateLength bounds a state name in choose requests.
 	MaxStateLength int
+	// MaxIDLength bounds an open episode's id (and a reward's key).
+	MaxIDLength int
 	// HistoryWindow is how much training history is kept: the status
 	// page's charts reach back at most this far.
 	HistoryWindow time.Duration
@@ -95,10 +110,13 @@ type Deps struct {
 	Episodes Episodes
 	States   States
 	Chooser  Chooser
-	Inspect  Inspector
-	Ready    Readiness
-	Metrics  *metrics.Metrics
-	Gatherer prometheus.Gatherer
+	// Recorder and OpenEpisodes serve the episodes qtally keeps open.
+	Recorder     RecordedChooser
+	OpenEpisodes OpenEpisodes
+	Inspect      Inspector
+	Ready        Readiness
+	Metrics      *metrics.Metrics
+	Gatherer     prometheus.Gatherer
 
 	// Snapshots, Tables and Jobs serve snapshots, table rewrites and
 	// background evaluations and replays.

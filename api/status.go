@@ -182,13 +182,15 @@ type policyView struct {
 	StatesURL   string
 	// Changes are the latest settings changes, newest first.
 	Changes []training.SettingsChangeRecord
+	// Open is the policy's open episodes: how many, ended and abandoned.
+	Open training.OpenEpisodeFigures
 }
 
 // shownChanges bounds the settings changes the policy page lists; the
 // API pages through all of them.
 const shownChanges = 10
 
-func handlePolicyPage(in Inspector, h SettingsHistory, cfg Config) echo.HandlerFunc {
+func handlePolicyPage(in Inspector, h SettingsHistory, open OpenEpisodes, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
@@ -206,9 +208,14 @@ func handlePolicyPage(in Inspector, h SettingsHistory, cfg Config) echo.HandlerF
 		if err != nil {
 			return err
 		}
+		figures, err := open.PolicyOpenEpisodes(c.Request().Context(), name)
+		if err != nil {
+			return err
+		}
 		now := time.Now()
 		v := policyView{
 			Changes:     changes.Changes,
+			Open:        figures,
 			pageBase:    pageBase{Title: name, Now: now, Refresh: 30, SignOut: inSession(c)},
 			policyRow:   newPolicyRow(report.Status, now),
 			Span:        chartSpan(report),

@@ -95,6 +95,11 @@ type Config struct {
 	// train every stored episode before the learned policy is read.
 	SettleTimeout time.Duration
 	Settings      PolicySettings
+	// KeepEpisodes lets qtally keep each customer's episode open: every
+	// choose records its decision there, rewards are added as they happen,
+	// and the episode is ended when the customer's case closes, instead of
+	// the client keeping trajectories and posting them finished.
+	KeepEpisodes bool
 }
 
 // DefaultConfig is a one-minute run against a local service.
@@ -345,7 +350,8 @@ const maxAttempts = 5
 // do sends one JSON request and decodes a 2xx answer into result. It
 // retries 429 and 503, which the service sends while it cannot take work,
 // after the Retry-After it asks for; every request the demo makes is safe
-// to repeat (episode ids make posts idempotent).
+// to repeat (episode ids make posts idempotent; a recorded step, a keyed
+// reward and an end are answered the same when repeated).
 func (c *client) do(ctx context.Context, method, path string, body, result any) (int, error) {
 	return c.doWith(ctx, method, path, nil, body, result)
 }
@@ -488,9 +494,15 @@ func (c *client) playEpisode(ctx context.Context, n int, actions map[string]Acti
 	ep := episode{ID: fmt.Sprintf("demo-%s-%d", c.runID, n)}
 	var ret, discount float64 = 0, 1
 	s := SampleStart(rng)
+	kept := "/open-episodes/" + ep.ID
 	for {
 		var choice chooseAnswer
-		req := map[string]string{"state": s.String(), "mode": "explore"}
+		req := map[string]any{"state": s.String(), "mode": "explore"}
+		if c.cfg.KeepEpisodes {
+			// Recorded by qtally before it answers; a retry of the same step
+			// gets the same answer.
+			req["episode"], req["step"] = ep.ID, len(ep.Steps)
+		}
 		if _, err := c.do(ctx, http.MethodPost, "/choose", req, &choice); err != nil {
 			return episode{}, 0, err
 		}
@@ -499,10 +511,22 @@ func (c *client) playEpisode(ctx context.Context, n int, actions map[string]Acti
 			return episode{}, 0, fmt.Errorf("choose answered unknown action %q", choice.Action)
 		}
 		o := Step(s, a, rng)
+		if c.cfg.KeepEpisodes && o.Reward != 0 {
+			// The key makes a retried addition count once.
+			add := map[string]any{"reward": o.Reward, "key": fmt.Sprintf("day-%d", len(ep.Steps))}
+			if _, err := c.do(ctx, http.MethodPost, kept+"/rewards", add, nil); err != nil {
+				return episode{}, 0, err
+			}
+		}
 		ep.Steps = append(ep.Steps, step{State: s.String(), Action: choice.Action, Reward: o.Reward, Probability: choice.Probability, Allowed: choice.Allowed})
 		ret += discount * o.Reward
 		discount *= c.cfg.Settings.Gamma
 		if o.Done {
+			if c.cfg.KeepEpisodes {
+				if _, err := c.do(ctx, http.MethodPost, kept+"/end", nil, nil); err != nil {
+					return episode{}, 0, err
+				}
+			}
 			return ep, ret, nil
 		}
 		s = o.Next
@@ -608,6 +632,12 @@ func (c *client) sendTraffic(ctx context.Context, out io.Writer) (trafficResult,
 		var batch []episode
 		post := func() error {
 			if len(batch) == 0 {
+				return nil
+			}
+			if c.cfg.KeepEpisodes {
+				// qtally has them already: each ended as its case closed.
+				result.sent += len(batch)
+				batch = batch[:0]
 				return nil
 			}
 			var answer struct {

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"net/http"
 	"slices"
+	"strconv"
 	"sync"
 	"sync/atomic"
 	"time"
@@ -37,6 +38,10 @@ type MixedOptions struct {
 	Posters int
 	// ProbeArrival also measures arrival to served: see probeArrival.
 	ProbeArrival bool
+	// KeepEpisodes lets qtally keep the episodes: every step's choose is
+	// recorded in the episode, its reward added, and the episode ended,
+	// instead of posting it finished (ChooseEvery must be 1).
+	KeepEpisodes bool
 }
 
 // MixedReport is what the mixed scenario saw.
@@ -90,6 +95,9 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	if cfg.Rate < 1 || opt.ChooseEvery < 1 || opt.Posters < 1 {
 		return MixedReport{}, fmt.Errorf("load: mixed needs a positive episode rate, choose interval and number of posters")
 	}
+	if opt.KeepEpisodes && opt.ChooseEvery != 1 {
+		return MixedReport{}, fmt.Errorf("load: episodes qtally keeps record every step: choose every step")
+	}
 	obs, source := opt.Observer, "notifications"
 	if obs == nil {
 		obs, source = statusObserver{c}, "status poll (20 ms)"
@@ -124,7 +132,11 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 		rep.Visibility = probeVisibility(runCtx, c, obs, cfg.Policy)
 	}()
 	start := time.Now()
-	simulate(runCtx, c, cfg, opt.ChooseEvery, finished, &chooses, &errs, &skipped)
+	if opt.KeepEpisodes {
+		keepEpisodes(runCtx, c, cfg, &episodes, &chooses, &errs, &skipped)
+	} else {
+		simulate(runCtx, c, cfg, opt.ChooseEvery, finished, &chooses, &errs, &skipped)
+	}
 	close(finished)
 	wg.Wait()
 	secs := time.Since(start).Seconds()
@@ -151,47 +163,51 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	return rep, nil
 }
 
-// simulate starts episodes at cfg.Rate per second on cfg.Workers clients.
-// Starts are counted against the clock, so a late tick catches up instead
-// of lowering the rate.
-func simulate(ctx context.Context, c *client, cfg Config, chooseEvery int, finished chan<- episode, chooses, errs, skipped *atomic.Int64) {
-	starts := make(chan struct{}, cfg.Workers)
-	var wg sync.WaitGroup
+// keepEpisodes starts episodes at cfg.Rate per second on cfg.Workers
+// clients that let qtally keep them: each step's choose records it, its
+// reward is added, and the episode is ended.
+func keepEpisodes(ctx context.Context, c *client, cfg Config, ended, chooses, errs, skipped *atomic.Int64) {
 	run := time.Now().UnixNano()
-	for w := range cfg.Workers {
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			g := newGenerator(Config{States: cfg.States, Actions: cfg.Actions, StepsPerEpisode: cfg.StepsPerEpisode, Seed: cfg.Seed + uint64(w)},
-				fmt.Sprintf("mixed-%d-%d", run, w))
-			for range starts {
-				ep := g.episode()
-				for i := range ep.Steps {
-					if i%chooseEvery != 0 {
-						continue
-					}
-					var r struct {
-						Action      string  `json:"action"`
-						Probability float64 `json:"probability"`
-					}
-					if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/choose",
-						map[string]string{"state": ep.Steps[i].State, "mode": "explore"}, &r); err != nil {
-						if ctx.Err() != nil {
-							return // the run is over: this episode is not posted
-						}
+	startEpisodes(ctx, cfg, skipped, func(w int, starts <-chan struct{}) {
+		g := newGenerator(Config{States: cfg.States, Actions: cfg.Actions, StepsPerEpisode: cfg.StepsPerEpisode, Seed: cfg.Seed + uint64(w)},
+			fmt.Sprintf("kept-%d-%d", run, w))
+		base := "/v1/policies/" + cfg.Policy
+	episodes:
+		for range starts {
+			ep := g.episode()
+			for i, st := range ep.Steps {
+				req := map[string]any{"state": st.State, "mode": "explore", "episode": ep.ID, "step": i}
+				if _, err := c.do(ctx, http.MethodPost, base+"/choose", req, nil); err != nil {
+					if ctx.Err() == nil {
 						errs.Add(1)
-						continue
 					}
-					chooses.Add(1)
-					ep.Steps[i].Action, ep.Steps[i].Probability = r.Action, r.Probability
+					continue episodes // a gap now: this episode stays open
 				}
-				select {
-				case finished <- ep:
-				case <-ctx.Done():
-					return
+				chooses.Add(1)
+				add := map[string]any{"reward": st.Reward, "key": strconv.Itoa(i)}
+				if _, err := c.do(ctx, http.MethodPost, base+"/open-episodes/"+ep.ID+"/rewards", add, nil); err != nil && ctx.Err() == nil {
+					errs.Add(1)
 				}
 			}
-		}()
+			if _, err := c.do(ctx, http.MethodPost, base+"/open-episodes/"+ep.ID+"/end", map[string]any{}, nil); err != nil {
+				if ctx.Err() == nil {
+					errs.Add(1)
+				}
+				continue
+			}
+			ended.Add(1)
+		}
+	})
+}
+
+// startEpisodes runs cfg.Workers clients and hands them episode starts at
+// cfg.Rate per second until ctx ends. Starts are counted against the
+// clock, so a late tick catches up instead of lowering the rate.
+func startEpisodes(ctx context.Context, cfg Config, skipped *atomic.Int64, client func(w int, starts <-chan struct{})) {
+	starts := make(chan struct{}, cfg.Workers)
+	var wg sync.WaitGroup
+	for w := range cfg.Workers {
+		wg.Go(func() { client(w, starts) })
 	}
 	tick := time.NewTicker(5 * time.Millisecond)
 	defer tick.Stop()
@@ -214,6 +230,44 @@ loop:
 	}
 	close(starts)
 	wg.Wait()
+}
+
+// simulate starts episodes at cfg.Rate per second on cfg.Workers clients,
+// which choose at every chooseEvery-th step and hand each finished episode
+// to be posted.
+func simulate(ctx context.Context, c *client, cfg Config, chooseEvery int, finished chan<- episode, chooses, errs, skipped *atomic.Int64) {
+	run := time.Now().UnixNano()
+	startEpisodes(ctx, cfg, skipped, func(w int, starts <-chan struct{}) {
+		g := newGenerator(Config{States: cfg.States, Actions: cfg.Actions, StepsPerEpisode: cfg.StepsPerEpisode, Seed: cfg.Seed + uint64(w)},
+			fmt.Sprintf("mixed-%d-%d", run, w))
+		for range starts {
+			ep := g.episode()
+			for i := range ep.Steps {
+				if i%chooseEvery != 0 {
+					continue
+				}
+				var r struct {
+					Action      string  `json:"action"`
+					Probability float64 `json:"probability"`
+				}
+				if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/choose",
+					map[string]string{"state": ep.Steps[i].State, "mode": "explore"}, &r); err != nil {
+					if ctx.Err() != nil {
+						return // the run is over: this episode is not posted
+					}
+					errs.Add(1)
+					continue
+				}
+				chooses.Add(1)
+				ep.Steps[i].Action, ep.Steps[i].Probability = r.Action, r.Probability
+			}
+			select {
+			case finished <- ep:
+			case <-ctx.Done():
+				return
+			}
+		}
+	})
 }
 
 // postFinished batches finished episodes by cfg.EpisodesPerPost (or what

@@ -41,6 +41,8 @@ type Metrics struct {
 	TrainingErrors    prometheus.Counter
 	Choices           *prometheus.CounterVec
 	HTTPDuration      *prometheus.HistogramVec
+	// Open counts what the process did with episodes qtally keeps open.
+	Open *OpenEpisodeEvents
 }
 
 // New registers qtally's metrics and the Go and process collectors on reg.
@@ -102,6 +104,7 @@ func New(reg prometheus.Registerer) *Metrics {
 		m.StepsTrained, m.QUpdates, m.UpdateSize, m.GreedyChanges, m.EpisodeReturn, m.BatchDuration,
 		m.LastBatch, m.TrainingErrors, m.Choices, m.HTTPDuration,
 		collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	m.Open = newOpenEpisodeEvents(reg)
 	return m
 }
 

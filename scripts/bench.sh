@@ -208,6 +208,8 @@ fi
 #    wrk -t1 -c64 as the ceiling is measured.
 say "choose: ${LOAD_S}s with vegeta, 64 connections ..."
 qtally_load choose --policy bench --states "$STATES" --workers 64 --duration "${LOAD_S}s" >"$OUT/choose.json"
+say "recorded choose: ${LOAD_S}s with vegeta, 64 connections, each decision recorded in an open episode ..."
+qtally_load recorded-choose --policy bench --states "$STATES" --workers 64 --duration "${LOAD_S}s" >"$OUT/recorded-choose.json"
 if command -v wrk >/dev/null; then
   say "choose: ${LOAD_S}s with wrk -t1 -c64 ..."
   CHOOSE_URL=$API/v1/policies/bench/choose
@@ -249,6 +251,15 @@ START=$(awk -v c="$CHOOSE_RPS" 'BEGIN { r = int(0.25 * c / 20); print (r < 1 ? 1
 say "sustained loop: $SUSTAIN_TRIALS runs of ${SUSTAIN_S}s from $START episodes/s ..."
 qtally_load sustain --policy sustain --states "$STATES" --rate "$START" --choose-every 1 --workers 256 --posters "$POST_WORKERS" \
   --trials "$SUSTAIN_TRIALS" --duration "${SUSTAIN_S}s" --database-url "$DB_URL" >"$OUT/sustain.json"
+
+# 8. Mixed with the episodes kept by qtally: every step's choose recorded,
+#    its reward added, the episode ended; 80% of the recorded-choose rate
+#    (two requests a step) in episodes of 20 steps.
+KEPT_RPS=$(json_field "$OUT/recorded-choose.json" throughput_per_s)
+KEPT_RATE=$(awk -v s="$KEPT_RPS" 'BEGIN { r = int(0.8 * s / 40); print (r < 1 ? 1 : r) }')
+say "mixed, episodes kept by qtally: ${MIXED_S}s at $KEPT_RATE episodes/s ..."
+qtally_load mixed --keep-episodes --policy bench-kept --states "$STATES" --rate "$KEPT_RATE" --workers 256 \
+  --duration "${MIXED_S}s" --database-url "$DB_URL" >"$OUT/mixed-kept.json"
 
 stop_pid "$WORKER_PID"; WORKER_PID=
 stop_pid "$API_PID"; API_PID=

@@ -58,7 +58,11 @@ func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Epi
 		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
 			return fmt.Errorf("ingest lock: %w", err)
 		}
-		// Under the same lock, so concurrent batches count each other's states.
+		// Under the same lock, so concurrent batches count each other's
+		// states, and this sees every open id (opening an episode takes it).
+		if err := refuseOpenIDs(ctx, tx, p.ID, episodes, fresh); err != nil {
+			return err
+		}
 		if err := admitStates(ctx, tx, p, records, fresh); err != nil {
 			return err
 		}
@@ -217,4 +221,29 @@ func admitTableStates(ctx context.Context, tx pgx.Tx, p training.Policy) error {
 			p.Name, known, p.MaxStates)
 	}
 	return nil
+}
+
+// refuseOpenIDs refuses a batch that posts an episode under the id of one
+// qtally keeps open, naming each such episode by its index in the request.
+func refuseOpenIDs(ctx context.Context, tx pgx.Tx, policyID int32, episodes []training.Episode, fresh []training.EpisodeRecord) error {
+	ids := make([]string, len(fresh))
+	for i, r := range fresh {
+		ids[i] = r.ID
+	}
+	open, err := openIDs(ctx, tx, policyID, ids, false)
+	if err != nil || len(open) == 0 {
+		return err
+	}
+	isOpen := make(map[string]bool, len(open))
+	for _, id := range open {
+		isOpen[id] = true
+	}
+	var problems []training.FieldError
+	for i, ep := range episodes {
+		if isOpen[ep.ID] {
+			problems = append(problems, training.FieldError{Episode: i, Step: -1, Field: "id",
+				Message: fmt.Sprintf("%q is the id of an episode qtally keeps open for this policy; end that episode, or post under another id", ep.ID)})
+		}
+	}
+	return training.Refuse(problems)
 }

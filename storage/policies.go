@@ -13,16 +13,27 @@ import (
 
 const policyColumns = `policy_id, name, actions, gamma, alpha, epsilon, epsilon_min,
 	coalesce(epsilon_decay_visits, 0), visit, initial_q, revision, created_at, updated_at, table_epoch, max_states, return_target,
-	greedy_min_visits, greedy_untried, coalesce(greedy_fallback, ''), state_shape, require_probability`
+	greedy_min_visits, greedy_untried, coalesce(greedy_fallback, ''), state_shape, require_probability,
+	open_episode_idle_limit, on_idle, max_open_episodes, max_open_episode_steps`
 
 func scanPolicy(row pgx.Row) (training.Policy, error) {
 	var p training.Policy
-	var visit string
+	var visit, onIdle string
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
 		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch, &p.MaxStates, &p.ReturnTarget,
-		&p.GreedyMinVisits, &p.GreedyUntried, &p.GreedyFallback, &p.StateShape, &p.RequireProbability)
+		&p.GreedyMinVisits, &p.GreedyUntried, &p.GreedyFallback, &p.StateShape, &p.RequireProbability,
+		&p.OpenEpisodeIdleLimit, &onIdle, &p.MaxOpenEpisodes, &p.MaxOpenEpisodeSteps)
 	p.Visit = training.VisitRule(visit)
+	p.OnIdle = training.IdleRule(onIdle)
 	return p, err
+}
+
+// idleRule stores a rule left empty as the default, ending.
+func idleRule(r training.IdleRule) string {
+	if r == "" {
+		return string(training.IdleEnd)
+	}
+	return string(r)
 }
 
 func nullIfZero(x float64) *float64 {
@@ -97,11 +108,12 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 			if !slices.Equal(existing.Actions, s.Actions) {
 				var used bool
 				if err := tx.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM episodes WHERE policy_id = $1)
-					OR EXISTS (SELECT 1 FROM q_values WHERE policy_id = $1)`, existing.ID).Scan(&used); err != nil {
+					OR EXISTS (SELECT 1 FROM q_values WHERE policy_id = $1)
+					OR EXISTS (SELECT 1 FROM open_episodes WHERE policy_id = $1)`, existing.ID).Scan(&used); err != nil {
 					return fmt.Errorf("check policy use: %w", err)
 				}
 				if used {
-					return training.Conflictf("policy %q has stored episodes or learned values, so its actions cannot change (stored steps refer to actions by position); create a new policy instead", name)
+					return training.Conflictf("policy %q has stored or open episodes or learned values, so its actions cannot change (stored steps refer to actions by position); create a new policy instead", name)
 				}
 			}
 			// Pairs never updated are worth the initial value, so a new one
@@ -116,12 +128,14 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 					epsilon_decay_visits = $7, visit = $8, initial_q = $9, max_states = $11, return_target = $12,
 					greedy_min_visits = $13, greedy_untried = $14, greedy_fallback = $15,
 					state_shape = $16, require_probability = $17, updated_at = now(),
-					revision = revision + $10, table_epoch = table_epoch + $10
+					revision = revision + $10, table_epoch = table_epoch + $10,
+					open_episode_idle_limit = $18, on_idle = $19, max_open_episodes = $20, max_open_episode_steps = $21
 				WHERE policy_id = $1
 				RETURNING `+policyColumns,
 				existing.ID, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ,
 				rewrite, s.MaxStates, s.ReturnTarget,
-				s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback), s.StateShape, s.RequireProbability))
+				s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback), s.StateShape, s.RequireProbability,
+				s.OpenEpisodeIdleLimit, idleRule(s.OnIdle), s.OpenEpisodeLimit(), s.OpenEpisodeStepLimit()))
 			if err != nil {
 				return fmt.Errorf("update policy: %w", err)
 			}
@@ -150,11 +164,13 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 func insertPolicy(ctx context.Context, tx pgx.Tx, name string, s training.Settings) (training.Policy, error) {
 	p, err := scanPolicy(tx.QueryRow(ctx, `
 		INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, epsilon_decay_visits, visit, initial_q,
-			greedy_min_visits, greedy_untried, greedy_fallback, state_shape, require_probability, max_states, return_target)
-		VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16)
+			greedy_min_visits, greedy_untried, greedy_fallback, state_shape, require_probability, max_states, return_target,
+			open_episode_idle_limit, on_idle, max_open_episodes, max_open_episode_steps)
+		VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18, $19, $20)
 		RETURNING `+policyColumns,
 		name, s.Actions, s.Gamma, s.Alpha, s.Epsilon, s.EpsilonMin, nullIfZero(s.EpsilonDecayVisits), string(s.Visit), s.InitialQ,
-		s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback), s.StateShape, s.RequireProbability, s.MaxStates, s.ReturnTarget))
+		s.GreedyMinVisits, s.GreedyUntried, nullIfEmpty(s.GreedyFallback), s.StateShape, s.RequireProbability, s.MaxStates, s.ReturnTarget,
+		s.OpenEpisodeIdleLimit, idleRule(s.OnIdle), s.OpenEpisodeLimit(), s.OpenEpisodeStepLimit()))
 	if err != nil {
 		return p, fmt.Errorf("insert policy: %w", err)
 	}
@@ -268,13 +284,14 @@ const statusQuery = `
 
 func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
 	var st training.PolicyStatus
-	var visit string
+	var visit, onIdle string
 	p := &st.Policy
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
 		&p.EpsilonDecayVisits, &visit, &p.InitialQ, &p.Revision, &p.CreatedAt, &p.UpdatedAt, &p.TableEpoch, &p.MaxStates, &p.ReturnTarget,
 		&p.GreedyMinVisits, &p.GreedyUntried, &p.GreedyFallback, &p.StateShape, &p.RequireProbability,
+		&p.OpenEpisodeIdleLimit, &onIdle, &p.MaxOpenEpisodes, &p.MaxOpenEpisodeSteps,
 		&st.Episodes, &st.Backlog, &st.OldestUntrained, &st.States, &st.Pairs, &st.LastTrainedAt)
-	p.Visit = training.VisitRule(visit)
+	p.Visit, p.OnIdle = training.VisitRule(visit), training.IdleRule(onIdle)
 	return st, err
 }
 

@@ -70,6 +70,15 @@ type Settings struct {
 	// RequireProbability refuses steps without a behaviour probability
 	// (off-policy evaluation needs one on every step).
 	RequireProbability bool `json:"require_probability"`
+
+	// Open episodes (those qtally keeps for the application): how long one
+	// may go without a decision or reward (seconds; 0: no limit) before
+	// housekeeping ends or drops it as OnIdle says, how many may be open at
+	// once, and how many decisions one may record.
+	OpenEpisodeIdleLimit float64  `json:"open_episode_idle_limit" validate:"gte=0,finite"`
+	OnIdle               IdleRule `json:"on_idle" validate:"omitempty,oneof=end drop"`
+	MaxOpenEpisodes      int      `json:"max_open_episodes" validate:"gte=0,lte=100000000"`
+	MaxOpenEpisodeSteps  int      `json:"max_open_episode_steps" validate:"gte=0,lte=10000"`
 }
 
 // DefaultMaxStates is a new policy's state quota unless it sets one (or its
@@ -103,7 +112,8 @@ type ReturnTarget struct {
 
 // DefaultSettings are used for every field a client leaves out.
 func DefaultSettings() Settings {
-	return Settings{Gamma: 1, Alpha: 0.1, Epsilon: 0.1, Visit: FirstVisit}
+	return Settings{Gamma: 1, Alpha: 0.1, Epsilon: 0.1, Visit: FirstVisit,
+		OnIdle: IdleEnd, MaxOpenEpisodes: DefaultMaxOpenEpisodes, MaxOpenEpisodeSteps: DefaultMaxOpenEpisodeSteps}
 }
 
 // Policy is a named learning unit: its settings and where training stands.

@@ -107,9 +107,27 @@ const maxStackActions = 64
 
 // Choose picks an action for a state from the in-memory copy.
 func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) (ChooseResult, error) {
+	res, _, err := r.choose(ctx, policy, req, false)
+	return res, err
+}
+
+// chosenIn is what recording a choice needs beyond its answer: the policy,
+// the indexes of the chosen and greedy actions and the allowed set.
+type chosenIn struct {
+	policyID int32
+	actions  []string
+	action   int16
+	greedy   int16
+	allowed  ActionSet
+}
+
+// choose picks an action; with record it also says what recording needs
+// (which allocates the allowed set, so the plain path does not ask).
+func (r *Replica) choose(ctx context.Context, policy string, req ChooseRequest, record bool) (ChooseResult, chosenIn, error) {
+	var in chosenIn
 	t, err := r.table(ctx, policy)
 	if err != nil {
-		return ChooseResult{}, err
+		return ChooseResult{}, in, err
 	}
 	var qBuf [maxStackActions]float64
 	var visitsBuf [maxStackActions]int64
@@ -117,7 +135,7 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 	t.mu.RLock()
 	defer t.mu.RUnlock()
 	if err := t.policy.CheckState(req.State); err != nil {
-		return ChooseResult{}, err
+		return ChooseResult{}, in, err
 	}
 	allowed, allowedNames := idxBuf[:0], req.Allowed
 	if len(req.Allowed) == 0 {
@@ -131,11 +149,11 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 		for i, name := range req.Allowed {
 			a, ok := t.index[name]
 			if !ok {
-				return ChooseResult{}, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "%q is not one of the policy's actions", truncate(name, 64))
+				return ChooseResult{}, in, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "%q is not one of the policy's actions", truncate(name, 64))
 			}
 			for _, prev := range allowed {
 				if prev == a {
-					return ChooseResult{}, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "repeats %q", truncate(name, 64))
+					return ChooseResult{}, in, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "repeats %q", truncate(name, 64))
 				}
 			}
 			allowed = append(allowed, a)
@@ -160,7 +178,14 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 	}
 	c := ChooseWith(q, visits, t.policy.GreedyRule(), fallback, req.Mode, t.policy.EpsilonFor(total), SharedRandom)
 	if c.NoAnswer {
-		return ChooseResult{}, noAnswer(t.policy, req.State)
+		return ChooseResult{}, in, noAnswer(t.policy, req.State)
+	}
+	if record {
+		in = chosenIn{policyID: t.policy.ID, actions: t.policy.Actions, action: allowed[c.Action], greedy: allowed[c.Greedy],
+			allowed: make(ActionSet, ActionSetWidth(len(t.policy.Actions)))}
+		for _, a := range allowed {
+			in.allowed.add(a)
+		}
 	}
 	return ChooseResult{
 		Action:       t.policy.Actions[allowed[c.Action]],
@@ -173,7 +198,7 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 		Fallback:     c.Fallback,
 		Revision:     t.revision,
 		Staleness:    time.Since(time.Unix(0, t.syncedAt.Load())),
-	}, nil
+	}, in, nil
 }
 
 // noAnswer explains why greedy has no answer in a state.

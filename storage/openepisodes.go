@@ -1,0 +1,906 @@
+package storage
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"math/rand/v2"
+	"sync"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgconn"
+
+	"github.com/qtally/qtally/training"
+)
+
+// DecisionBatcher records the decisions of concurrent requests together:
+// it gathers them for a short window, commits each policy's in one
+// transaction, and only then lets each request answer. One durable commit
+// costs about as much for a hundred rows as for one, so recording costs a
+// request a share of a commit rather than a commit of its own.
+type DecisionBatcher struct {
+	db       *DB
+	window   time.Duration
+	maxBatch int
+	timeout  time.Duration
+	queue    chan *pendingDecision
+	stopped  chan struct{}
+	// Observe, when set, is told each committed batch's size and duration.
+	Observe func(decisions int, took time.Duration)
+}
+
+type pendingDecision struct {
+	d        training.Decision
+	stored   training.Decision
+	repeated bool
+	err      error
+	done     chan struct{}
+}
+
+// NewDecisionBatcher returns a batcher that gathers for window, at most
+// maxBatch decisions a batch; Run must be running for Record to answer.
+func (db *DB) NewDecisionBatcher(window time.Duration, maxBatch int) *DecisionBatcher {
+	return &DecisionBatcher{db: db, window: window, maxBatch: maxBatch, timeout: 10 * time.Second,
+		queue: make(chan *pendingDecision, 4*maxBatch), stopped: make(chan struct{})}
+}
+
+var errRecorderStopped = training.Unavailablef("this process is shutting down and records no more decisions; retry")
+
+// Record implements training.DecisionRecorder: it returns once the
+// decision (or the earlier one at its step) is committed.
+func (b *DecisionBatcher) Record(ctx context.Context, d training.Decision) (training.Decision, bool, error) {
+	p := &pendingDecision{d: d, done: make(chan struct{})}
+	select {
+	case b.queue <- p:
+	case <-b.stopped:
+		return d, false, errRecorderStopped
+	case <-ctx.Done():
+		return d, false, ctx.Err()
+	}
+	select {
+	case <-p.done:
+		return p.stored, p.repeated, p.err
+	case <-b.stopped:
+		return d, false, errRecorderStopped
+	case <-ctx.Done():
+		return d, false, ctx.Err()
+	}
+}
+
+// decisionCommitsInFlight is how many batches commit at once: while some
+// wait for their commit, the next gathers and goes, so throughput is not
+// one batch per commit latency.
+const decisionCommitsInFlight = 4
+
+// Run gathers and commits batches until ctx ends. It runs until after the
+// HTTP server has stopped, so requests in flight get their commit.
+func (b *DecisionBatcher) Run(ctx context.Context) error {
+	defer close(b.stopped)
+	slots := make(chan struct{}, decisionCommitsInFlight)
+	var committing sync.WaitGroup
+	defer committing.Wait()
+	timer := time.NewTimer(b.window)
+	timer.Stop()
+	for {
+		var batch []*pendingDecision
+		select {
+		case <-ctx.Done():
+			return nil
+		case p := <-b.queue:
+			batch = append(batch, p)
+		}
+		timer.Reset(b.window)
+	gather:
+		for len(batch) < b.maxBatch {
+			select {
+			case p := <-b.queue:
+				batch = append(batch, p)
+			case <-timer.C:
+				break gather
+			}
+		}
+		if !timer.Stop() {
+			select {
+			case <-timer.C:
+			default:
+			}
+		}
+		slots <- struct{}{}
+		committing.Go(func() {
+			b.commit(ctx, batch)
+			<-slots
+		})
+	}
+}
+
+// commit records a batch, one transaction per policy (no transaction spans
+// policies), and wakes every request of it.
+func (b *DecisionBatcher) commit(ctx context.Context, batch []*pendingDecision) {
+	start := time.Now()
+	ctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), b.timeout)
+	defer cancel()
+	byPolicy := map[int32][]*pendingDecision{}
+	for _, p := range batch {
+		byPolicy[p.d.PolicyID] = append(byPolicy[p.d.PolicyID], p)
+	}
+	done := make(chan struct{}, len(byPolicy))
+	for id, group := range byPolicy {
+		go func() {
+			b.db.recordDecisions(ctx, id, group)
+			done <- struct{}{}
+		}()
+	}
+	for range byPolicy {
+		<-done
+	}
+	if b.Observe != nil {
+		b.Observe(len(batch), time.Since(start))
+	}
+	for _, p := range batch {
+		close(p.done)
+	}
+}
+
+type decisionOutcome struct {
+	stored   training.Decision
+	repeated bool
+	err      error
+}
+
+// recordDecisions records one policy's decisions in one transaction and
+// sets each one's outcome. A deadlock or a unique violation (another
+// process opened the same episode meanwhile) is retried once.
+func (db *DB) recordDecisions(ctx context.Context, policyID int32, group []*pendingDecision) {
+	outcomes, err := db.recordOnce(ctx, policyID, group)
+	if isUniqueViolation(err) || isDeadlock(err) {
+		outcomes, err = db.recordOnce(ctx, policyID, group)
+	}
+	for i, p := range group {
+		if err != nil {
+			p.err = mapError(fmt.Errorf("record decisions: %w", err))
+			continue
+		}
+		p.stored, p.repeated, p.err = outcomes[i].stored, outcomes[i].repeated, outcomes[i].err
+	}
+}
+
+// recordOnce runs recordInTx on a connection of its own; the transaction
+// begins with the reads and commits with the writes, so it costs two
+// round trips.
+func (db *DB) recordOnce(ctx context.Context, policyID int32, group []*pendingDecision) ([]decisionOutcome, error) {
+	var outcomes []decisionOutcome
+	err := db.WithConn(ctx, func(conn *pgx.Conn) error {
+		var err error
+		outcomes, err = recordInTx(ctx, conn, policyID, group)
+		return err
+	})
+	return outcomes, err
+}
+
+func isDeadlock(err error) bool {
+	var pgErr *pgconn.PgError
+	return errors.As(err, &pgErr) && pgErr.Code == "40P01"
+}
+
+type stepKey struct {
+	episode string
+	step    int
+}
+
+const decisionColumns = `episode_id, step, state, action, greedy_action, probability, allowed, mode,
+	explored, known_state, revision, copy_age, chosen_at`
+
+func scanDecision(row pgx.Row, policyID int32) (training.Decision, error) {
+	d := training.Decision{PolicyID: policyID}
+	var allowed []byte
+	var mode string
+	var copyAge float64
+	err := row.Scan(&d.Episode, &d.Step, &d.State, &d.Action, &d.Greedy, &d.Probability, &allowed, &mode,
+		&d.Explored, &d.KnownState, &d.Revision, &copyAge, &d.ChosenAt)
+	d.Allowed, d.Mode, d.CopyAge = training.ActionSet(allowed), training.Mode(mode), time.Duration(copyAge*float64(time.Second))
+	return d, err
+}
+
+// recordInTx decides every decision of the group against what is stored
+// (new, a repeat of a stored step, or refused) and stores the new ones, in
+// one transaction: BEGIN and the reads go in one pipelined round trip, the
+// writes and COMMIT in another, however large the batch.
+func recordInTx(ctx context.Context, conn *pgx.Conn, policyID int32, group []*pendingDecision) ([]decisionOutcome, error) {
+	var ids []string
+	seen := map[string]bool{}
+	opening := false
+	for _, p := range group {
+		if !seen[p.d.Episode] {
+			seen[p.d.Episode] = true
+			ids = append(ids, p.d.Episode)
+		}
+		opening = opening || p.d.Step == 0
+	}
+
+	var reads pgx.Batch
+	reads.Queue(`BEGIN`).Exec(func(pgconn.CommandTag) error { return nil })
+	// Opening an episode takes the lock posting and ending take, shared:
+	// openings run side by side, but never beside a post or an end, so an
+	// id is either posted or kept open, never both. (Two batches opening
+	// the same id collide on its key, and the later one is retried.)
+	if opening {
+		reads.Queue(`SELECT pg_advisory_xact_lock_shared($1, $2)`, ingestLockClass, policyID).Exec(func(pgconn.CommandTag) error { return nil })
+	}
+	var maxOpen, maxSteps int
+	var name string
+	reads.Queue(`SELECT name, max_open_episodes, max_open_episode_steps FROM policies WHERE policy_id = $1`, policyID).
+		QueryRow(func(r pgx.Row) error { return r.Scan(&name, &maxOpen, &maxSteps) })
+	// Locked in one order by every process, so that batches sharing
+	// episodes do not deadlock.
+	count := map[string]int{}
+	reads.Queue(`SELECT episode_id, steps FROM open_episodes
+		WHERE policy_id = $1 AND episode_id = ANY($2) ORDER BY episode_id FOR UPDATE`, policyID, ids).
+		Query(func(rows pgx.Rows) error {
+			var id string
+			var n int
+			_, err := pgx.ForEachRow(rows, []any{&id, &n}, func() error { count[id] = n; return nil })
+			return err
+		})
+	// Whether an episode about to open was posted (or ended) before. Ids of
+	// later steps that are not open are looked up below, only then: that
+	// is a refusal anyway, and rare.
+	finished := map[string]bool{}
+	queueFinished := func(b *pgx.Batch, ids []string) {
+		b.Queue(`SELECT episode_id FROM episodes WHERE policy_id = $1 AND episode_id = ANY($2)`, policyID, ids).
+			Query(func(rows pgx.Rows) error {
+				var id string
+				_, err := pgx.ForEachRow(rows, []any{&id}, func() error { finished[id] = true; return nil })
+				return err
+			})
+	}
+	if opening {
+		var openingIDs []string
+		for _, p := range group {
+			if p.d.Step == 0 {
+				openingIDs = append(openingIDs, p.d.Episode)
+			}
+		}
+		queueFinished(&reads, openingIDs)
+	}
+	var openNow int64
+	if opening {
+		reads.Queue(`SELECT coalesce(sum(open), 0)::bigint FROM open_episode_counts WHERE policy_id = $1`, policyID).
+			QueryRow(func(r pgx.Row) error { return r.Scan(&openNow) })
+	}
+	if err := conn.SendBatch(ctx, &reads).Close(); err != nil {
+		return nil, fmt.Errorf("read open episodes: %w", err)
+	}
+	// Retries (a step already recorded) and refusals need more; a batch of
+	// next steps does not, and pays for none of it.
+	var more pgx.Batch
+	recorded := map[stepKey]training.Decision{}
+	var retryEpisodes []string
+	var retrySteps []int32
+	var unknown []string
+	for _, p := range group {
+		c, isOpen := count[p.d.Episode]
+		switch {
+		case p.d.Step < c:
+			retryEpisodes, retrySteps = append(retryEpisodes, p.d.Episode), append(retrySteps, int32(p.d.Step))
+		case !isOpen && p.d.Step > 0:
+			unknown = append(unknown, p.d.Episode)
+		}
+	}
+	if len(retryEpisodes) > 0 {
+		// LATERAL keeps this a key lookup per decision whatever plan the
+		// prepared statement settles on.
+		more.Queue(`SELECT s.* FROM unnest($2::text[], $3::integer[]) AS asked(episode_id, step)
+			JOIN LATERAL (SELECT `+decisionColumns+` FROM open_episode_steps o
+				WHERE o.policy_id = $1 AND o.episode_id = asked.episode_id AND o.step = asked.step) s ON true`,
+			policyID, retryEpisodes, retrySteps).
+			Query(func(rows pgx.Rows) error {
+				list, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.Decision, error) { return scanDecision(r, policyID) })
+				for _, d := range list {
+					recorded[stepKey{d.Episode, d.Step}] = d
+				}
+				return err
+			})
+	}
+	if len(unknown) > 0 {
+		queueFinished(&more, unknown)
+	}
+	if more.Len() > 0 {
+		if err := conn.SendBatch(ctx, &more).Close(); err != nil {
+			return nil, fmt.Errorf("read recorded decisions: %w", err)
+		}
+	}
+
+	now := time.Now()
+	outcomes := make([]decisionOutcome, len(group))
+	var fresh []training.Decision
+	opened := 0
+	for i, p := range group {
+		d := p.d
+		c, isOpen := count[d.Episode]
+		switch {
+		case finished[d.Episode]:
+			outcomes[i].err = training.Conflictf("episode %q of policy %q is stored as a finished episode (it ended, or was posted): its id takes no more decisions; name a new episode", d.Episode, name)
+		case d.Step < c:
+			prev, ok := recorded[stepKey{d.Episode, d.Step}]
+			if !ok {
+				return nil, fmt.Errorf("decision %d of episode %q is counted but not stored", d.Step, d.Episode)
+			}
+			if prev.State != d.State {
+				outcomes[i].err = training.Conflictf("step %d of episode %q was recorded in state %q; this request names state %q (the next step to record is %d)", d.Step, d.Episode, prev.State, d.State, c)
+				break
+			}
+			outcomes[i] = decisionOutcome{stored: prev, repeated: true}
+		case d.Step > c && !isOpen:
+			outcomes[i].err = training.Conflictf("episode %q is not open, so this request must name step 0 to open it; it names step %d", d.Episode, d.Step)
+		case d.Step > c:
+			outcomes[i].err = training.Conflictf("episode %q has %d decisions recorded, so the next is step %d; this request names step %d", d.Episode, c, c, d.Step)
+		case d.Step >= maxSteps:
+			outcomes[i].err = training.Conflictf("episode %q has recorded %d decisions, the most policy %q keeps in one open episode (max_open_episode_steps); end it and open a new one", d.Episode, c, name)
+		case !isOpen && openNow >= int64(maxOpen):
+			outcomes[i].err = training.Conflictf("policy %q keeps %d episodes open, its limit (max_open_episodes); end some, or raise the limit", name, openNow)
+		default:
+			if !isOpen {
+				openNow++
+				opened++
+			}
+			d.ChosenAt = now
+			count[d.Episode] = c + 1
+			recorded[stepKey{d.Episode, d.Step}] = d
+			fresh = append(fresh, d)
+			outcomes[i] = decisionOutcome{stored: d}
+		}
+	}
+	if len(fresh) == 0 {
+		// Nothing to write: release the locks without a durable commit.
+		if _, err := conn.Exec(ctx, `ROLLBACK`); err != nil {
+			return nil, fmt.Errorf("end read-only batch: %w", err)
+		}
+		return outcomes, nil
+	}
+
+	var writes pgx.Batch
+	queueDecisions(&writes, policyID, fresh)
+	// The episodes that took a new step: their count and last activity.
+	changed := map[string]bool{}
+	for _, d := range fresh {
+		changed[d.Episode] = true
+	}
+	var touched []string
+	var steps []int32
+	for _, id := range ids {
+		if changed[id] {
+			touched, steps = append(touched, id), append(steps, int32(count[id]))
+		}
+	}
+	writes.Queue(`
+		INSERT INTO open_episodes (policy_id, episode_id, steps)
+		SELECT $1, e, n FROM unnest($2::text[], $3::integer[]) AS t(e, n)
+		ON CONFLICT (policy_id, episode_id) DO UPDATE SET steps = excluded.steps, last_active_at = now()`,
+		policyID, touched, steps)
+	if opened > 0 {
+		queueCounts(&writes, policyID, 1+rand.IntN(countShards-1), opened, 0, 0, 0)
+	}
+	writes.Queue(`COMMIT`)
+	if err := conn.SendBatch(ctx, &writes).Close(); err != nil {
+		return nil, fmt.Errorf("record decisions: %w", err)
+	}
+	return outcomes, nil
+}
+
+func queueDecisions(b *pgx.Batch, policyID int32, ds []training.Decision) {
+	n := len(ds)
+	episodes, states, modes := make([]string, n), make([]string, n), make([]string, n)
+	steps := make([]int32, n)
+	actions, greedy := make([]int16, n), make([]int16, n)
+	probs, ages := make([]float64, n), make([]float64, n)
+	allowed := make([][]byte, n)
+	explored, known := make([]bool, n), make([]bool, n)
+	revisions := make([]int64, n)
+	chosen := make([]time.Time, n)
+	for i, d := range ds {
+		episodes[i], steps[i], states[i], modes[i] = d.Episode, int32(d.Step), d.State, string(d.Mode)
+		actions[i], greedy[i], probs[i], allowed[i] = d.Action, d.Greedy, d.Probability, d.Allowed
+		explored[i], known[i], revisions[i], ages[i], chosen[i] = d.Explored, d.KnownState, d.Revision, d.CopyAge.Seconds(), d.ChosenAt
+	}
+	b.Queue(`
+		INSERT INTO open_episode_steps (policy_id, `+decisionColumns+`)
+		SELECT $1, * FROM unnest($2::text[], $3::integer[], $4::text[], $5::smallint[], $6::smallint[],
+			$7::double precision[], $8::bytea[], $9::text[], $10::boolean[], $11::boolean[], $12::bigint[],
+			$13::double precision[], $14::timestamptz[])`,
+		policyID, episodes, steps, states, actions, greedy, probs, allowed, modes, explored, known, revisions, ages, chosen)
+}
+
+// countShards is how many rows a policy's open-episode counts spread over:
+// shard 0 for closings (which hold the ingest lock alone), the others
+// drawn at random by batches opening episodes.
+const countShards = 16
+
+// addCounts moves a policy's open-episode counts as a closing; callers
+// hold its ingest lock.
+func addCounts(ctx context.Context, tx pgx.Tx, policyID int32, open, ended, endedIdle, dropped int) error {
+	var b pgx.Batch
+	queueCounts(&b, policyID, 0, open, ended, endedIdle, dropped)
+	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
+		return fmt.Errorf("count open episodes: %w", err)
+	}
+	return nil
+}
+
+func queueCounts(b *pgx.Batch, policyID int32, shard, open, ended, endedIdle, dropped int) {
+	b.Queue(`
+		INSERT INTO open_episode_counts AS c (policy_id, shard, open, ended, ended_idle, dropped) VALUES ($1, $2, $3, $4, $5, $6)
+		ON CONFLICT (policy_id, shard) DO UPDATE SET open = c.open + excluded.open, ended = c.ended + excluded.ended,
+			ended_idle = c.ended_idle + excluded.ended_idle, dropped = c.dropped + excluded.dropped`,
+		policyID, shard, open, ended, endedIdle, dropped)
+}
+
+func storedEpisodeIDs(ctx context.Context, tx pgx.Tx, policyID int32, ids []string) ([]string, error) {
+	rows, err := tx.Query(ctx, `SELECT episode_id FROM episodes WHERE policy_id = $1 AND episode_id = ANY($2)`, policyID, ids)
+	if err != nil {
+		return nil, fmt.Errorf("look up episode ids: %w", err)
+	}
+	stored, err := pgx.CollectRows(rows, pgx.RowTo[string])
+	if err != nil {
+		return nil, fmt.Errorf("look up episode ids: %w", err)
+	}
+	return stored, nil
+}
+
+// openIDs lists which of ids are open episodes of the policy; with lock it
+// locks them, waiting for decisions being recorded in them to commit.
+func openIDs(ctx context.Context, tx pgx.Tx, policyID int32, ids []string, lock bool) ([]string, error) {
+	query := `SELECT episode_id FROM open_episodes WHERE policy_id = $1 AND episode_id = ANY($2)`
+	if lock {
+		query += ` ORDER BY episode_id FOR UPDATE`
+	}
+	rows, err := tx.Query(ctx, query, policyID, ids)
+	if err != nil {
+		return nil, fmt.Errorf("look up open episodes: %w", err)
+	}
+	open, err := pgx.CollectRows(rows, pgx.RowTo[string])
+	if err != nil {
+		return nil, fmt.Errorf("look up open episodes: %w", err)
+	}
+	return open, nil
+}
+
+// notOpen explains why an episode is not open: stored as finished, or unknown.
+func notOpen(ctx context.Context, tx pgx.Tx, p training.Policy, episode string) error {
+	stored, err := storedEpisodeIDs(ctx, tx, p.ID, []string{episode})
+	if err != nil {
+		return err
+	}
+	if len(stored) > 0 {
+		return training.Conflictf("episode %q of policy %q is not open: it is stored as a finished episode (it ended, or was posted)", episode, p.Name)
+	}
+	return training.NotFoundf("policy %q has no open episode %q", p.Name, episode)
+}
+
+// AddReward adds a reward to a decision of an open episode: the named step,
+// or the latest. Several additions to one decision sum. It costs three
+// round trips: BEGIN with the reads, the writes, COMMIT.
+func (db *DB) AddReward(ctx context.Context, policy, episode string, add training.RewardAddition) (training.RewardResult, error) {
+	var res training.RewardResult
+	err := db.WithConn(ctx, func(conn *pgx.Conn) error {
+		var reads pgx.Batch
+		reads.Queue(`BEGIN`)
+		var policyID *int32
+		reads.Queue(`SELECT policy_id FROM policies WHERE name = $1 FOR KEY SHARE`, policy).
+			QueryRow(func(r pgx.Row) error {
+				var id int32
+				err := r.Scan(&id)
+				if errors.Is(err, pgx.ErrNoRows) {
+					return nil
+				}
+				policyID = &id
+				return err
+			})
+		steps := -1
+		reads.Queue(`SELECT steps FROM open_episodes
+			WHERE policy_id = (SELECT policy_id FROM policies WHERE name = $1) AND episode_id = $2 FOR UPDATE`, policy, episode).
+			QueryRow(func(r pgx.Row) error {
+				err := r.Scan(&steps)
+				if errors.Is(err, pgx.ErrNoRows) {
+					return nil
+				}
+				return err
+			})
+		if err := conn.SendBatch(ctx, &reads).Close(); err != nil {
+			return fmt.Errorf("read open episode: %w", err)
+		}
+		if policyID == nil {
+			return training.NotFoundf("no policy named %q", policy)
+		}
+		if steps < 0 {
+			return notOpenConn(ctx, conn, policy, *policyID, episode)
+		}
+		step := steps - 1
+		if add.Step != nil {
+			step = *add.Step
+		}
+		if step >= steps {
+			return training.Invalid(-1, -1, "step", "episode %q has %d decisions recorded (steps 0 to %d); there is no step %d", episode, steps, steps-1, step)
+		}
+		// A key used before adds nothing: the update finds no new key row.
+		added := false
+		var writes pgx.Batch
+		writes.Queue(`
+			WITH new_key AS (
+				INSERT INTO open_episode_reward_keys (policy_id, episode_id, key, step)
+				SELECT $1, $2, $5, $3 WHERE $5 <> ''
+				ON CONFLICT DO NOTHING RETURNING 1)
+			UPDATE open_episode_steps SET reward = reward + $4
+			WHERE policy_id = $1 AND episode_id = $2 AND step = $3 AND ($5 = '' OR EXISTS (SELECT 1 FROM new_key))
+			RETURNING reward`, *policyID, episode, step, add.Reward, add.Key).
+			QueryRow(func(r pgx.Row) error {
+				err := r.Scan(&res.Reward)
+				if errors.Is(err, pgx.ErrNoRows) {
+					return nil
+				}
+				added = err == nil
+				return err
+			})
+		writes.Queue(`UPDATE open_episodes SET last_active_at = now() WHERE policy_id = $1 AND episode_id = $2`, *policyID, episode)
+		if err := conn.SendBatch(ctx, &writes).Close(); err != nil {
+			return fmt.Errorf("add reward: %w", err)
+		}
+		res.Step = step
+		if !added {
+			// Used before: answer what that addition went to.
+			res.Repeated = true
+			if err := conn.QueryRow(ctx, `SELECT k.step, s.reward FROM open_episode_reward_keys k
+				JOIN open_episode_steps s USING (policy_id, episode_id, step)
+				WHERE k.policy_id = $1 AND k.episode_id = $2 AND k.key = $3`, *policyID, episode, add.Key).Scan(&res.Step, &res.Reward); err != nil {
+				return fmt.Errorf("read keyed reward: %w", err)
+			}
+		} else if res.Reward > training.MaxAbsReward || res.Reward < -training.MaxAbsReward {
+			return training.Invalid(-1, -1, "reward", "step %d's rewards would sum to %g, larger in magnitude than the limit of %g", step, res.Reward, training.MaxAbsReward)
+		}
+		if _, err := conn.Exec(ctx, `COMMIT`); err != nil {
+			return fmt.Errorf("commit: %w", err)
+		}
+		return nil
+	})
+	return res, err
+}
+
+// WithConn runs fn on a connection of its own, for work that pipelines its
+// own BEGIN and COMMIT; a transaction fn leaves open (an error) is rolled
+// back, or the connection dropped.
+func (db *DB) WithConn(ctx context.Context, fn func(*pgx.Conn) error) error {
+	conn, err := db.pool.Acquire(ctx)
+	if err != nil {
+		return mapError(fmt.Errorf("acquire a connection: %w", err))
+	}
+	defer conn.Release()
+	err = fn(conn.Conn())
+	if conn.Conn().PgConn().TxStatus() != 'I' {
+		if _, rbErr := conn.Exec(context.WithoutCancel(ctx), `ROLLBACK`); rbErr != nil {
+			_ = conn.Conn().Close(context.WithoutCancel(ctx))
+		}
+	}
+	return mapError(err)
+}
+
+// notOpenConn is notOpen for a pipelined connection.
+func notOpenConn(ctx context.Context, conn *pgx.Conn, policy string, policyID int32, episode string) error {
+	var stored bool
+	if err := conn.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM episodes WHERE policy_id = $1 AND episode_id = $2)`,
+		policyID, episode).Scan(&stored); err != nil {
+		return fmt.Errorf("look up episode id: %w", err)
+	}
+	if stored {
+		return training.Conflictf("episode %q of policy %q is not open: it is stored as a finished episode (it ended, or was posted)", episode, policy)
+	}
+	return training.NotFoundf("policy %q has no open episode %q", policy, episode)
+}
+
+func policyInTx(ctx context.Context, tx pgx.Tx, name string) (training.Policy, error) {
+	// KEY SHARE keeps the actions from changing under the transaction
+	// without blocking the worker's revision updates.
+	p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1 FOR KEY SHARE`, name))
+	if errors.Is(err, pgx.ErrNoRows) {
+		return p, training.NotFoundf("no policy named %q", name)
+	}
+	if err != nil {
+		return p, fmt.Errorf("read policy: %w", err)
+	}
+	return p, nil
+}
+
+// How an open episode closed, for the counts.
+type closing int
+
+const (
+	closedByClient closing = iota
+	closedIdleEnded
+	closedIdleDropped
+)
+
+// EndOpenEpisode ends an open episode: it becomes a stored episode, trained
+// like a posted one, in the order episodes end. Ending an episode that has
+// ended already changes nothing and says so.
+func (db *DB) EndOpenEpisode(ctx context.Context, policy, episode string, req training.EndRequest) (training.EndResult, error) {
+	res := training.EndResult{ID: episode}
+	err := db.WithTx(ctx, func(tx pgx.Tx) error {
+		p, err := policyInTx(ctx, tx, policy)
+		if err != nil {
+			return err
+		}
+		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
+			return fmt.Errorf("ingest lock: %w", err)
+		}
+		records, err := closeOpenEpisodes(ctx, tx, p, []string{episode}, req.Reward, closedByClient)
+		if err != nil {
+			return err
+		}
+		if len(records) == 1 {
+			res.Steps, res.Return = len(records[0].States), sum(records[0].Rewards)
+			return nil
+		}
+		var rewards []float64
+		err = tx.QueryRow(ctx, `SELECT rewards FROM episodes WHERE policy_id = $1 AND episode_id = $2`, p.ID, episode).Scan(&rewards)
+		if errors.Is(err, pgx.ErrNoRows) {
+			return training.NotFoundf("policy %q has no open episode %q", p.Name, episode)
+		}
+		if err != nil {
+			return fmt.Errorf("read ended episode: %w", err)
+		}
+		res.Steps, res.Return, res.AlreadyEnded = len(rewards), sum(rewards), true
+		return nil
+	})
+	return res, err
+}
+
+func sum(xs []float64) float64 {
+	s := 0.0
+	for _, x := range xs {
+		s += x
+	}
+	return s
+}
+
+// closeOpenEpisodes ends or drops those of ids that are open, in the order
+// of ids, and returns the records of those it ended. The caller holds the
+// policy's ingest lock, so that ended episodes take their arrival order
+// (seq) in the order they end, exactly as posted ones do.
+func closeOpenEpisodes(ctx context.Context, tx pgx.Tx, p training.Policy, ids []string, final *float64, how closing) ([]training.EpisodeRecord, error) {
+	open, err := openIDs(ctx, tx, p.ID, ids, true)
+	if err != nil || len(open) == 0 {
+		return nil, err
+	}
+	isOpen := map[string]bool{}
+	for _, id := range open {
+		isOpen[id] = true
+	}
+	var closing []string
+	for _, id := range ids {
+		if isOpen[id] {
+			closing = append(closing, id)
+		}
+	}
+	var records []training.EpisodeRecord
+	if how != closedIdleDropped {
+		records, err = openEpisodeRecords(ctx, tx, p, closing)
+		if err != nil {
+			return nil, err
+		}
+		if final != nil && len(records) == 1 {
+			r := records[0].Rewards
+			r[len(r)-1] += *final
+			if r[len(r)-1] > training.MaxAbsReward || r[len(r)-1] < -training.MaxAbsReward {
+				return nil, training.Invalid(-1, -1, "reward", "the last step's rewards would sum to %g, larger in magnitude than the limit of %g", r[len(r)-1], training.MaxAbsReward)
+			}
+		}
+		_, err = tx.CopyFrom(ctx, pgx.Identifier{"episodes"},
+			[]string{"policy_id", "episode_id", "states", "actions", "rewards", "probabilities", "allowed"},
+			pgx.CopyFromSlice(len(records), func(i int) ([]any, error) {
+				r := records[i]
+				return []any{p.ID, r.ID, r.States, r.Actions, r.Rewards, r.Probabilities, r.Allowed}, nil
+			}))
+		if err != nil {
+			return nil, fmt.Errorf("store ended episodes: %w", err)
+		}
+		if _, err := tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelEpisodes, p.ID); err != nil {
+			return nil, err
+		}
+	}
+	for _, table := range []string{"open_episode_steps", "open_episode_reward_keys", "open_episodes"} {
+		if _, err := tx.Exec(ctx, `DELETE FROM `+table+` WHERE policy_id = $1 AND episode_id = ANY($2)`, p.ID, closing); err != nil {
+			return nil, fmt.Errorf("delete from %s: %w", table, err)
+		}
+	}
+	n := len(closing)
+	switch how {
+	case closedByClient:
+		err = addCounts(ctx, tx, p.ID, -n, n, 0, 0)
+	case closedIdleEnded:
+		err = addCounts(ctx, tx, p.ID, -n, 0, n, 0)
+	case closedIdleDropped:
+		err = addCounts(ctx, tx, p.ID, -n, 0, 0, n)
+	}
+	return records, err
+}
+
+// openEpisodeRecords reads open episodes in stored form, in the order of ids.
+func openEpisodeRecords(ctx context.Context, tx pgx.Tx, p training.Policy, ids []string) ([]training.EpisodeRecord, error) {
+	rows, err := tx.Query(ctx, `SELECT episode_id, state, action, probability, allowed, reward FROM open_episode_steps
+		WHERE policy_id = $1 AND episode_id = ANY($2) ORDER BY episode_id, step`, p.ID, ids)
+	if err != nil {
+		return nil, fmt.Errorf("read open episodes: %w", err)
+	}
+	byID := map[string]*training.EpisodeRecord{}
+	var id, state string
+	var action int16
+	var prob, reward float64
+	var allowed []byte
+	_, err = pgx.ForEachRow(rows, []any{&id, &state, &action, &prob, &allowed, &reward}, func() error {
+		r := byID[id]
+		if r == nil {
+			r = &training.EpisodeRecord{ID: id}
+			byID[id] = r
+		}
+		r.States = append(r.States, state)
+		r.Actions = append(r.Actions, action)
+		r.Probabilities = append(r.Probabilities, prob)
+		r.Allowed = append(r.Allowed, allowed...)
+		r.Rewards = append(r.Rewards, reward)
+		return nil
+	})
+	if err != nil {
+		return nil, fmt.Errorf("read open episodes: %w", err)
+	}
+	records := make([]training.EpisodeRecord, 0, len(ids))
+	for _, id := range ids {
+		if r := byID[id]; r != nil {
+			records = append(records, *r)
+		}
+	}
+	return records, nil
+}
+
+// OpenEpisode reads an open episode with its decisions.
+func (db *DB) OpenEpisode(ctx context.Context, policy, episode string) (training.OpenEpisodeView, error) {
+	v := training.OpenEpisodeView{ID: episode, Steps: []training.OpenStep{}}
+	err := db.WithTx(ctx, func(tx pgx.Tx) error {
+		p, err := policyInTx(ctx, tx, policy)
+		if err != nil {
+			return err
+		}
+		err = tx.QueryRow(ctx, `SELECT opened_at, last_active_at FROM open_episodes WHERE policy_id = $1 AND episode_id = $2`,
+			p.ID, episode).Scan(&v.OpenedAt, &v.LastActiveAt)
+		if errors.Is(err, pgx.ErrNoRows) {
+			err := notOpen(ctx, tx, p, episode)
+			if errors.Is(err, training.ErrConflict) {
+				// Ended: no open episode by that id, and the answer says why.
+				return training.NotFoundf("%s", err.Error())
+			}
+			return err
+		}
+		if err != nil {
+			return fmt.Errorf("read open episode: %w", err)
+		}
+		rows, err := tx.Query(ctx, `SELECT `+decisionColumns+`, reward FROM open_episode_steps
+			WHERE policy_id = $1 AND episode_id = $2 ORDER BY step`, p.ID, episode)
+		if err != nil {
+			return fmt.Errorf("read decisions: %w", err)
+		}
+		v.Steps, err = pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.OpenStep, error) {
+			d := training.Decision{}
+			var allowed []byte
+			var mode string
+			var copyAge, reward float64
+			err := r.Scan(&d.Episode, &d.Step, &d.State, &d.Action, &d.Greedy, &d.Probability, &allowed, &mode,
+				&d.Explored, &d.KnownState, &d.Revision, &copyAge, &d.ChosenAt, &reward)
+			return training.OpenStep{Step: d.Step, State: d.State, Action: p.Actions[d.Action], Probability: d.Probability,
+				Allowed: training.ActionSet(allowed).Names(p.Actions), Mode: training.Mode(mode), Revision: d.Revision,
+				ChosenAt: d.ChosenAt, Reward: reward}, err
+		})
+		if err != nil {
+			return fmt.Errorf("read decisions: %w", err)
+		}
+		return nil
+	})
+	return v, err
+}
+
+// CloseIdleEpisodes ends or drops, as each policy says, up to perPolicy of
+// its open episodes idle longer than its limit, the longest idle first.
+func (db *DB) CloseIdleEpisodes(ctx context.Context, perPolicy int) ([]training.IdleSweep, error) {
+	rows, err := db.pool.Query(ctx, `SELECT `+policyColumns+` FROM policies WHERE open_episode_idle_limit > 0 ORDER BY policy_id`)
+	if err != nil {
+		return nil, mapError(fmt.Errorf("read policies: %w", err))
+	}
+	policies, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.Policy, error) { return scanPolicy(r) })
+	if err != nil {
+		return nil, mapError(fmt.Errorf("read policies: %w", err))
+	}
+	var sweeps []training.IdleSweep
+	for _, p := range policies {
+		// Looked for first without the lock, which would hold up openings.
+		var idle bool
+		if err := db.pool.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM open_episodes
+			WHERE policy_id = $1 AND last_active_at < now() - make_interval(secs => $2))`, p.ID, p.OpenEpisodeIdleLimit).Scan(&idle); err != nil {
+			return sweeps, mapError(fmt.Errorf("find idle episodes: %w", err))
+		}
+		if !idle {
+			continue
+		}
+		sweep := training.IdleSweep{Policy: p.Name}
+		err := db.WithTx(ctx, func(tx pgx.Tx) error {
+			if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
+				return fmt.Errorf("ingest lock: %w", err)
+			}
+			rows, err := tx.Query(ctx, `SELECT episode_id FROM open_episodes
+				WHERE policy_id = $1 AND last_active_at < now() - make_interval(secs => $2)
+				ORDER BY last_active_at, episode_id LIMIT $3 FOR UPDATE SKIP LOCKED`, p.ID, p.OpenEpisodeIdleLimit, perPolicy)
+			if err != nil {
+				return fmt.Errorf("find idle episodes: %w", err)
+			}
+			ids, err := pgx.CollectRows(rows, pgx.RowTo[string])
+			if err != nil || len(ids) == 0 {
+				return err
+			}
+			how := closedIdleEnded
+			if p.OnIdle == training.IdleDrop {
+				how = closedIdleDropped
+			}
+			if _, err := closeOpenEpisodes(ctx, tx, p, ids, nil, how); err != nil {
+				return err
+			}
+			if how == closedIdleDropped {
+				sweep.Dropped = len(ids)
+			} else {
+				sweep.Ended = len(ids)
+			}
+			return nil
+		})
+		if err != nil {
+			return sweeps, err
+		}
+		if sweep.Ended+sweep.Dropped > 0 {
+			sweeps = append(sweeps, sweep)
+		}
+	}
+	return sweeps, nil
+}
+
+// OpenEpisodeFigures reads every policy's open-episode counts and ages.
+func (db *DB) OpenEpisodeFigures(ctx context.Context) ([]training.OpenEpisodeFigures, error) {
+	rows, err := db.pool.Query(ctx, openFiguresQuery+` ORDER BY p.name`)
+	if err != nil {
+		return nil, mapError(fmt.Errorf("read open episodes: %w", err))
+	}
+	out, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.OpenEpisodeFigures, error) { return scanOpenFigures(r) })
+	if err != nil {
+		return nil, mapError(fmt.Errorf("read open episodes: %w", err))
+	}
+	return out, nil
+}
+
+// PolicyOpenEpisodes reads one policy's open-episode counts and ages.
+func (db *DB) PolicyOpenEpisodes(ctx context.Context, policy string) (training.OpenEpisodeFigures, error) {
+	f, err := scanOpenFigures(db.pool.QueryRow(ctx, openFiguresQuery+` WHERE p.name = $1`, policy))
+	if errors.Is(err, pgx.ErrNoRows) {
+		return f, training.NotFoundf("no policy named %q", policy)
+	}
+	if err != nil {
+		return f, mapError(fmt.Errorf("read open episodes: %w", err))
+	}
+	return f, nil
+}
+
+const openFiguresQuery = `
+	SELECT p.name, coalesce(c.open, 0), coalesce(c.ended, 0), coalesce(c.ended_idle, 0), coalesce(c.dropped, 0),
+		(SELECT min(o.opened_at) FROM open_episodes o WHERE o.policy_id = p.policy_id),
+		(SELECT min(o.last_active_at) FROM open_episodes o WHERE o.policy_id = p.policy_id)
+	FROM policies p LEFT JOIN LATERAL (
+		SELECT sum(open)::bigint AS open, sum(ended)::bigint AS ended, sum(ended_idle)::bigint AS ended_idle, sum(dropped)::bigint AS dropped
+		FROM open_episode_counts WHERE policy_id = p.policy_id) c ON true`
+
+func scanOpenFigures(r pgx.Row) (training.OpenEpisodeFigures, error) {
+	var f training.OpenEpisodeFigures
+	err := r.Scan(&f.Policy, &f.Open, &f.Ended, &f.EndedIdle, &f.Dropped, &f.OldestOpenedAt, &f.LongestIdleSince)
+	return f, err
+}

@@ -1,0 +1,65 @@
+package storage_test
+
+import (
+	"context"
+	"fmt"
+	"sync"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"github.com/qtally/qtally/storage"
+	"github.com/qtally/qtally/storage/pgtest"
+	"github.com/qtally/qtally/training"
+)
+
+// BenchmarkRecordDecisions records b.N decisions from 64 concurrent
+// callers, each the next step of its own open episode, through the group
+// commit on a durable PostgreSQL, without HTTP: what recording costs the
+// database side.
+//
+//	go test -run '^$' -bench BenchmarkRecordDecisions -benchtime 20000x ./storage
+func BenchmarkRecordDecisions(b *testing.B) {
+	ctx := context.Background()
+	db, err := storage.Open(ctx, pgtest.NewDurableServer(b).URL(), 20, training.DefaultLimits())
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer db.Close()
+	settings := training.DefaultSettings()
+	settings.Actions = []string{"a", "b", "c"}
+	p, _, err := db.PutPolicy(ctx, "bench", settings)
+	if err != nil {
+		b.Fatal(err)
+	}
+	batcher := db.NewDecisionBatcher(time.Millisecond, 256)
+	var batches, decisions atomic.Int64
+	batcher.Observe = func(n int, _ time.Duration) { batches.Add(1); decisions.Add(int64(n)) }
+	runCtx, stop := context.WithCancel(ctx)
+	done := make(chan struct{})
+	go func() { _ = batcher.Run(runCtx); close(done) }()
+	defer func() { stop(); <-done }()
+
+	const callers = 64
+	var next atomic.Int64
+	var wg sync.WaitGroup
+	b.ResetTimer()
+	for c := range callers {
+		wg.Go(func() {
+			for step := 0; next.Add(1) <= int64(b.N); step++ {
+				d := training.Decision{PolicyID: p.ID, Episode: fmt.Sprintf("e%d", c), Step: step, State: "s",
+					Probability: 1, Allowed: training.ActionSet{7}, Mode: training.Explore}
+				if _, _, err := batcher.Record(ctx, d); err != nil {
+					b.Error(err)
+					return
+				}
+			}
+		})
+	}
+	wg.Wait()
+	b.StopTimer()
+	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "decisions/s")
+	if n := batches.Load(); n > 0 {
+		b.ReportMetric(float64(decisions.Load())/float64(n), "decisions/commit")
+	}
+}
