@@ -67,7 +67,7 @@ func BenchmarkTokenVerify(b *testing.B) {
 		b.Fatal(err)
 	}
 	defer db.Close()
-	keyring := training.NewKeyring(db, "")
+	keyring := training.NewKeyring(db, testPepper)
 	if err := keyring.Reload(context.Background()); err != nil {
 		b.Fatal(err)
 	}
