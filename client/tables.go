@@ -111,10 +111,8 @@ func (c *Client) Table(ctx context.Context, policy, snapshot string) (Table, err
 // is retried from r's position at the call; otherwise it is sent once.
 func (c *Client) ImportTable(ctx context.Context, policy string, format Format, r io.Reader) (TableChange, error) {
 	cl := call{method: http.MethodPut, path: policyPath(policy, "table"), contentType: format.mediaType()}
-	cl.body = func() (io.Reader, error) { return r, nil }
 	if s, ok := r.(io.Seeker); ok {
-		start, err := s.Seek(0, io.SeekCurrent)
-		if err == nil {
+		if start, err := s.Seek(0, io.SeekCurrent); err == nil {
 			cl.repeatable = true
 			cl.body = func() (io.Reader, error) {
 				if _, err := s.Seek(start, io.SeekStart); err != nil {
@@ -123,7 +121,8 @@ func (c *Client) ImportTable(ctx context.Context, policy string, format Format, 
 				return r, nil
 			}
 		}
-	} else {
+	}
+	if cl.body == nil {
 		sent := false
 		cl.body = func() (io.Reader, error) {
 			if sent {
