@@ -3,11 +3,12 @@ package load
 import (
 	"context"
 	"fmt"
-	"net/http"
 	"slices"
 	"sync"
 	"sync/atomic"
 	"time"
+
+	"github.com/qtally/qtally/client"
 )
 
 // Observer follows a policy's training. The status route can do it (see
@@ -94,7 +95,7 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	runCtx, cancel := context.WithTimeout(ctx, cfg.Duration)
 	defer cancel()
 	var chooses, episodes, errs, skipped atomic.Int64
-	finished := make(chan episode, 4*cfg.EpisodesPerPost)
+	finished := make(chan client.Episode, 4*cfg.EpisodesPerPost)
 	var wg sync.WaitGroup
 	wg.Add(3)
 	go func() {
@@ -138,7 +139,7 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 // simulate starts episodes at cfg.Rate per second on cfg.Workers clients.
 // Starts are counted against the clock, so a late tick catches up instead
 // of lowering the rate.
-func simulate(ctx context.Context, c *client, cfg Config, chooseEvery int, finished chan<- episode, chooses, errs, skipped *atomic.Int64) {
+func simulate(ctx context.Context, c *client.Client, cfg Config, chooseEvery int, finished chan<- client.Episode, chooses, errs, skipped *atomic.Int64) {
 	starts := make(chan struct{}, cfg.Workers)
 	var wg sync.WaitGroup
 	run := time.Now().UnixNano()
@@ -154,12 +155,8 @@ func simulate(ctx context.Context, c *client, cfg Config, chooseEvery int, finis
 					if i%chooseEvery != 0 {
 						continue
 					}
-					var r struct {
-						Action      string  `json:"action"`
-						Probability float64 `json:"probability"`
-					}
-					if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/choose",
-						map[string]string{"state": ep.Steps[i].State, "mode": "explore"}, &r); err != nil {
+					r, err := c.Choose(ctx, cfg.Policy, client.ChooseRequest{State: ep.Steps[i].State, Mode: client.Explore})
+					if err != nil {
 						if ctx.Err() != nil {
 							return // the run is over: this episode is not posted
 						}
@@ -202,8 +199,8 @@ loop:
 
 // postFinished batches finished episodes by cfg.EpisodesPerPost (or what
 // finished in 200 ms) and posts the batches from up to posters clients.
-func postFinished(ctx context.Context, c *client, cfg Config, posters int, finished <-chan episode, posted, errs *atomic.Int64) {
-	batches := make(chan []episode, posters)
+func postFinished(ctx context.Context, c *client.Client, cfg Config, posters int, finished <-chan client.Episode, posted, errs *atomic.Int64) {
+	batches := make(chan []client.Episode, posters)
 	var wg sync.WaitGroup
 	for range posters {
 		wg.Add(1)
@@ -211,8 +208,7 @@ func postFinished(ctx context.Context, c *client, cfg Config, posters int, finis
 			defer wg.Done()
 			for batch := range batches {
 				// Episodes finished before the end are posted even after it.
-				if _, err := c.do(context.WithoutCancel(ctx), http.MethodPost, "/v1/policies/"+cfg.Policy+"/episodes",
-					map[string]any{"episodes": batch}, nil); err != nil {
+				if _, err := c.PostEpisodes(context.WithoutCancel(ctx), cfg.Policy, batch); err != nil {
 					errs.Add(1)
 				} else {
 					posted.Add(int64(len(batch)))
@@ -222,11 +218,11 @@ func postFinished(ctx context.Context, c *client, cfg Config, posters int, finis
 	}
 	defer wg.Wait()
 	defer close(batches)
-	batch := make([]episode, 0, cfg.EpisodesPerPost)
+	batch := make([]client.Episode, 0, cfg.EpisodesPerPost)
 	flush := func() {
 		if len(batch) > 0 {
 			batches <- batch
-			batch = make([]episode, 0, cfg.EpisodesPerPost)
+			batch = make([]client.Episode, 0, cfg.EpisodesPerPost)
 		}
 	}
 	tick := time.NewTicker(200 * time.Millisecond)
@@ -273,7 +269,7 @@ type commit struct {
 // reports, how long until choose answers from that revision or a later one.
 // While it waits, later commits queue; one already visible when its turn
 // comes counts from its own commit, so every figure is an upper bound.
-func probeVisibility(ctx context.Context, c *client, obs Observer, policy string) []time.Duration {
+func probeVisibility(ctx context.Context, c *client.Client, obs Observer, policy string) []time.Duration {
 	commits := make(chan commit, 1024)
 	go func() {
 		_ = obs.WatchCommits(ctx, policy, func(revision int64, at time.Time) {
@@ -292,11 +288,7 @@ func probeVisibility(ctx context.Context, c *client, obs Observer, policy string
 		case cm = <-commits:
 		}
 		for ctx.Err() == nil {
-			var r struct {
-				Revision int64 `json:"revision"`
-			}
-			if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+policy+"/choose",
-				map[string]string{"state": "visibility-probe", "mode": "greedy"}, &r); err == nil && r.Revision >= cm.revision {
+			if r, err := c.Choose(ctx, policy, client.ChooseRequest{State: "visibility-probe", Mode: client.Greedy}); err == nil && r.Revision >= cm.revision {
 				out = append(out, time.Since(cm.at))
 				break
 			}
@@ -308,17 +300,17 @@ func probeVisibility(ctx context.Context, c *client, obs Observer, policy string
 // statusObserver follows training through the status route: no database
 // access needed, but each call counts the policy's episodes, and commits
 // are seen only at the next 20 ms poll (not counted in the figure).
-type statusObserver struct{ c *client }
+type statusObserver struct{ c *client.Client }
 
 func (o statusObserver) Backlog(ctx context.Context, policy string) (int64, error) {
-	st, err := o.c.status(ctx, policy)
+	st, err := o.c.Policy(ctx, policy)
 	return st.Backlog, err
 }
 
 func (o statusObserver) WatchCommits(ctx context.Context, policy string, fn func(int64, time.Time)) error {
 	seen := int64(-1)
 	for ctx.Err() == nil {
-		if st, err := o.c.status(ctx, policy); err == nil && st.Revision > seen {
+		if st, err := o.c.Policy(ctx, policy); err == nil && st.Revision > seen {
 			if seen >= 0 {
 				fn(st.Revision, time.Now())
 			}
