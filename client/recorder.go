@@ -75,6 +75,10 @@ type RecorderStats struct {
 	Dropped int64
 	// Refused is End calls turned away with ErrQueueFull.
 	Refused int64
+	// Queued is the finished episodes waiting in the queue now, and
+	// Posting those the sender holds (its batch): together at most
+	// QueueSize + BatchSize.
+	Queued, Posting int
 }
 
 // queued is an item of the sender's queue: a finished episode, or a
@@ -251,7 +255,9 @@ func (r *Recorder) Err() error {
 func (r *Recorder) Stats() RecorderStats {
 	r.statsMu.Lock()
 	defer r.statsMu.Unlock()
-	return r.stats
+	st := r.stats
+	st.Queued = len(r.queue)
+	return st
 }
 
 func (r *Recorder) count(f func(*RecorderStats)) {
@@ -298,6 +304,7 @@ func (r *Recorder) send() {
 			}
 		}
 		batch = make([]Episode, 0, r.opts.BatchSize)
+		r.count(func(s *RecorderStats) { s.Posting = 0 })
 	}
 	for {
 		select {
@@ -314,6 +321,7 @@ func (r *Recorder) send() {
 				timer.Reset(r.opts.FlushInterval)
 			}
 			batch = append(batch, item.episode)
+			r.count(func(s *RecorderStats) { s.Posting = len(batch) })
 			if len(batch) >= r.opts.BatchSize {
 				post()
 			}
