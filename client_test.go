@@ -310,7 +310,11 @@ func TestRecorderPostsInBatches(t *testing.T) {
 	var mu sync.Mutex
 	var posted []client.Episode
 	rec := c.NewRecorder(ps.name, client.RecorderOptions{BatchSize: 10, FlushInterval: time.Hour, QueueSize: 20,
-		OnPosted: func(batch []client.Episode, _ client.IngestResult) { mu.Lock(); posted = append(posted, batch...); mu.Unlock() }})
+		OnPosted: func(batch []client.Episode, _ client.IngestResult) {
+			mu.Lock()
+			posted = append(posted, batch...)
+			mu.Unlock()
+		}})
 	rng := rand.New(rand.NewPCG(3, 4))
 	states := faultStates()
 	var choices []client.Choice
