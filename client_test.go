@@ -9,6 +9,9 @@ import (
 	"math"
 	"math/rand/v2"
 	"net/http"
+	"os"
+	"os/exec"
+	"path/filepath"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -513,5 +516,38 @@ func TestClientErrorCarriesTheProblem(t *testing.T) {
 	}
 	if st, err := c.Policy(ctx, ps.name); err != nil || st.Episodes != 0 {
 		t.Fatalf("after the refusal: %+v, %v", st, err)
+	}
+}
+
+// The Go program in the README runs against a service as it stands, and
+// run twice it stores nothing twice: its episode ids make the second run's
+// posts duplicates.
+func TestReadmeGoExampleRuns(t *testing.T) {
+	readme := string(must(os.ReadFile("README.md")))
+	_, section, ok := strings.Cut(readme, "## From Go")
+	_, program, ok2 := strings.Cut(section, "```go\n")
+	program, _, ok3 := strings.Cut(program, "```\n")
+	if !ok || !ok2 || !ok3 {
+		t.Fatal("README has no Go program under \"## From Go\"")
+	}
+	dir := t.TempDir()
+	src, bin := filepath.Join(dir, "main.go"), filepath.Join(dir, "onboarding")
+	if err := os.WriteFile(src, []byte(program), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if out, err := exec.Command("go", "build", "-o", bin, src).CombinedOutput(); err != nil {
+		t.Fatalf("go build the README's program: %v\n%s", err, out)
+	}
+	s := startService(t, pgtest.NewDatabase(t))
+	for i, want := range []string{
+		"posted 200 episodes in 4 requests, 0 of them duplicates\nonboarding: 200 episodes trained",
+		"posted 200 episodes in 4 requests, 200 of them duplicates\nonboarding: 200 episodes trained",
+	} {
+		cmd := exec.Command(bin)
+		cmd.Env = append(os.Environ(), "QTALLY_URL="+s.URL, "QTALLY_TOKEN="+strings.TrimPrefix(s.authorization, "Bearer "))
+		out, err := cmd.CombinedOutput()
+		if err != nil || !strings.Contains(string(out), want) {
+			t.Fatalf("run %d of the README's program: %v\n%s\nwant %q", i+1, err, out, want)
+		}
 	}
 }
