@@ -415,7 +415,7 @@ func TestClientHonoursRetryAfterAndBoundsTheRecorder(t *testing.T) {
 	ps := policySpec{name: "reminders", gamma: 1, alpha: 0.1, visit: "first"}
 	putFaultPolicy(t, admin, ps)
 	// One request every 2 s, none saved up.
-	slow := createToken(t, s.databaseURL, "--label", "slow", "--scope", "ingest,choose", "--rate", "0.5", "--burst", "1")
+	slow := createToken(t, s.databaseURL, "--label", "slow", "--scope", "ingest,choose,admin", "--rate", "0.5", "--burst", "1")
 	var seen retries
 	c := newTestClient(t, s, slow, nil, client.Options{Retry: client.RetryPolicy{OnRetry: seen.add}})
 
@@ -476,6 +476,28 @@ func TestClientHonoursRetryAfterAndBoundsTheRecorder(t *testing.T) {
 	}
 	if st := rec.Stats(); st.Accepted != int64(kept) || st.Refused != int64(refused) || st.Dropped != 0 {
 		t.Fatalf("recorder stats %+v after keeping %d", st, kept)
+	}
+
+	// A table imported from a file is sent again from the file's start
+	// after a 429.
+	file := filepath.Join(t.TempDir(), "table.json")
+	f := must(os.Create(file))
+	if err := admin.ExportTable(ctx, ps.name, "", client.JSON, f); err != nil {
+		t.Fatal(err)
+	}
+	f.Close()
+	f = must(os.Open(file))
+	defer f.Close()
+	if _, err := c.Choose(ctx, ps.name, client.ChooseRequest{State: "day 1/bucket"}); err != nil {
+		t.Fatal(err)
+	}
+	before := len(seen.withStatus(http.StatusTooManyRequests))
+	change, err := c.ImportTable(ctx, ps.name, client.JSON, f)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if change.Pairs != 1 || len(seen.withStatus(http.StatusTooManyRequests)) == before {
+		t.Fatalf("import after a 429: %+v, retries %+v", change, seen.list()[before:])
 	}
 	t.Logf("kept %d episodes (queue %d, batch %d), refused %d; %d retries after 429", kept, queue, batch, refused, len(seen.withStatus(http.StatusTooManyRequests)))
 }

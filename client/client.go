@@ -90,6 +90,9 @@ type call struct {
 	// (reads, PUTs, choose, episodes with their ids). Every request is
 	// repeated after a 429, which the service answers before doing anything.
 	repeatable bool
+	// once: the body can be read only once (a stream), so no attempt can
+	// follow the first.
+	once bool
 }
 
 func (cl call) url(base string) string {
@@ -126,7 +129,7 @@ func (c *Client) do(ctx context.Context, cl call) (*http.Response, error) {
 		default:
 			retry = cl.repeatable && !errors.Is(err, errBody)
 		}
-		if !retry || attempt >= c.opts.Retry.MaxAttempts {
+		if !retry || cl.once || attempt >= c.opts.Retry.MaxAttempts {
 			return nil, err
 		}
 		var retryAfter time.Duration
@@ -164,6 +167,9 @@ func (c *Client) attempt(ctx context.Context, cl call) (*http.Response, error) {
 	}
 	req, err := http.NewRequestWithContext(ctx, cl.method, cl.url(c.base), body)
 	if err != nil {
+		if closer, ok := body.(io.Closer); ok {
+			closer.Close() // ends a stream's encoder
+		}
 		return nil, fmt.Errorf("%s %s: %w", cl.method, cl.path, err)
 	}
 	if cl.contentType != "" {

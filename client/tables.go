@@ -3,7 +3,6 @@ package client
 import (
 	"context"
 	"encoding/json"
-	"errors"
 	"fmt"
 	"io"
 	"net/http"
@@ -108,7 +107,8 @@ func (c *Client) Table(ctx context.Context, policy, snapshot string) (Table, err
 
 // ImportTable replaces a policy's live table with one read from r (as
 // ExportTable writes it). When r is an io.Seeker (a file) a failed attempt
-// is retried from r's position at the call; otherwise it is sent once.
+// is retried from r's position at the call; any other reader is sent once,
+// without retries.
 func (c *Client) ImportTable(ctx context.Context, policy string, format Format, r io.Reader) (TableChange, error) {
 	cl := call{method: http.MethodPut, path: policyPath(policy, "table"), contentType: format.mediaType()}
 	if s, ok := r.(io.Seeker); ok {
@@ -118,19 +118,13 @@ func (c *Client) ImportTable(ctx context.Context, policy string, format Format, 
 				if _, err := s.Seek(start, io.SeekStart); err != nil {
 					return nil, err
 				}
-				return r, nil
+				return readerOnly{r}, nil
 			}
 		}
 	}
 	if cl.body == nil {
-		sent := false
-		cl.body = func() (io.Reader, error) {
-			if sent {
-				return nil, errors.New("the table was read by an earlier attempt and cannot be read again")
-			}
-			sent = true
-			return r, nil
-		}
+		cl.once = true
+		cl.body = func() (io.Reader, error) { return readerOnly{r}, nil }
 	}
 	var ch TableChange
 	_, err := c.doJSON(ctx, cl, &ch)
@@ -189,6 +183,11 @@ func (c *Client) RestoreSnapshot(ctx context.Context, policy, name string) (Tabl
 	_, err := c.doJSON(ctx, call{method: http.MethodPost, path: policyPath(policy, "snapshots", name, "restore"), repeatable: true}, &ch)
 	return ch, err
 }
+
+// readerOnly hides a reader's Close from the HTTP transport, which closes
+// a request body that has one: the caller's file stays open for a retry,
+// and for the caller to close.
+type readerOnly struct{ io.Reader }
 
 func decodeAnswer(resp *http.Response, out any) error {
 	if err := json.NewDecoder(resp.Body).Decode(out); err != nil {
