@@ -301,7 +301,8 @@ func TestClientRetriesWithoutCountingTwice(t *testing.T) {
 // episodes in full batches from the background: 95 episodes in batches of
 // 10 are 10 posts, the last by Close. What it posted is what the table
 // learned, and an evaluation finds every step logged with its probability
-// and allowed set.
+// and allowed set. Snapshots, restore and a replay go through the client
+// too: a replay with the same settings learns the same table.
 func TestRecorderPostsInBatches(t *testing.T) {
 	s := startService(t, pgtest.NewDatabase(t))
 	token := strings.TrimPrefix(s.authorization, "Bearer ")
@@ -383,6 +384,45 @@ func TestRecorderPostsInBatches(t *testing.T) {
 	}
 	if len(phases) == 0 {
 		t.Fatal("the evaluation reported no progress")
+	}
+
+	// Snapshot, wipe, restore; replay into a new policy with the same
+	// settings, which learns the same table from the same episodes.
+	snap, err := c.CreateSnapshot(ctx, ps.name, "after-95")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := c.ImportRows(ctx, ps.name, nil, nil); err != nil {
+		t.Fatal(err)
+	}
+	if restored, err := c.RestoreSnapshot(ctx, ps.name, snap.Name); err != nil || restored.Pairs != snap.Pairs || restored.Source != snap.Name {
+		t.Fatalf("restore %+v: %+v, %v", snap, restored, err)
+	}
+	var replayProgress []client.Progress
+	replay, err := c.RunReplay(ctx, ps.name, client.ReplayRequest{Target: "onboarding-tips-replayed"},
+		func(p client.Progress) { replayProgress = append(replayProgress, p) })
+	if err != nil {
+		t.Fatal(err)
+	}
+	if replay.EpisodesReplayed != 95 || len(replayProgress) == 0 {
+		t.Fatalf("replay %+v, progress %v", replay, replayProgress)
+	}
+	live, err := c.Table(ctx, ps.name, client.LiveTable)
+	if err != nil {
+		t.Fatal(err)
+	}
+	replayed, err := c.Table(ctx, "onboarding-tips-replayed", "")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if fmt.Sprint(live.Rows) != fmt.Sprint(replayed.Rows) {
+		t.Fatalf("replayed table differs:\n%v\n%v", live.Rows, replayed.Rows)
+	}
+	if err := c.DeleteSnapshot(ctx, ps.name, snap.Name); err != nil {
+		t.Fatal(err)
+	}
+	if list, err := c.Snapshots(ctx, ps.name); err != nil || len(list) != 0 {
+		t.Fatalf("snapshots after the delete: %v, %v", list, err)
 	}
 
 	// A step without a choice, and a reward before any step, are refused
