@@ -226,8 +226,42 @@ func TestClientRetriesWithoutCountingTwice(t *testing.T) {
 		t.Fatalf("fresh batch: %+v", res)
 	}
 
-	// An outage: batches go on being posted while PostgreSQL stops.
+	// An outage: batches go on being posted while PostgreSQL stops, and a
+	// recorder goes on recording. Its client gives up after 2 attempts, so
+	// the recorder's own persistence is what carries it through.
+	var seenByRecorder retries
+	recClient := newTestClient(t, s, token, nil, client.Options{Retry: client.RetryPolicy{MaxAttempts: 2,
+		BaseDelay: 20 * time.Millisecond, MaxDelay: 200 * time.Millisecond, OnRetry: seenByRecorder.add}})
+	var recorded sync.Map
+	rec := recClient.NewRecorder(ps.name, client.RecorderOptions{BatchSize: 4, QueueSize: 8, FlushInterval: 50 * time.Millisecond,
+		OnPosted: func(batch []client.Episode, _ client.IngestResult) {
+			for _, ep := range fromClientEpisodes(batch) {
+				recorded.Store(ep.ID, ep)
+			}
+		}})
 	stop := make(chan struct{})
+	ended := make(chan error, 1)
+	go func() {
+		r := rand.New(rand.NewPCG(18, 19))
+		for i := 0; ; i++ {
+			select {
+			case <-stop:
+				ended <- nil
+				return
+			default:
+			}
+			ep := randomBatch(r, fmt.Sprintf("recorded-%d", i), 1, faultActions)[0]
+			recording := rec.Start(ep.ID)
+			for _, st := range ep.Steps {
+				recording.Step(client.Choice{State: st.State, Action: st.Action, Probability: *st.Probability})
+				recording.Reward(st.Reward)
+			}
+			if err := recording.End(ctx); err != nil {
+				ended <- err
+				return
+			}
+		}
+	}()
 	done := make(chan struct{})
 	var mu sync.Mutex
 	var posted [][]episodeJSON
@@ -262,7 +296,9 @@ func TestClientRetriesWithoutCountingTwice(t *testing.T) {
 	if err := srv.Halt(); err != nil {
 		t.Fatal(err)
 	}
-	waitFor(t, 20*time.Second, "the client to retry after a 503", func() bool { return len(seen.withStatus(http.StatusServiceUnavailable)) > 0 })
+	waitFor(t, 20*time.Second, "the clients to retry after a 503", func() bool {
+		return len(seen.withStatus(http.StatusServiceUnavailable)) > 0 && len(seenByRecorder.withStatus(http.StatusServiceUnavailable)) > 2
+	})
 	if err := srv.Resume(ctx); err != nil {
 		t.Fatal(err)
 	}
@@ -275,6 +311,19 @@ func TestClientRetriesWithoutCountingTwice(t *testing.T) {
 	if postErr != nil {
 		t.Fatalf("a post failed through the outage: %v", postErr)
 	}
+	if err := <-ended; err != nil {
+		t.Fatalf("recording through the outage: %v", err)
+	}
+	if err := rec.Close(ctx); err != nil {
+		t.Fatal(err)
+	}
+	if st := rec.Stats(); st.Dropped != 0 || st.Accepted+st.Duplicates != st.Ended {
+		t.Fatalf("recorder through the outage: %+v", st)
+	}
+	recorded.Range(func(id, ep any) bool {
+		accepted[id.(string)] = ep.(episodeJSON)
+		return true
+	})
 	for _, ev := range seen.withStatus(http.StatusServiceUnavailable) {
 		// The service asks for 1 s (api/errors.go); the client never waits less.
 		if ev.RetryAfter < time.Second || ev.Wait < ev.RetryAfter {
@@ -292,8 +341,8 @@ func TestClientRetriesWithoutCountingTwice(t *testing.T) {
 	if duplicates < 67 {
 		t.Fatalf("the service counted %v duplicates, want at least the 67 of the lost answers", duplicates)
 	}
-	t.Logf("%d episodes accepted, each learned once; %d retries after a 503; %v duplicates counted", len(accepted),
-		len(seen.withStatus(http.StatusServiceUnavailable)), duplicates)
+	t.Logf("%d episodes accepted, each learned once (%d through the recorder); %d retries after a 503, %d by the recorder's client; %v duplicates counted",
+		len(accepted), rec.Stats().Ended, len(seen.withStatus(http.StatusServiceUnavailable)), len(seenByRecorder.withStatus(http.StatusServiceUnavailable)), duplicates)
 }
 
 // The recorder copies each step from the choice the service made (state,

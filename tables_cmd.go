@@ -4,6 +4,7 @@ import (
 	"context"
 	"fmt"
 	"io"
+	"net/http"
 	"os"
 	"path/filepath"
 	"strings"
@@ -52,9 +53,10 @@ func tableFormat(cmd *cli.Command, file string) (client.Format, error) {
 	return client.Format(f), nil
 }
 
-// tableClient is the API client of the table commands.
+// tableClient is the API client of the table commands. A large table may
+// take long: --timeout bounds the whole command, not each attempt.
 func tableClient(cmd *cli.Command) (*client.Client, error) {
-	return client.New(cmd.String(flagAPIURL), client.Options{Token: cmd.String(flagToken)})
+	return client.New(cmd.String(flagAPIURL), client.Options{Token: cmd.String(flagToken), HTTPClient: &http.Client{}})
 }
 
 // exportCommand writes a policy's live table or a snapshot to a file.

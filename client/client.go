@@ -32,7 +32,8 @@ type Options struct {
 	// (a service started by `qtally dev` needs none).
 	Token string
 	// HTTPClient sends the requests; nil uses one with a copy of
-	// http.DefaultTransport. Its Timeout, when set, bounds each attempt.
+	// http.DefaultTransport and a Timeout of 30 s. Its Timeout bounds each
+	// attempt; the context of a call bounds the call with its retries.
 	HTTPClient *http.Client
 	// Retry says how often and how long to retry.
 	Retry RetryPolicy
@@ -63,7 +64,7 @@ func New(baseURL string, opts Options) (*Client, error) {
 	}
 	c := &Client{base: strings.TrimRight(baseURL, "/"), opts: opts, http: opts.HTTPClient}
 	if c.http == nil {
-		c.http = &http.Client{Transport: http.DefaultTransport.(*http.Transport).Clone()}
+		c.http = &http.Client{Transport: http.DefaultTransport.(*http.Transport).Clone(), Timeout: 30 * time.Second}
 	}
 	if c.opts.StreamThreshold <= 0 {
 		c.opts.StreamThreshold = 1000

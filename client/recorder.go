@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"net/http"
 	"sync"
 	"time"
 )
@@ -27,9 +28,11 @@ type RecorderOptions struct {
 	// service answered, with the batch and the answer.
 	OnPosted func([]Episode, IngestResult)
 	// OnError, when set, is called from the sender with each batch that
-	// could not be posted after the client's retries, and why. The batch
-	// is dropped (an invalid batch would never be taken); Err keeps the
-	// first such error.
+	// was dropped, and why: one the service refused (an invalid batch would
+	// never be taken), or one still unposted when Close's context ended.
+	// Err keeps the first such error. A batch the service cannot take for
+	// now (429, 503, no connection) is not dropped: the sender keeps trying,
+	// and meanwhile the queue fills and End waits or refuses.
 	OnError func([]Episode, error)
 }
 
@@ -54,6 +57,9 @@ type Recorder struct {
 	opts   RecorderOptions
 	queue  chan queued
 	done   chan struct{}
+	// ctx ends the sender's posts when Close's context ends first.
+	ctx    context.Context
+	cancel context.CancelFunc
 
 	mu     sync.RWMutex // held for reading while End sends, for writing to close
 	closed bool
@@ -101,6 +107,7 @@ func (c *Client) NewRecorder(policy string, opts RecorderOptions) *Recorder {
 		opts.QueueSize = 10 * opts.BatchSize
 	}
 	r := &Recorder{c: c, policy: policy, opts: opts, queue: make(chan queued, opts.QueueSize), done: make(chan struct{})}
+	r.ctx, r.cancel = context.WithCancel(context.Background())
 	go r.send()
 	return r
 }
@@ -202,37 +209,43 @@ func (r *Recorder) Flush(ctx context.Context) error {
 	if r.closed {
 		return ErrClosed
 	}
-	return r.mark(ctx, false)
+	return r.mark(ctx)
 }
 
 // Close posts what is queued, stops the sender and returns the first
-// error of a dropped batch, if any. If ctx ends first, the sender still
-// finishes the queue in the background.
+// error of a dropped batch, if any. If ctx ends first, what is still
+// unposted is dropped (and counted) and Close returns ctx's error.
 func (r *Recorder) Close(ctx context.Context) error {
 	r.mu.Lock()
 	if r.closed {
 		r.mu.Unlock()
+		<-r.done
 		return r.Err()
 	}
 	r.closed = true
 	r.mu.Unlock()
-	if err := r.mark(ctx, true); err != nil {
-		return err
-	}
+	stopped := make(chan struct{})
+	go func() {
+		// No End sends any more: the stop request is the queue's last item.
+		r.queue <- queued{flushed: stopped, stop: true}
+	}()
 	select {
 	case <-r.done:
+		r.cancel()
 		return r.Err()
 	case <-ctx.Done():
+		r.cancel()
+		<-r.done
 		return ctx.Err()
 	}
 }
 
 // mark queues a flush request behind the episodes already queued and
 // waits for the sender to reach it.
-func (r *Recorder) mark(ctx context.Context, stop bool) error {
+func (r *Recorder) mark(ctx context.Context) error {
 	flushed := make(chan struct{})
 	select {
-	case r.queue <- queued{flushed: flushed, stop: stop}:
+	case r.queue <- queued{flushed: flushed}:
 	case <-ctx.Done():
 		return ctx.Err()
 	}
@@ -266,6 +279,16 @@ func (r *Recorder) count(f func(*RecorderStats)) {
 	f(&r.stats)
 }
 
+// unavailable says err is the service not taking requests for now (429,
+// 503, or no answer), not a refusal of the batch.
+func unavailable(err error) bool {
+	var e *Error
+	if errors.As(err, &e) {
+		return e.StatusCode == http.StatusTooManyRequests || e.StatusCode == http.StatusServiceUnavailable
+	}
+	return !errors.Is(err, errBody)
+}
+
 // send is the background sender: it fills a batch from the queue and
 // posts it when full, when the oldest episode in it has waited
 // FlushInterval, or when asked to flush. While a batch is being posted it
@@ -280,9 +303,15 @@ func (r *Recorder) send() {
 		if len(batch) == 0 {
 			return
 		}
-		// The recorder's posts are not tied to any caller's context: an
-		// episode once ended is posted until the client gives up.
-		res, err := r.c.PostEpisodes(context.Background(), r.policy, batch)
+		res, err := r.c.PostEpisodes(r.ctx, r.policy, batch)
+		for err != nil && r.ctx.Err() == nil && unavailable(err) {
+			// The client's retries ran out while the service cannot take
+			// the batch for now: keep it, and try again after a pause.
+			if sleep(r.ctx, r.c.opts.Retry.MaxDelay) != nil {
+				break
+			}
+			res, err = r.c.PostEpisodes(r.ctx, r.policy, batch)
+		}
 		if err != nil {
 			r.count(func(s *RecorderStats) {
 				s.Dropped += int64(len(batch))
