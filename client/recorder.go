@@ -41,16 +41,16 @@ type RecorderOptions struct {
 // not reachable) and the episode was not kept.
 var ErrQueueFull = errors.New("qtally recorder: queue of finished episodes is full")
 
-// ErrClosed is End's answer after Close.
+// ErrClosed is End's answer once Close has begun: an End waiting for room
+// when Close is called gets it too, and its episode is not kept.
 var ErrClosed = errors.New("qtally recorder: closed")
 
 // Recorder collects episodes step by step as an application runs them and
 // posts the finished ones in batches from a background goroutine. Each
 // step is recorded from the Choice that chose it, so the logged state,
-// action, probability and allowed set are exactly the service's. Failed
-// posts are retried by the client with the same episode ids, so no episode
-// is stored twice. Safe for concurrent use; each Recording belongs to one
-// goroutine.
+// action, probability and allowed set are exactly the service's. Posts
+// are repeated with the same episode ids, so no episode is stored twice.
+// Safe for concurrent use; each Recording belongs to one goroutine.
 type Recorder struct {
 	c      *Client
 	policy string
@@ -63,6 +63,10 @@ type Recorder struct {
 
 	mu     sync.RWMutex // held for reading while End sends, for writing to close
 	closed bool
+	// closing ends the waits of End and Flush for room in the queue once
+	// Close has begun, so that Close gets mu at once.
+	closing   chan struct{}
+	closeOnce sync.Once
 
 	statsMu sync.Mutex
 	stats   RecorderStats
@@ -106,7 +110,8 @@ func (c *Client) NewRecorder(policy string, opts RecorderOptions) *Recorder {
 	if opts.QueueSize <= 0 {
 		opts.QueueSize = 10 * opts.BatchSize
 	}
-	r := &Recorder{c: c, policy: policy, opts: opts, queue: make(chan queued, opts.QueueSize), done: make(chan struct{})}
+	r := &Recorder{c: c, policy: policy, opts: opts, queue: make(chan queued, opts.QueueSize),
+		done: make(chan struct{}), closing: make(chan struct{})}
 	r.ctx, r.cancel = context.WithCancel(context.Background())
 	go r.send()
 	return r
@@ -195,6 +200,8 @@ func (rec *Recording) End(ctx context.Context) error {
 		case r.queue <- item:
 		case <-ctx.Done():
 			return fmt.Errorf("qtally recorder: episode %q not kept: %w", rec.ep.ID, ctx.Err())
+		case <-r.closing:
+			return ErrClosed
 		}
 	}
 	r.count(func(s *RecorderStats) { s.Ended++ })
@@ -216,6 +223,7 @@ func (r *Recorder) Flush(ctx context.Context) error {
 // error of a dropped batch, if any. If ctx ends first, what is still
 // unposted is dropped (and counted) and Close returns ctx's error.
 func (r *Recorder) Close(ctx context.Context) error {
+	r.closeOnce.Do(func() { close(r.closing) })
 	r.mu.Lock()
 	if r.closed {
 		r.mu.Unlock()
@@ -248,6 +256,8 @@ func (r *Recorder) mark(ctx context.Context) error {
 	case r.queue <- queued{flushed: flushed}:
 	case <-ctx.Done():
 		return ctx.Err()
+	case <-r.closing:
+		return ErrClosed
 	}
 	select {
 	case <-flushed:
