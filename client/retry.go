@@ -56,7 +56,7 @@ func (p RetryPolicy) withDefaults() RetryPolicy {
 
 // wait is the pause after failed attempt n: the exponential backoff with
 // "equal jitter" (half fixed, half random, so that clients that failed
-// together spread out but none retries at once), and never less than the
+// together spread out but none retries at once; common practice), and never less than the
 // service's Retry-After, which gets a random tenth of a base delay on top
 // for the same reason.
 func (p RetryPolicy) wait(attempt int, retryAfter time.Duration) time.Duration {
