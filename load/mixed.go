@@ -3,11 +3,12 @@ package load
 import (
 	"context"
 	"fmt"
-	"net/http"
 	"slices"
 	"sync"
 	"sync/atomic"
 	"time"
+
+	"github.com/qtally/qtally/client"
 )
 
 // Observer follows a policy's training. The status route can do it (see
@@ -105,7 +106,7 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	runCtx, cancel := context.WithTimeout(ctx, cfg.Duration)
 	defer cancel()
 	var chooses, episodes, errs, skipped atomic.Int64
-	finished := make(chan episode, 4*cfg.EpisodesPerPost)
+	finished := make(chan client.Episode, 4*cfg.EpisodesPerPost)
 	var wg sync.WaitGroup
 	wg.Add(3)
 	if opt.ProbeArrival {
@@ -154,7 +155,7 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 // simulate starts episodes at cfg.Rate per second on cfg.Workers clients.
 // Starts are counted against the clock, so a late tick catches up instead
 // of lowering the rate.
-func simulate(ctx context.Context, c *client, cfg Config, chooseEvery int, finished chan<- episode, chooses, errs, skipped *atomic.Int64) {
+func simulate(ctx context.Context, c *client.Client, cfg Config, chooseEvery int, finished chan<- client.Episode, chooses, errs, skipped *atomic.Int64) {
 	starts := make(chan struct{}, cfg.Workers)
 	var wg sync.WaitGroup
 	run := time.Now().UnixNano()
@@ -170,12 +171,8 @@ func simulate(ctx context.Context, c *client, cfg Config, chooseEvery int, finis
 					if i%chooseEvery != 0 {
 						continue
 					}
-					var r struct {
-						Action      string  `json:"action"`
-						Probability float64 `json:"probability"`
-					}
-					if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/choose",
-						map[string]string{"state": ep.Steps[i].State, "mode": "explore"}, &r); err != nil {
+					r, err := c.Choose(ctx, cfg.Policy, client.ChooseRequest{State: ep.Steps[i].State, Mode: client.Explore})
+					if err != nil {
 						if ctx.Err() != nil {
 							return // the run is over: this episode is not posted
 						}
@@ -218,8 +215,8 @@ loop:
 
 // postFinished batches finished episodes by cfg.EpisodesPerPost (or what
 // finished in 200 ms) and posts the batches from up to posters clients.
-func postFinished(ctx context.Context, c *client, cfg Config, posters int, finished <-chan episode, posted, errs *atomic.Int64) {
-	batches := make(chan []episode, posters)
+func postFinished(ctx context.Context, c *client.Client, cfg Config, posters int, finished <-chan client.Episode, posted, errs *atomic.Int64) {
+	batches := make(chan []client.Episode, posters)
 	var wg sync.WaitGroup
 	for range posters {
 		wg.Add(1)
@@ -227,8 +224,7 @@ func postFinished(ctx context.Context, c *client, cfg Config, posters int, finis
 			defer wg.Done()
 			for batch := range batches {
 				// Episodes finished before the end are posted even after it.
-				if _, err := c.do(context.WithoutCancel(ctx), http.MethodPost, "/v1/policies/"+cfg.Policy+"/episodes",
-					map[string]any{"episodes": batch}, nil); err != nil {
+				if _, err := c.PostEpisodes(context.WithoutCancel(ctx), cfg.Policy, batch); err != nil {
 					errs.Add(1)
 				} else {
 					posted.Add(int64(len(batch)))
@@ -238,11 +234,11 @@ func postFinished(ctx context.Context, c *client, cfg Config, posters int, finis
 	}
 	defer wg.Wait()
 	defer close(batches)
-	batch := make([]episode, 0, cfg.EpisodesPerPost)
+	batch := make([]client.Episode, 0, cfg.EpisodesPerPost)
 	flush := func() {
 		if len(batch) > 0 {
 			batches <- batch
-			batch = make([]episode, 0, cfg.EpisodesPerPost)
+			batch = make([]client.Episode, 0, cfg.EpisodesPerPost)
 		}
 	}
 	tick := time.NewTicker(200 * time.Millisecond)
@@ -289,7 +285,7 @@ type commit struct {
 // reports, how long until choose answers from that revision or a later one.
 // While it waits, later commits queue; one already visible when its turn
 // comes counts from its own commit, so every figure is an upper bound.
-func probeVisibility(ctx context.Context, c *client, obs Observer, policy string) []time.Duration {
+func probeVisibility(ctx context.Context, c *client.Client, obs Observer, policy string) []time.Duration {
 	commits := make(chan commit, 1024)
 	go func() {
 		_ = obs.WatchCommits(ctx, policy, func(revision int64, at time.Time) {
@@ -308,11 +304,7 @@ func probeVisibility(ctx context.Context, c *client, obs Observer, policy string
 		case cm = <-commits:
 		}
 		for ctx.Err() == nil {
-			var r struct {
-				Revision int64 `json:"revision"`
-			}
-			if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+policy+"/choose",
-				map[string]string{"state": "visibility-probe", "mode": "explore"}, &r); err == nil && r.Revision >= cm.revision {
+			if r, err := c.Choose(ctx, policy, client.ChooseRequest{State: "visibility-probe", Mode: client.Explore}); err == nil && r.Revision >= cm.revision {
 				out = append(out, time.Since(cm.at))
 				break
 			}
@@ -330,12 +322,12 @@ const arrivalProbePause = 100 * time.Millisecond
 // each measures the time from the post's 202 to the first choose (polled
 // every 5 ms) that knows the state: the episode waited behind whatever
 // backlog there was, was trained, and reached the API's copy.
-func probeArrival(ctx context.Context, c *client, cfg Config, errs *atomic.Int64) (served []time.Duration, unserved int64) {
+func probeArrival(ctx context.Context, c *client.Client, cfg Config, errs *atomic.Int64) (served []time.Duration, unserved int64) {
 	run := time.Now().UnixNano()
 	for n := 0; ctx.Err() == nil; n++ {
 		state := fmt.Sprintf("arrival-probe-%d-%d", run, n)
-		ep := episode{ID: state, Steps: []step{{State: state, Action: cfg.Actions[0], Reward: 1, Probability: 1}}}
-		if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/episodes", map[string]any{"episodes": []episode{ep}}, nil); err != nil {
+		ep := client.Episode{ID: state, Steps: []client.Step{{State: state, Action: cfg.Actions[0], Reward: 1, Probability: 1}}}
+		if _, err := c.PostEpisodes(ctx, cfg.Policy, []client.Episode{ep}); err != nil {
 			if ctx.Err() == nil {
 				errs.Add(1)
 			}
@@ -344,11 +336,8 @@ func probeArrival(ctx context.Context, c *client, cfg Config, errs *atomic.Int64
 		accepted := time.Now()
 		unserved++
 		for ctx.Err() == nil {
-			var r struct {
-				KnownState bool `json:"known_state"`
-			}
-			if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/choose",
-				map[string]string{"state": state, "mode": "greedy"}, &r); err == nil && r.KnownState {
+			// Explore: greedy has no answer in a state not trained yet.
+			if r, err := c.Choose(ctx, cfg.Policy, client.ChooseRequest{State: state, Mode: client.Explore}); err == nil && r.KnownState {
 				served = append(served, time.Since(accepted))
 				unserved--
 				break
@@ -366,17 +355,17 @@ func probeArrival(ctx context.Context, c *client, cfg Config, errs *atomic.Int64
 // statusObserver follows training through the status route: no database
 // access needed, but each call counts the policy's episodes, and commits
 // are seen only at the next 20 ms poll (not counted in the figure).
-type statusObserver struct{ c *client }
+type statusObserver struct{ c *client.Client }
 
 func (o statusObserver) Backlog(ctx context.Context, policy string) (int64, error) {
-	st, err := o.c.status(ctx, policy)
+	st, err := o.c.Policy(ctx, policy)
 	return st.Backlog, err
 }
 
 func (o statusObserver) WatchCommits(ctx context.Context, policy string, fn func(int64, time.Time)) error {
 	seen := int64(-1)
 	for ctx.Err() == nil {
-		if st, err := o.c.status(ctx, policy); err == nil && st.Revision > seen {
+		if st, err := o.c.Policy(ctx, policy); err == nil && st.Revision > seen {
 			if seen >= 0 {
 				fn(st.Revision, time.Now())
 			}
