@@ -3,6 +3,7 @@ package main
 import (
 	"bytes"
 	"context"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"io"
@@ -509,7 +510,7 @@ func TestClientHonoursRetryAfterAndBoundsTheRecorder(t *testing.T) {
 	c := newTestClient(t, s, slow, nil, client.Options{Retry: client.RetryPolicy{OnRetry: seen.add}})
 
 	for range 3 {
-		if _, err := c.Choose(ctx, ps.name, client.ChooseRequest{State: "day 1/bucket"}); err != nil {
+		if _, err := c.Choose(ctx, ps.name, client.ChooseRequest{State: "day 1/bucket", Mode: client.Explore}); err != nil {
 			t.Fatal(err)
 		}
 	}
@@ -577,7 +578,7 @@ func TestClientHonoursRetryAfterAndBoundsTheRecorder(t *testing.T) {
 	f.Close()
 	f = must(os.Open(file))
 	defer f.Close()
-	if _, err := c.Choose(ctx, ps.name, client.ChooseRequest{State: "day 1/bucket"}); err != nil {
+	if _, err := c.Choose(ctx, ps.name, client.ChooseRequest{State: "day 1/bucket", Mode: client.Explore}); err != nil {
 		t.Fatal(err)
 	}
 	before := len(seen.withStatus(http.StatusTooManyRequests))
@@ -631,8 +632,9 @@ func TestClientErrorCarriesTheProblem(t *testing.T) {
 }
 
 // The Go program in the README runs against a service as it stands, and
-// run twice it stores nothing twice: its episode ids make the second run's
-// posts duplicates.
+// runs again on the policy the first run left: its settings are replaced,
+// and the second run's episodes (ids of their own) are stored beside the
+// first's.
 func TestReadmeGoExampleRuns(t *testing.T) {
 	readme := string(must(os.ReadFile("README.md")))
 	_, section, ok := strings.Cut(readme, "## From Go")
@@ -652,7 +654,7 @@ func TestReadmeGoExampleRuns(t *testing.T) {
 	s := startService(t, pgtest.NewDatabase(t))
 	for i, want := range []string{
 		"posted 200 episodes in 4 requests, 0 of them duplicates\nonboarding: 200 episodes trained",
-		"posted 200 episodes in 4 requests, 200 of them duplicates\nonboarding: 200 episodes trained",
+		"posted 200 episodes in 4 requests, 0 of them duplicates\nonboarding: 400 episodes trained",
 	} {
 		cmd := exec.Command(bin)
 		cmd.Env = append(os.Environ(), "QTALLY_URL="+s.URL, "QTALLY_TOKEN="+strings.TrimPrefix(s.authorization, "Bearer "))
@@ -660,5 +662,119 @@ func TestReadmeGoExampleRuns(t *testing.T) {
 		if err != nil || !strings.Contains(string(out), want) {
 			t.Fatalf("run %d of the README's program: %v\n%s\nwant %q", i+1, err, out, want)
 		}
+	}
+}
+
+// Settings through the client: a PUT on an existing policy needs the ETag
+// Policy read (a clear *client.Error without it, and with a stale one, and
+// neither is retried); PatchPolicy changes only what it names; the new
+// settings (return target, greedy rules, state shape, quotas) go and come
+// back as sent; greedy's refusal and fallback, the settings history,
+// erasing an episode and deleting the policy.
+func TestClientSettingsNeedTheCurrentETag(t *testing.T) {
+	s := startService(t, pgtest.NewDatabase(t))
+	var seen retries
+	c := newTestClient(t, s, strings.TrimPrefix(s.authorization, "Bearer "), nil, client.Options{Retry: client.RetryPolicy{OnRetry: seen.add}})
+	ctx := context.Background()
+	const name = "renewals"
+	settings := client.DefaultSettings("text_reminder", "wait", "write_off")
+	settings.Alpha, settings.Epsilon = 0.2, 0.3
+	settings.MaxStates, settings.GreedyMinVisits, settings.RequireProbability = 500, 2, true
+	settings.ReturnTarget = &client.ReturnTarget{Value: 12.5, Label: "exact optimum"}
+	settings.StateShape = &client.StateShape{Fields: []client.StateField{{Name: "stage", Values: []string{"new", "late"}}}}
+	created, isNew, err := c.PutPolicy(ctx, name, settings, "")
+	if err != nil || !isNew || created.ETag == "" {
+		t.Fatalf("create: created %v, ETag %q, %v", isNew, created.ETag, err)
+	}
+	st, err := c.Policy(ctx, name)
+	if err != nil || st.ETag != created.ETag {
+		t.Fatalf("read: ETag %q, create's %q, %v", st.ETag, created.ETag, err)
+	}
+	if st.MaxStates != 500 || st.GreedyMinVisits != 2 || !st.RequireProbability || st.GreedyUntried ||
+		st.ReturnTarget == nil || *st.ReturnTarget != *settings.ReturnTarget ||
+		st.StateShape == nil || len(st.StateShape.Fields) != 1 || st.StateShape.Fields[0].Name != "stage" {
+		t.Fatalf("settings read back: %+v", st.Settings)
+	}
+
+	// Replacing without If-Match, or with a stale one, is refused and
+	// changes nothing.
+	replace := settings
+	replace.Alpha, replace.GreedyFallback = 0.05, "wait"
+	_, _, err = c.PutPolicy(ctx, name, replace, "")
+	var apiErr *client.Error
+	if !errors.As(err, &apiErr) || apiErr.StatusCode != http.StatusPreconditionRequired ||
+		client.ProblemOf(err) != client.ProblemPreconditionRequired || !strings.Contains(err.Error(), "If-Match") {
+		t.Fatalf("PUT without If-Match on an existing policy: %v", err)
+	}
+	_, _, err = c.PutPolicy(ctx, name, replace, `"stale"`)
+	if client.StatusOf(err) != http.StatusPreconditionFailed || client.ProblemOf(err) != client.ProblemPreconditionFailed {
+		t.Fatalf("PUT with a stale If-Match: %v", err)
+	}
+	if now, err := c.Policy(ctx, name); err != nil || now.Alpha != 0.2 || now.ETag != created.ETag {
+		t.Fatalf("after the refusals: alpha %v, ETag %q, %v", now.Alpha, now.ETag, err)
+	}
+
+	// Greedy has no answer where nothing was tried, until a fallback is set.
+	_, err = c.Choose(ctx, name, client.ChooseRequest{State: "stage=new", Mode: client.Greedy})
+	if client.StatusOf(err) != http.StatusConflict || client.ProblemOf(err) != client.ProblemNoGreedyAnswer {
+		t.Fatalf("greedy in an untried state: %v", err)
+	}
+
+	// With the ETag Policy read, the PUT replaces every setting.
+	replaced, isNew, err := c.PutPolicy(ctx, name, replace, st.ETag)
+	if err != nil || isNew || replaced.ETag == "" || replaced.ETag == st.ETag || replaced.Alpha != 0.05 || replaced.GreedyFallback != "wait" {
+		t.Fatalf("PUT with the current ETag: created %v, %+v, %v", isNew, replaced, err)
+	}
+	// The API's copy takes the new settings on notification.
+	var ch client.Choice
+	waitFor(t, 10*time.Second, "the fallback to reach choose", func() bool {
+		ch, err = c.Choose(ctx, name, client.ChooseRequest{State: "stage=new", Mode: client.Greedy})
+		return client.ProblemOf(err) != client.ProblemNoGreedyAnswer
+	})
+	if err != nil || ch.Action != "wait" || !ch.Fallback || ch.Visits != 0 {
+		t.Fatalf("greedy with a fallback: %+v, %v", ch, err)
+	}
+
+	// A patch changes what it names; a stale If-Match is refused; null
+	// gives a setting its default again.
+	patched, err := c.PatchPolicy(ctx, name, map[string]any{"epsilon": 0.05}, replaced.ETag)
+	if err != nil || patched.Epsilon != 0.05 || patched.Alpha != 0.05 || patched.ETag == replaced.ETag {
+		t.Fatalf("patch: %+v, %v", patched, err)
+	}
+	if _, err := c.PatchPolicy(ctx, name, map[string]any{"epsilon": 0.5}, replaced.ETag); client.ProblemOf(err) != client.ProblemPreconditionFailed {
+		t.Fatalf("patch with a stale If-Match: %v", err)
+	}
+	if p, err := c.PatchPolicy(ctx, name, json.RawMessage(`{"greedy_fallback":null}`), ""); err != nil || p.GreedyFallback != "" || p.Epsilon != 0.05 {
+		t.Fatalf("patch to the default: %+v, %v", p, err)
+	}
+	if n := len(seen.list()); n != 0 {
+		t.Fatalf("%d retries of refusals", n)
+	}
+
+	h, err := c.SettingsHistory(ctx, name, "", 0)
+	var kinds []string
+	for _, change := range h.Changes {
+		kinds = append(kinds, change.Kind)
+	}
+	if err != nil || strings.Join(kinds, ",") != "patch,patch,replace,create" {
+		t.Fatalf("settings history: %v, %v", kinds, err)
+	}
+
+	// An erased episode's id can be posted again; a deleted policy is gone.
+	ep := client.Episode{ID: "customer-1", Steps: []client.Step{{State: "stage=late", Action: "wait", Reward: 1, Probability: 0.5}}}
+	if res, err := c.PostEpisodes(ctx, name, []client.Episode{ep}); err != nil || res.Accepted != 1 {
+		t.Fatalf("post: %+v, %v", res, err)
+	}
+	if err := c.EraseEpisode(ctx, name, ep.ID); err != nil {
+		t.Fatalf("erase: %v", err)
+	}
+	if res, err := c.PostEpisodes(ctx, name, []client.Episode{ep}); err != nil || res.Accepted != 1 || res.Duplicates != 0 {
+		t.Fatalf("post after the erasure: %+v, %v", res, err)
+	}
+	if err := c.DeletePolicy(ctx, name); err != nil {
+		t.Fatalf("delete: %v", err)
+	}
+	if _, err := c.Policy(ctx, name); client.ProblemOf(err) != client.ProblemNotFound {
+		t.Fatalf("policy after the deletion: %v", err)
 	}
 }

@@ -1,6 +1,7 @@
 package main
 
 import (
+	"cmp"
 	"encoding/json"
 	"fmt"
 	"net/http"
@@ -29,6 +30,11 @@ type routeCase struct {
 	want int
 	// prepare runs before each request that may go through.
 	prepare func()
+	// header is sent with every request.
+	header map[string]string
+	// policy is the path's policy of the requests that may go through, when
+	// not alpha (a deletion must not take alpha away from the other cases).
+	policy string
 }
 
 func jsonBody(make func() any) func() (string, []byte) {
@@ -134,7 +140,14 @@ func TestEveryRouteEnforcesAccess(t *testing.T) {
 		"GET /v1/policies":          {want: 200},
 		"GET /v1/audit":             {want: 200},
 		"GET /v1/policies/{policy}": {want: 200},
-		"PUT /v1/policies/{policy}": {body: jsonBody(func() any { return map[string]any{"actions": []string{"a", "b"}} }), want: 200},
+		"PUT /v1/policies/{policy}": {body: jsonBody(func() any { return map[string]any{"actions": []string{"a", "b"}} }), want: 200,
+			header: map[string]string{"If-Match": "*"}},
+		"PATCH /v1/policies/{policy}": {body: func() (string, []byte) { return "application/merge-patch+json", []byte(`{"epsilon":0.2}`) }, want: 200},
+		"DELETE /v1/policies/{policy}": {policy: "doomed", want: 204,
+			prepare: func() { s.call("PUT", "/v1/policies/doomed", map[string]any{"actions": []string{"a", "b"}}, 201) }},
+		"GET /v1/policies/{policy}/settings-history": {want: 200},
+		"DELETE /v1/policies/{policy}/episodes/{episode}": {params: map[string]string{"episode": "erased"}, want: 204,
+			prepare: func() { s.post("alpha", withProbability("erased", "s", "a", 1, 0.5)) }},
 		"POST /v1/policies/{policy}/episodes": {want: 202, body: jsonBody(func() any {
 			return map[string]any{"episodes": []episodeJSON{oneStep(unique("ep"), "s", "a", 1)}}
 		})},
@@ -211,14 +224,19 @@ func checkRouteAccess(t *testing.T, s *service, method, path string, op *openapi
 		return c.body()
 	}
 	send := func(secret, policy string, query url.Values, ctype string, data []byte) reply {
-		return s.as(secret).send(method, concrete(policy, query), ctype, data, true)
+		as := s.as(secret)
+		for k, v := range c.header {
+			as = as.withHeader(k, v)
+		}
+		return as.send(method, concrete(policy, query), ctype, data, true)
 	}
+	target := cmp.Or(c.policy, "alpha")
 	page := method == "GET" && !strings.HasPrefix(path, "/v1/")
 
 	// No token.
 	secured := op.Security == nil || len(*op.Security) > 0
 	ctype, data := body()
-	r := send("", "alpha", c.query, ctype, data)
+	r := send("", target, c.query, ctype, data)
 	switch {
 	case !secured:
 		if r.Status != c.want {
@@ -244,7 +262,7 @@ func checkRouteAccess(t *testing.T, s *service, method, path string, op *openapi
 			c.prepare()
 		}
 		ctype, data := body()
-		r := send(unlimited[sc], "alpha", c.query, ctype, data)
+		r := send(unlimited[sc], target, c.query, ctype, data)
 		if allowed {
 			if r.Status != c.want {
 				t.Fatalf("%s token: %d %s, want %d", sc, r.Status, r.Body, c.want)
