@@ -4,6 +4,7 @@ import (
 	"context"
 	"fmt"
 	"io"
+	"net/http"
 	"os"
 	"path/filepath"
 	"strings"
@@ -11,7 +12,7 @@ import (
 
 	"github.com/urfave/cli/v3"
 
-	"github.com/qtally/qtally/apiclient"
+	"github.com/qtally/qtally/client"
 )
 
 // Flags of the table commands.
@@ -38,7 +39,7 @@ func tableFlags(env flagEnv) []cli.Flag {
 }
 
 // tableFormat picks the format: the flag, else the file's extension.
-func tableFormat(cmd *cli.Command, file string) (apiclient.Format, error) {
+func tableFormat(cmd *cli.Command, file string) (client.Format, error) {
 	f := cmd.String(flagFormat)
 	if f == "" {
 		f = "json"
@@ -49,7 +50,13 @@ func tableFormat(cmd *cli.Command, file string) (apiclient.Format, error) {
 	if f != "json" && f != "csv" {
 		return "", fmt.Errorf("--%s must be json or csv, got %q", flagFormat, f)
 	}
-	return apiclient.Format(f), nil
+	return client.Format(f), nil
+}
+
+// tableClient is the API client of the table commands. A large table may
+// take long: --timeout bounds the whole command, not each attempt.
+func tableClient(cmd *cli.Command) (*client.Client, error) {
+	return client.New(cmd.String(flagAPIURL), client.Options{Token: cmd.String(flagToken), HTTPClient: &http.Client{}})
 }
 
 // exportCommand writes a policy's live table or a snapshot to a file.
@@ -74,8 +81,12 @@ func exportCommand(env flagEnv, stdout io.Writer) *cli.Command {
 				}
 				w = file
 			}
-			client := apiclient.New(cmd.String(flagAPIURL), cmd.String(flagToken), cmd.Duration(flagTimeout))
-			err = client.ExportTable(ctx, cmd.String(flagPolicy), cmd.String(flagSnapshot), format, w)
+			ctx, cancel := context.WithTimeout(ctx, cmd.Duration(flagTimeout))
+			defer cancel()
+			api, err := tableClient(cmd)
+			if err == nil {
+				err = api.ExportTable(ctx, cmd.String(flagPolicy), cmd.String(flagSnapshot), format, w)
+			}
 			if file != nil {
 				if cerr := file.Close(); err == nil {
 					err = cerr
@@ -111,8 +122,13 @@ func importCommand(env flagEnv, stdout io.Writer) *cli.Command {
 				defer file.Close()
 				r = file
 			}
-			client := apiclient.New(cmd.String(flagAPIURL), cmd.String(flagToken), cmd.Duration(flagTimeout))
-			res, err := client.ImportTable(ctx, cmd.String(flagPolicy), format, r)
+			ctx, cancel := context.WithTimeout(ctx, cmd.Duration(flagTimeout))
+			defer cancel()
+			api, err := tableClient(cmd)
+			if err != nil {
+				return err
+			}
+			res, err := api.ImportTable(ctx, cmd.String(flagPolicy), format, r)
 			if err != nil {
 				return err
 			}

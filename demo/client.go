@@ -1,9 +1,7 @@
 package demo
 
 import (
-	"bytes"
 	"context"
-	"encoding/json"
 	"errors"
 	"fmt"
 	"io"
@@ -14,9 +12,12 @@ import (
 	"strconv"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"time"
 
 	"golang.org/x/sync/errgroup"
+
+	"github.com/qtally/qtally/client"
 )
 
 // PolicySettings are the learning settings the demo registers for its
@@ -241,7 +242,10 @@ func Run(ctx context.Context, cfg Config, out io.Writer) (Report, error) {
 	if err := cfg.validate(); err != nil {
 		return Report{}, fmt.Errorf("demo config: %w", err)
 	}
-	c := newClient(cfg)
+	c, err := newDriver(cfg)
+	if err != nil {
+		return Report{}, err
+	}
 	if err := c.putPolicy(ctx); err != nil {
 		return Report{}, err
 	}
@@ -295,124 +299,31 @@ func Run(ctx context.Context, cfg Config, out io.Writer) (Report, error) {
 	return report, nil
 }
 
-// client speaks the service's HTTP API.
-type client struct {
+// driver plays the simulated customers through the qtally client.
+type driver struct {
 	cfg   Config
-	http  *http.Client
-	base  string
+	api   *client.Client
 	runID string
 }
 
-func newClient(cfg Config) *client {
+func newDriver(cfg Config) (*driver, error) {
 	transport := http.DefaultTransport.(*http.Transport).Clone()
 	// Only the given address: no proxy from the environment.
 	transport.Proxy = nil
 	// Keep a connection per worker open instead of redialling.
 	transport.MaxIdleConnsPerHost = cfg.Concurrency + 2
-	return &client{
-		cfg:  cfg,
-		http: &http.Client{Transport: transport, Timeout: 30 * time.Second},
-		base: strings.TrimRight(cfg.BaseURL, "/") + "/v1/policies/" + url.PathEscape(cfg.Policy),
+	api, err := client.New(cfg.BaseURL, client.Options{Token: cfg.Token,
+		HTTPClient: &http.Client{Transport: transport, Timeout: 30 * time.Second}})
+	if err != nil {
+		return nil, err
+	}
+	return &driver{
+		cfg: cfg,
+		api: api,
 		// Episode ids must not collide with an earlier run's on the same
 		// policy, or the service would drop them as duplicates.
 		runID: strconv.FormatInt(time.Now().UnixNano(), 36),
-	}
-}
-
-// ProblemError is an error answer from the service (problem JSON).
-type ProblemError struct {
-	Status int
-	Title  string
-	Detail string
-}
-
-func (e *ProblemError) Error() string {
-	if e.Detail == "" {
-		return fmt.Sprintf("%d %s", e.Status, e.Title)
-	}
-	return fmt.Sprintf("%d %s: %s", e.Status, e.Title, e.Detail)
-}
-
-// decodeProblem reads an error answer, falling back to the status text
-// and the start of the body when it is not problem JSON.
-func decodeProblem(status int, body []byte) *ProblemError {
-	p := &ProblemError{}
-	if err := json.Unmarshal(body, p); err != nil || p.Title == "" {
-		p.Title = http.StatusText(status)
-		p.Detail = strings.TrimSpace(string(body[:min(len(body), 200)]))
-	}
-	p.Status = status
-	return p
-}
-
-const maxAttempts = 5
-
-// do sends one JSON request and decodes a 2xx answer into result. It
-// retries 429 and 503, which the service sends while it cannot take work,
-// after the Retry-After it asks for; every request the demo makes is safe
-// to repeat (episode ids make posts idempotent; a recorded step, a keyed
-// reward and an end are answered the same when repeated).
-func (c *client) do(ctx context.Context, method, path string, body, result any) (int, error) {
-	return c.doWith(ctx, method, path, nil, body, result)
-}
-
-// doWith is do with extra request headers.
-func (c *client) doWith(ctx context.Context, method, path string, header http.Header, body, result any) (int, error) {
-	var payload []byte
-	if body != nil {
-		var err error
-		if payload, err = json.Marshal(body); err != nil {
-			return 0, fmt.Errorf("%s %s: encoding request: %w", method, path, err)
-		}
-	}
-	for attempt := 1; ; attempt++ {
-		req, err := http.NewRequestWithContext(ctx, method, c.base+path, bytes.NewReader(payload))
-		if err != nil {
-			return 0, fmt.Errorf("%s %s: %w", method, path, err)
-		}
-		if body != nil {
-			req.Header.Set("Content-Type", "application/json")
-		}
-		req.Header.Set("Accept", "application/json")
-		for k, v := range header {
-			req.Header[k] = v
-		}
-		if c.cfg.Token != "" {
-			req.Header.Set("Authorization", "Bearer "+c.cfg.Token)
-		}
-		resp, err := c.http.Do(req)
-		if err != nil {
-			return 0, fmt.Errorf("%s %s: %w", method, path, err)
-		}
-		answer, err := io.ReadAll(io.LimitReader(resp.Body, 16<<20))
-		resp.Body.Close()
-		if err != nil {
-			return 0, fmt.Errorf("%s %s: reading answer: %w", method, path, err)
-		}
-		switch {
-		case resp.StatusCode >= 200 && resp.StatusCode < 300:
-			if result != nil {
-				if err := json.Unmarshal(answer, result); err != nil {
-					return 0, fmt.Errorf("%s %s: decoding answer: %w", method, path, err)
-				}
-			}
-			return resp.StatusCode, nil
-		case (resp.StatusCode == http.StatusTooManyRequests || resp.StatusCode == http.StatusServiceUnavailable) && attempt < maxAttempts:
-			if err := sleep(ctx, retryAfter(resp.Header.Get("Retry-After"))); err != nil {
-				return 0, fmt.Errorf("%s %s: %w", method, path, err)
-			}
-		default:
-			return 0, fmt.Errorf("%s %s: %w", method, path, decodeProblem(resp.StatusCode, answer))
-		}
-	}
-}
-
-// retryAfter reads a Retry-After in seconds, one second when absent.
-func retryAfter(header string) time.Duration {
-	if s, err := strconv.Atoi(header); err == nil && s >= 0 {
-		return time.Duration(s) * time.Second
-	}
-	return time.Second
+	}, nil
 }
 
 func sleep(ctx context.Context, d time.Duration) error {
@@ -426,24 +337,21 @@ func sleep(ctx context.Context, d time.Duration) error {
 	}
 }
 
-func (c *client) putPolicy(ctx context.Context) error {
-	// The exact optimum is what the status page's learning curve should
-	// approach.
-	optimum := Optimal(c.cfg.Settings.Gamma).Start()
-	body := struct {
-		Actions []string `json:"actions"`
-		PolicySettings
-		ReturnTarget returnTarget `json:"return_target"`
-	}{ActionNames(), c.cfg.Settings, returnTarget{Value: optimum, Label: "exact optimum"}}
-	_, err := c.do(ctx, http.MethodPut, "", body, nil)
-	var problem *ProblemError
-	if errors.As(err, &problem) && problem.Status == http.StatusPreconditionRequired {
+func (c *driver) putPolicy(ctx context.Context) error {
+	st := c.cfg.Settings
+	settings := client.Settings{Actions: ActionNames(), Gamma: st.Gamma, Alpha: st.Alpha, Epsilon: st.Epsilon,
+		EpsilonMin: st.EpsilonMin, EpsilonDecayVisits: st.EpsilonDecayVisits, Visit: st.Visit, InitialQ: st.InitialQ,
+		// The exact optimum is what the status page's learning curve
+		// should approach.
+		ReturnTarget: &client.ReturnTarget{Value: Optimal(st.Gamma).Start(), Label: "exact optimum"}}
+	_, _, err := c.api.PutPolicy(ctx, c.cfg.Policy, settings, "")
+	if client.ProblemOf(err) == client.ProblemPreconditionRequired {
 		// The policy exists from an earlier run. The demo owns it, so its
-		// settings replace whatever is there, on purpose: If-Match: *.
-		_, err = c.doWith(ctx, http.MethodPut, "", http.Header{"If-Match": {"*"}}, body, nil)
+		// settings replace whatever is there, on purpose.
+		_, _, err = c.api.PutPolicy(ctx, c.cfg.Policy, settings, client.IfMatchAny)
 	}
 	if err != nil {
-		if errors.As(err, &problem) && problem.Status == http.StatusConflict {
+		if client.ProblemOf(err) == client.ProblemConflict {
 			return fmt.Errorf("policy %q already learned with other actions; choose another policy name: %w", c.cfg.Policy, err)
 		}
 		return err
@@ -451,83 +359,66 @@ func (c *client) putPolicy(ctx context.Context) error {
 	return nil
 }
 
-type returnTarget struct {
-	Value float64 `json:"value"`
-	Label string  `json:"label"`
-}
-
-type policyStatus struct {
-	Episodes int64 `json:"episodes"`
-	Backlog  int64 `json:"backlog"`
-}
-
-func (c *client) policyStatus(ctx context.Context) (policyStatus, error) {
-	var st policyStatus
-	_, err := c.do(ctx, http.MethodGet, "", nil, &st)
-	return st, err
-}
-
-type step struct {
-	State       string  `json:"state"`
-	Action      string  `json:"action"`
-	Reward      float64 `json:"reward"`
-	Probability float64 `json:"probability"`
-	// Allowed is the set choose chose from, so that evaluation can redo it.
-	Allowed []string `json:"allowed"`
-}
-
-type episode struct {
-	ID    string `json:"id"`
-	Steps []step `json:"steps"`
-}
-
-type chooseAnswer struct {
-	Action      string   `json:"action"`
-	Probability float64  `json:"probability"`
-	Allowed     []string `json:"allowed"`
+func (c *driver) policyStatus(ctx context.Context) (client.PolicyStatus, error) {
+	return c.api.Policy(ctx, c.cfg.Policy)
 }
 
 // playEpisode runs one customer: the service chooses each day's action,
-// exploring, and the model answers with what the customer did.
-func (c *client) playEpisode(ctx context.Context, n int, actions map[string]Action) (episode, float64, error) {
+// exploring, and the model answers with what the customer did. The
+// recorder logs each step from the choice itself; with KeepEpisodes qtally
+// records each decision instead, the rewards are added as they happen and
+// the episode is ended when the case closes (ended counts it).
+func (c *driver) playEpisode(ctx context.Context, n int, actions map[string]Action, rec *client.Recorder, ended *atomic.Int64) (float64, error) {
 	rng := rand.New(rand.NewPCG(c.cfg.Seed, uint64(n)))
-	ep := episode{ID: fmt.Sprintf("demo-%s-%d", c.runID, n)}
+	id := fmt.Sprintf("demo-%s-%d", c.runID, n)
+	var recording *client.Recording
+	if !c.cfg.KeepEpisodes {
+		recording = rec.Start(id)
+	}
 	var ret, discount float64 = 0, 1
 	s := SampleStart(rng)
-	kept := "/open-episodes/" + ep.ID
-	for {
-		var choice chooseAnswer
-		req := map[string]any{"state": s.String(), "mode": "explore"}
+	for day := 0; ; day++ {
+		req := client.ChooseRequest{State: s.String(), Mode: client.Explore}
+		var choice client.Choice
+		var err error
 		if c.cfg.KeepEpisodes {
-			// Recorded by qtally before it answers; a retry of the same step
-			// gets the same answer.
-			req["episode"], req["step"] = ep.ID, len(ep.Steps)
+			// Recorded by qtally before it answers; a retry of the same
+			// step gets the same answer.
+			choice, err = c.api.ChooseRecorded(ctx, c.cfg.Policy, id, day, req)
+		} else {
+			choice, err = c.api.Choose(ctx, c.cfg.Policy, req)
 		}
-		if _, err := c.do(ctx, http.MethodPost, "/choose", req, &choice); err != nil {
-			return episode{}, 0, err
+		if err != nil {
+			return 0, err
 		}
 		a, ok := actions[choice.Action]
 		if !ok {
-			return episode{}, 0, fmt.Errorf("choose answered unknown action %q", choice.Action)
+			return 0, fmt.Errorf("choose answered unknown action %q", choice.Action)
 		}
 		o := Step(s, a, rng)
-		if c.cfg.KeepEpisodes && o.Reward != 0 {
-			// The key makes a retried addition count once.
-			add := map[string]any{"reward": o.Reward, "key": fmt.Sprintf("day-%d", len(ep.Steps))}
-			if _, err := c.do(ctx, http.MethodPost, kept+"/rewards", add, nil); err != nil {
-				return episode{}, 0, err
+		if c.cfg.KeepEpisodes {
+			if o.Reward != 0 {
+				// The key makes a retried addition count once.
+				opts := client.RewardOptions{Key: fmt.Sprintf("day-%d", day)}
+				if _, err := c.api.AddReward(ctx, c.cfg.Policy, id, o.Reward, opts); err != nil {
+					return 0, err
+				}
 			}
+		} else {
+			recording.Step(choice)
+			recording.Reward(o.Reward)
 		}
-		ep.Steps = append(ep.Steps, step{State: s.String(), Action: choice.Action, Reward: o.Reward, Probability: choice.Probability, Allowed: choice.Allowed})
 		ret += discount * o.Reward
 		discount *= c.cfg.Settings.Gamma
 		if o.Done {
-			if c.cfg.KeepEpisodes {
-				if _, err := c.do(ctx, http.MethodPost, kept+"/end", nil, nil); err != nil {
-					return episode{}, 0, err
-				}
+			if !c.cfg.KeepEpisodes {
+				return ret, recording.End(ctx)
 			}
-			return ep, ret, nil
+			if _, err := c.api.EndEpisode(ctx, c.cfg.Policy, id, nil); err != nil {
+				return 0, err
+			}
+			ended.Add(1)
+			return ret, nil
 		}
 		s = o.Next
 	}
@@ -567,23 +458,31 @@ func (w *window) mean() float64 {
 	return total / float64(n)
 }
 
-type finished struct {
-	episode episode
-	ret     float64
-}
-
 type trafficResult struct {
 	sent, duplicates int
 	window           *window
 }
 
-// sendTraffic starts episodes at the configured rate, plays them on
-// Concurrency workers and posts them in batches, printing progress.
-func (c *client) sendTraffic(ctx context.Context, out io.Writer) (trafficResult, error) {
+// sendTraffic starts episodes at the configured rate and plays them on
+// Concurrency workers; a recorder posts them in batches of BatchSize (or,
+// with KeepEpisodes, each is ended in qtally). It prints progress as the
+// service answers.
+func (c *driver) sendTraffic(ctx context.Context, out io.Writer) (trafficResult, error) {
 	g, ctx := errgroup.WithContext(ctx)
 	jobs := make(chan int)
-	done := make(chan finished, c.cfg.BatchSize)
+	returns := make(chan float64, c.cfg.Concurrency)
 	result := trafficResult{window: newWindow(c.cfg.Window)}
+	rec := c.api.NewRecorder(c.cfg.Policy, client.RecorderOptions{BatchSize: c.cfg.BatchSize})
+	// Episodes qtally keeps are counted as they end; the recorder then
+	// has nothing to post.
+	var ended atomic.Int64
+	stats := func() (sent, duplicates int) {
+		if c.cfg.KeepEpisodes {
+			return int(ended.Load()), 0
+		}
+		st := rec.Stats()
+		return int(st.Accepted + st.Duplicates), int(st.Duplicates)
+	}
 
 	g.Go(func() error {
 		defer close(jobs)
@@ -600,12 +499,12 @@ func (c *client) sendTraffic(ctx context.Context, out io.Writer) (trafficResult,
 		g.Go(func() error {
 			defer workers.Done()
 			for n := range jobs {
-				ep, ret, err := c.playEpisode(ctx, n, actions)
+				ret, err := c.playEpisode(ctx, n, actions, rec, &ended)
 				if err != nil {
 					return err
 				}
 				select {
-				case done <- finished{ep, ret}:
+				case returns <- ret:
 				case <-ctx.Done():
 					return ctx.Err()
 				}
@@ -615,13 +514,14 @@ func (c *client) sendTraffic(ctx context.Context, out io.Writer) (trafficResult,
 	}
 	go func() {
 		workers.Wait()
-		close(done)
+		close(returns)
 	}()
 
 	g.Go(func() error {
 		start := time.Now()
 		printed := -1
 		progress := func() {
+			result.sent, result.duplicates = stats()
 			if result.sent != printed {
 				c.progress(out, start, result)
 				printed = result.sent
@@ -629,48 +529,21 @@ func (c *client) sendTraffic(ctx context.Context, out io.Writer) (trafficResult,
 		}
 		ticker := time.NewTicker(c.cfg.ProgressInterval)
 		defer ticker.Stop()
-		var batch []episode
-		post := func() error {
-			if len(batch) == 0 {
-				return nil
-			}
-			if c.cfg.KeepEpisodes {
-				// qtally has them already: each ended as its case closed.
-				result.sent += len(batch)
-				batch = batch[:0]
-				return nil
-			}
-			var answer struct {
-				Accepted   int `json:"accepted"`
-				Duplicates int `json:"duplicates"`
-			}
-			req := map[string][]episode{"episodes": batch}
-			if _, err := c.do(ctx, http.MethodPost, "/episodes", req, &answer); err != nil {
-				return err
-			}
-			result.sent += len(batch)
-			result.duplicates += answer.Duplicates
-			batch = batch[:0]
-			return nil
-		}
 		for {
 			select {
-			case f, ok := <-done:
+			case ret, ok := <-returns:
 				if !ok {
-					if err := post(); err != nil {
+					if err := rec.Close(ctx); err != nil {
 						return err
 					}
 					progress()
 					return nil
 				}
-				batch = append(batch, f.episode)
-				result.window.add(f.ret)
-				if len(batch) >= c.cfg.BatchSize {
-					if err := post(); err != nil {
-						return err
-					}
-				}
+				result.window.add(ret)
 			case <-ticker.C:
+				if err := rec.Err(); err != nil {
+					return err
+				}
 				progress()
 			case <-ctx.Done():
 				return ctx.Err()
@@ -678,20 +551,25 @@ func (c *client) sendTraffic(ctx context.Context, out io.Writer) (trafficResult,
 		}
 	})
 
-	if err := g.Wait(); err != nil {
+	err := g.Wait()
+	if err != nil {
+		// Episodes already ended are still posted, within a bound.
+		closing, cancel := context.WithTimeout(context.WithoutCancel(ctx), 10*time.Second)
+		defer cancel()
+		_ = rec.Close(closing)
 		return trafficResult{}, err
 	}
 	return result, nil
 }
 
-func (c *client) progress(out io.Writer, start time.Time, r trafficResult) {
+func (c *driver) progress(out io.Writer, start time.Time, r trafficResult) {
 	fmt.Fprintf(out, "%6.1fs  episodes sent %7d  mean return of last %d: %.3f\n",
 		time.Since(start).Seconds(), r.sent, r.window.len(), r.window.mean())
 }
 
 // dispatch hands out episode numbers, the nth due n/Rate seconds after the
 // start, until the duration or the budget is used up.
-func (c *client) dispatch(ctx context.Context, jobs chan<- int) error {
+func (c *driver) dispatch(ctx context.Context, jobs chan<- int) error {
 	start := time.Now()
 	for n := 0; c.cfg.Episodes == 0 || n < c.cfg.Episodes; n++ {
 		if c.cfg.Rate > 0 {
@@ -714,35 +592,20 @@ func (c *client) dispatch(ctx context.Context, jobs chan<- int) error {
 
 // settle waits until the worker has trained every stored episode of the
 // policy, or SettleTimeout passes; it returns how many were left.
-func (c *client) settle(ctx context.Context) (int64, error) {
-	deadline := time.Now().Add(c.cfg.SettleTimeout)
-	for {
-		st, err := c.policyStatus(ctx)
-		if err != nil {
-			return 0, err
-		}
-		if st.Backlog == 0 || time.Now().After(deadline) {
-			return st.Backlog, nil
-		}
-		if err := sleep(ctx, 200*time.Millisecond); err != nil {
-			return 0, err
-		}
+func (c *driver) settle(ctx context.Context) (int64, error) {
+	wait, cancel := context.WithTimeout(ctx, c.cfg.SettleTimeout)
+	defer cancel()
+	st, err := c.api.WaitTrained(wait, c.cfg.Policy)
+	if err != nil && ctx.Err() == nil && wait.Err() != nil {
+		// The settle timeout ran out: report what is left.
+		st, err = c.policyStatus(ctx)
 	}
-}
-
-type actionValue struct {
-	Action string  `json:"action"`
-	Q      float64 `json:"q"`
-	Visits int64   `json:"visits"`
-}
-
-type stateAnswer struct {
-	Actions []actionValue `json:"actions"`
+	return st.Backlog, err
 }
 
 // readQ fetches the service's Q for every state of the model, and each
 // state's visits over all actions.
-func (c *client) readQ(ctx context.Context) (map[State][]float64, map[State]int64, error) {
+func (c *driver) readQ(ctx context.Context) (map[State][]float64, map[State]int64, error) {
 	states := States()
 	rows := make([][]float64, len(states))
 	totals := make([]int64, len(states))
@@ -750,16 +613,16 @@ func (c *client) readQ(ctx context.Context) (map[State][]float64, map[State]int6
 	g.SetLimit(c.cfg.Concurrency)
 	for i, s := range states {
 		g.Go(func() error {
-			var answer stateAnswer
-			if _, err := c.do(ctx, http.MethodGet, "/states/"+url.PathEscape(s.String()), nil, &answer); err != nil {
+			view, err := c.api.State(ctx, c.cfg.Policy, s.String())
+			if err != nil {
 				return err
 			}
-			row, err := qRow(answer)
+			row, err := qRow(view)
 			if err != nil {
 				return fmt.Errorf("state %s: %w", s, err)
 			}
 			rows[i] = row
-			for _, av := range answer.Actions {
+			for _, av := range view.Actions {
 				totals[i] += av.Visits
 			}
 			return nil
@@ -777,10 +640,10 @@ func (c *client) readQ(ctx context.Context) (map[State][]float64, map[State]int6
 }
 
 // qRow puts a state's action values in Actions order.
-func qRow(answer stateAnswer) ([]float64, error) {
+func qRow(view client.StateView) ([]float64, error) {
 	row := make([]float64, numActions)
 	seen := make([]bool, numActions)
-	for _, av := range answer.Actions {
+	for _, av := range view.Actions {
 		for _, a := range Actions() {
 			if a.String() == av.Action {
 				row[a], seen[a] = av.Q, true

@@ -2,10 +2,11 @@ package demo
 
 import (
 	"math"
-	"net/http"
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/qtally/qtally/client"
 )
 
 func TestDefaultConfigIsValid(t *testing.T) {
@@ -76,23 +77,12 @@ func TestWindowKeepsTheMostRecentReturns(t *testing.T) {
 	}
 }
 
-func TestDecodeProblem(t *testing.T) {
-	p := decodeProblem(http.StatusConflict, []byte(`{"type":"https://github.com/qtally/qtally/blob/main/docs/problems.md#conflict","title":"Conflict","status":409,"detail":"actions cannot change"}`))
-	if p.Status != 409 || p.Title != "Conflict" || p.Detail != "actions cannot change" {
-		t.Errorf("decoded %+v", p)
-	}
-	p = decodeProblem(http.StatusBadGateway, []byte("upstream down"))
-	if p.Status != 502 || p.Title != "Bad Gateway" || p.Detail != "upstream down" {
-		t.Errorf("decoded plain text as %+v", p)
-	}
-}
-
 func TestQRowFollowsActionOrder(t *testing.T) {
-	var answer stateAnswer
+	var answer client.StateView
 	names := ActionNames()
 	// The service may list actions in any order; the row must not care.
 	for i := len(names) - 1; i >= 0; i-- {
-		answer.Actions = append(answer.Actions, actionValue{Action: names[i], Q: float64(i)})
+		answer.Actions = append(answer.Actions, client.ActionValue{Action: names[i], Q: float64(i)})
 	}
 	row, err := qRow(answer)
 	if err != nil {
@@ -106,14 +96,6 @@ func TestQRowFollowsActionOrder(t *testing.T) {
 	answer.Actions = answer.Actions[1:]
 	if _, err := qRow(answer); err == nil {
 		t.Error("a missing action was accepted")
-	}
-}
-
-func TestRetryAfter(t *testing.T) {
-	for header, want := range map[string]time.Duration{"": time.Second, "3": 3 * time.Second, "soon": time.Second} {
-		if got := retryAfter(header); got != want {
-			t.Errorf("Retry-After %q: %v, want %v", header, got, want)
-		}
 	}
 }
 

@@ -5,19 +5,9 @@ import (
 	"fmt"
 	"math/rand/v2"
 	"strconv"
+
+	"github.com/qtally/qtally/client"
 )
-
-type step struct {
-	State       string  `json:"state"`
-	Action      string  `json:"action"`
-	Reward      float64 `json:"reward"`
-	Probability float64 `json:"probability"`
-}
-
-type episode struct {
-	ID    string `json:"id"`
-	Steps []step `json:"steps"`
-}
 
 // generator makes synthetic episodes over a fixed pool of state names.
 type generator struct {
@@ -46,23 +36,28 @@ func stateName(i int) string {
 
 func (g *generator) state() string { return g.states[g.rng.IntN(len(g.states))] }
 
-func (g *generator) episode() episode {
+func (g *generator) episode() client.Episode {
 	g.next++
-	ep := episode{ID: g.run + "-" + strconv.Itoa(g.next), Steps: make([]step, g.steps)}
+	ep := client.Episode{ID: g.run + "-" + strconv.Itoa(g.next), Steps: make([]client.Step, g.steps)}
 	for i := range ep.Steps {
-		ep.Steps[i] = step{State: g.state(), Action: g.actions[g.rng.IntN(len(g.actions))],
+		ep.Steps[i] = client.Step{State: g.state(), Action: g.actions[g.rng.IntN(len(g.actions))],
 			Reward: float64(g.rng.IntN(200)-50) / 10, Probability: 0.25}
 	}
 	return ep
 }
 
-// batchBody is one POST body of n fresh episodes.
-func (g *generator) batchBody(n int) []byte {
-	eps := make([]episode, n)
+// batch is n fresh episodes.
+func (g *generator) batch(n int) []client.Episode {
+	eps := make([]client.Episode, n)
 	for i := range eps {
 		eps[i] = g.episode()
 	}
-	data, err := json.Marshal(map[string]any{"episodes": eps})
+	return eps
+}
+
+// batchBody is one POST body of n fresh episodes.
+func (g *generator) batchBody(n int) []byte {
+	data, err := json.Marshal(map[string]any{"episodes": g.batch(n)})
 	if err != nil {
 		panic(err) // plain structs always marshal
 	}

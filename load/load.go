@@ -3,16 +3,14 @@
 package load
 
 import (
-	"bytes"
 	"context"
-	"encoding/json"
 	"fmt"
-	"io"
 	"net"
 	"net/http"
 	"net/url"
-	"strings"
 	"time"
+
+	"github.com/qtally/qtally/client"
 )
 
 // Config is shared by every scenario.
@@ -62,75 +60,24 @@ func checkLoopback(base string) error {
 	return nil
 }
 
-// client talks JSON to the service.
-type client struct {
-	base  string
-	token string
-	http  *http.Client
-}
-
-func newClient(cfg Config) *client {
-	return &client{base: strings.TrimRight(cfg.BaseURL, "/"), token: cfg.Token,
-		http: &http.Client{Timeout: 30 * time.Second, Transport: &http.Transport{MaxIdleConnsPerHost: 256}}}
-}
-
-func (c *client) do(ctx context.Context, method, path string, body any, out any) (int, error) {
-	var rd io.Reader
-	if body != nil {
-		data, err := json.Marshal(body)
-		if err != nil {
-			return 0, err
-		}
-		rd = bytes.NewReader(data)
-	}
-	req, err := http.NewRequestWithContext(ctx, method, c.base+path, rd)
-	if err != nil {
-		return 0, err
-	}
-	if body != nil {
-		req.Header.Set("Content-Type", "application/json")
-	}
-	if c.token != "" {
-		req.Header.Set("Authorization", "Bearer "+c.token)
-	}
-	resp, err := c.http.Do(req)
-	if err != nil {
-		return 0, err
-	}
-	defer resp.Body.Close()
-	data, err := io.ReadAll(resp.Body)
-	if err != nil {
-		return resp.StatusCode, err
-	}
-	if resp.StatusCode >= 300 {
-		return resp.StatusCode, fmt.Errorf("%s %s: %d %s", method, path, resp.StatusCode, bytes.TrimSpace(data))
-	}
-	if out != nil {
-		return resp.StatusCode, json.Unmarshal(data, out)
-	}
-	return resp.StatusCode, nil
+// newClient is the scenarios' API client. It does not retry: a refused
+// or failed request counts as an error of the run, not as a slower answer.
+func newClient(cfg Config) (*client.Client, error) {
+	return client.New(cfg.BaseURL, client.Options{Token: cfg.Token, Retry: client.RetryPolicy{MaxAttempts: 1},
+		HTTPClient: &http.Client{Timeout: 30 * time.Second, Transport: &http.Transport{MaxIdleConnsPerHost: 256}}})
 }
 
 // ensurePolicy creates the scenario's policy (or keeps it as it is).
-func (c *client) ensurePolicy(ctx context.Context, cfg Config) error {
-	if status, err := c.do(ctx, http.MethodGet, "/v1/policies/"+cfg.Policy, nil, nil); err == nil && status == http.StatusOK {
+func ensurePolicy(ctx context.Context, c *client.Client, cfg Config) error {
+	if _, err := c.Policy(ctx, cfg.Policy); err == nil || client.StatusOf(err) != http.StatusNotFound {
+		return err
+	}
+	settings := client.DefaultSettings(cfg.Actions...)
+	settings.Gamma, settings.Alpha, settings.Epsilon = 0.99, 0.05, 0.1
+	_, _, err := c.PutPolicy(ctx, cfg.Policy, settings, "")
+	if client.ProblemOf(err) == client.ProblemPreconditionRequired {
+		// Another run created it since it was read.
 		return nil
 	}
-	_, err := c.do(ctx, http.MethodPut, "/v1/policies/"+cfg.Policy,
-		map[string]any{"actions": cfg.Actions, "gamma": 0.99, "alpha": 0.05, "epsilon": 0.1}, nil)
 	return err
-}
-
-// policyStatus is the part of GET /v1/policies/{p} the scenarios read.
-type policyStatus struct {
-	Revision int64 `json:"revision"`
-	Episodes int64 `json:"episodes"`
-	Backlog  int64 `json:"backlog"`
-	Pairs    int64 `json:"pairs"`
-}
-
-func (c *client) status(ctx context.Context, policy string) (policyStatus, error) {
-	var st policyStatus
-	_, err := c.do(ctx, http.MethodGet, "/v1/policies/"+policy, nil, &st)
-	return st, err
 }

@@ -1,14 +1,13 @@
 package load
 
 import (
-	"bytes"
 	"context"
-	"encoding/json"
 	"fmt"
-	"net/http"
 	"strconv"
 	"sync"
 	"time"
+
+	"github.com/qtally/qtally/client"
 )
 
 // MemoryReport is what the in-memory copy of one policy costs the API
@@ -56,11 +55,8 @@ func Memory(ctx context.Context, cfg Config, pairs int, proc *Process) (MemoryRe
 		return rep, err
 	}
 	start = time.Now()
-	var r struct {
-		KnownState bool `json:"known_state"`
-	}
-	if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/choose",
-		map[string]string{"state": stateName(0), "mode": "greedy"}, &r); err != nil {
+	r, err := c.Choose(ctx, cfg.Policy, client.ChooseRequest{State: stateName(0), Mode: client.Greedy})
+	if err != nil {
 		return rep, err
 	}
 	rep.LoadTime = time.Since(start)
@@ -78,7 +74,7 @@ func Memory(ctx context.Context, cfg Config, pairs int, proc *Process) (MemoryRe
 
 // fillPairs posts episodes that together visit pair i = (state i/|A|,
 // action i mod |A|) once for every i < pairs, from four clients.
-func fillPairs(ctx context.Context, c *client, cfg Config, pairs int) error {
+func fillPairs(ctx context.Context, c *client.Client, cfg Config, pairs int) error {
 	perPost := cfg.EpisodesPerPost * cfg.StepsPerEpisode
 	posts := make(chan int)
 	errs := make(chan error, 4)
@@ -88,7 +84,7 @@ func fillPairs(ctx context.Context, c *client, cfg Config, pairs int) error {
 		go func() {
 			defer wg.Done()
 			for first := range posts {
-				if err := c.postRaw(ctx, cfg.Policy, coveringBody(cfg, first, min(first+perPost, pairs))); err != nil {
+				if _, err := c.PostEpisodes(ctx, cfg.Policy, coveringBatch(cfg, first, min(first+perPost, pairs))); err != nil {
 					errs <- err
 					return
 				}
@@ -115,46 +111,25 @@ send:
 	return err
 }
 
-// coveringBody is a batch of episodes visiting pairs [first, end) in order.
-func coveringBody(cfg Config, first, end int) []byte {
-	var eps []episode
+// coveringBatch is a batch of episodes visiting pairs [first, end) in order.
+func coveringBatch(cfg Config, first, end int) []client.Episode {
+	var eps []client.Episode
 	for i := first; i < end; i += cfg.StepsPerEpisode {
-		ep := episode{ID: "cover-" + strconv.Itoa(i)}
+		ep := client.Episode{ID: "cover-" + strconv.Itoa(i)}
 		for j := i; j < min(i+cfg.StepsPerEpisode, end); j++ {
-			ep.Steps = append(ep.Steps, step{State: stateName(j / len(cfg.Actions)),
+			ep.Steps = append(ep.Steps, client.Step{State: stateName(j / len(cfg.Actions)),
 				Action: cfg.Actions[j%len(cfg.Actions)], Reward: float64(j%13) / 4, Probability: 0.25})
 		}
 		eps = append(eps, ep)
 	}
-	data, err := json.Marshal(map[string]any{"episodes": eps})
-	if err != nil {
-		panic(err) // plain structs always marshal
-	}
-	return data
-}
-
-func (c *client) postRaw(ctx context.Context, policy string, body []byte) error {
-	req, err := http.NewRequestWithContext(ctx, http.MethodPost, c.base+"/v1/policies/"+policy+"/episodes", bytes.NewReader(body))
-	if err != nil {
-		return err
-	}
-	req.Header = jsonHeader(c.token)
-	resp, err := c.http.Do(req)
-	if err != nil {
-		return fmt.Errorf("post episodes: %w", err)
-	}
-	resp.Body.Close()
-	if resp.StatusCode != http.StatusAccepted {
-		return fmt.Errorf("post episodes: status %d", resp.StatusCode)
-	}
-	return nil
+	return eps
 }
 
 // waitTrained polls the policy's status until nothing is left to train.
-func waitTrained(ctx context.Context, c *client, policy string, within time.Duration) (policyStatus, error) {
+func waitTrained(ctx context.Context, c *client.Client, policy string, within time.Duration) (client.PolicyStatus, error) {
 	deadline := time.Now().Add(within)
 	for {
-		st, err := c.status(ctx, policy)
+		st, err := c.Policy(ctx, policy)
 		if err != nil || st.Backlog == 0 {
 			return st, err
 		}
@@ -181,7 +156,11 @@ func Wait(ctx context.Context, cfg Config, within time.Duration) (WaitReport, er
 	if err := checkLoopback(cfg.BaseURL); err != nil {
 		return WaitReport{}, err
 	}
+	c, err := newClient(cfg)
+	if err != nil {
+		return WaitReport{}, err
+	}
 	start := time.Now()
-	st, err := waitTrained(ctx, newClient(cfg), cfg.Policy, within)
+	st, err := waitTrained(ctx, c, cfg.Policy, within)
 	return WaitReport{Policy: cfg.Policy, Elapsed: time.Since(start), Pairs: st.Pairs}, err
 }

@@ -3,12 +3,13 @@ package load
 import (
 	"context"
 	"fmt"
-	"net/http"
 	"slices"
 	"strconv"
 	"sync"
 	"sync/atomic"
 	"time"
+
+	"github.com/qtally/qtally/client"
 )
 
 // Observer follows a policy's training. The status route can do it (see
@@ -113,7 +114,7 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	runCtx, cancel := context.WithTimeout(ctx, cfg.Duration)
 	defer cancel()
 	var chooses, episodes, errs, skipped atomic.Int64
-	finished := make(chan episode, 4*cfg.EpisodesPerPost)
+	finished := make(chan client.Episode, 4*cfg.EpisodesPerPost)
 	var wg sync.WaitGroup
 	wg.Add(3)
 	if opt.ProbeArrival {
@@ -166,30 +167,29 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 // keepEpisodes starts episodes at cfg.Rate per second on cfg.Workers
 // clients that let qtally keep them: each step's choose records it, its
 // reward is added, and the episode is ended.
-func keepEpisodes(ctx context.Context, c *client, cfg Config, ended, chooses, errs, skipped *atomic.Int64) {
+func keepEpisodes(ctx context.Context, c *client.Client, cfg Config, ended, chooses, errs, skipped *atomic.Int64) {
 	run := time.Now().UnixNano()
 	startEpisodes(ctx, cfg, skipped, func(w int, starts <-chan struct{}) {
 		g := newGenerator(Config{States: cfg.States, Actions: cfg.Actions, StepsPerEpisode: cfg.StepsPerEpisode, Seed: cfg.Seed + uint64(w)},
 			fmt.Sprintf("kept-%d-%d", run, w))
-		base := "/v1/policies/" + cfg.Policy
 	episodes:
 		for range starts {
 			ep := g.episode()
 			for i, st := range ep.Steps {
-				req := map[string]any{"state": st.State, "mode": "explore", "episode": ep.ID, "step": i}
-				if _, err := c.do(ctx, http.MethodPost, base+"/choose", req, nil); err != nil {
+				req := client.ChooseRequest{State: st.State, Mode: client.Explore}
+				if _, err := c.ChooseRecorded(ctx, cfg.Policy, ep.ID, i, req); err != nil {
 					if ctx.Err() == nil {
 						errs.Add(1)
 					}
 					continue episodes // a gap now: this episode stays open
 				}
 				chooses.Add(1)
-				add := map[string]any{"reward": st.Reward, "key": strconv.Itoa(i)}
-				if _, err := c.do(ctx, http.MethodPost, base+"/open-episodes/"+ep.ID+"/rewards", add, nil); err != nil && ctx.Err() == nil {
+				add := client.RewardOptions{Key: strconv.Itoa(i)}
+				if _, err := c.AddReward(ctx, cfg.Policy, ep.ID, st.Reward, add); err != nil && ctx.Err() == nil {
 					errs.Add(1)
 				}
 			}
-			if _, err := c.do(ctx, http.MethodPost, base+"/open-episodes/"+ep.ID+"/end", map[string]any{}, nil); err != nil {
+			if _, err := c.EndEpisode(ctx, cfg.Policy, ep.ID, nil); err != nil {
 				if ctx.Err() == nil {
 					errs.Add(1)
 				}
@@ -203,11 +203,11 @@ func keepEpisodes(ctx context.Context, c *client, cfg Config, ended, chooses, er
 // startEpisodes runs cfg.Workers clients and hands them episode starts at
 // cfg.Rate per second until ctx ends. Starts are counted against the
 // clock, so a late tick catches up instead of lowering the rate.
-func startEpisodes(ctx context.Context, cfg Config, skipped *atomic.Int64, client func(w int, starts <-chan struct{})) {
+func startEpisodes(ctx context.Context, cfg Config, skipped *atomic.Int64, play func(w int, starts <-chan struct{})) {
 	starts := make(chan struct{}, cfg.Workers)
 	var wg sync.WaitGroup
 	for w := range cfg.Workers {
-		wg.Go(func() { client(w, starts) })
+		wg.Go(func() { play(w, starts) })
 	}
 	tick := time.NewTicker(5 * time.Millisecond)
 	defer tick.Stop()
@@ -235,7 +235,7 @@ loop:
 // simulate starts episodes at cfg.Rate per second on cfg.Workers clients,
 // which choose at every chooseEvery-th step and hand each finished episode
 // to be posted.
-func simulate(ctx context.Context, c *client, cfg Config, chooseEvery int, finished chan<- episode, chooses, errs, skipped *atomic.Int64) {
+func simulate(ctx context.Context, c *client.Client, cfg Config, chooseEvery int, finished chan<- client.Episode, chooses, errs, skipped *atomic.Int64) {
 	run := time.Now().UnixNano()
 	startEpisodes(ctx, cfg, skipped, func(w int, starts <-chan struct{}) {
 		g := newGenerator(Config{States: cfg.States, Actions: cfg.Actions, StepsPerEpisode: cfg.StepsPerEpisode, Seed: cfg.Seed + uint64(w)},
@@ -246,12 +246,8 @@ func simulate(ctx context.Context, c *client, cfg Config, chooseEvery int, finis
 				if i%chooseEvery != 0 {
 					continue
 				}
-				var r struct {
-					Action      string  `json:"action"`
-					Probability float64 `json:"probability"`
-				}
-				if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/choose",
-					map[string]string{"state": ep.Steps[i].State, "mode": "explore"}, &r); err != nil {
+				r, err := c.Choose(ctx, cfg.Policy, client.ChooseRequest{State: ep.Steps[i].State, Mode: client.Explore})
+				if err != nil {
 					if ctx.Err() != nil {
 						return // the run is over: this episode is not posted
 					}
@@ -272,8 +268,8 @@ func simulate(ctx context.Context, c *client, cfg Config, chooseEvery int, finis
 
 // postFinished batches finished episodes by cfg.EpisodesPerPost (or what
 // finished in 200 ms) and posts the batches from up to posters clients.
-func postFinished(ctx context.Context, c *client, cfg Config, posters int, finished <-chan episode, posted, errs *atomic.Int64) {
-	batches := make(chan []episode, posters)
+func postFinished(ctx context.Context, c *client.Client, cfg Config, posters int, finished <-chan client.Episode, posted, errs *atomic.Int64) {
+	batches := make(chan []client.Episode, posters)
 	var wg sync.WaitGroup
 	for range posters {
 		wg.Add(1)
@@ -281,8 +277,7 @@ func postFinished(ctx context.Context, c *client, cfg Config, posters int, finis
 			defer wg.Done()
 			for batch := range batches {
 				// Episodes finished before the end are posted even after it.
-				if _, err := c.do(context.WithoutCancel(ctx), http.MethodPost, "/v1/policies/"+cfg.Policy+"/episodes",
-					map[string]any{"episodes": batch}, nil); err != nil {
+				if _, err := c.PostEpisodes(context.WithoutCancel(ctx), cfg.Policy, batch); err != nil {
 					errs.Add(1)
 				} else {
 					posted.Add(int64(len(batch)))
@@ -292,11 +287,11 @@ func postFinished(ctx context.Context, c *client, cfg Config, posters int, finis
 	}
 	defer wg.Wait()
 	defer close(batches)
-	batch := make([]episode, 0, cfg.EpisodesPerPost)
+	batch := make([]client.Episode, 0, cfg.EpisodesPerPost)
 	flush := func() {
 		if len(batch) > 0 {
 			batches <- batch
-			batch = make([]episode, 0, cfg.EpisodesPerPost)
+			batch = make([]client.Episode, 0, cfg.EpisodesPerPost)
 		}
 	}
 	tick := time.NewTicker(200 * time.Millisecond)
@@ -343,7 +338,7 @@ type commit struct {
 // reports, how long until choose answers from that revision or a later one.
 // While it waits, later commits queue; one already visible when its turn
 // comes counts from its own commit, so every figure is an upper bound.
-func probeVisibility(ctx context.Context, c *client, obs Observer, policy string) []time.Duration {
+func probeVisibility(ctx context.Context, c *client.Client, obs Observer, policy string) []time.Duration {
 	commits := make(chan commit, 1024)
 	go func() {
 		_ = obs.WatchCommits(ctx, policy, func(revision int64, at time.Time) {
@@ -362,11 +357,7 @@ func probeVisibility(ctx context.Context, c *client, obs Observer, policy string
 		case cm = <-commits:
 		}
 		for ctx.Err() == nil {
-			var r struct {
-				Revision int64 `json:"revision"`
-			}
-			if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+policy+"/choose",
-				map[string]string{"state": "visibility-probe", "mode": "explore"}, &r); err == nil && r.Revision >= cm.revision {
+			if r, err := c.Choose(ctx, policy, client.ChooseRequest{State: "visibility-probe", Mode: client.Explore}); err == nil && r.Revision >= cm.revision {
 				out = append(out, time.Since(cm.at))
 				break
 			}
@@ -384,12 +375,12 @@ const arrivalProbePause = 100 * time.Millisecond
 // each measures the time from the post's 202 to the first choose (polled
 // every 5 ms) that knows the state: the episode waited behind whatever
 // backlog there was, was trained, and reached the API's copy.
-func probeArrival(ctx context.Context, c *client, cfg Config, errs *atomic.Int64) (served []time.Duration, unserved int64) {
+func probeArrival(ctx context.Context, c *client.Client, cfg Config, errs *atomic.Int64) (served []time.Duration, unserved int64) {
 	run := time.Now().UnixNano()
 	for n := 0; ctx.Err() == nil; n++ {
 		state := fmt.Sprintf("arrival-probe-%d-%d", run, n)
-		ep := episode{ID: state, Steps: []step{{State: state, Action: cfg.Actions[0], Reward: 1, Probability: 1}}}
-		if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/episodes", map[string]any{"episodes": []episode{ep}}, nil); err != nil {
+		ep := client.Episode{ID: state, Steps: []client.Step{{State: state, Action: cfg.Actions[0], Reward: 1, Probability: 1}}}
+		if _, err := c.PostEpisodes(ctx, cfg.Policy, []client.Episode{ep}); err != nil {
 			if ctx.Err() == nil {
 				errs.Add(1)
 			}
@@ -398,11 +389,8 @@ func probeArrival(ctx context.Context, c *client, cfg Config, errs *atomic.Int64
 		accepted := time.Now()
 		unserved++
 		for ctx.Err() == nil {
-			var r struct {
-				KnownState bool `json:"known_state"`
-			}
-			if _, err := c.do(ctx, http.MethodPost, "/v1/policies/"+cfg.Policy+"/choose",
-				map[string]string{"state": state, "mode": "greedy"}, &r); err == nil && r.KnownState {
+			// Explore: greedy has no answer in a state not trained yet.
+			if r, err := c.Choose(ctx, cfg.Policy, client.ChooseRequest{State: state, Mode: client.Explore}); err == nil && r.KnownState {
 				served = append(served, time.Since(accepted))
 				unserved--
 				break
@@ -420,17 +408,17 @@ func probeArrival(ctx context.Context, c *client, cfg Config, errs *atomic.Int64
 // statusObserver follows training through the status route: no database
 // access needed, but each call counts the policy's episodes, and commits
 // are seen only at the next 20 ms poll (not counted in the figure).
-type statusObserver struct{ c *client }
+type statusObserver struct{ c *client.Client }
 
 func (o statusObserver) Backlog(ctx context.Context, policy string) (int64, error) {
-	st, err := o.c.status(ctx, policy)
+	st, err := o.c.Policy(ctx, policy)
 	return st.Backlog, err
 }
 
 func (o statusObserver) WatchCommits(ctx context.Context, policy string, fn func(int64, time.Time)) error {
 	seen := int64(-1)
 	for ctx.Err() == nil {
-		if st, err := o.c.status(ctx, policy); err == nil && st.Revision > seen {
+		if st, err := o.c.Policy(ctx, policy); err == nil && st.Revision > seen {
 			if seen >= 0 {
 				fn(st.Revision, time.Now())
 			}

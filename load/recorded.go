@@ -31,7 +31,7 @@ func RecordedChoose(ctx context.Context, cfg Config) (Figures, error) {
 		return Figures{}, fmt.Errorf("load: recorded choose needs fewer than %d workers", recordedEpisodes)
 	}
 	g := newGenerator(cfg, "recorded")
-	target := c.base + "/v1/policies/" + cfg.Policy + "/choose"
+	target := c.BaseURL() + "/v1/policies/" + cfg.Policy + "/choose"
 	header := jsonHeader(cfg.Token)
 	run := strconv.FormatInt(time.Now().UnixNano(), 36)
 	var n atomic.Uint64

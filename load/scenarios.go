@@ -11,6 +11,8 @@ import (
 	"time"
 
 	vegeta "github.com/tsenart/vegeta/v12/lib"
+
+	"github.com/qtally/qtally/client"
 )
 
 // Choose attacks the choose route with explore requests over cfg.States
@@ -25,7 +27,7 @@ func Choose(ctx context.Context, cfg Config) (Figures, error) {
 	for i := range bodies {
 		bodies[i], _ = json.Marshal(map[string]string{"state": g.states[i], "mode": "explore"})
 	}
-	target := c.base + "/v1/policies/" + cfg.Policy + "/choose"
+	target := c.BaseURL() + "/v1/policies/" + cfg.Policy + "/choose"
 	header := jsonHeader(cfg.Token)
 	var n atomic.Uint64
 	next := func(t *vegeta.Target) error {
@@ -56,7 +58,7 @@ func Post(ctx context.Context, cfg Config) (Figures, error) {
 	for i := range templates {
 		templates[i] = g.batchBody(cfg.EpisodesPerPost)
 	}
-	target := c.base + "/v1/policies/" + cfg.Policy + "/episodes"
+	target := c.BaseURL() + "/v1/policies/" + cfg.Policy + "/episodes"
 	header := jsonHeader(cfg.Token)
 	run := time.Now().UnixNano()
 	var n atomic.Uint64
@@ -70,7 +72,7 @@ func Post(ctx context.Context, cfg Config) (Figures, error) {
 	return attack(ctx, cfg, "post", next, cfg.EpisodesPerPost*cfg.StepsPerEpisode), nil
 }
 
-func prepare(ctx context.Context, cfg Config) (*client, error) {
+func prepare(ctx context.Context, cfg Config) (*client.Client, error) {
 	if err := checkLoopback(cfg.BaseURL); err != nil {
 		return nil, err
 	}
@@ -80,8 +82,11 @@ func prepare(ctx context.Context, cfg Config) (*client, error) {
 	if cfg.Workers < 1 || cfg.States < 1 || cfg.StepsPerEpisode < 1 || cfg.EpisodesPerPost < 1 {
 		return nil, fmt.Errorf("load: workers, states, steps per episode and episodes per post must be positive")
 	}
-	c := newClient(cfg)
-	return c, c.ensurePolicy(ctx, cfg)
+	c, err := newClient(cfg)
+	if err != nil {
+		return nil, err
+	}
+	return c, ensurePolicy(ctx, c, cfg)
 }
 
 // DrainReport is how fast a worker trained a stored backlog.
@@ -106,11 +111,11 @@ func Drain(ctx context.Context, cfg Config, episodes int, startWorker func() (st
 	}
 	g := newGenerator(cfg, "drain")
 	for sent := 0; sent < episodes; sent += cfg.EpisodesPerPost {
-		if err := c.postRaw(ctx, cfg.Policy, g.batchBody(min(cfg.EpisodesPerPost, episodes-sent))); err != nil {
+		if _, err := c.PostEpisodes(ctx, cfg.Policy, g.batch(min(cfg.EpisodesPerPost, episodes-sent))); err != nil {
 			return DrainReport{}, fmt.Errorf("store backlog: %w", err)
 		}
 	}
-	st, err := c.status(ctx, cfg.Policy)
+	st, err := c.Policy(ctx, cfg.Policy)
 	if err != nil {
 		return DrainReport{}, err
 	}
@@ -136,7 +141,7 @@ func Drain(ctx context.Context, cfg Config, episodes int, startWorker func() (st
 		}
 	}
 	elapsed := time.Since(start)
-	if st, err = c.status(ctx, cfg.Policy); err != nil {
+	if st, err = c.Policy(ctx, cfg.Policy); err != nil {
 		return DrainReport{}, err
 	}
 	steps := int64(episodes * cfg.StepsPerEpisode)

@@ -36,15 +36,25 @@ func (db *DB) EraseEpisode(ctx context.Context, policy, episodeID string) error 
 func (db *DB) DeletePolicy(ctx context.Context, name string) error {
 	return db.WithTx(ctx, func(tx pgx.Tx) error {
 		var id int32
-		err := tx.QueryRow(ctx, `SELECT policy_id FROM policies WHERE name = $1 FOR UPDATE`, name).Scan(&id)
+		err := tx.QueryRow(ctx, `SELECT policy_id FROM policies WHERE name = $1`, name).Scan(&id)
 		if errors.Is(err, pgx.ErrNoRows) {
 			return training.NotFoundf("no policy named %q", name)
 		}
 		if err != nil {
 			return fmt.Errorf("read policy: %w", err)
 		}
-		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, trainingLockClass, id); err != nil {
-			return fmt.Errorf("training lock: %w", err)
+		// The training lock before the row lock, the order of a training
+		// batch (it updates the row under the lock): the other order
+		// deadlocks with a batch of the policy.
+		if err := lockTraining(ctx, tx, id); err != nil {
+			return err
+		}
+		err = tx.QueryRow(ctx, `SELECT policy_id FROM policies WHERE policy_id = $1 FOR UPDATE`, id).Scan(&id)
+		if errors.Is(err, pgx.ErrNoRows) {
+			return training.NotFoundf("no policy named %q", name)
+		}
+		if err != nil {
+			return fmt.Errorf("read policy: %w", err)
 		}
 		rows, err := tx.Query(ctx, `
 			SELECT c.table_name FROM information_schema.columns c

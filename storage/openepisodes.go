@@ -148,12 +148,19 @@ type decisionOutcome struct {
 	err      error
 }
 
+// recordAttempts bounds how often one batch is recorded after collisions.
+// A unique violation means another transaction committed a step of this
+// batch meanwhile (the insert waits for it), so the next attempt reads that
+// step as recorded; a batch of many openings can collide with several such
+// transactions in turn, one each attempt, so once is not enough.
+const recordAttempts = 8
+
 // recordDecisions records one policy's decisions in one transaction and
-// sets each one's outcome. A deadlock or a unique violation (another
-// process opened the same episode meanwhile) is retried once.
+// sets each one's outcome. A deadlock or a unique violation (another batch
+// or process opened the same episode meanwhile) is retried.
 func (db *DB) recordDecisions(ctx context.Context, policyID int32, group []*pendingDecision) {
 	outcomes, err := db.recordOnce(ctx, policyID, group)
-	if isUniqueViolation(err) || isDeadlock(err) {
+	for attempt := 1; attempt < recordAttempts && (isUniqueViolation(err) || isDeadlock(err)); attempt++ {
 		outcomes, err = db.recordOnce(ctx, policyID, group)
 	}
 	for i, p := range group {
