@@ -270,7 +270,17 @@ type chartMarker struct {
 	Label string
 	// Title says what and when in full, as the marker's tooltip.
 	Title string
+	// LabelY is how far below the top of the plot the label sits, LabelDX
+	// how far right of the line (left when negative, Anchor "end").
+	LabelY, LabelDX float64
+	Anchor          string
 }
+
+// Marker labels closer than markerLabelWidth go one line lower.
+const (
+	markerLabelWidth = 130
+	markerLineHeight = 11
+)
 
 // chartBar is one stacked share of a bar chart.
 type chartBar struct {
@@ -299,8 +309,20 @@ func (c *chartView) addMarkers(axis xAxis, events []eventMark) {
 		if r := []rune(label); len(r) > maxMarkerLabel {
 			label = string(r[:maxMarkerLabel-1]) + "…"
 		}
-		c.Markers = append(c.Markers, chartMarker{X: round2(c.xOf(axis, e.at)), Kind: e.kind, Label: label,
-			Title: axis.point(e.at) + " " + e.label})
+		m := chartMarker{X: round2(c.xOf(axis, e.at)), Kind: e.kind, Label: label, Title: axis.point(e.at) + " " + e.label, LabelY: 8}
+		// Near the right edge, labels end at their line to stay inside.
+		m.Anchor, m.LabelDX = "start", 3
+		if m.X > c.PlotRight-markerLabelWidth {
+			m.Anchor, m.LabelDX = "end", -3
+		}
+		// Labels of events close together go on lines of their own.
+		if n := len(c.Markers); n > 0 && m.X-c.Markers[n-1].X < markerLabelWidth {
+			m.LabelY = c.Markers[n-1].LabelY + markerLineHeight
+			if m.LabelY > c.PlotBottom-c.PlotTop-markerLineHeight {
+				m.LabelY = 8
+			}
+		}
+		c.Markers = append(c.Markers, m)
 	}
 }
 
