@@ -66,6 +66,28 @@ func TestChoiceCountsFlushOnce(t *testing.T) {
 		t.Fatalf("the binned choices add up to %d, want 10", total)
 	}
 
+	// A choice recorded in an open episode counts once; asked again, the
+	// recorded answer is not a new choice.
+	batcher := db.NewDecisionBatcher(time.Millisecond, 256)
+	runCtx, stop := context.WithCancel(ctx)
+	done := make(chan struct{})
+	go func() { _ = batcher.Run(runCtx); close(done) }()
+	keeper := training.Keeper{Replica: replica, Recorder: batcher}
+	for range 3 {
+		if _, err := keeper.ChooseRecorded(ctx, "parcels", "trip-1", 0, training.ChooseRequest{State: "zone 2", Mode: training.Explore, Allowed: []string{"bike"}}); err != nil {
+			t.Fatal(err)
+		}
+	}
+	stop()
+	<-done
+	if err := replica.FlushChoices(ctx, db); err != nil {
+		t.Fatal(err)
+	}
+	var stored int64
+	if err := conn.QueryRow(ctx, `SELECT sum(choices) FROM choice_counts`).Scan(&stored); err != nil || stored != 11 {
+		t.Fatalf("%d choices stored (%v), want the 10 before and the recorded one once", stored, err)
+	}
+
 	// A row older than the window goes with the next flush.
 	if _, err := conn.Exec(ctx, `INSERT INTO choice_counts SELECT policy_id, now() - $1::interval - interval '1 hour', 0, true, false, false, 5 FROM policies`,
 		h.Window.String()); err != nil {
