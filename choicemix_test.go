@@ -47,8 +47,8 @@ const readMix = `(() => {
 
 // The policy page, in a real browser, shows the mix of actions chosen as
 // the choices were made (counted in the API process and stored, so any
-// process's page shows them), and marks a snapshot, a settings change and
-// a restore on the same time axis as the training charts.
+// process's page shows them), and marks a snapshot, a settings change, a
+// restore and an evaluation on the same time axis as the training charts.
 func TestPolicyPageShowsChoicesAndEvents(t *testing.T) {
 	ctx := newBrowser(t)
 	s := startService(t, pgtest.NewDatabase(t), "serve")
@@ -70,6 +70,20 @@ func TestPolicyPageShowsChoicesAndEvents(t *testing.T) {
 	s.call("POST", "/v1/policies/"+policy+"/snapshots", map[string]any{"name": "v1"}, 201)
 	s.patch("/v1/policies/"+policy, `{"epsilon":0.2}`, 200)
 	s.call("POST", "/v1/policies/"+policy+"/snapshots/v1/restore", nil, 200)
+	// An evaluation of the live table over episodes chosen with probability 0.5.
+	half := 0.5
+	var eps []episodeJSON
+	for i := range 20 {
+		eps = append(eps, episodeJSON{ID: fmt.Sprint("renewal-", i), Steps: []stepJSON{{State: "due", Action: actions[0], Reward: 1, Probability: &half}}})
+	}
+	s.post(policy, eps...)
+	s.waitTrained(policy, 20)
+	eval, _ := startJob[evaluationResult](s, "/v1/policies/"+policy+"/evaluations",
+		map[string]any{"target": map[string]any{"table": "live"}, "window": map[string]any{"last": 20}, "seed": 7, "resamples": 200}, time.Minute)
+	if eval.Status != "succeeded" || eval.Result == nil {
+		t.Fatalf("evaluation %+v", eval)
+	}
+	weighted := eval.Result.Weighted.Estimate
 
 	// The API process stores its counts every few seconds.
 	counted := regexp.MustCompile(`\(([\d,]+) of ([\d,]+)\)$`)
@@ -128,6 +142,19 @@ func TestPolicyPageShowsChoicesAndEvents(t *testing.T) {
 				t.Fatalf("chart %s marks %q, want %q among them", chart, page.Markers[chart], mark)
 			}
 		}
+	}
+	// The evaluation's marker states its weighted estimate (four significant digits).
+	var evaluation []string
+	for _, m := range page.Markers["actions"] {
+		if v, ok := strings.CutPrefix(m, "evaluation: evaluation "); ok {
+			evaluation = append(evaluation, v)
+		}
+	}
+	if len(evaluation) != 1 {
+		t.Fatalf("markers %q, want one evaluation", page.Markers["actions"])
+	}
+	if got, err := strconv.ParseFloat(evaluation[0], 64); err != nil || math.Abs(got-weighted) > 5e-4*math.Max(1, math.Abs(weighted)) {
+		t.Fatalf("the evaluation marker reads %q; the API's weighted estimate is %v", evaluation[0], weighted)
 	}
 	if n := must(chromedp.Run(ctx, chromedp.Evaluate[int](`document.querySelectorAll('svg b, svg i, script').length`))); n != 0 {
 		t.Fatalf("%d elements were made from client-chosen names", n)

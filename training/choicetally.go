@@ -42,17 +42,8 @@ func newChoiceTally(actions int) *choiceTally {
 }
 
 func (t *choiceTally) add(action int16, mode Mode, explored, known bool) {
-	i := int(action) * choiceKinds
-	if mode == Explore {
-		i += 4
-	}
-	if explored {
-		i += 2
-	}
-	if known {
-		i++
-	}
-	t.counts[i].Add(1)
+	kind := choiceKind(ChoiceCount{Explore: mode == Explore, Explored: explored, KnownState: known})
+	t.counts[int(action)*choiceKinds+kind].Add(1)
 }
 
 // take appends the counts made since the last take and zeroes them.
@@ -125,12 +116,17 @@ func (r *Replica) FlushChoices(ctx context.Context, store ChoiceStore) error {
 	return nil
 }
 
+// choiceKind orders the kinds of choice as a tally's counters do.
 func choiceKind(c ChoiceCount) int {
 	k := 0
-	for i, b := range []bool{c.Explore, c.Explored, c.KnownState} {
-		if b {
-			k |= 4 >> i
-		}
+	if c.Explore {
+		k += 4
+	}
+	if c.Explored {
+		k += 2
+	}
+	if c.KnownState {
+		k++
 	}
 	return k
 }
