@@ -83,6 +83,17 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 				}
 			},
 		}
+		goBackground("choice counts", func(ctx context.Context) error {
+			err := every(ctx, choiceFlushEvery, func() {
+				if err := replica.FlushChoices(ctx, db); err != nil {
+					logger.Warn("storing choice counts", "error", err)
+				}
+			})
+			// The counts since the last flush, before the process ends.
+			final, cancel := context.WithTimeout(context.WithoutCancel(ctx), 5*time.Second)
+			defer cancel()
+			return errors.Join(err, replica.FlushChoices(final, db))
+		})
 		goBackground("replica poll", func(ctx context.Context) error {
 			return every(ctx, cfg.PollInterval, func() {
 				if err := replica.RefreshAll(ctx); err != nil {
@@ -180,6 +191,9 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 // Group commit of recorded decisions: a batch gathers for this long after
 // its first decision, or until it holds this many.
 const (
+	// choiceFlushEvery is how often an API process adds its choice counts
+	// to the database for the status page.
+	choiceFlushEvery    = 5 * time.Second
 	decisionBatchWindow = time.Millisecond
 	decisionBatchMax    = 256
 )

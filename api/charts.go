@@ -59,6 +59,11 @@ type chartView struct {
 	Targets         []chartTarget
 	YTicks, XTicks  []chartTick
 	Empty           bool
+	// EmptyText says why an empty chart is empty.
+	EmptyText string
+	Markers   []chartMarker
+	Bars      []chartBar
+	Legend    []legendKey
 }
 
 // seriesData is one line of a chart before it is placed: values at
@@ -131,6 +136,7 @@ func newChart(id, title, note string, axis xAxis, zeroBased bool, targets []targ
 		}
 	}
 	c.Empty = math.IsInf(lo, 1)
+	c.EmptyText = "No training in this window."
 	for _, t := range targets {
 		lo, hi = math.Min(lo, t.value), math.Max(hi, t.value)
 	}
@@ -256,3 +262,135 @@ func formatNumber(v float64) string {
 		return strconv.FormatFloat(v, 'e', 3, 64)
 	}
 }
+
+// chartMarker is an event drawn across a time chart at its time.
+type chartMarker struct {
+	X     float64
+	Kind  string
+	Label string
+	// Title says what and when in full, as the marker's tooltip.
+	Title string
+	// LabelY is how far below the top of the plot the label sits, LabelDX
+	// how far right of the line (left when negative, Anchor "end").
+	LabelY, LabelDX float64
+	Anchor          string
+}
+
+// Marker labels closer than markerLabelWidth go one line lower.
+const (
+	markerLabelWidth = 130
+	markerLineHeight = 11
+)
+
+// chartBar is one stacked share of a bar chart.
+type chartBar struct {
+	X, Y, W, H float64
+	Class      string
+	Action     string
+	Share      float64
+	Title      string
+}
+
+type legendKey struct {
+	Class, Name string
+}
+
+// maxMarkerLabel bounds the characters of a marker's label; its tooltip
+// has the rest.
+const maxMarkerLabel = 24
+
+// addMarkers draws the events within the axis across the chart.
+func (c *chartView) addMarkers(axis xAxis, events []eventMark) {
+	for _, e := range events {
+		if e.at < axis.lo || e.at > axis.hi {
+			continue
+		}
+		label := e.label
+		if r := []rune(label); len(r) > maxMarkerLabel {
+			label = string(r[:maxMarkerLabel-1]) + "…"
+		}
+		m := chartMarker{X: round2(c.xOf(axis, e.at)), Kind: e.kind, Label: label, Title: axis.point(e.at) + " " + e.label, LabelY: 8}
+		// Near the right edge, labels end at their line to stay inside.
+		m.Anchor, m.LabelDX = "start", 3
+		if m.X > c.PlotRight-markerLabelWidth {
+			m.Anchor, m.LabelDX = "end", -3
+		}
+		// Labels of events close together go on lines of their own.
+		if n := len(c.Markers); n > 0 && m.X-c.Markers[n-1].X < markerLabelWidth {
+			m.LabelY = c.Markers[n-1].LabelY + markerLineHeight
+			if m.LabelY > c.PlotBottom-c.PlotTop-markerLineHeight {
+				m.LabelY = 8
+			}
+		}
+		c.Markers = append(c.Markers, m)
+	}
+}
+
+// xOf places a position of the axis on the chart.
+func (c *chartView) xOf(axis xAxis, v float64) float64 {
+	span := axis.hi - axis.lo
+	if span <= 0 {
+		span = 1
+	}
+	return c.PlotLeft + (v-axis.lo)/span*(c.PlotRight-c.PlotLeft)
+}
+
+// eventMark is an event at a position of a time axis.
+type eventMark struct {
+	at          float64
+	kind, label string
+}
+
+// shareColumn is one bar of a share chart: what share each class had in
+// the stretch [from, to).
+type shareColumn struct {
+	from, to float64
+	total    int64
+	counts   []int64 // by class, in the order of the chart's classes
+}
+
+// newShareChart draws columns of stacked shares, one colour per class
+// (named by names), over the axis; with other, the last class is the rest
+// of the classes and is drawn grey.
+func newShareChart(id, title, note string, axis xAxis, names []string, other bool, columns []shareColumn) chartView {
+	c := newChart(id, title, note, axis, true, nil)
+	c.EmptyText = "No choices in this window."
+	c.Empty = len(columns) == 0
+	c.YTicks = nil
+	y := func(share float64) float64 { return c.PlotBottom - share*(c.PlotBottom-c.PlotTop) }
+	for _, v := range []float64{0, 0.25, 0.5, 0.75, 1} {
+		c.YTicks = append(c.YTicks, chartTick{Pos: round2(y(v)), Label: strconv.Itoa(int(v*100)) + "%"})
+	}
+	classes := make([]string, len(names))
+	for i, n := range names {
+		classes[i] = "a" + strconv.Itoa(i)
+		if other && i == len(names)-1 {
+			classes[i] = "other"
+		}
+		c.Legend = append(c.Legend, legendKey{Class: classes[i], Name: n})
+	}
+	for _, col := range columns {
+		x0 := math.Max(c.xOf(axis, col.from), c.PlotLeft)
+		x1 := math.Min(c.xOf(axis, col.to), c.PlotRight)
+		if x1 <= x0 || col.total == 0 {
+			continue
+		}
+		below := 0.0
+		for i, n := range col.counts {
+			if n == 0 {
+				continue
+			}
+			share := float64(n) / float64(col.total)
+			top := y(below + share)
+			c.Bars = append(c.Bars, chartBar{X: round2(x0), W: round2(x1 - x0), Y: round2(top), H: round2(y(below) - top),
+				Class: classes[i], Action: names[i], Share: share,
+				Title: fmt.Sprintf("%s %s: %s%% (%s of %s)", axis.point(col.from), names[i], formatNumber(100*share), formatCount(n), formatCount(col.total))})
+			below += share
+		}
+	}
+	return c
+}
+
+// shareColours is how many classes a share chart tells apart; past it,
+// the least frequent are summed as "other".
+const shareColours = 8

@@ -1,11 +1,15 @@
 package api
 
 import (
+	"fmt"
 	"math"
 	"math/rand/v2"
+	"slices"
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/qtally/qtally/training"
 )
 
 // Axis ticks are round (1, 2 or 5 times a power of ten apart), cover the
@@ -116,5 +120,64 @@ func TestChartShowsTargetAndCountsEpisodes(t *testing.T) {
 	}
 	if strings.Count(c.Series[0].Path, "M") != 1 {
 		t.Fatalf("a learning curve is one line: %q", c.Series[0].Path)
+	}
+}
+
+// A policy with more actions than colours draws the seven most chosen on
+// their own and the rest as "other"; each column's shares fill it.
+func TestActionMixGroupsTheRareActions(t *testing.T) {
+	now := time.Date(2026, 3, 1, 12, 0, 0, 0, time.UTC)
+	var actions []string
+	var buckets []training.ChoiceBucket
+	for a := range 10 {
+		actions = append(actions, fmt.Sprint("action-", a))
+		// Action a is chosen a+1 times in each of two minutes.
+		for m := range 2 {
+			buckets = append(buckets, training.ChoiceBucket{Start: now.Add(time.Duration(m-2) * time.Minute), Width: time.Minute,
+				Action: int16(a), Explore: true, KnownState: a%2 == 0, Count: int64(a + 1)})
+		}
+	}
+	slices.SortStableFunc(buckets, func(a, b training.ChoiceBucket) int { return a.Start.Compare(b.Start) })
+	r := training.PolicyReport{Now: now, Window: 10 * time.Minute, ChoiceBuckets: buckets}
+	r.Status.Actions = actions
+	line := r.Timeline(maxChartPoints)
+	mix, rates := choiceCharts(r, line, timeAxis(line.From, line.To, 3*line.Step))
+	var legend []string
+	for _, k := range mix.Legend {
+		legend = append(legend, k.Name)
+	}
+	// The three least chosen are actions 0, 1 and 2.
+	want := "action-3|action-4|action-5|action-6|action-7|action-8|action-9|other 3 actions"
+	if strings.Join(legend, "|") != want {
+		t.Fatalf("legend %q, want %q", legend, want)
+	}
+	columns := map[float64]float64{}
+	for _, b := range mix.Bars {
+		columns[b.X] += b.Share
+		if b.Action == "other 3 actions" && !near(b.Share, 6.0/55) {
+			t.Fatalf("other's share %v, want (1+2+3)/55", b.Share)
+		}
+	}
+	if len(columns) != 2 {
+		t.Fatalf("%d columns, want one per minute: %+v", len(columns), mix.Bars)
+	}
+	for x, sum := range columns {
+		if !near(sum, 1) {
+			t.Fatalf("column at %v: shares add up to %v", x, sum)
+		}
+	}
+	// Odd actions met unknown states: 2+4+6+8+10 of each minute's 55 choices.
+	for _, s := range rates.Series {
+		if s.Name != "unknown state" {
+			continue
+		}
+		if len(s.Points) != 2 {
+			t.Fatalf("unknown-state rate has %d points, want one per minute", len(s.Points))
+		}
+		for _, p := range s.Points {
+			if !strings.HasSuffix(p.Label, ": "+formatNumber(100*30.0/55)) {
+				t.Fatalf("unknown-state point %q, want %v%%", p.Label, 100*30.0/55)
+			}
+		}
 	}
 }

@@ -2,6 +2,7 @@ package api
 
 import (
 	"bytes"
+	"cmp"
 	"embed"
 	"fmt"
 	"html/template"
@@ -173,7 +174,7 @@ type policyView struct {
 	pageBase
 	policyRow
 	// Span names what the charts cover: the window, or the policy's
-	// training so far when it began within the window.
+	// activity so far when it began within the window.
 	Span        string
 	Windows     []windowLink
 	Charts      []chartView
@@ -225,10 +226,13 @@ func handlePolicyPage(in Inspector, h SettingsHistory, open OpenEpisodes, cfg Co
 			StatesURL:   "/policies/" + url.PathEscape(name) + "/states",
 		}
 		for _, w := range []time.Duration{10 * time.Minute, time.Hour, 6 * time.Hour, 24 * time.Hour, 48 * time.Hour} {
-			if w <= cfg.HistoryWindow {
-				v.Windows = append(v.Windows, windowLink{Label: formatDuration(w), URL: "?window=" + formatDuration(w), Current: w == window})
+			if w < cfg.HistoryWindow {
+				v.Windows = append(v.Windows, windowLink{Label: formatDuration(w), URL: "?window=" + windowQuery(w), Current: w == window})
 			}
 		}
+		// The last reaches as far back as history is kept.
+		kept := cfg.HistoryWindow
+		v.Windows = append(v.Windows, windowLink{Label: formatDuration(kept) + " (all kept)", URL: "?window=" + windowQuery(kept), Current: kept == window})
 		return renderPage(c, "policy.html", v)
 	}
 }
@@ -246,12 +250,23 @@ func windowParam(c echo.Context, kept time.Duration) (time.Duration, error) {
 	return w, nil
 }
 
+// windowQuery writes a window as the window parameter reads it.
+func windowQuery(w time.Duration) string {
+	switch {
+	case w%time.Hour == 0:
+		return strconv.FormatInt(int64(w/time.Hour), 10) + "h"
+	case w%time.Minute == 0:
+		return strconv.FormatInt(int64(w/time.Minute), 10) + "m"
+	}
+	return w.String()
+}
+
 // chartSpan names what the time charts cover.
 func chartSpan(r training.PolicyReport) string {
 	last := "Last " + formatDuration(r.Window)
 	// A minute's slack: the oldest row kept may start just inside the window.
-	if len(r.Buckets) > 0 && r.Buckets[0].Start.After(r.Now.Add(-r.Window+time.Minute)) {
-		return last + ": training began " + formatDuration(r.Now.Sub(r.Buckets[0].Start)) + " ago"
+	if since := r.ActiveSince(); since.After(r.Now.Add(-r.Window + time.Minute)) {
+		return last + ": activity began " + formatDuration(r.Now.Sub(since)) + " ago"
 	}
 	return last
 }
@@ -314,14 +329,111 @@ func historyCharts(r training.PolicyReport) []chartView {
 	// Samples of the backlog may be further apart than points.
 	backlogAxis := timeAxis(line.From, line.To, 3*max(line.Step, training.BacklogSampleEvery))
 	step := formatDuration(line.Step)
-	return []chartView{
-		learning,
+	mix, rates := choiceCharts(r, line, axis)
+	timed := []chartView{
+		mix,
+		rates,
 		newChart("return", "Mean return", "discounted return G0 of the episodes trained, per "+step, axis, false, targets, ret),
 		newChart("drift", "Mean |ΔQ| per update", "how far updates move the estimates, per "+step, axis, true, nil, drift),
 		newChart("churn", "Greedy changes", "states whose greedy action changed, per "+step, axis, true, nil, churn),
 		newChart("backlog", "Backlog", "episodes waiting, sampled at most every "+formatDuration(max(line.Step, training.BacklogSampleEvery)), backlogAxis, true, nil, backlog),
 		newChart("coverage", "Coverage", "states and (state, action) pairs with an estimate", axis, true, nil, states, pairs),
 	}
+	// Snapshots, restores, settings changes and evaluations on every time
+	// chart, so that what followed them shows beside them.
+	events := eventMarks(r.Events)
+	for i := range timed {
+		timed[i].addMarkers(axis, events)
+	}
+	return append([]chartView{learning}, timed...)
+}
+
+// eventMarks names the policy's events for the charts.
+func eventMarks(events []training.PolicyEvent) []eventMark {
+	marks := make([]eventMark, 0, len(events))
+	for _, e := range events {
+		label := e.Kind
+		switch {
+		case e.Kind == "settings":
+			label = "settings " + e.Label
+		case e.Kind == "evaluation" && e.Value != nil:
+			label = "evaluation " + formatNumber(*e.Value)
+		case e.Kind == "evaluation":
+			label = "evaluation (no estimate)"
+		case e.Label != "":
+			label = e.Kind + " " + e.Label
+		}
+		marks = append(marks, eventMark{at: unixSeconds(e.At), kind: e.Kind, label: label})
+	}
+	return marks
+}
+
+// choiceCharts draws what API processes chose over the timeline's span:
+// the share of each action, and how often choices explored or met a state
+// with no estimate yet.
+func choiceCharts(r training.PolicyReport, line training.HistoryView, axis xAxis) (chartView, chartView) {
+	view := r.Choices(line.From, line.To, maxChartPoints)
+	actions := r.Status.Actions
+	totals := make([]int64, len(actions))
+	for _, p := range view.Points {
+		for a, n := range p.ByAction {
+			if a < len(totals) {
+				totals[a] += n
+			}
+		}
+	}
+	// Each action its own colour, or the most chosen ones and the rest.
+	shown := make([]int, len(actions)) // action index -> class
+	names := slices.Clone(actions)
+	other := len(actions) > shareColours
+	if other {
+		order := make([]int, len(actions))
+		for i := range order {
+			order[i] = i
+		}
+		slices.SortStableFunc(order, func(a, b int) int { return cmp.Compare(totals[b], totals[a]) })
+		top := order[:shareColours-1]
+		slices.Sort(top)
+		names = names[:0]
+		for i := range shown {
+			shown[i] = shareColours - 1
+		}
+		for class, a := range top {
+			shown[a] = class
+			names = append(names, actions[a])
+		}
+		names = append(names, fmt.Sprintf("other %d actions", len(actions)-len(top)))
+	} else {
+		for i := range shown {
+			shown[i] = i
+		}
+	}
+	var columns []shareColumn
+	var explored, unknown seriesData
+	explored.name, unknown.name = "explored", "unknown state"
+	for _, p := range view.Points {
+		col := shareColumn{from: unixSeconds(p.Start), to: unixSeconds(p.Start.Add(view.Step)), total: p.Total, counts: make([]int64, len(names))}
+		for a, n := range p.ByAction {
+			if a < len(shown) {
+				col.counts[shown[a]] += n
+			}
+		}
+		columns = append(columns, col)
+		if p.Total > 0 {
+			// A point within the span, also for a stretch that began before it.
+			at := max(col.from, axis.lo)
+			explored.add(at, 100*float64(p.Explored)/float64(p.Total))
+			unknown.add(at, 100*float64(p.Unknown)/float64(p.Total))
+		}
+	}
+	per := formatDuration(view.Step)
+	mix := newShareChart("actions", "Actions chosen", "share of each action among the choices of every API process, per "+per, axis, names, other, columns)
+	ratesAxis := axis
+	ratesAxis.gap = 3 * view.Step.Seconds()
+	rates := newChart("rates", "Explore and unknown-state rates", "% of choices that explored, and that met a state with no estimate, per "+per,
+		ratesAxis, true, nil, explored, unknown)
+	rates.EmptyText = mix.EmptyText
+	return mix, rates
 }
 
 type statesView struct {

@@ -194,6 +194,9 @@ func (db *DB) PolicyReport(ctx context.Context, name string, window time.Duratio
 		if err != nil {
 			return fmt.Errorf("read training history: %w", err)
 		}
+		if err := db.readChoicesAndEvents(ctx, tx, &report); err != nil {
+			return err
+		}
 		drift, err := listStates(ctx, tx, st.Policy, training.StateQuery{Order: training.ByDrift, Limit: top})
 		if err != nil {
 			return err

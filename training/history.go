@@ -124,6 +124,11 @@ type PolicyReport struct {
 	// Buckets are the stored history rows that start within the window,
 	// oldest first.
 	Buckets []HistoryBucket
+	// ChoiceBuckets are the stored choice counts that start within the
+	// window, oldest first; Events are what was done to the policy within
+	// the window, oldest first.
+	ChoiceBuckets []ChoiceBucket
+	Events        []PolicyEvent
 	// MostDrift and MostVisited are the states whose latest update moved
 	// an estimate most, and the states visited most.
 	MostDrift   []StateSummary
@@ -139,14 +144,30 @@ type HistoryView struct {
 }
 
 // Timeline bins the history from the start of the window, or of the
-// policy's first stored training when that is later, up to now: a young
+// policy's first recorded activity when that is later, up to now: a young
 // policy's whole life fills the chart.
 func (r PolicyReport) Timeline(maxPoints int) HistoryView {
+	return r.bin(r.ActiveSince(), r.Now, maxPoints)
+}
+
+// ActiveSince is the start of the window, or when the first training,
+// choice or event within it happened if that is later.
+func (r PolicyReport) ActiveSince() time.Time {
 	from := r.Now.Add(-r.Window)
-	if len(r.Buckets) > 0 && r.Buckets[0].Start.After(from) {
-		from = r.Buckets[0].Start
+	first := r.Now
+	if len(r.Buckets) > 0 {
+		first = r.Buckets[0].Start
 	}
-	return r.bin(from, r.Now, maxPoints)
+	if len(r.ChoiceBuckets) > 0 && r.ChoiceBuckets[0].Start.Before(first) {
+		first = r.ChoiceBuckets[0].Start
+	}
+	if len(r.Events) > 0 && r.Events[0].At.Before(first) {
+		first = r.Events[0].At
+	}
+	if len(r.Buckets)+len(r.ChoiceBuckets)+len(r.Events) > 0 && first.After(from) {
+		return first
+	}
+	return from
 }
 
 // Progress bins the history from its first stored training to its last,

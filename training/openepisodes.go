@@ -101,6 +101,8 @@ func (k Keeper) ChooseRecorded(ctx context.Context, policy, episode string, step
 	}
 	if repeated {
 		res = stored.answer(in.actions)
+	} else {
+		in.tally.add(in.action, req.Mode, res.Explored, res.KnownState)
 	}
 	return RecordedChoice{ChooseResult: res, Episode: episode, Step: step, Repeated: repeated}, nil
 }

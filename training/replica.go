@@ -37,6 +37,8 @@ type Replica struct {
 	mu     sync.RWMutex
 	byName map[string]*replicaTable
 	byID   map[int32]*replicaTable
+
+	flush choiceFlush
 }
 
 type replicaTable struct {
@@ -58,6 +60,10 @@ type replicaTable struct {
 	pairsByVisits map[int64]int64
 	// epoch is the policy's table epoch the copy holds.
 	epoch int64
+	// tally counts the choices made from the copy until the next flush;
+	// retiredTallies hold counts made before the actions changed.
+	tally          *choiceTally
+	retiredTallies []*choiceTally
 
 	syncedAt atomic.Int64 // unix nanoseconds of the last successful check
 }
@@ -114,6 +120,7 @@ func (r *Replica) Choose(ctx context.Context, policy string, req ChooseRequest) 
 // chosenIn is what recording a choice needs beyond its answer: the policy,
 // the indexes of the chosen and greedy actions and the allowed set.
 type chosenIn struct {
+	tally    *choiceTally
 	policyID int32
 	actions  []string
 	action   int16
@@ -180,8 +187,11 @@ func (r *Replica) choose(ctx context.Context, policy string, req ChooseRequest, 
 	if c.NoAnswer {
 		return ChooseResult{}, in, noAnswer(t.policy, req.State)
 	}
-	if record {
-		in = chosenIn{policyID: t.policy.ID, actions: t.policy.Actions, action: allowed[c.Action], greedy: allowed[c.Greedy],
+	if !record {
+		// A recorded choice is counted once recorded: a repeated one is not new.
+		t.tally.add(allowed[c.Action], req.Mode, c.Explored, known)
+	} else {
+		in = chosenIn{tally: t.tally, policyID: t.policy.ID, actions: t.policy.Actions, action: allowed[c.Action], greedy: allowed[c.Greedy],
 			allowed: make(ActionSet, ActionSetWidth(len(t.policy.Actions)))}
 		for _, a := range allowed {
 			in.allowed.add(a)
@@ -270,6 +280,7 @@ func (r *Replica) sync(ctx context.Context, t *replicaTable, p Policy) error {
 		t.pairs, t.visits, t.pairsByVisits = fresh.pairs, fresh.visits, fresh.pairsByVisits
 		// p was read before the rows, so they hold at least its revision.
 		t.epoch, t.revision = p.TableEpoch, max(fresh.revision, p.Revision)
+		t.fitTally()
 		t.mu.Unlock()
 		t.syncedAt.Store(time.Now().UnixNano())
 		return nil
@@ -294,6 +305,7 @@ func (t *replicaTable) setPolicy(p Policy) {
 		t.clear()
 	}
 	t.policy, t.index = p, p.ActionIndex()
+	t.fitTally()
 	t.fallback = -1
 	if a, ok := t.index[p.GreedyFallback]; ok {
 		t.fallback = a
@@ -322,6 +334,18 @@ func (t *replicaTable) applyRow(row QRow) {
 	sv.q[row.Action] = row.Q
 	sv.visits[row.Action] = row.Visits
 	t.revision = max(t.revision, row.Revision)
+}
+
+// fitTally gives the table a tally as wide as its actions, keeping the
+// counts of a narrower or wider one for the next flush.
+func (t *replicaTable) fitTally() {
+	if t.tally != nil && len(t.tally.counts) == len(t.policy.Actions)*choiceKinds {
+		return
+	}
+	if t.tally != nil {
+		t.retiredTallies = append(t.retiredTallies, t.tally)
+	}
+	t.tally = newChoiceTally(len(t.policy.Actions))
 }
 
 // clear empties the table and its visit counts.
