@@ -136,6 +136,9 @@ DB_PID=$!
 for _ in $(seq 1200); do [ -s "$WORK/db.url" ] && break; kill -0 "$DB_PID" 2>/dev/null || break; sleep 0.1; done
 [ -s "$WORK/db.url" ] || { say "PostgreSQL did not start (see $OUT/postgres.log)"; exit 1; }
 DB_URL=$(cat "$WORK/db.url")
+# qtally refuses a password on its command line (process listings show it):
+# every qtally command below reads the URL from the environment.
+export DATABASE_URL=$DB_URL
 
 say "measuring the ceilings ($CEILINGS) on the same PostgreSQL ..."
 CEIL_STATUS=0
@@ -148,12 +151,12 @@ cat "$OUT/ceilings.txt" >&2
 # the per-token rate limit is off so that it does not cap the figures.
 QTALLY_TOKEN_PEPPER=$(head -c 32 /dev/urandom | od -An -tx1 | tr -d ' \n')
 export QTALLY_TOKEN_PEPPER
-QTALLY_TOKEN=$("$QT" token create --database-url "$DB_URL" --label bench --scope ingest,choose,admin |
+QTALLY_TOKEN=$("$QT" token create --label bench --scope ingest,choose,admin |
   sed -n 's/^secret: //p')
 [ -n "$QTALLY_TOKEN" ] || { say "could not create an API token"; exit 1; }
 export QTALLY_TOKEN
 say "starting qtally serve --no-worker ($PLACEMENT) ..."
-"${API_PIN[@]}" "$QT" serve --no-worker --database-url "$DB_URL" --listen 127.0.0.1:0 --token-rate 0 \
+"${API_PIN[@]}" "$QT" serve --no-worker --listen 127.0.0.1:0 --token-rate 0 \
   --pprof-listen 127.0.0.1:0 --log-format text >"$OUT/api.out" 2>"$OUT/api.log" &
 API_PID=$!
 API=$(wait_line "$OUT/api.out" "qtally: listening on ")
@@ -163,7 +166,7 @@ PPROF=${PPROF%/debug/pprof/}
 qtally_load() { local sc=$1; shift; "${LOAD_PIN[@]}" "$QT" load "$sc" --url "$API" --json "$@"; }
 
 start_worker() {
-  "$QT" worker --database-url "$DB_URL" --listen 127.0.0.1:0 --log-format text >"$OUT/worker.out" 2>>"$OUT/worker.log" &
+  "$QT" worker --listen 127.0.0.1:0 --log-format text >"$OUT/worker.out" 2>>"$OUT/worker.log" &
   WORKER_PID=$!
   wait_line "$OUT/worker.out" "qtally: listening on " >/dev/null
 }
@@ -184,7 +187,7 @@ profile() {
 # 1. Training drain: a backlog stored with no worker, then one worker process
 #    (started by qtally load, not pinned) trains it.
 say "drain: $DRAIN_EPISODES episodes over $DRAIN_STATES states ..."
-QTALLY_BATCH_EPISODES=$DRAIN_BATCH "$QT" load drain --url "$API" --json --database-url "$DB_URL" \
+QTALLY_BATCH_EPISODES=$DRAIN_BATCH "$QT" load drain --url "$API" --json \
   --states "$DRAIN_STATES" --episodes "$DRAIN_EPISODES" >"$OUT/drain.json"
 
 # 2. Posting episodes at the most the service takes, no worker running.
@@ -237,7 +240,7 @@ esac
 RATE=$(awk -v s="$BASIS_STEPS" 'BEGIN { r = int(0.8 * s / 20); print (r < 1 ? 1 : r) }')
 say "mixed: ${MIXED_S}s at $RATE episodes/s (80% of the $MIXED_BASIS figure) ..."
 qtally_load mixed --policy bench --states "$STATES" --rate "$RATE" --choose-every 20 --workers 256 --posters "$POST_WORKERS" \
-  --duration "${MIXED_S}s" --database-url "$DB_URL" --pprof-url "$PPROF" >"$OUT/mixed.json"
+  --duration "${MIXED_S}s" --pprof-url "$PPROF" >"$OUT/mixed.json"
 
 # 7. Sustained loop: clients choose at every step and post finished episodes
 #    in batches; SUSTAIN_TRIALS runs of SUSTAIN_S seconds find the highest
@@ -250,7 +253,7 @@ CHOOSE_RPS=$(json_field "$OUT/choose.json" throughput_per_s)
 START=$(awk -v c="$CHOOSE_RPS" 'BEGIN { r = int(0.25 * c / 20); print (r < 1 ? 1 : r) }')
 say "sustained loop: $SUSTAIN_TRIALS runs of ${SUSTAIN_S}s from $START episodes/s ..."
 qtally_load sustain --policy sustain --states "$STATES" --rate "$START" --choose-every 1 --workers 256 --posters "$POST_WORKERS" \
-  --trials "$SUSTAIN_TRIALS" --duration "${SUSTAIN_S}s" --database-url "$DB_URL" >"$OUT/sustain.json"
+  --trials "$SUSTAIN_TRIALS" --duration "${SUSTAIN_S}s" >"$OUT/sustain.json"
 
 # 8. Mixed with the episodes kept by qtally: every step's choose recorded,
 #    its reward added, the episode ended; 80% of the recorded-choose rate
@@ -259,7 +262,7 @@ KEPT_RPS=$(json_field "$OUT/recorded-choose.json" throughput_per_s)
 KEPT_RATE=$(awk -v s="$KEPT_RPS" 'BEGIN { r = int(0.8 * s / 40); print (r < 1 ? 1 : r) }')
 say "mixed, episodes kept by qtally: ${MIXED_S}s at $KEPT_RATE episodes/s ..."
 qtally_load mixed --keep-episodes --policy bench-kept --states "$STATES" --rate "$KEPT_RATE" --workers 256 \
-  --duration "${MIXED_S}s" --database-url "$DB_URL" >"$OUT/mixed-kept.json"
+  --duration "${MIXED_S}s" >"$OUT/mixed-kept.json"
 
 stop_pid "$WORKER_PID"; WORKER_PID=
 stop_pid "$API_PID"; API_PID=
