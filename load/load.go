@@ -67,6 +67,9 @@ func newClient(cfg Config) (*client.Client, error) {
 		HTTPClient: &http.Client{Timeout: 30 * time.Second, Transport: &http.Transport{MaxIdleConnsPerHost: 256}}})
 }
 
+// defaultMaxPairs is the service's default --max-pairs-per-policy.
+const defaultMaxPairs = 1_000_000
+
 // ensurePolicy creates the scenario's policy (or keeps it as it is).
 func ensurePolicy(ctx context.Context, c *client.Client, cfg Config) error {
 	if _, err := c.Policy(ctx, cfg.Policy); err == nil || client.StatusOf(err) != http.StatusNotFound {
@@ -74,6 +77,10 @@ func ensurePolicy(ctx context.Context, c *client.Client, cfg Config) error {
 	}
 	settings := client.DefaultSettings(cfg.Actions...)
 	settings.Gamma, settings.Alpha, settings.Epsilon = 0.99, 0.05, 0.1
+	// As many states as the service's default pairs per policy allow
+	// (--max-pairs-per-policy 1,000,000): the memory scenario fills exactly
+	// that, and the sustained loop's probes add states of their own.
+	settings.MaxStates = defaultMaxPairs / int64(len(cfg.Actions))
 	_, _, err := c.PutPolicy(ctx, cfg.Policy, settings, "")
 	if client.ProblemOf(err) == client.ProblemPreconditionRequired {
 		// Another run created it since it was read.
