@@ -51,7 +51,10 @@ type WrkFigures struct {
 // Targets of the figures (BENCHMARKS.md says where each comes from).
 const (
 	targetChooseRatio = 0.8
-	targetChooseP99   = 2 * time.Millisecond
+	// Choose's p99 may be at most twice the bare echo lookup's p99 of the
+	// same run: an absolute bound does not hold on a shared machine, whose
+	// bare server's own tail moves from run to run.
+	targetChooseP99Ratio = 2.0
 	// Recording a decision durably (group-committed) keeps at least half
 	// of plain choose's throughput, measured in the same run.
 	targetRecordedRatio = 0.5
@@ -80,7 +83,7 @@ func Report(dir string) (string, error) {
 
 	if wrk, err := readWrk(filepath.Join(dir, FileChooseWrk)); t.ok("choose (wrk -t1 -c64)", err) {
 		t.ratio("choose, wrk -t1 -c64", wrk.Requests, "req/s", "echo_get_lookup_rps", targetChooseRatio, wrk.BadStatus+wrk.Errors)
-		t.max("choose p99, wrk", wrk.P99, "echo_get_p99_ms", targetChooseP99)
+		t.atMost("choose p99, wrk", wrk.P99, "echo_get_p99_ms", targetChooseP99Ratio)
 		t.info("choose p50, wrk", fmtDuration(wrk.P50), "echo_get_p50_ms", float64(wrk.P50)/1e6)
 	}
 	var choose Figures
@@ -194,14 +197,17 @@ func (t *table) ratio(label string, value float64, unit, ceiling string, target 
 }
 
 // max adds a latency row with an absolute bound, shown beside its ceiling.
-func (t *table) max(label string, value time.Duration, ceiling string, bound time.Duration) {
+// atMost adds a row of a duration whose ratio to a ceiling in
+// milliseconds must stay at or below bound.
+func (t *table) atMost(label string, value time.Duration, ceiling string, bound float64) {
 	c, cText, ok := t.ceiling(ceiling)
-	row := [6]string{label, fmtDuration(value), cText, "", "<= " + fmtDuration(bound), "no"}
+	row := [6]string{label, fmtDuration(value), cText, "", fmt.Sprintf("<= %gx", bound), "no"}
 	if ok && c.Median > 0 {
-		row[3] = fmt.Sprintf("%.2fx", float64(value)/1e6/c.Median)
-	}
-	if value <= bound {
-		row[5] = "yes"
+		r := float64(value) / 1e6 / c.Median
+		row[3] = fmt.Sprintf("%.2fx", r)
+		if r <= bound {
+			row[5] = "yes"
+		}
 	}
 	t.rows = append(t.rows, row)
 }
