@@ -244,7 +244,10 @@ func (r *Replica) load(ctx context.Context, p Policy) (*replicaTable, error) {
 	r.mu.Lock()
 	t, ok := r.byID[p.ID]
 	if !ok {
-		t = &replicaTable{policy: p, index: p.ActionIndex(), fallback: -1, states: map[string]*stateValues{}, pairsByVisits: map[int64]int64{}}
+		// The tally exists from the start: a flush may find the table
+		// before its first load has finished, or after it failed.
+		t = &replicaTable{policy: p, index: p.ActionIndex(), fallback: -1, states: map[string]*stateValues{}, pairsByVisits: map[int64]int64{},
+			tally: newChoiceTally(len(p.Actions))}
 		r.byID[p.ID] = t
 	}
 	r.mu.Unlock()
