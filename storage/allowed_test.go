@@ -2,7 +2,6 @@ package storage_test
 
 import (
 	"context"
-	"database/sql"
 	"fmt"
 	"math"
 	"slices"
@@ -11,7 +10,6 @@ import (
 	_ "github.com/jackc/pgx/v5/stdlib" // the "pgx" database/sql driver goose runs on
 	"github.com/pressly/goose/v3"
 
-	"github.com/qtally/qtally/migrations"
 	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/storage/pgtest"
 	"github.com/qtally/qtally/training"
@@ -77,15 +75,7 @@ func TestAllowedSetsRoundTrip(t *testing.T) {
 func TestEpisodesStoredBeforeAllowedSetsReadAsHavingNone(t *testing.T) {
 	ctx := context.Background()
 	url := pgtest.NewDatabase(t)
-	sqlDB, err := sql.Open("pgx", url)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer sqlDB.Close()
-	migrator, err := goose.NewProvider(goose.DialectPostgres, sqlDB, migrations.Files)
-	if err != nil {
-		t.Fatal(err)
-	}
+	migrator, _ := embeddedMigrations(t, url)
 	down, err := migrator.DownTo(ctx, 5)
 	if err != nil || !slices.ContainsFunc(down, func(r *goose.MigrationResult) bool { return r.Source.Version == 6 }) {
 		t.Fatalf("rolling back to version 5 ran %v: %v", down, err)

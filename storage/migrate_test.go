@@ -2,6 +2,7 @@ package storage_test
 
 import (
 	"context"
+	"database/sql"
 	"testing"
 	"time"
 
@@ -20,16 +21,7 @@ import (
 func TestTrainingPositionsOfExistingTables(t *testing.T) {
 	ctx := context.Background()
 	url := pgtest.NewDatabase(t)
-	config, err := pgx.ParseConfig(url)
-	if err != nil {
-		t.Fatal(err)
-	}
-	sqlDB := stdlib.OpenDB(*config)
-	defer sqlDB.Close()
-	provider, err := goose.NewProvider(goose.DialectPostgres, sqlDB, migrations.Files)
-	if err != nil {
-		t.Fatal(err)
-	}
+	provider, _ := embeddedMigrations(t, url)
 	if _, err := provider.DownTo(ctx, 6); err != nil {
 		t.Fatalf("roll back to before migration 7: %v", err)
 	}
@@ -108,16 +100,7 @@ func TestTrainingPositionsOfExistingTables(t *testing.T) {
 func TestHistoryTiersKeepStoredRows(t *testing.T) {
 	ctx := context.Background()
 	url := pgtest.NewDatabase(t)
-	config, err := pgx.ParseConfig(url)
-	if err != nil {
-		t.Fatal(err)
-	}
-	sqlDB := stdlib.OpenDB(*config)
-	defer sqlDB.Close()
-	provider, err := goose.NewProvider(goose.DialectPostgres, sqlDB, migrations.Files)
-	if err != nil {
-		t.Fatal(err)
-	}
+	provider, _ := embeddedMigrations(t, url)
 	if _, err := provider.DownTo(ctx, 12); err != nil {
 		t.Fatalf("roll back to before migration 13: %v", err)
 	}
@@ -180,4 +163,22 @@ func TestHistoryTiersKeepStoredRows(t *testing.T) {
 		got[0].Episodes != 40 || got[0].SumReturn != 15 || got[0].Backlog != 17 || got[1].Episodes != 5 || got[1].Backlog != 4 {
 		t.Fatalf("after rolling back: %+v, want %+v", got, want)
 	}
+}
+
+// embeddedMigrations opens the test database for goose and returns the
+// provider of the embedded migrations and the connection it runs on,
+// closed with the test.
+func embeddedMigrations(t *testing.T, url string) (*goose.Provider, *sql.DB) {
+	t.Helper()
+	config, err := pgx.ParseConfig(url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	db := stdlib.OpenDB(*config)
+	t.Cleanup(func() { db.Close() })
+	provider, err := goose.NewProvider(goose.DialectPostgres, db, migrations.Files)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return provider, db
 }

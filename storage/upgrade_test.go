@@ -2,15 +2,12 @@ package storage_test
 
 import (
 	"context"
-	"database/sql"
 	"errors"
 	"fmt"
 	"testing"
 
 	_ "github.com/jackc/pgx/v5/stdlib" // the "pgx" database/sql driver goose runs on
-	"github.com/pressly/goose/v3"
 
-	"github.com/qtally/qtally/migrations"
 	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/storage/pgtest"
 	"github.com/qtally/qtally/training"
@@ -22,15 +19,7 @@ import (
 func TestUpgradeKeepsStatesWithinTheirQuota(t *testing.T) {
 	ctx := context.Background()
 	url := pgtest.NewDatabase(t)
-	conn, err := sql.Open("pgx", url)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer conn.Close()
-	provider, err := goose.NewProvider(goose.DialectPostgres, conn, migrations.Files)
-	if err != nil {
-		t.Fatal(err)
-	}
+	provider, _ := embeddedMigrations(t, url)
 	if _, err := provider.DownTo(ctx, 8); err != nil {
 		t.Fatal(err)
 	}

@@ -7,11 +7,8 @@ import (
 	"strings"
 	"testing"
 
-	"github.com/jackc/pgx/v5"
-	"github.com/jackc/pgx/v5/stdlib"
 	"github.com/pressly/goose/v3"
 
-	"github.com/qtally/qtally/migrations"
 	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/storage/pgtest"
 	"github.com/qtally/qtally/training"
@@ -25,16 +22,7 @@ const watermarkMigration = 10
 // version just before the watermark migration.
 func migrator(t *testing.T, url string) (*goose.Provider, int64) {
 	t.Helper()
-	cfg, err := pgx.ParseConfig(url)
-	if err != nil {
-		t.Fatal(err)
-	}
-	db := stdlib.OpenDB(*cfg)
-	t.Cleanup(func() { db.Close() })
-	provider, err := goose.NewProvider(goose.DialectPostgres, db, migrations.Files)
-	if err != nil {
-		t.Fatal(err)
-	}
+	provider, _ := embeddedMigrations(t, url)
 	var before int64
 	for _, s := range provider.ListSources() {
 		if s.Version < watermarkMigration {
