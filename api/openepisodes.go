@@ -20,13 +20,18 @@ func episodeParam(c echo.Context, cfg Config) (string, error) {
 	return id, training.ValidateEpisodeID("episode", id, cfg.MaxIDLength)
 }
 
+// openEpisodeParams reads the policy and the open episode a route names.
+func openEpisodeParams(c echo.Context, cfg Config) (policy, episode string, err error) {
+	if policy, err = policyParam(c); err != nil {
+		return "", "", err
+	}
+	episode, err = episodeParam(c, cfg)
+	return policy, episode, err
+}
+
 func handleAddReward(o OpenEpisodes, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
-		name, err := policyParam(c)
-		if err != nil {
-			return err
-		}
-		episode, err := episodeParam(c, cfg)
+		name, episode, err := openEpisodeParams(c, cfg)
 		if err != nil {
 			return err
 		}
@@ -50,11 +55,7 @@ func handleAddReward(o OpenEpisodes, m *metrics.Metrics, cfg Config) echo.Handle
 
 func handleEndEpisode(o OpenEpisodes, m *metrics.Metrics, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
-		name, err := policyParam(c)
-		if err != nil {
-			return err
-		}
-		episode, err := episodeParam(c, cfg)
+		name, episode, err := openEpisodeParams(c, cfg)
 		if err != nil {
 			return err
 		}
@@ -78,11 +79,7 @@ func handleEndEpisode(o OpenEpisodes, m *metrics.Metrics, cfg Config) echo.Handl
 
 func handleGetOpenEpisode(o OpenEpisodes, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
-		name, err := policyParam(c)
-		if err != nil {
-			return err
-		}
-		episode, err := episodeParam(c, cfg)
+		name, episode, err := openEpisodeParams(c, cfg)
 		if err != nil {
 			return err
 		}
