@@ -10,7 +10,7 @@ test:
 	go test -count=1 -short -run '^$$' -bench . -benchtime=1x ./...
 
 build:
-	go build -o bin/qtally .
+	go build -o bin/qtally ./cmd/qtally
 
 fmt-check:
 	@out=$$(gofmt -l .); if [ -n "$$out" ]; then echo "gofmt needed:"; echo "$$out"; exit 1; fi
@@ -19,14 +19,14 @@ fmt-check:
 # first when it is missing.
 dev:
 	scripts/setup-test-machine.sh postgresql
-	go run . dev --demo
+	go run ./cmd/qtally dev --demo
 
 # Runs the demo as `make dev` does, on a private PostgreSQL, and saves the
 # policy page as headless Chromium shows it: docs/images/policy-page.png, the
 # README's picture (the test also checks the learning curve on the way).
 screenshot:
 	scripts/setup-test-machine.sh postgresql chromium
-	QTALLY_SCREENSHOT_DEMO=full go test -count=1 -run '^TestLearningCurveInBrowser$$' .
+	QTALLY_SCREENSHOT_DEMO=full go test -count=1 -run '^TestLearningCurveInBrowser$$' ./internal/systemtest
 	mkdir -p docs/images
 	cp test-output/policy-page.png docs/images/policy-page.png
 

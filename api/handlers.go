@@ -14,7 +14,7 @@ import (
 
 	"github.com/labstack/echo/v4"
 
-	"github.com/qtally/qtally/metrics"
+	"github.com/qtally/qtally/internal/metrics"
 	"github.com/qtally/qtally/training"
 )
 

@@ -8,7 +8,7 @@ import (
 
 	"github.com/labstack/echo/v4"
 
-	"github.com/qtally/qtally/metrics"
+	"github.com/qtally/qtally/internal/metrics"
 )
 
 // methodLabels are the methods a request is counted under; any other

@@ -92,7 +92,7 @@ WORK=$(mktemp -d "${TMPDIR:-/tmp}/qtally-bench.XXXXXX")
 T0=$(date +%s)
 
 say "building ..."
-(cd "$ROOT" && go build -o "$WORK/qtally" . && go build -o "$WORK/benchdb" ./scripts/benchdb)
+(cd "$ROOT" && go build -o "$WORK/qtally" ./cmd/qtally && go build -o "$WORK/benchdb" ./cmd/benchdb)
 # go tool pprof may build itself on first use: not while profiling.
 if [ "$PROFILE" = 1 ]; then go tool pprof -h >/dev/null 2>&1 || true; fi
 QT=$WORK/qtally

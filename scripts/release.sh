@@ -20,7 +20,7 @@ esac
 # (-buildvcs=false: the commit is stamped explicitly, and an image build has
 # no .git), no symbol table or DWARF (-s -w).
 export CGO_ENABLED=0 GOFLAGS=-buildvcs=false
-ldflags="-s -w -X main.version=$VERSION -X main.commit=$COMMIT"
+ldflags="-s -w -X github.com/qtally/qtally/cmd/qtally/commands.version=$VERSION -X github.com/qtally/qtally/cmd/qtally/commands.commit=$COMMIT"
 
 mkdir -p "$DIST"
 DIST=$(cd "$DIST" && pwd)
@@ -32,7 +32,7 @@ for platform in $PLATFORMS; do
 	goarch=${platform#*/}
 	name=qtally-$VERSION-$goos-$goarch
 	mkdir -p "$work/$name"
-	GOOS=$goos GOARCH=$goarch go build -trimpath -ldflags="$ldflags" -o "$work/$name/qtally" .
+	GOOS=$goos GOARCH=$goarch go build -trimpath -ldflags="$ldflags" -o "$work/$name/qtally" ./cmd/qtally
 	cp LICENSE README.md CHANGELOG.md "$work/$name/"
 	cp "$work/$name/qtally" "$DIST/$name"
 	# The archive's entries carry fixed times, owners and order, and gzip

@@ -2,6 +2,8 @@ package training
 
 import (
 	"context"
+	"errors"
+	"fmt"
 	"log/slog"
 	"time"
 )
@@ -44,8 +46,13 @@ type Worker struct {
 }
 
 // Run trains until ctx ends. Errors are retried with backoff, never fatal:
-// a failed batch rolls back and its episodes are claimed again.
+// a failed batch rolls back and its episodes are claimed again. Settings
+// that cannot work are refused at once: a zero poll interval would make
+// an idle worker ask for work without pause.
 func (w *Worker) Run(ctx context.Context) error {
+	if err := w.check(); err != nil {
+		return err
+	}
 	backoff := time.Duration(0)
 	poll := time.NewTimer(0)
 	defer poll.Stop()
@@ -83,6 +90,20 @@ func (w *Worker) Run(ctx context.Context) error {
 		case <-poll.C:
 		}
 	}
+}
+
+func (w *Worker) check() error {
+	var errs []error
+	if w.PollInterval <= 0 {
+		errs = append(errs, fmt.Errorf("worker: the poll interval must be positive, got %v", w.PollInterval))
+	}
+	if w.BatchEpisodes < 1 {
+		errs = append(errs, fmt.Errorf("worker: a batch must take at least one episode, got %d", w.BatchEpisodes))
+	}
+	if w.BatchTimeout <= 0 {
+		errs = append(errs, fmt.Errorf("worker: the batch timeout must be positive, got %v", w.BatchTimeout))
+	}
+	return errors.Join(errs...)
 }
 
 func sleep(ctx context.Context, d time.Duration) bool {
