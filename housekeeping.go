@@ -7,9 +7,9 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus"
 
+	"github.com/qtally/qtally/internal/jobs"
 	"github.com/qtally/qtally/metrics"
 	"github.com/qtally/qtally/storage"
-	"github.com/qtally/qtally/training"
 )
 
 // Job runner pacing: progress is written (and the runner shows it is
@@ -29,7 +29,7 @@ func startHousekeeping(cfg serviceConfig, db *storage.DB, reg prometheus.Registe
 	subs map[string]storage.Subscription, goBackground func(string, func(context.Context) error)) {
 	jobWake := make(chan struct{}, 1)
 	subs[storage.ChannelJobs] = storage.Subscription{Notify: func(int32) { nudge(jobWake) }, CatchUp: func() { nudge(jobWake) }}
-	runner := &training.JobRunner{
+	runner := &jobs.Runner{
 		Jobs: db, Evaluations: db, Replays: db, BatchEpisodes: cfg.BatchEpisodes,
 		Wake: jobWake, PollInterval: cfg.PollInterval,
 		ReportInterval: jobReportInterval, StaleAfter: cfg.JobStaleAfter, MaxAttempts: jobMaxAttempts,

@@ -14,6 +14,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/qtally/qtally/api"
+	"github.com/qtally/qtally/internal/access"
 	"github.com/qtally/qtally/metrics"
 	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/training"
@@ -108,7 +109,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	if cfg.RunAPI {
 		if keyring := startKeyring(ctx, cfg.Auth, db, subs, goBackground, logger, stdout); keyring != nil {
 			auth = keyring
-			sessions = training.PageSessions{Store: db, Tokens: keyring, Life: pageSessionLife, Key: training.SessionKey(cfg.Auth.Pepper)}
+			sessions = access.PageSessions{Store: db, Tokens: keyring, Life: pageSessionLife, Key: access.SessionKey(cfg.Auth.Pepper)}
 		}
 		batcher := db.NewDecisionBatcher(decisionBatchWindow, decisionBatchMax)
 		batcher.Observe = m.Open.ObserveDecisionBatch
