@@ -10,6 +10,8 @@ import (
 
 	"github.com/labstack/echo/v4"
 
+	"github.com/qtally/qtally/internal/jobs"
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
@@ -161,12 +163,12 @@ func joinField(path, name string) string {
 
 // authorizeJobNames authorises the policies a stored job's request names,
 // so that a job queued by a wider token does not show them to a narrower.
-func authorizeJobNames(c echo.Context, job training.JobView) error {
+func authorizeJobNames(c echo.Context, job jobs.View) error {
 	var req any
 	switch job.Kind {
-	case training.EvaluationJobKind:
+	case jobs.EvaluationKind:
 		req = &training.EvaluationRequest{}
-	case training.ReplayJobKind:
+	case jobs.ReplayKind:
 		req = &training.ReplayRequest{}
 	default:
 		return nil
@@ -178,9 +180,9 @@ func authorizeJobNames(c echo.Context, job training.JobView) error {
 }
 
 // coveredPolicies keeps the policies the request's token covers.
-func coveredPolicies(c echo.Context, list []training.PolicyStatus) []training.PolicyStatus {
+func coveredPolicies(c echo.Context, list []views.PolicyStatus) []views.PolicyStatus {
 	if tok := requestToken(c); tok != nil {
-		list = slices.DeleteFunc(list, func(st training.PolicyStatus) bool { return !tok.CoversPolicy(st.Name) })
+		list = slices.DeleteFunc(list, func(st views.PolicyStatus) bool { return !tok.CoversPolicy(st.Name) })
 	}
 	return list
 }

@@ -9,13 +9,14 @@ import (
 
 	"github.com/labstack/echo/v4"
 
+	"github.com/qtally/qtally/internal/access"
 	"github.com/qtally/qtally/training"
 )
 
 // AuditLog keeps the record of admin actions.
 type AuditLog interface {
-	RecordAudit(ctx context.Context, e training.AuditEntry) error
-	AuditLog(ctx context.Context, q training.AuditQuery) (training.AuditPage, error)
+	RecordAudit(ctx context.Context, e access.AuditEntry) error
+	AuditLog(ctx context.Context, q access.AuditQuery) (access.AuditPage, error)
 }
 
 // auditWriteTimeout bounds writing one entry after the answer is sent.
@@ -39,7 +40,7 @@ func (a auditedRoutes) record(log AuditLog, logger *slog.Logger) echo.Middleware
 			if err := next(c); err != nil {
 				c.Error(err) // answer now, so that the entry holds the status sent
 			}
-			e := training.AuditEntry{Via: training.AuditViaAPI, Method: c.Request().Method, Route: c.Path(),
+			e := access.AuditEntry{Via: access.AuditViaAPI, Method: c.Request().Method, Route: c.Path(),
 				Path: c.Request().URL.RequestURI(), PoliciesNamed: namedPolicies(c), Status: c.Response().Status,
 				Object: c.Response().Header().Get(echo.HeaderLocation), TokenLabel: "(authentication off)"}
 			if name, err := pathParam(c, "policy"); err == nil && training.ValidatePolicyName(name) == nil {
@@ -62,15 +63,15 @@ func (a auditedRoutes) record(log AuditLog, logger *slog.Logger) echo.Middleware
 
 func handleAuditLog(log AuditLog) echo.HandlerFunc {
 	return func(c echo.Context) error {
-		q := training.AuditQuery{Policy: c.QueryParam("policy"), Limit: training.DefaultAuditLimit}
+		q := access.AuditQuery{Policy: c.QueryParam("policy"), Limit: access.DefaultAuditLimit}
 		var checks []error
 		if q.Policy != "" && training.ValidatePolicyName(q.Policy) != nil {
 			checks = append(checks, training.Invalid(-1, -1, "policy", "is not a valid policy name"))
 		}
 		if v := c.QueryParam("limit"); v != "" {
 			n, err := strconv.Atoi(v)
-			if err != nil || n < 1 || n > training.MaxAuditLimit {
-				checks = append(checks, training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", training.MaxAuditLimit))
+			if err != nil || n < 1 || n > access.MaxAuditLimit {
+				checks = append(checks, training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", access.MaxAuditLimit))
 			}
 			q.Limit = n
 		}

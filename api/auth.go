@@ -13,12 +13,13 @@ import (
 	"github.com/labstack/echo/v4"
 	"golang.org/x/time/rate"
 
+	"github.com/qtally/qtally/internal/access"
 	"github.com/qtally/qtally/training"
 )
 
 // Authenticator verifies bearer secrets.
 type Authenticator interface {
-	Verify(ctx context.Context, secret string) (*training.Token, error)
+	Verify(ctx context.Context, secret string) (*access.Token, error)
 }
 
 // RateConfig is the request rate a token gets unless it sets its own.
@@ -65,7 +66,7 @@ func (g *guard) authenticate(next echo.HandlerFunc) echo.HandlerFunc {
 			return next(c)
 		}
 		header := c.Request().Header.Get(echo.HeaderAuthorization)
-		var tok *training.Token
+		var tok *access.Token
 		if header == "" && isPageRequest(c) {
 			// A browser cannot send a bearer header: status pages take the
 			// token of the session that signing in opened.
@@ -103,7 +104,7 @@ func (g *guard) authenticate(next echo.HandlerFunc) echo.HandlerFunc {
 
 // allow takes one request from the token's budget, or says how long until
 // one is available.
-func (g *guard) allow(tok *training.Token) (time.Duration, bool) {
+func (g *guard) allow(tok *access.Token) (time.Duration, bool) {
 	perSecond, burst := g.rate.PerSecond, g.rate.Burst
 	if tok.RatePerSecond > 0 {
 		perSecond, burst = tok.RatePerSecond, tok.Burst
@@ -128,13 +129,13 @@ func (g *guard) allow(tok *training.Token) (time.Duration, bool) {
 // requireScope lets a request through only when its token has one of the
 // scopes (the first is the one a refusal names). The policies it names are
 // authorised for every request, in access.go.
-func (g *guard) requireScope(scopes ...training.Scope) echo.MiddlewareFunc {
+func (g *guard) requireScope(scopes ...access.Scope) echo.MiddlewareFunc {
 	return func(next echo.HandlerFunc) echo.HandlerFunc {
 		if g == nil {
 			return next
 		}
 		return func(c echo.Context) error {
-			tok, _ := c.Get(tokenKey).(*training.Token)
+			tok, _ := c.Get(tokenKey).(*access.Token)
 			if tok == nil {
 				return training.Unauthenticatedf("this request needs a token")
 			}
@@ -155,8 +156,8 @@ func (g *guard) requireScope(scopes ...training.Scope) echo.MiddlewareFunc {
 }
 
 // requestToken is the verified token of a request; nil when auth is off.
-func requestToken(c echo.Context) *training.Token {
-	tok, _ := c.Get(tokenKey).(*training.Token)
+func requestToken(c echo.Context) *access.Token {
+	tok, _ := c.Get(tokenKey).(*access.Token)
 	return tok
 }
 

@@ -9,6 +9,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
@@ -138,7 +139,7 @@ func TestActionMixGroupsTheRareActions(t *testing.T) {
 		}
 	}
 	slices.SortStableFunc(buckets, func(a, b training.ChoiceBucket) int { return a.Start.Compare(b.Start) })
-	r := training.PolicyReport{Now: now, Window: 10 * time.Minute, ChoiceBuckets: buckets}
+	r := views.PolicyReport{Now: now, Window: 10 * time.Minute, ChoiceBuckets: buckets}
 	r.Status.Actions = actions
 	line := r.Timeline(maxChartPoints)
 	mix, rates := choiceCharts(r, line, timeAxis(line.From, line.To, 3*line.Step))

@@ -14,7 +14,9 @@ import (
 
 	"github.com/labstack/echo/v4"
 
+	"github.com/qtally/qtally/internal/access"
 	"github.com/qtally/qtally/internal/metrics"
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
@@ -69,7 +71,7 @@ func policyParam(c echo.Context) (string, error) {
 
 func handleListPolicies(p Policies) echo.HandlerFunc {
 	type response struct {
-		Policies []training.PolicyStatus `json:"policies"`
+		Policies []views.PolicyStatus `json:"policies"`
 	}
 	return func(c echo.Context) error {
 		list, err := p.ListPolicyStatus(c.Request().Context())
@@ -79,7 +81,7 @@ func handleListPolicies(p Policies) echo.HandlerFunc {
 		// A token limited to some policies sees only those.
 		list = coveredPolicies(c, list)
 		if list == nil {
-			list = []training.PolicyStatus{}
+			list = []views.PolicyStatus{}
 		}
 		return c.JSON(http.StatusOK, response{Policies: list})
 	}
@@ -117,7 +119,7 @@ func handlePutPolicy(p Policies, cfg Config) echo.HandlerFunc {
 			return err
 		}
 		policy, created, err := p.ChangePolicy(c.Request().Context(), name, training.SettingsChange{
-			IfMatch: c.Request().Header.Get("If-Match"), Replace: &settings, By: training.ActorOf(requestToken(c))})
+			IfMatch: c.Request().Header.Get("If-Match"), Replace: &settings, By: access.ActorOf(requestToken(c))})
 		if err != nil {
 			return err
 		}
@@ -168,7 +170,7 @@ func handlePatchPolicy(p Policies, cfg Config) echo.HandlerFunc {
 			return next, decodeStrict(merged, &next, -1)
 		}
 		policy, _, err := p.ChangePolicy(c.Request().Context(), name, training.SettingsChange{
-			IfMatch: c.Request().Header.Get("If-Match"), Patch: apply, By: training.ActorOf(requestToken(c))})
+			IfMatch: c.Request().Header.Get("If-Match"), Patch: apply, By: access.ActorOf(requestToken(c))})
 		if err != nil {
 			return err
 		}

@@ -11,18 +11,19 @@ import (
 
 	"github.com/labstack/echo/v4"
 
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
 // Inspector reads what operators look at: a policy's states and the
 // status page's report of a policy.
 type Inspector interface {
-	ListStates(ctx context.Context, policy string, q training.StateQuery) (training.StatePage, error)
-	PolicyReport(ctx context.Context, policy string, window time.Duration, top int) (training.PolicyReport, error)
+	ListStates(ctx context.Context, policy string, q views.StateQuery) (views.StatePage, error)
+	PolicyReport(ctx context.Context, policy string, window time.Duration, top int) (views.PolicyReport, error)
 }
 
 type statesResponse struct {
-	States []training.StateSummary `json:"states"`
+	States []views.StateSummary `json:"states"`
 	// NextCursor continues the listing; absent on its last page.
 	NextCursor string `json:"next_cursor,omitempty"`
 }
@@ -43,25 +44,25 @@ func handleListStates(in Inspector) echo.HandlerFunc {
 		}
 		res := statesResponse{States: page.States, NextCursor: encodeCursor(page.Next)}
 		if res.States == nil {
-			res.States = []training.StateSummary{}
+			res.States = []views.StateSummary{}
 		}
 		return c.JSON(http.StatusOK, res)
 	}
 }
 
 // bindStateQuery reads sort, limit and cursor of a state listing.
-func bindStateQuery(c echo.Context) (training.StateQuery, error) {
-	q := training.StateQuery{Order: training.ByVisits, Limit: training.DefaultStatePage}
+func bindStateQuery(c echo.Context) (views.StateQuery, error) {
+	q := views.StateQuery{Order: views.ByVisits, Limit: views.DefaultStatePage}
 	if s := c.QueryParam("sort"); s != "" {
-		q.Order = training.StateOrder(s)
-		if !slices.Contains(training.StateOrders, q.Order) {
-			return q, training.Invalid(-1, -1, "sort", "%q is not a sort order; use one of %q", truncateRunes(s, 64), training.StateOrders)
+		q.Order = views.StateOrder(s)
+		if !slices.Contains(views.StateOrders, q.Order) {
+			return q, training.Invalid(-1, -1, "sort", "%q is not a sort order; use one of %q", truncateRunes(s, 64), views.StateOrders)
 		}
 	}
 	if s := c.QueryParam("limit"); s != "" {
 		n, err := strconv.Atoi(s)
-		if err != nil || n < 1 || n > training.MaxStatePage {
-			return q, training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", training.MaxStatePage)
+		if err != nil || n < 1 || n > views.MaxStatePage {
+			return q, training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", views.MaxStatePage)
 		}
 		q.Limit = n
 	}
@@ -80,7 +81,7 @@ func bindStateQuery(c echo.Context) (training.StateQuery, error) {
 
 // Cursors are opaque to clients: the key of the last state of a page, as
 // unpadded base64url JSON.
-func encodeCursor(k *training.StateKey) string {
+func encodeCursor(k *views.StateKey) string {
 	if k == nil {
 		return ""
 	}
@@ -91,8 +92,8 @@ func encodeCursor(k *training.StateKey) string {
 	return base64.RawURLEncoding.EncodeToString(data)
 }
 
-func decodeCursor(s string) (training.StateKey, error) {
-	var k training.StateKey
+func decodeCursor(s string) (views.StateKey, error) {
+	var k views.StateKey
 	data, err := base64.RawURLEncoding.DecodeString(s)
 	if err != nil {
 		return k, err

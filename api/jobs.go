@@ -10,25 +10,26 @@ import (
 
 	"github.com/labstack/echo/v4"
 
+	"github.com/qtally/qtally/internal/jobs"
 	"github.com/qtally/qtally/training"
 )
 
 // Jobs queues evaluations and replays and reports on them.
 type Jobs interface {
-	StartEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (training.JobView, error)
-	StartReplay(ctx context.Context, policy string, req training.ReplayRequest) (training.JobView, error)
-	Job(ctx context.Context, policy string, kind training.JobKind, id int64) (training.JobView, error)
-	ListJobs(ctx context.Context, policy string, kind training.JobKind, q training.JobQuery) (training.JobPage, error)
+	StartEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (jobs.View, error)
+	StartReplay(ctx context.Context, policy string, req training.ReplayRequest) (jobs.View, error)
+	Job(ctx context.Context, policy string, kind jobs.Kind, id int64) (jobs.View, error)
+	ListJobs(ctx context.Context, policy string, kind jobs.Kind, q jobs.Query) (jobs.Page, error)
 }
 
 // jobPaths are the collection paths of each kind of job.
-var jobPaths = map[training.JobKind]string{
-	training.EvaluationJobKind: "evaluations",
-	training.ReplayJobKind:     "replays",
+var jobPaths = map[jobs.Kind]string{
+	jobs.EvaluationKind: "evaluations",
+	jobs.ReplayKind:     "replays",
 }
 
 // accepted answers 202 with the queued job and where to follow it.
-func accepted(c echo.Context, job training.JobView) error {
+func accepted(c echo.Context, job jobs.View) error {
 	c.Response().Header().Set(echo.HeaderLocation, fmt.Sprintf("/v1/policies/%s/%s/%d", job.Policy, jobPaths[job.Kind], job.ID))
 	return c.JSON(http.StatusAccepted, job)
 }
@@ -79,7 +80,7 @@ func handleStartReplay(j Jobs, cfg Config) echo.HandlerFunc {
 	}
 }
 
-func handleGetJob(j Jobs, kind training.JobKind) echo.HandlerFunc {
+func handleGetJob(j Jobs, kind jobs.Kind) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		policy, err := policyParam(c)
 		if err != nil {
@@ -90,7 +91,7 @@ func handleGetJob(j Jobs, kind training.JobKind) echo.HandlerFunc {
 			return training.Invalid(-1, -1, "id", "must be a job number")
 		}
 		job, err := j.Job(c.Request().Context(), policy, kind, id)
-		var missing *training.JobNotFoundError
+		var missing *jobs.NotFoundError
 		if errors.As(err, &missing) {
 			return jobNotFound(missing)
 		}
@@ -107,7 +108,7 @@ func handleGetJob(j Jobs, kind training.JobKind) echo.HandlerFunc {
 // jobNotFound says where to look instead: the job's own path when the id
 // is the policy's job of the other kind, else the policy's listing (an id
 // from another policy's path is not found under this one).
-func jobNotFound(e *training.JobNotFoundError) error {
+func jobNotFound(e *jobs.NotFoundError) error {
 	if e.OtherKind != "" {
 		return training.NotFoundf("%s; read it at GET /v1/policies/%s/%s/%d", e, e.Policy, jobPaths[e.OtherKind], e.ID)
 	}
@@ -116,24 +117,24 @@ func jobNotFound(e *training.JobNotFoundError) error {
 }
 
 type jobsResponse struct {
-	Jobs []training.JobView `json:"jobs"`
+	Jobs []jobs.View `json:"jobs"`
 	// NextCursor continues the listing; absent on its last page.
 	NextCursor string `json:"next_cursor,omitempty"`
 }
 
 // handleListJobs lists a policy's jobs of a kind, newest first, a page at
 // a time.
-func handleListJobs(j Jobs, kind training.JobKind) echo.HandlerFunc {
+func handleListJobs(j Jobs, kind jobs.Kind) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		policy, err := policyParam(c)
 		if err != nil {
 			return err
 		}
-		q := training.JobQuery{Limit: training.DefaultJobPage}
+		q := jobs.Query{Limit: jobs.DefaultPage}
 		if s := c.QueryParam("limit"); s != "" {
 			n, err := strconv.Atoi(s)
-			if err != nil || n < 1 || n > training.MaxJobPage {
-				return training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", training.MaxJobPage)
+			if err != nil || n < 1 || n > jobs.MaxPage {
+				return training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", jobs.MaxPage)
 			}
 			q.Limit = n
 		}
@@ -148,7 +149,7 @@ func handleListJobs(j Jobs, kind training.JobKind) echo.HandlerFunc {
 		}
 		res := jobsResponse{Jobs: page.Jobs}
 		if res.Jobs == nil {
-			res.Jobs = []training.JobView{}
+			res.Jobs = []jobs.View{}
 		}
 		if page.Next > 0 {
 			res.NextCursor = base64.RawURLEncoding.EncodeToString([]byte(strconv.FormatInt(page.Next, 10)))

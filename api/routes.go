@@ -4,7 +4,8 @@ import (
 	"github.com/labstack/echo/v4"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
 
-	"github.com/qtally/qtally/training"
+	"github.com/qtally/qtally/internal/access"
+	"github.com/qtally/qtally/internal/jobs"
 )
 
 // addHealthRoutes serves what every process serves, API or worker.
@@ -21,14 +22,14 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoute
 
 	// Every admin route is registered through audit.add, so that each of its
 	// requests goes to the audit log (TestEveryRouteEnforcesAccess checks).
-	admin, ingest, choose := g.requireScope(training.ScopeAdmin), g.requireScope(training.ScopeIngest), g.requireScope(training.ScopeChoose)
+	admin, ingest, choose := g.requireScope(access.ScopeAdmin), g.requireScope(access.ScopeIngest), g.requireScope(access.ScopeChoose)
 	bulk := bulkDeadline(cfg.BulkTimeout)
 	audit.add(e.GET("/v1/policies", handleListPolicies(d.Policies), admin))
 	audit.add(e.GET("/v1/audit", handleAuditLog(d.Audit), admin))
 	// Applications read their policy's backlog and revision with the
 	// scopes they have.
 	audit.add(e.GET("/v1/policies/:policy", handleGetPolicy(d.Policies),
-		g.requireScope(training.ScopeAdmin, training.ScopeChoose, training.ScopeIngest)))
+		g.requireScope(access.ScopeAdmin, access.ScopeChoose, access.ScopeIngest)))
 	audit.add(e.PUT("/v1/policies/:policy", handlePutPolicy(d.Policies, cfg), admin))
 	audit.add(e.PATCH("/v1/policies/:policy", handlePatchPolicy(d.Policies, cfg), admin))
 	audit.add(e.DELETE("/v1/policies/:policy", handleDeletePolicy(d.Eraser), admin))
@@ -39,7 +40,7 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoute
 	e.POST("/v1/policies/:policy/open-episodes/:episode/rewards", handleAddReward(d.OpenEpisodes, d.Metrics, cfg), ingest)
 	e.POST("/v1/policies/:policy/open-episodes/:episode/end", handleEndEpisode(d.OpenEpisodes, d.Metrics, cfg), ingest)
 	e.GET("/v1/policies/:policy/open-episodes/:episode", handleGetOpenEpisode(d.OpenEpisodes, cfg),
-		g.requireScope(training.ScopeIngest, training.ScopeChoose))
+		g.requireScope(access.ScopeIngest, access.ScopeChoose))
 	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect), choose)
 	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States, cfg), choose)
 
@@ -53,17 +54,17 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoute
 	audit.add(e.GET("/v1/policies/:policy/snapshots/:snapshot/table", handleExportTable(d.Snapshots, true), admin, bulk))
 	audit.add(e.POST("/v1/policies/:policy/snapshots/:snapshot/restore", handleRestoreSnapshot(d.Tables), admin))
 	audit.add(e.POST("/v1/policies/:policy/evaluations", handleStartEvaluation(d.Jobs, cfg), admin))
-	audit.add(e.GET("/v1/policies/:policy/evaluations", handleListJobs(d.Jobs, training.EvaluationJobKind), admin))
-	audit.add(e.GET("/v1/policies/:policy/evaluations/:id", handleGetJob(d.Jobs, training.EvaluationJobKind), admin))
+	audit.add(e.GET("/v1/policies/:policy/evaluations", handleListJobs(d.Jobs, jobs.EvaluationKind), admin))
+	audit.add(e.GET("/v1/policies/:policy/evaluations/:id", handleGetJob(d.Jobs, jobs.EvaluationKind), admin))
 	audit.add(e.POST("/v1/policies/:policy/replays", handleStartReplay(d.Jobs, cfg), admin))
-	audit.add(e.GET("/v1/policies/:policy/replays", handleListJobs(d.Jobs, training.ReplayJobKind), admin))
-	audit.add(e.GET("/v1/policies/:policy/replays/:id", handleGetJob(d.Jobs, training.ReplayJobKind), admin))
+	audit.add(e.GET("/v1/policies/:policy/replays", handleListJobs(d.Jobs, jobs.ReplayKind), admin))
+	audit.add(e.GET("/v1/policies/:policy/replays/:id", handleGetJob(d.Jobs, jobs.ReplayKind), admin))
 }
 
 // addStatusRoutes serves the status pages for people; they show every
 // policy's figures, so they need the admin scope.
 func addStatusRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
-	admin := g.requireScope(training.ScopeAdmin)
+	admin := g.requireScope(access.ScopeAdmin)
 	if g != nil {
 		s := &signIn{auth: g.auth, sessions: g.sessions, attempts: newAddressLimiter(cfg.SignInAttemptsPerMinute, maxTrackedAddresses),
 			trustedProxy: cfg.fromTrustedProxy}

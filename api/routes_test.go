@@ -7,14 +7,14 @@ import (
 	"github.com/getkin/kin-openapi/openapi3"
 	"github.com/labstack/echo/v4"
 
-	"github.com/qtally/qtally/training"
+	"github.com/qtally/qtally/internal/access"
 )
 
 // Every route the server registers is an operation of the OpenAPI
 // document and the other way round, so that the whole-system access test,
 // which walks the document, reaches every route.
 func TestEveryRouteIsDocumented(t *testing.T) {
-	e := NewServer(Config{}, Deps{Auth: training.NewKeyring(nil, "")}).(*echo.Echo)
+	e := NewServer(Config{}, Deps{Auth: access.NewKeyring(nil, "")}).(*echo.Echo)
 	doc, err := openapi3.NewLoader().LoadFromData(OpenAPIDocument)
 	if err != nil {
 		t.Fatal(err)

@@ -15,14 +15,15 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/qtally/qtally/internal/metrics"
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
 // Policies creates, updates and reads policies.
 type Policies interface {
 	ChangePolicy(ctx context.Context, name string, change training.SettingsChange) (training.Policy, bool, error)
-	PolicyStatus(ctx context.Context, name string) (training.PolicyStatus, error)
-	ListPolicyStatus(ctx context.Context) ([]training.PolicyStatus, error)
+	PolicyStatus(ctx context.Context, name string) (views.PolicyStatus, error)
+	ListPolicyStatus(ctx context.Context) ([]views.PolicyStatus, error)
 }
 
 // Eraser deletes stored data about people: one episode's record, or a
@@ -39,7 +40,7 @@ type SettingsHistory interface {
 
 // Episodes stores posted episodes.
 type Episodes interface {
-	Ingest(ctx context.Context, policy string, episodes []training.Episode) (training.IngestResult, error)
+	Ingest(ctx context.Context, policy string, episodes []training.Episode) (views.IngestResult, error)
 	// CheckEpisodes validates episodes against the policy as Ingest does,
 	// storing nothing.
 	CheckEpisodes(ctx context.Context, policy string, episodes []training.Episode) error
@@ -47,7 +48,7 @@ type Episodes interface {
 
 // States reads one state's estimates.
 type States interface {
-	State(ctx context.Context, policy, state string) (training.StateView, error)
+	State(ctx context.Context, policy, state string) (views.StateView, error)
 }
 
 // Chooser picks actions.

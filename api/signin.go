@@ -17,14 +17,14 @@ import (
 
 	"github.com/labstack/echo/v4"
 
-	"github.com/qtally/qtally/training"
+	"github.com/qtally/qtally/internal/access"
 )
 
 // PageSessions keeps the status pages' sign-ins: the browser holds an
 // opaque session id, never a token secret.
 type PageSessions interface {
-	Start(ctx context.Context, tok *training.Token) (training.PageSession, error)
-	Token(ctx context.Context, id string) (*training.Token, error)
+	Start(ctx context.Context, tok *access.Token) (access.PageSession, error)
+	Token(ctx context.Context, id string) (*access.Token, error)
 	End(ctx context.Context, id string) error
 }
 
@@ -134,7 +134,7 @@ func (s *signIn) handleSignIn() echo.HandlerFunc {
 		if err != nil {
 			return renderSignIn(c, http.StatusUnauthorized, "That token is not valid, or it was revoked.")
 		}
-		if err := tok.Authorize(training.ScopeAdmin, ""); err != nil {
+		if err := tok.Authorize(access.ScopeAdmin, ""); err != nil {
 			return renderSignIn(c, http.StatusForbidden, "The status pages need a token with the admin scope.")
 		}
 		session, err := s.sessions.Start(c.Request().Context(), tok)

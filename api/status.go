@@ -15,6 +15,7 @@ import (
 
 	"github.com/labstack/echo/v4"
 
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
@@ -67,12 +68,12 @@ type pageBase struct {
 }
 
 type policyRow struct {
-	training.PolicyStatus
+	views.PolicyStatus
 	Progress string
 	Behind   bool
 }
 
-func newPolicyRow(st training.PolicyStatus, now time.Time) policyRow {
+func newPolicyRow(st views.PolicyStatus, now time.Time) policyRow {
 	r := policyRow{PolicyStatus: st}
 	switch {
 	case st.Episodes == 0:
@@ -119,7 +120,7 @@ type actionQ struct {
 }
 
 type stateRow struct {
-	training.StateSummary
+	views.StateSummary
 	Ago string
 	// Best holds the actions of highest Q first; Hidden counts the rest.
 	Best   []actionQ
@@ -129,7 +130,7 @@ type stateRow struct {
 // shownActions bounds the actions listed per state; policies may have many.
 const shownActions = 5
 
-func newStateRows(states []training.StateSummary, now time.Time) []stateRow {
+func newStateRows(states []views.StateSummary, now time.Time) []stateRow {
 	rows := make([]stateRow, len(states))
 	for i, s := range states {
 		r := stateRow{StateSummary: s, Ago: formatAgo(now, &s.UpdatedAt)}
@@ -262,7 +263,7 @@ func windowQuery(w time.Duration) string {
 }
 
 // chartSpan names what the time charts cover.
-func chartSpan(r training.PolicyReport) string {
+func chartSpan(r views.PolicyReport) string {
 	last := "Last " + formatDuration(r.Window)
 	// A minute's slack: the oldest row kept may start just inside the window.
 	if since := r.ActiveSince(); since.After(r.Now.Add(-r.Window + time.Minute)) {
@@ -277,7 +278,7 @@ const maxChartPoints = 180
 // historyCharts draws the report's history: what to look at to tell
 // whether a policy learns (return rises towards its target, drift falls),
 // is stuck (backlog grows) or keeps changing its mind (churn).
-func historyCharts(r training.PolicyReport) []chartView {
+func historyCharts(r views.PolicyReport) []chartView {
 	var targets []targetLine
 	if t := r.Status.ReturnTarget; t != nil && t.Value != nil {
 		label := t.Label
@@ -371,7 +372,7 @@ func eventMarks(events []training.PolicyEvent) []eventMark {
 // choiceCharts draws what API processes chose over the timeline's span:
 // the share of each action, and how often choices explored or met a state
 // with no estimate yet.
-func choiceCharts(r training.PolicyReport, line training.HistoryView, axis xAxis) (chartView, chartView) {
+func choiceCharts(r views.PolicyReport, line views.HistoryView, axis xAxis) (chartView, chartView) {
 	view := r.Choices(line.From, line.To, maxChartPoints)
 	actions := r.Status.Actions
 	totals := make([]int64, len(actions))
@@ -439,7 +440,7 @@ func choiceCharts(r training.PolicyReport, line training.HistoryView, axis xAxis
 type statesView struct {
 	pageBase
 	Policy  string
-	Sort    training.StateOrder
+	Sort    views.StateOrder
 	Sorts   []windowLink
 	Rows    []stateRow
 	NextURL string
@@ -462,7 +463,7 @@ func handleStatesPage(in Inspector) echo.HandlerFunc {
 		now := time.Now()
 		v := statesView{pageBase: pageBase{Title: name + " states", Now: now, SignOut: inSession(c)}, Policy: name, Sort: q.Order,
 			Rows: newStateRows(page.States, now)}
-		for _, o := range training.StateOrders {
+		for _, o := range views.StateOrders {
 			v.Sorts = append(v.Sorts, windowLink{Label: string(o), URL: "?sort=" + string(o), Current: o == q.Order})
 		}
 		if page.Next != nil {

@@ -7,6 +7,7 @@ import (
 
 	"github.com/jackc/pgx/v5"
 
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
@@ -86,7 +87,7 @@ const eventsRead = `
 
 // readChoicesAndEvents adds a policy's choice counts and events within the
 // report's window to the report.
-func (db *DB) readChoicesAndEvents(ctx context.Context, tx pgx.Tx, report *training.PolicyReport) error {
+func (db *DB) readChoicesAndEvents(ctx context.Context, tx pgx.Tx, report *views.PolicyReport) error {
 	st := report.Status
 	rows, err := tx.Query(ctx, choicesRead, st.ID, report.Window.Microseconds())
 	if err != nil {

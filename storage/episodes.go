@@ -7,6 +7,7 @@ import (
 
 	"github.com/jackc/pgx/v5"
 
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
@@ -27,8 +28,8 @@ func (db *DB) CheckEpisodes(ctx context.Context, policy string, episodes []train
 
 // Ingest validates a batch against its policy and stores the episodes whose
 // ids the policy has not stored yet, in one transaction: all or nothing.
-func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Episode) (training.IngestResult, error) {
-	var res training.IngestResult
+func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Episode) (views.IngestResult, error) {
+	var res views.IngestResult
 	ingest := func(tx pgx.Tx) error {
 		// KEY SHARE keeps the actions from changing under the batch without
 		// blocking the worker's revision updates.
@@ -47,7 +48,7 @@ func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Epi
 		if err != nil {
 			return err
 		}
-		res = training.IngestResult{Accepted: len(fresh), Duplicates: len(records) - len(fresh)}
+		res = views.IngestResult{Accepted: len(fresh), Duplicates: len(records) - len(fresh)}
 		if len(fresh) == 0 {
 			return nil
 		}

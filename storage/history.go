@@ -8,6 +8,7 @@ import (
 
 	"github.com/jackc/pgx/v5"
 
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
@@ -157,8 +158,8 @@ const historyRead = `
 // PolicyReport reads what the status page shows of a policy, all from one
 // snapshot so that the figures agree with each other: its status, its
 // training history over the window, and the top states by drift and visits.
-func (db *DB) PolicyReport(ctx context.Context, name string, window time.Duration, top int) (training.PolicyReport, error) {
-	report := training.PolicyReport{Window: window}
+func (db *DB) PolicyReport(ctx context.Context, name string, window time.Duration, top int) (views.PolicyReport, error) {
+	report := views.PolicyReport{Window: window}
 	err := db.readSnapshot(ctx, func(tx pgx.Tx) error {
 		st, err := scanStatus(tx.QueryRow(ctx, statusQuery+` WHERE p.name = $1`, name))
 		if errors.Is(err, pgx.ErrNoRows) {
@@ -197,11 +198,11 @@ func (db *DB) PolicyReport(ctx context.Context, name string, window time.Duratio
 		if err := db.readChoicesAndEvents(ctx, tx, &report); err != nil {
 			return err
 		}
-		drift, err := listStates(ctx, tx, st.Policy, training.StateQuery{Order: training.ByDrift, Limit: top})
+		drift, err := listStates(ctx, tx, st.Policy, views.StateQuery{Order: views.ByDrift, Limit: top})
 		if err != nil {
 			return err
 		}
-		visited, err := listStates(ctx, tx, st.Policy, training.StateQuery{Order: training.ByVisits, Limit: top})
+		visited, err := listStates(ctx, tx, st.Policy, views.StateQuery{Order: views.ByVisits, Limit: top})
 		if err != nil {
 			return err
 		}

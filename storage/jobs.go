@@ -10,6 +10,7 @@ import (
 
 	"github.com/jackc/pgx/v5"
 
+	"github.com/qtally/qtally/internal/jobs"
 	"github.com/qtally/qtally/training"
 )
 
@@ -78,7 +79,7 @@ const jobQuotaLockClass = 0x71746a71
 // the runners. Callers hold the policy's pin lock from resolving the job's
 // window to the commit, so that pruning either ran before the window was
 // resolved or sees the job and keeps its episodes.
-func (db *DB) queueJob(ctx context.Context, tx pgx.Tx, policyID int32, kind training.JobKind, spec any) (int64, error) {
+func (db *DB) queueJob(ctx context.Context, tx pgx.Tx, policyID int32, kind jobs.Kind, spec any) (int64, error) {
 	// Serialised per policy, so that concurrent requests cannot pass the
 	// count together.
 	if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, jobQuotaLockClass, policyID); err != nil {
@@ -108,7 +109,7 @@ func (db *DB) queueJob(ctx context.Context, tx pgx.Tx, policyID int32, kind trai
 
 // StartEvaluation checks an evaluation request against what is stored,
 // resolves its window and queues it.
-func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (training.JobView, error) {
+func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (jobs.View, error) {
 	var id int64
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1`, policy))
@@ -151,18 +152,18 @@ func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.E
 				return err
 			}
 		}
-		id, err = db.queueJob(ctx, tx, p.ID, training.EvaluationJobKind, job)
+		id, err = db.queueJob(ctx, tx, p.ID, jobs.EvaluationKind, job)
 		return err
 	})
 	if err != nil {
-		return training.JobView{}, err
+		return jobs.View{}, err
 	}
-	return db.Job(ctx, policy, training.EvaluationJobKind, id)
+	return db.Job(ctx, policy, jobs.EvaluationKind, id)
 }
 
 // StartReplay creates the replay's target policy and queues the replay, in
 // one transaction.
-func (db *DB) StartReplay(ctx context.Context, policy string, req training.ReplayRequest) (training.JobView, error) {
+func (db *DB) StartReplay(ctx context.Context, policy string, req training.ReplayRequest) (jobs.View, error) {
 	var id int64
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1 FOR KEY SHARE`, policy))
@@ -199,29 +200,29 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		if err := recordSettingsChange(ctx, tx, targetID, training.ChangeCreate, by, training.DiffSettings(nil, target.Settings)); err != nil {
 			return err
 		}
-		id, err = db.queueJob(ctx, tx, p.ID, training.ReplayJobKind,
+		id, err = db.queueJob(ctx, tx, p.ID, jobs.ReplayKind,
 			training.ReplayJob{Request: req, PolicyID: p.ID, TargetPolicyID: targetID, Episodes: span})
 		return err
 	})
 	if err != nil {
-		return training.JobView{}, err
+		return jobs.View{}, err
 	}
-	return db.Job(ctx, policy, training.ReplayJobKind, id)
+	return db.Job(ctx, policy, jobs.ReplayKind, id)
 }
 
 // jobColumns are what scanJob reads, in its order.
 const jobColumns = `job_id, kind, status, progress, spec->'request', spec->'episodes', result, error, created_at, started_at, finished_at`
 
 // scanJob reads a row of jobColumns into a view of a job of the policy.
-func scanJob(row pgx.Row, policy string) (training.JobView, error) {
-	v := training.JobView{Policy: policy}
+func scanJob(row pgx.Row, policy string) (jobs.View, error) {
+	v := jobs.View{Policy: policy}
 	var status, kindName string
 	var progress, episodes []byte
 	var errText *string
 	if err := row.Scan(&v.ID, &kindName, &status, &progress, &v.Request, &episodes, &v.Result, &errText, &v.CreatedAt, &v.StartedAt, &v.FinishedAt); err != nil {
 		return v, err
 	}
-	v.Kind, v.Status = training.JobKind(kindName), training.JobStatus(status)
+	v.Kind, v.Status = jobs.Kind(kindName), jobs.Status(status)
 	if errText != nil {
 		v.Error = *errText
 	}
@@ -235,21 +236,21 @@ func scanJob(row pgx.Row, policy string) (training.JobView, error) {
 }
 
 // Job reads one of a policy's jobs of a kind.
-func (db *DB) Job(ctx context.Context, policy string, kind training.JobKind, id int64) (training.JobView, error) {
+func (db *DB) Job(ctx context.Context, policy string, kind jobs.Kind, id int64) (jobs.View, error) {
 	p, err := db.PolicyByName(ctx, policy)
 	if err != nil {
-		return training.JobView{}, err
+		return jobs.View{}, err
 	}
 	v, err := scanJob(db.pool.QueryRow(ctx, `SELECT `+jobColumns+` FROM jobs WHERE policy_id = $1 AND job_id = $2 AND kind = $3`,
 		p.ID, id, string(kind)), p.Name)
 	if errors.Is(err, pgx.ErrNoRows) {
-		missing := &training.JobNotFoundError{Policy: p.Name, Kind: kind, ID: id}
+		missing := &jobs.NotFoundError{Policy: p.Name, Kind: kind, ID: id}
 		var other string
 		err = db.pool.QueryRow(ctx, `SELECT kind FROM jobs WHERE policy_id = $1 AND job_id = $2`, p.ID, id).Scan(&other)
 		if err != nil && !errors.Is(err, pgx.ErrNoRows) {
 			return v, mapError(fmt.Errorf("read job: %w", err))
 		}
-		missing.OtherKind = training.JobKind(other)
+		missing.OtherKind = jobs.Kind(other)
 		return v, missing
 	}
 	if err != nil {
@@ -259,8 +260,8 @@ func (db *DB) Job(ctx context.Context, policy string, kind training.JobKind, id 
 }
 
 // ListJobs reads one page of a policy's jobs of a kind, newest first.
-func (db *DB) ListJobs(ctx context.Context, policy string, kind training.JobKind, q training.JobQuery) (training.JobPage, error) {
-	var page training.JobPage
+func (db *DB) ListJobs(ctx context.Context, policy string, kind jobs.Kind, q jobs.Query) (jobs.Page, error) {
+	var page jobs.Page
 	p, err := db.PolicyByName(ctx, policy)
 	if err != nil {
 		return page, err
@@ -291,9 +292,9 @@ func (db *DB) ListJobs(ctx context.Context, policy string, kind training.JobKind
 	return page, nil
 }
 
-// ClaimJob implements training.JobStore.
-func (db *DB) ClaimJob(ctx context.Context, staleAfter time.Duration, maxAttempts int) (training.Job, bool, error) {
-	var job training.Job
+// ClaimJob implements jobs.Store.
+func (db *DB) ClaimJob(ctx context.Context, staleAfter time.Duration, maxAttempts int) (jobs.Job, bool, error) {
+	var job jobs.Job
 	found := false
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		if _, err := tx.Exec(ctx, `
@@ -319,15 +320,15 @@ func (db *DB) ClaimJob(ctx context.Context, staleAfter time.Duration, maxAttempt
 		if err != nil {
 			return fmt.Errorf("claim job: %w", err)
 		}
-		job.Kind, found = training.JobKind(kind), true
+		job.Kind, found = jobs.Kind(kind), true
 		return nil
 	})
 	return job, found, err
 }
 
-// ReportProgress implements training.JobStore. A runner whose job was
+// ReportProgress implements jobs.Store. A runner whose job was
 // claimed again by another (it looked dead) changes nothing.
-func (db *DB) ReportProgress(ctx context.Context, job training.Job, p training.Progress) error {
+func (db *DB) ReportProgress(ctx context.Context, job jobs.Job, p training.Progress) error {
 	doc, err := json.Marshal(p)
 	if err != nil {
 		return fmt.Errorf("encode progress: %w", err)
@@ -337,15 +338,15 @@ func (db *DB) ReportProgress(ctx context.Context, job training.Job, p training.P
 	return mapError(err)
 }
 
-// FinishJob implements training.JobStore.
-func (db *DB) FinishJob(ctx context.Context, job training.Job, p training.Progress, result any, failure string) error {
+// FinishJob implements jobs.Store.
+func (db *DB) FinishJob(ctx context.Context, job jobs.Job, p training.Progress, result any, failure string) error {
 	progress, err := json.Marshal(p)
 	if err != nil {
 		return fmt.Errorf("encode progress: %w", err)
 	}
-	status, doc := training.JobFailed, []byte(nil)
+	status, doc := jobs.Failed, []byte(nil)
 	if failure == "" {
-		status = training.JobSucceeded
+		status = jobs.Succeeded
 		if doc, err = json.Marshal(result); err != nil {
 			return fmt.Errorf("encode result: %w", err)
 		}
@@ -356,9 +357,9 @@ func (db *DB) FinishJob(ctx context.Context, job training.Job, p training.Progre
 	return mapError(err)
 }
 
-// ReleaseJob implements training.JobStore; the claim does not count as an
+// ReleaseJob implements jobs.Store; the claim does not count as an
 // attempt.
-func (db *DB) ReleaseJob(ctx context.Context, job training.Job) error {
+func (db *DB) ReleaseJob(ctx context.Context, job jobs.Job) error {
 	_, err := db.pool.Exec(ctx, `UPDATE jobs SET status = 'queued', attempts = attempts - 1, heartbeat_at = NULL
 		WHERE policy_id = $1 AND job_id = $2 AND attempts = $3 AND status = 'running'`, job.PolicyID, job.ID, job.Attempts)
 	if err == nil {

@@ -8,6 +8,7 @@ import (
 
 	"github.com/jackc/pgx/v5"
 
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
@@ -282,8 +283,8 @@ const statusQuery = `
 	       p.last_trained_at
 	FROM policies p`
 
-func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
-	var st training.PolicyStatus
+func scanStatus(row pgx.Row) (views.PolicyStatus, error) {
+	var st views.PolicyStatus
 	var visit, onIdle string
 	p := &st.Policy
 	err := row.Scan(&p.ID, &p.Name, &p.Actions, &p.Gamma, &p.Alpha, &p.Epsilon, &p.EpsilonMin,
@@ -296,7 +297,7 @@ func scanStatus(row pgx.Row) (training.PolicyStatus, error) {
 }
 
 // PolicyStatus reads a policy with its episode and table counts.
-func (db *DB) PolicyStatus(ctx context.Context, name string) (training.PolicyStatus, error) {
+func (db *DB) PolicyStatus(ctx context.Context, name string) (views.PolicyStatus, error) {
 	st, err := scanStatus(db.pool.QueryRow(ctx, statusQuery+` WHERE p.name = $1`, name))
 	if errors.Is(err, pgx.ErrNoRows) {
 		return st, training.NotFoundf("no policy named %q", name)
@@ -308,12 +309,12 @@ func (db *DB) PolicyStatus(ctx context.Context, name string) (training.PolicySta
 }
 
 // ListPolicyStatus reads every policy with its counts.
-func (db *DB) ListPolicyStatus(ctx context.Context) ([]training.PolicyStatus, error) {
+func (db *DB) ListPolicyStatus(ctx context.Context) ([]views.PolicyStatus, error) {
 	rows, err := db.pool.Query(ctx, statusQuery+` ORDER BY p.name`)
 	if err != nil {
 		return nil, mapError(fmt.Errorf("list policies: %w", err))
 	}
-	out, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.PolicyStatus, error) { return scanStatus(r) })
+	out, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (views.PolicyStatus, error) { return scanStatus(r) })
 	if err != nil {
 		return nil, mapError(fmt.Errorf("list policies: %w", err))
 	}
@@ -321,7 +322,7 @@ func (db *DB) ListPolicyStatus(ctx context.Context) ([]training.PolicyStatus, er
 }
 
 // Backlogs reads every policy's untrained episode count and oldest arrival.
-func (db *DB) Backlogs(ctx context.Context) ([]training.Backlog, error) {
+func (db *DB) Backlogs(ctx context.Context) ([]views.Backlog, error) {
 	rows, err := db.pool.Query(ctx, `
 		SELECT p.name, count(e.seq), min(e.received_at)
 		FROM policies p LEFT JOIN episodes e ON e.policy_id = p.policy_id AND `+untrained+`
@@ -329,8 +330,8 @@ func (db *DB) Backlogs(ctx context.Context) ([]training.Backlog, error) {
 	if err != nil {
 		return nil, mapError(fmt.Errorf("read backlog: %w", err))
 	}
-	out, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.Backlog, error) {
-		var b training.Backlog
+	out, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (views.Backlog, error) {
+		var b views.Backlog
 		err := r.Scan(&b.Policy, &b.Episodes, &b.OldestReceived)
 		return b, err
 	})

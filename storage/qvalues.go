@@ -7,6 +7,7 @@ import (
 
 	"github.com/jackc/pgx/v5"
 
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
@@ -55,20 +56,20 @@ func (db *DB) QRowsSince(ctx context.Context, policyID int32, after int64, fn fu
 }
 
 // State reads one state's estimates for every action of the policy.
-func (db *DB) State(ctx context.Context, policy, state string) (training.StateView, error) {
+func (db *DB) State(ctx context.Context, policy, state string) (views.StateView, error) {
 	p, err := db.PolicyByName(ctx, policy)
 	if err != nil {
-		return training.StateView{}, err
+		return views.StateView{}, err
 	}
 	rows, err := db.pool.Query(ctx, `
 		SELECT action, q, visits, last_delta, updated_at FROM q_values
 		WHERE policy_id = $1 AND state = $2`, p.ID, state)
 	if err != nil {
-		return training.StateView{}, mapError(fmt.Errorf("read state: %w", err))
+		return views.StateView{}, mapError(fmt.Errorf("read state: %w", err))
 	}
-	stored := make(map[int16]training.ActionValue)
+	stored := make(map[int16]views.ActionValue)
 	var action int16
-	var av training.ActionValue
+	var av views.ActionValue
 	var updated time.Time
 	_, err = pgx.ForEachRow(rows, []any{&action, &av.Q, &av.Visits, &av.LastDelta, &updated}, func() error {
 		at := updated
@@ -77,7 +78,7 @@ func (db *DB) State(ctx context.Context, policy, state string) (training.StateVi
 		return nil
 	})
 	if err != nil {
-		return training.StateView{}, mapError(fmt.Errorf("read state: %w", err))
+		return views.StateView{}, mapError(fmt.Errorf("read state: %w", err))
 	}
-	return training.NewStateView(p, state, stored), nil
+	return views.NewStateView(p, state, stored), nil
 }

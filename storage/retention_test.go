@@ -11,6 +11,7 @@ import (
 
 	"github.com/jackc/pgx/v5"
 
+	"github.com/qtally/qtally/internal/jobs"
 	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/storage/pgtest"
 	"github.com/qtally/qtally/training"
@@ -72,7 +73,7 @@ func TestQueuedJobsPinTheirEpisodes(t *testing.T) {
 		}
 		var result any
 		switch job.Kind {
-		case training.ReplayJobKind:
+		case jobs.ReplayKind:
 			var spec training.ReplayJob
 			must(t, json.Unmarshal(job.Spec, &spec))
 			res, err := training.Replay(ctx, db, spec, 100, func(training.Progress) {})
@@ -81,7 +82,7 @@ func TestQueuedJobsPinTheirEpisodes(t *testing.T) {
 				t.Fatalf("the replay read %d episodes, want the 4 of its window", res.EpisodesReplayed)
 			}
 			result = res
-		case training.EvaluationJobKind:
+		case jobs.EvaluationKind:
 			var spec training.EvaluationJob
 			must(t, json.Unmarshal(job.Spec, &spec))
 			res, err := training.Evaluate(ctx, db, spec, func(training.Progress) {})

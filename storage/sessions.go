@@ -11,7 +11,7 @@ import (
 	"github.com/qtally/qtally/training"
 )
 
-// CreateSession implements training.SessionStore.
+// CreateSession implements access.SessionStore.
 func (db *DB) CreateSession(ctx context.Context, digest []byte, tokenID int64, expires time.Time) error {
 	return db.WithTx(ctx, func(tx pgx.Tx) error {
 		// Sign-ins are few and rate-limited: sweeping here keeps the table
@@ -27,7 +27,7 @@ func (db *DB) CreateSession(ctx context.Context, digest []byte, tokenID int64, e
 	})
 }
 
-// SessionTokenID implements training.SessionStore.
+// SessionTokenID implements access.SessionStore.
 func (db *DB) SessionTokenID(ctx context.Context, digest []byte) (int64, error) {
 	var id int64
 	err := db.pool.QueryRow(ctx, `SELECT token_id FROM page_sessions WHERE session_digest = $1 AND expires_at > now()`, digest).Scan(&id)
@@ -40,7 +40,7 @@ func (db *DB) SessionTokenID(ctx context.Context, digest []byte) (int64, error) 
 	return id, nil
 }
 
-// DeleteSession implements training.SessionStore.
+// DeleteSession implements access.SessionStore.
 func (db *DB) DeleteSession(ctx context.Context, digest []byte) error {
 	if _, err := db.pool.Exec(ctx, `DELETE FROM page_sessions WHERE session_digest = $1`, digest); err != nil {
 		return mapError(fmt.Errorf("end session: %w", err))

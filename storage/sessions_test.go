@@ -7,6 +7,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/qtally/qtally/internal/access"
 	"github.com/qtally/qtally/training"
 )
 
@@ -17,18 +18,18 @@ func TestPageSessionsLiveInTheDatabase(t *testing.T) {
 	ctx := context.Background()
 	db := openDB(t)
 	const pepper = "pepper-of-this-test-0123456789abcdef"
-	random := training.NewSecretPart()
-	tok, err := db.CreateToken(ctx, training.TokenSpec{Label: "operator", Scopes: []training.Scope{training.ScopeAdmin}},
-		training.NewTokenHasher(pepper).Digest(random))
+	random := access.NewSecretPart()
+	tok, err := db.CreateToken(ctx, access.TokenSpec{Label: "operator", Scopes: []access.Scope{access.ScopeAdmin}},
+		access.NewTokenHasher(pepper).Digest(random))
 	if err != nil {
 		t.Fatal(err)
 	}
-	keyring := training.NewKeyring(db, pepper)
+	keyring := access.NewKeyring(db, pepper)
 	if err := keyring.Reload(ctx); err != nil {
 		t.Fatal(err)
 	}
-	sessions := training.PageSessions{Store: db, Tokens: keyring, Life: time.Hour, Key: training.SessionKey(pepper)}
-	unauthenticated := func(what, id string, s training.PageSessions) {
+	sessions := access.PageSessions{Store: db, Tokens: keyring, Life: time.Hour, Key: access.SessionKey(pepper)}
+	unauthenticated := func(what, id string, s access.PageSessions) {
 		t.Helper()
 		if _, err := s.Token(ctx, id); !errors.Is(err, training.ErrUnauthenticated) {
 			t.Fatalf("%s: %v, want unauthenticated", what, err)
@@ -48,7 +49,7 @@ func TestPageSessionsLiveInTheDatabase(t *testing.T) {
 	forged := strings.Repeat("A", len(open.ID))
 	unauthenticated("made-up id", forged, sessions)
 	other := sessions
-	other.Key = training.SessionKey("another pepper, another service 0123")
+	other.Key = access.SessionKey("another pepper, another service 0123")
 	unauthenticated("id signed by another key", open.ID, other)
 
 	expired := sessions

@@ -7,23 +7,24 @@ import (
 
 	"github.com/jackc/pgx/v5"
 
+	"github.com/qtally/qtally/internal/views"
 	"github.com/qtally/qtally/training"
 )
 
 // stateOrders names, per order, the ranked column it sorts on (descending)
 // and that column's SQL type. Ties go by state name, compared bytewise
 // (COLLATE "C") so that the order is the same on every server.
-var stateOrders = map[training.StateOrder]struct{ column, sqlType string }{
-	training.ByVisits:  {"visits", "bigint"},
-	training.ByDrift:   {"drift", "float8"},
-	training.ByUpdated: {"updated", "timestamptz"},
+var stateOrders = map[views.StateOrder]struct{ column, sqlType string }{
+	views.ByVisits:  {"visits", "bigint"},
+	views.ByDrift:   {"drift", "float8"},
+	views.ByUpdated: {"updated", "timestamptz"},
 }
 
 // ListStates reads one page of a policy's states with their estimates.
-func (db *DB) ListStates(ctx context.Context, policy string, q training.StateQuery) (training.StatePage, error) {
+func (db *DB) ListStates(ctx context.Context, policy string, q views.StateQuery) (views.StatePage, error) {
 	p, err := db.PolicyByName(ctx, policy)
 	if err != nil {
-		return training.StatePage{}, err
+		return views.StatePage{}, err
 	}
 	page, err := listStates(ctx, db.pool, p, q)
 	return page, mapError(err)
@@ -37,10 +38,10 @@ type querier interface {
 // page (one more than asked, to learn whether another follows) and joins
 // back each state's pairs, in one statement. Ranking reads every pair of the
 // policy: the cost of a page grows with the table.
-func listStates(ctx context.Context, q querier, p training.Policy, query training.StateQuery) (training.StatePage, error) {
+func listStates(ctx context.Context, q querier, p training.Policy, query views.StateQuery) (views.StatePage, error) {
 	order, ok := stateOrders[query.Order]
 	if !ok {
-		return training.StatePage{}, fmt.Errorf("list states: unknown order %q", query.Order)
+		return views.StatePage{}, fmt.Errorf("list states: unknown order %q", query.Order)
 	}
 	col := order.column
 	after := "true"
@@ -49,11 +50,11 @@ func listStates(ctx context.Context, q querier, p training.Policy, query trainin
 		after = fmt.Sprintf(`%[1]s < $3::%[2]s OR (%[1]s = $3::%[2]s AND state COLLATE "C" > $4)`, col, order.sqlType)
 		var v any
 		switch query.Order {
-		case training.ByVisits:
+		case views.ByVisits:
 			v = k.Visits
-		case training.ByDrift:
+		case views.ByDrift:
 			v = k.Drift
-		case training.ByUpdated:
+		case views.ByUpdated:
 			v = k.Updated
 		}
 		args = append(args, v, k.State)
@@ -70,23 +71,23 @@ func listStates(ctx context.Context, q querier, p training.Policy, query trainin
 		FROM page JOIN q_values q ON q.policy_id = $1 AND q.state = page.state
 		ORDER BY page.`+col+` DESC, page.state COLLATE "C", q.action`, args...)
 	if err != nil {
-		return training.StatePage{}, fmt.Errorf("list states: %w", err)
+		return views.StatePage{}, fmt.Errorf("list states: %w", err)
 	}
 	// Rows arrive grouped by state, in listing order.
 	type stateRows struct {
 		state   string
 		drift   float64
 		updated time.Time
-		stored  map[int16]training.ActionValue
+		stored  map[int16]views.ActionValue
 	}
 	var groups []stateRows
 	var r stateRows
 	var action int16
-	var av training.ActionValue
+	var av views.ActionValue
 	var pairUpdated time.Time
 	_, err = pgx.ForEachRow(rows, []any{&r.state, &r.drift, &r.updated, &action, &av.Q, &av.Visits, &av.LastDelta, &pairUpdated}, func() error {
 		if len(groups) == 0 || groups[len(groups)-1].state != r.state {
-			r.stored = map[int16]training.ActionValue{}
+			r.stored = map[int16]views.ActionValue{}
 			groups = append(groups, r)
 		}
 		at := pairUpdated
@@ -95,11 +96,11 @@ func listStates(ctx context.Context, q querier, p training.Policy, query trainin
 		return nil
 	})
 	if err != nil {
-		return training.StatePage{}, fmt.Errorf("list states: %w", err)
+		return views.StatePage{}, fmt.Errorf("list states: %w", err)
 	}
-	var out training.StatePage
+	var out views.StatePage
 	for _, g := range groups {
-		out.States = append(out.States, training.NewStateSummary(p, g.state, g.stored, g.drift, g.updated))
+		out.States = append(out.States, views.NewStateSummary(p, g.state, g.stored, g.drift, g.updated))
 	}
 	if len(out.States) > query.Limit {
 		out.States = out.States[:query.Limit]

@@ -8,6 +8,7 @@ import (
 
 	"github.com/jackc/pgx/v5"
 
+	"github.com/qtally/qtally/internal/access"
 	"github.com/qtally/qtally/training"
 )
 
@@ -18,22 +19,22 @@ const ChannelTokens = "qtally_tokens"
 const tokenColumns = `token_id, label, digest, scopes, coalesce(policies, '{}'),
 	coalesce(rate_per_second, 0), coalesce(burst, 0), created_at, revoked_at`
 
-func scanToken(row pgx.Row) (training.Token, error) {
-	var t training.Token
+func scanToken(row pgx.Row) (access.Token, error) {
+	var t access.Token
 	var scopes []string
 	err := row.Scan(&t.ID, &t.Label, &t.Digest, &scopes, &t.Policies, &t.RatePerSecond, &t.Burst, &t.CreatedAt, &t.RevokedAt)
-	t.Scopes = make([]training.Scope, len(scopes))
+	t.Scopes = make([]access.Scope, len(scopes))
 	for i, s := range scopes {
-		t.Scopes[i] = training.Scope(s)
+		t.Scopes[i] = access.Scope(s)
 	}
 	return t, err
 }
 
-func collectTokens(rows pgx.Rows, err error) ([]training.Token, error) {
+func collectTokens(rows pgx.Rows, err error) ([]access.Token, error) {
 	if err != nil {
 		return nil, mapError(fmt.Errorf("read tokens: %w", err))
 	}
-	tokens, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.Token, error) { return scanToken(r) })
+	tokens, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (access.Token, error) { return scanToken(r) })
 	if err != nil {
 		return nil, mapError(fmt.Errorf("read tokens: %w", err))
 	}
@@ -42,7 +43,7 @@ func collectTokens(rows pgx.Rows, err error) ([]training.Token, error) {
 
 // CreateToken stores a new token with the digest of its secret, and says
 // so in the audit log.
-func (db *DB) CreateToken(ctx context.Context, spec training.TokenSpec, digest []byte) (training.Token, error) {
+func (db *DB) CreateToken(ctx context.Context, spec access.TokenSpec, digest []byte) (access.Token, error) {
 	scopes := make([]string, len(spec.Scopes))
 	for i, s := range spec.Scopes {
 		scopes[i] = string(s)
@@ -51,7 +52,7 @@ func (db *DB) CreateToken(ctx context.Context, spec training.TokenSpec, digest [
 	if len(spec.Policies) > 0 {
 		policies = spec.Policies
 	}
-	var t training.Token
+	var t access.Token
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		var err error
 		t, err = scanToken(tx.QueryRow(ctx, `
@@ -72,12 +73,12 @@ func (db *DB) CreateToken(ctx context.Context, spec training.TokenSpec, digest [
 }
 
 // ListTokens reads every token, revoked ones too, oldest first.
-func (db *DB) ListTokens(ctx context.Context) ([]training.Token, error) {
+func (db *DB) ListTokens(ctx context.Context) ([]access.Token, error) {
 	return collectTokens(db.pool.Query(ctx, `SELECT `+tokenColumns+` FROM api_tokens ORDER BY token_id`))
 }
 
 // ActiveTokens reads every token not revoked.
-func (db *DB) ActiveTokens(ctx context.Context) ([]training.Token, error) {
+func (db *DB) ActiveTokens(ctx context.Context) ([]access.Token, error) {
 	return collectTokens(db.pool.Query(ctx, `SELECT `+tokenColumns+` FROM api_tokens WHERE revoked_at IS NULL`))
 }
 

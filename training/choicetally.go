@@ -143,60 +143,6 @@ type ChoiceBucket struct {
 	Count      int64
 }
 
-// ChoicePoint is what was chosen in one stretch of time.
-type ChoicePoint struct {
-	Start time.Time
-	// ByAction counts the choices of each action index.
-	ByAction []int64
-	Total    int64
-	Explored int64
-	// Unknown counts choices in states with no estimate yet.
-	Unknown int64
-}
-
-// ChoiceView is the choices of a span binned into points of Step.
-type ChoiceView struct {
-	Step   time.Duration
-	Points []ChoicePoint
-}
-
-// Choices bins the report's choice counts over [from, to] into at most
-// maxPoints points, each a whole number of stored buckets, aligned as the
-// buckets are.
-func (r PolicyReport) Choices(from, to time.Time, maxPoints int) ChoiceView {
-	widest := time.Duration(0)
-	for _, b := range r.ChoiceBuckets {
-		widest = max(widest, b.Width)
-	}
-	if widest == 0 {
-		widest = time.Minute
-	}
-	v := ChoiceView{Step: HistoryStep(to.Sub(from), widest, maxPoints)}
-	start := alignDown(from, v.Step)
-	for _, b := range r.ChoiceBuckets {
-		if b.Start.Before(start) || b.Start.After(to) {
-			continue
-		}
-		at := alignDown(b.Start, v.Step)
-		if n := len(v.Points); n == 0 || !v.Points[n-1].Start.Equal(at) {
-			v.Points = append(v.Points, ChoicePoint{Start: at})
-		}
-		p := &v.Points[len(v.Points)-1]
-		for int(b.Action) >= len(p.ByAction) {
-			p.ByAction = append(p.ByAction, 0)
-		}
-		p.ByAction[b.Action] += b.Count
-		p.Total += b.Count
-		if b.Explored {
-			p.Explored += b.Count
-		}
-		if !b.KnownState {
-			p.Unknown += b.Count
-		}
-	}
-	return v
-}
-
 // PolicyEvent is something done to a policy that the status page marks on
 // its time charts.
 type PolicyEvent struct {

@@ -68,7 +68,7 @@ func stateProblem(state string, maxLen int) string {
 		return "is missing"
 	case len(state) > maxLen:
 		return fmt.Sprintf("is %d bytes, longer than the limit of %d", len(state), maxLen)
-	case !printableName(state):
+	case !PrintableName(state):
 		return "must be valid UTF-8 without control characters"
 	}
 	return ""
@@ -128,7 +128,7 @@ func EncodeEpisodes(p Settings, actionIndex map[string]int16, episodes []Episode
 			l.add(i, -1, "id", "is missing")
 		case len(ep.ID) > lim.MaxIDLength:
 			l.add(i, -1, "id", "is %d bytes, longer than the limit of %d", len(ep.ID), lim.MaxIDLength)
-		case !printableName(ep.ID):
+		case !PrintableName(ep.ID):
 			l.add(i, -1, "id", "must be valid UTF-8 without control characters")
 		default:
 			if first, dup := seen[ep.ID]; dup {
@@ -157,7 +157,7 @@ func EncodeEpisodes(p Settings, actionIndex map[string]int16, episodes []Episode
 				if st.Action == "" {
 					l.add(i, j, "action", "is missing")
 				} else {
-					l.add(i, j, "action", "%q is not one of the policy's actions", truncate(st.Action, 64))
+					l.add(i, j, "action", "%q is not one of the policy's actions", Truncate(st.Action, 64))
 				}
 			}
 			if math.IsNaN(st.Reward) || math.IsInf(st.Reward, 0) {
@@ -229,13 +229,13 @@ func checkAllowed(l *problemList, i, j int, st Step, actionIndex map[string]int1
 		a, ok := actionIndex[name]
 		switch {
 		case !ok:
-			l.add(i, j, fmt.Sprintf("allowed[%d]", k), "%q is not one of the policy's actions", truncate(name, 64))
+			l.add(i, j, fmt.Sprintf("allowed[%d]", k), "%q is not one of the policy's actions", Truncate(name, 64))
 		case !set.add(a):
-			l.add(i, j, fmt.Sprintf("allowed[%d]", k), "repeats %q", truncate(name, 64))
+			l.add(i, j, fmt.Sprintf("allowed[%d]", k), "repeats %q", Truncate(name, 64))
 		}
 	}
 	if a, ok := actionIndex[st.Action]; ok && !set.Has(a) {
-		l.add(i, j, "allowed", "%q, the step's action, is not in it: a step's action must be one of those it was chosen from", truncate(st.Action, 64))
+		l.add(i, j, "allowed", "%q, the step's action, is not in it: a step's action must be one of those it was chosen from", Truncate(st.Action, 64))
 	}
 }
 
@@ -275,7 +275,9 @@ func encode(actionIndex map[string]int16, episodes []Episode, totalSteps int) []
 	return records
 }
 
-func truncate(s string, n int) string {
+// Truncate shortens s to at most n bytes and an ellipsis, never cutting a
+// UTF-8 character in half.
+func Truncate(s string, n int) string {
 	if len(s) <= n {
 		return s
 	}

@@ -115,6 +115,10 @@ func (g *GreedySet) nth(q []float64, visits []int64, k int) int {
 	panic("training: greedy index out of range")
 }
 
+// First is the position of the first greedy action; the set must not be
+// empty.
+func (g *GreedySet) First(q []float64, visits []int64) int { return g.nth(q, visits, 0) }
+
 // Probability is the chance the rule gives action i in this set: see
 // ActionProbability; 0 for every action when greedy has no answer.
 func (g *GreedySet) Probability(mode Mode, epsilon float64, i int, q []float64, visits []int64) float64 {

@@ -135,7 +135,7 @@ func ValidateEpisodeID(field, id string, maxLen int) error {
 		return Invalid(-1, -1, field, "is missing")
 	case len(id) > maxLen:
 		return Invalid(-1, -1, field, "is %d bytes, longer than the limit of %d", len(id), maxLen)
-	case !printableName(id):
+	case !PrintableName(id):
 		return Invalid(-1, -1, field, "must be valid UTF-8 without control characters")
 	}
 	return nil
@@ -160,7 +160,7 @@ func (r RewardAddition) Validate(maxKeyLen int) error {
 	}
 	if len(r.Key) > maxKeyLen {
 		l.add(-1, -1, "key", "is %d bytes, longer than the limit of %d", len(r.Key), maxKeyLen)
-	} else if !printableName(r.Key) {
+	} else if !PrintableName(r.Key) {
 		l.add(-1, -1, "key", "must be valid UTF-8 without control characters")
 	}
 	return l.err()

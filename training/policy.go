@@ -174,7 +174,7 @@ func newSettingsValidator() *validator.Validate {
 		return !math.IsNaN(x) && !math.IsInf(x, 0)
 	}))
 	must(v.RegisterValidation("actionname", func(fl validator.FieldLevel) bool {
-		return printableName(fl.Field().String())
+		return PrintableName(fl.Field().String())
 	}))
 	return v
 }
@@ -203,8 +203,8 @@ func must(err error) {
 	}
 }
 
-// printableName holds for valid UTF-8 without control characters.
-func printableName(s string) bool {
+// PrintableName holds for valid UTF-8 without control characters.
+func PrintableName(s string) bool {
 	if !utf8.ValidString(s) {
 		return false
 	}
@@ -234,7 +234,7 @@ var ruleMessages = map[string]string{
 func (s Settings) Validate() error {
 	var l problemList
 	if s.GreedyFallback != "" && !slices.Contains(s.Actions, s.GreedyFallback) {
-		l.add(-1, -1, "greedy_fallback", "%q is not one of the policy's actions", truncate(s.GreedyFallback, 64))
+		l.add(-1, -1, "greedy_fallback", "%q is not one of the policy's actions", Truncate(s.GreedyFallback, 64))
 	}
 	if s.StateShape != nil {
 		s.StateShape.check(&l)

@@ -54,15 +54,6 @@ type Actor struct {
 	TokenLabel string
 }
 
-// ActorOf names the token that makes a request; nil is nobody.
-func ActorOf(t *Token) Actor {
-	if t == nil {
-		return Actor{}
-	}
-	id := t.ID
-	return Actor{TokenID: &id, TokenLabel: t.Label}
-}
-
 // SettingsChange is a request to create a policy or change its settings.
 // Exactly one of Replace and Patch is set.
 type SettingsChange struct {

@@ -7,12 +7,12 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus"
 
-	"github.com/qtally/qtally/training"
+	"github.com/qtally/qtally/internal/views"
 )
 
 // BacklogSource reads table-wide figures from the database.
 type BacklogSource interface {
-	Backlogs(ctx context.Context) ([]training.Backlog, error)
+	Backlogs(ctx context.Context) ([]views.Backlog, error)
 }
 
 // TableCollector exports figures read from the database at scrape time,

@@ -7,6 +7,7 @@ import (
 	"net/http"
 	"testing"
 
+	"github.com/qtally/qtally/internal/access"
 	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/storage/pgtest"
 	"github.com/qtally/qtally/training"
@@ -67,7 +68,7 @@ func BenchmarkTokenVerify(b *testing.B) {
 		b.Fatal(err)
 	}
 	defer db.Close()
-	keyring := training.NewKeyring(db, testPepper)
+	keyring := access.NewKeyring(db, testPepper)
 	if err := keyring.Reload(context.Background()); err != nil {
 		b.Fatal(err)
 	}

@@ -7,9 +7,9 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus"
 
+	"github.com/qtally/qtally/internal/jobs"
 	"github.com/qtally/qtally/internal/metrics"
 	"github.com/qtally/qtally/storage"
-	"github.com/qtally/qtally/training"
 )
 
 // Job runner pacing: progress is written (and the runner shows it is
@@ -32,7 +32,7 @@ func startHousekeeping(cfg workerConfig, db *storage.DB, reg prometheus.Register
 	subs := map[string]storage.Subscription{
 		storage.ChannelJobs: {Notify: func(int32) { nudge(jobWake) }, CatchUp: func() { nudge(jobWake) }},
 	}
-	runner := &training.JobRunner{
+	runner := &jobs.Runner{
 		Jobs: db, Evaluations: db, Replays: db, BatchEpisodes: cfg.BatchEpisodes,
 		Wake: jobWake, PollInterval: cfg.PollInterval,
 		ReportInterval: jobReportInterval, StaleAfter: cfg.JobStaleAfter, MaxAttempts: jobMaxAttempts,

@@ -15,6 +15,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/qtally/qtally/api"
+	"github.com/qtally/qtally/internal/access"
 	"github.com/qtally/qtally/internal/metrics"
 	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/training"
@@ -141,7 +142,7 @@ func startAPI(ctx context.Context, cfg apiConfig, db *storage.DB, reg *prometheu
 	var sessions api.PageSessions
 	if keyring, tokenSubs := startKeyring(ctx, cfg.Auth, db, loops, logger, stdout); keyring != nil {
 		auth = keyring
-		sessions = training.PageSessions{Store: db, Tokens: keyring, Life: pageSessionLife, Key: training.SessionKey(cfg.Auth.Pepper)}
+		sessions = access.PageSessions{Store: db, Tokens: keyring, Life: pageSessionLife, Key: access.SessionKey(cfg.Auth.Pepper)}
 		maps.Copy(subs, tokenSubs)
 	}
 	batcher := db.NewDecisionBatcher(decisionBatchWindow, decisionBatchMax)

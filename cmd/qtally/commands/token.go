@@ -15,6 +15,7 @@ import (
 	"github.com/urfave/cli/v3"
 
 	"github.com/qtally/qtally/api"
+	"github.com/qtally/qtally/internal/access"
 	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/training"
 )
@@ -114,7 +115,7 @@ func parseAddressRange(s string) (netip.Prefix, error) {
 // cfg.Refresh in case one is lost. It returns nil when auth is off.
 // It returns the keyring and the notification that reloads it.
 func startKeyring(ctx context.Context, cfg authConfig, db *storage.DB, loops *backgroundLoops,
-	logger *slog.Logger, stdout io.Writer) (*training.Keyring, map[string]storage.Subscription) {
+	logger *slog.Logger, stdout io.Writer) (*access.Keyring, map[string]storage.Subscription) {
 	if cfg.Off {
 		fmt.Fprintln(stdout, "qtally: authentication is OFF (--no-auth): any client may read and change every policy")
 		logger.Warn("authentication is off; every request is let through")
@@ -123,7 +124,7 @@ func startKeyring(ctx context.Context, cfg authConfig, db *storage.DB, loops *ba
 	if len(cfg.Pepper) < 32 {
 		logger.Warn("the token pepper is shorter than 32 characters; a long random one (openssl rand -hex 32) resists guessing from a copy of the database")
 	}
-	keyring := training.NewKeyring(db, cfg.Pepper)
+	keyring := access.NewKeyring(db, cfg.Pepper)
 	if err := keyring.Reload(ctx); err != nil {
 		logger.Warn("reading tokens", "error", err)
 	} else if keyring.Len() == 0 {
@@ -171,10 +172,10 @@ func tokenCommand(env flagEnv, stdout io.Writer) *cli.Command {
 					&cli.IntFlag{Name: "burst", Usage: "its own burst, with --rate"},
 				)...),
 				Action: func(ctx context.Context, cmd *cli.Command) error {
-					spec := training.TokenSpec{Label: cmd.String("label"), Policies: cmd.StringSlice("policy"),
+					spec := access.TokenSpec{Label: cmd.String("label"), Policies: cmd.StringSlice("policy"),
 						RatePerSecond: cmd.Float("rate"), Burst: cmd.Int("burst")}
 					for _, s := range cmd.StringSlice("scope") {
-						spec.Scopes = append(spec.Scopes, training.Scope(strings.TrimSpace(s)))
+						spec.Scopes = append(spec.Scopes, access.Scope(strings.TrimSpace(s)))
 					}
 					if spec.RatePerSecond > 0 && spec.Burst == 0 {
 						spec.Burst = max(1, int(spec.RatePerSecond))
@@ -186,15 +187,15 @@ func tokenCommand(env flagEnv, stdout io.Writer) *cli.Command {
 					if err != nil {
 						return err
 					}
-					random := training.NewSecretPart()
-					digest := training.NewTokenHasher(pepper).Digest(random)
+					random := access.NewSecretPart()
+					digest := access.NewTokenHasher(pepper).Digest(random)
 					return withDB(ctx, cmd, func(db *storage.DB) error {
 						tok, err := db.CreateToken(ctx, spec, digest)
 						if err != nil {
 							return err
 						}
 						fmt.Fprintf(stdout, "token %d created: %s\n", tok.ID, describeToken(tok))
-						fmt.Fprintf(stdout, "secret: %s\n", training.FormatSecret(tok.ID, random))
+						fmt.Fprintf(stdout, "secret: %s\n", access.FormatSecret(tok.ID, random))
 						fmt.Fprintln(stdout, "The secret is shown only now; qtally keeps only a digest of it. Send it as: Authorization: Bearer <secret>")
 						return nil
 					})
@@ -250,7 +251,7 @@ func tokenCommand(env flagEnv, stdout io.Writer) *cli.Command {
 	}
 }
 
-func describeToken(t training.Token) string {
+func describeToken(t access.Token) string {
 	scopes := make([]string, len(t.Scopes))
 	for i, s := range t.Scopes {
 		scopes[i] = string(s)

@@ -1,8 +1,10 @@
-package training
+package views
 
 import (
 	"math"
 	"time"
+
+	"github.com/qtally/qtally/training"
 )
 
 // StateOrder is how a listing of states is sorted.
@@ -59,7 +61,7 @@ type StateSummary struct {
 }
 
 // NewStateSummary describes a stored state for listings.
-func NewStateSummary(p Policy, state string, stored map[int16]ActionValue, drift float64, updated time.Time) StateSummary {
+func NewStateSummary(p training.Policy, state string, stored map[int16]ActionValue, drift float64, updated time.Time) StateSummary {
 	v := NewStateView(p, state, stored)
 	return StateSummary{StateView: v, Drift: drift, UpdatedAt: updated, GreedyGap: greedyGap(v)}
 }

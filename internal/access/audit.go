@@ -1,6 +1,10 @@
-package training
+package access
 
-import "time"
+import (
+	"time"
+
+	"github.com/qtally/qtally/training"
+)
 
 // Where an audited action came from.
 const (
@@ -63,4 +67,4 @@ type AuditPage struct {
 const MaxAuditPathLen = 2048
 
 // TruncateAuditPath shortens a path for the audit log.
-func TruncateAuditPath(path string) string { return truncate(path, MaxAuditPathLen) }
+func TruncateAuditPath(path string) string { return training.Truncate(path, MaxAuditPathLen) }

@@ -1,10 +1,11 @@
-package training
+package access
 
 import (
 	"crypto/hmac"
 	"crypto/rand"
 	"crypto/sha256"
 	"encoding/base64"
+	"fmt"
 	"hash"
 	"math"
 	"slices"
@@ -12,6 +13,8 @@ import (
 	"strings"
 	"sync"
 	"time"
+
+	"github.com/qtally/qtally/training"
 )
 
 // Scope is one kind of thing a token may do.
@@ -57,7 +60,7 @@ func (t *Token) CoversPolicy(name string) bool {
 // request names none), as an ErrForbidden error when it may not.
 func (t *Token) Authorize(s Scope, policy string) error {
 	if !t.HasScope(s) {
-		return Forbiddenf("token %d lacks the %s scope that this request needs", t.ID, s)
+		return training.Forbiddenf("token %d lacks the %s scope that this request needs", t.ID, s)
 	}
 	if policy != "" {
 		return t.AuthorizePolicy(policy)
@@ -69,7 +72,7 @@ func (t *Token) Authorize(s Scope, policy string) error {
 // path names. The answer is the same whether that policy exists or not.
 func (t *Token) AuthorizePolicy(policy string) error {
 	if !t.CoversPolicy(policy) {
-		return Forbiddenf("token %d is limited to other policies than %q", t.ID, truncate(policy, 64))
+		return training.Forbiddenf("token %d is limited to other policies than %q", t.ID, training.Truncate(policy, 64))
 	}
 	return nil
 }
@@ -79,9 +82,18 @@ func (t *Token) AuthorizePolicy(policy string) error {
 // answer is the same whether that policy exists or not.
 func (t *Token) AuthorizeNamed(field, policy string) error {
 	if !t.CoversPolicy(policy) {
-		return Forbiddenf("token %d is limited to other policies than %q, which %s names", t.ID, truncate(policy, 64), field)
+		return training.Forbiddenf("token %d is limited to other policies than %q, which %s names", t.ID, training.Truncate(policy, 64), field)
 	}
 	return nil
+}
+
+// ActorOf names the token that makes a request; nil is nobody.
+func ActorOf(t *Token) training.Actor {
+	if t == nil {
+		return training.Actor{}
+	}
+	id := t.ID
+	return training.Actor{TokenID: &id, TokenLabel: t.Label}
 }
 
 // TokenSpec is what a new token is created with.
@@ -98,40 +110,43 @@ const MaxTokenLabelLen = 200
 
 // Validate reports every problem of a token request.
 func (s TokenSpec) Validate() error {
-	var l problemList
+	var problems []training.FieldError
+	add := func(field, format string, args ...any) {
+		problems = append(problems, training.FieldError{Episode: -1, Step: -1, Field: field, Message: fmt.Sprintf(format, args...)})
+	}
 	switch {
 	case s.Label == "":
-		l.add(-1, -1, "label", "is missing; say what the token is for")
+		add("label", "is missing; say what the token is for")
 	case len(s.Label) > MaxTokenLabelLen:
-		l.add(-1, -1, "label", "is %d bytes, longer than the limit of %d", len(s.Label), MaxTokenLabelLen)
-	case !printableName(s.Label):
-		l.add(-1, -1, "label", "must be valid UTF-8 without control characters")
+		add("label", "is %d bytes, longer than the limit of %d", len(s.Label), MaxTokenLabelLen)
+	case !training.PrintableName(s.Label):
+		add("label", "must be valid UTF-8 without control characters")
 	}
 	if len(s.Scopes) == 0 {
-		l.add(-1, -1, "scopes", "must name at least one of %s", joinScopes(AllScopes))
+		add("scopes", "must name at least one of %s", joinScopes(AllScopes))
 	}
 	for i, sc := range s.Scopes {
 		if !slices.Contains(AllScopes, sc) {
-			l.add(-1, -1, "scopes", "%q is not a scope; scopes are %s", truncate(string(sc), 64), joinScopes(AllScopes))
+			add("scopes", "%q is not a scope; scopes are %s", training.Truncate(string(sc), 64), joinScopes(AllScopes))
 		} else if slices.Index(s.Scopes, sc) < i {
-			l.add(-1, -1, "scopes", "repeats %q", sc)
+			add("scopes", "repeats %q", sc)
 		}
 	}
 	for _, p := range s.Policies {
-		if ValidatePolicyName(p) != nil {
-			l.add(-1, -1, "policies", "%q is not a valid policy name", truncate(p, 64))
+		if training.ValidatePolicyName(p) != nil {
+			add("policies", "%q is not a valid policy name", training.Truncate(p, 64))
 		}
 	}
 	if math.IsNaN(s.RatePerSecond) || math.IsInf(s.RatePerSecond, 0) || s.RatePerSecond < 0 {
-		l.add(-1, -1, "rate", "must be a finite number of requests per second, at least 0")
+		add("rate", "must be a finite number of requests per second, at least 0")
 	}
 	switch {
 	case s.Burst < 0:
-		l.add(-1, -1, "burst", "must be at least 0")
+		add("burst", "must be at least 0")
 	case s.Burst > 0 && s.RatePerSecond == 0:
-		l.add(-1, -1, "burst", "applies only together with a rate")
+		add("burst", "applies only together with a rate")
 	}
-	return l.err()
+	return training.Refuse(problems)
 }
 
 func joinScopes(scopes []Scope) string {

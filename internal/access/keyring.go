@@ -1,4 +1,4 @@
-package training
+package access
 
 import (
 	"context"
@@ -8,6 +8,8 @@ import (
 	"sync/atomic"
 
 	"golang.org/x/time/rate"
+
+	"github.com/qtally/qtally/training"
 )
 
 // TokenSource reads the tokens that are not revoked.
@@ -76,7 +78,7 @@ func (k *Keyring) Reload(ctx context.Context) error {
 func (k *Keyring) Verify(ctx context.Context, secret string) (*Token, error) {
 	id, random, ok := ParseSecret(secret)
 	if !ok {
-		return nil, Unauthenticatedf("the bearer token is not a qtally token secret (qtk_<id>_<43 characters>)")
+		return nil, training.Unauthenticatedf("the bearer token is not a qtally token secret (qtk_<id>_<43 characters>)")
 	}
 	e := (*k.tokens.Load())[id]
 	if e == nil {
@@ -86,7 +88,7 @@ func (k *Keyring) Verify(ctx context.Context, secret string) (*Token, error) {
 		}
 	}
 	if e == nil {
-		return nil, Unauthenticatedf("the token is unknown or revoked")
+		return nil, training.Unauthenticatedf("the token is unknown or revoked")
 	}
 	if v := e.verified.Load(); v != nil {
 		var buf [64]byte
@@ -95,7 +97,7 @@ func (k *Keyring) Verify(ctx context.Context, secret string) (*Token, error) {
 		}
 	}
 	if !k.hasher.Matches(e.token.Digest, random) {
-		return nil, Unauthenticatedf("the token is unknown or revoked")
+		return nil, training.Unauthenticatedf("the token is unknown or revoked")
 	}
 	proven := []byte(random)
 	e.verified.Store(&proven)
@@ -134,7 +136,7 @@ func (k *Keyring) Active(ctx context.Context, id int64) (*Token, error) {
 		}
 	}
 	if e == nil {
-		return nil, Unauthenticatedf("the token of this session is unknown or revoked")
+		return nil, training.Unauthenticatedf("the token of this session is unknown or revoked")
 	}
 	return e.token, nil
 }

@@ -1,4 +1,4 @@
-package training
+package access
 
 import (
 	"context"
@@ -7,6 +7,8 @@ import (
 	"crypto/sha256"
 	"errors"
 	"time"
+
+	"github.com/qtally/qtally/training"
 )
 
 // A page session stands for a signed-in browser. Its id is 256 random bits
@@ -24,7 +26,7 @@ const (
 type SessionStore interface {
 	// CreateSession stores a session and drops expired ones.
 	CreateSession(ctx context.Context, digest []byte, tokenID int64, expires time.Time) error
-	// SessionTokenID returns the token of an unexpired session, or ErrNotFound.
+	// SessionTokenID returns the token of an unexpired session, or training.ErrNotFound.
 	SessionTokenID(ctx context.Context, digest []byte) (int64, error)
 	// DeleteSession ends a session; ending an unknown one is no error.
 	DeleteSession(ctx context.Context, digest []byte) error
@@ -78,12 +80,12 @@ func (p PageSessions) Token(ctx context.Context, id string) (*Token, error) {
 	raw, err := secretEncoding.DecodeString(id)
 	if err != nil || len(raw) != sessionRandomBytes+sessionMACBytes ||
 		!hmac.Equal(raw[sessionRandomBytes:], p.tag(raw[:sessionRandomBytes])) {
-		return nil, Unauthenticatedf("the session is unknown or expired; sign in again")
+		return nil, training.Unauthenticatedf("the session is unknown or expired; sign in again")
 	}
 	tokenID, err := p.Store.SessionTokenID(ctx, sessionDigest(id))
 	if err != nil {
-		if errors.Is(err, ErrNotFound) {
-			return nil, Unauthenticatedf("the session is unknown or expired; sign in again")
+		if errors.Is(err, training.ErrNotFound) {
+			return nil, training.Unauthenticatedf("the session is unknown or expired; sign in again")
 		}
 		return nil, err
 	}

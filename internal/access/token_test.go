@@ -1,4 +1,4 @@
-package training
+package access
 
 import (
 	"crypto/hmac"
@@ -7,6 +7,8 @@ import (
 	"errors"
 	"strings"
 	"testing"
+
+	"github.com/qtally/qtally/training"
 )
 
 func TestSecretsRoundTripAndRejectLookalikes(t *testing.T) {
@@ -73,7 +75,7 @@ func TestTokenAuthorize(t *testing.T) {
 		{all, ScopeIngest, "anything", false},
 	} {
 		err := c.tok.Authorize(c.scope, c.policy)
-		if (err == nil) != c.ok || (err != nil && !errors.Is(err, ErrForbidden)) {
+		if (err == nil) != c.ok || (err != nil && !errors.Is(err, training.ErrForbidden)) {
 			t.Errorf("token %d, %s on %q: %v, want allowed=%v", c.tok.ID, c.scope, c.policy, err, c.ok)
 		}
 	}
@@ -101,7 +103,7 @@ func TestTokenSpecValidate(t *testing.T) {
 		spec := good
 		spec.Scopes = append([]Scope(nil), good.Scopes...)
 		c.change(&spec)
-		var verr *ValidationError
+		var verr *training.ValidationError
 		if err := spec.Validate(); !errors.As(err, &verr) || verr.Problems[0].Field != c.field {
 			t.Errorf("%+v: %v, want a problem with %s", spec, err, c.field)
 		}

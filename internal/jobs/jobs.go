@@ -1,4 +1,4 @@
-package training
+package jobs
 
 import (
 	"context"
@@ -8,49 +8,51 @@ import (
 	"log/slog"
 	"sync"
 	"time"
+
+	"github.com/qtally/qtally/training"
 )
 
-// JobKind names a kind of background job.
-type JobKind string
+// Kind names a kind of background job.
+type Kind string
 
 // Kinds of jobs.
 const (
-	EvaluationJobKind JobKind = "evaluation"
-	ReplayJobKind     JobKind = "replay"
+	EvaluationKind Kind = "evaluation"
+	ReplayKind     Kind = "replay"
 )
 
-// JobStatus is where a job stands.
-type JobStatus string
+// Status is where a job stands.
+type Status string
 
 // Job statuses.
 const (
-	JobQueued    JobStatus = "queued"
-	JobRunning   JobStatus = "running"
-	JobSucceeded JobStatus = "succeeded"
-	JobFailed    JobStatus = "failed"
+	Queued    Status = "queued"
+	Running   Status = "running"
+	Succeeded Status = "succeeded"
+	Failed    Status = "failed"
 )
 
 // Job is a claimed job: what a runner needs to do it.
 type Job struct {
 	ID       int64
 	PolicyID int32
-	Kind     JobKind
-	// Spec is the kind's job document (EvaluationJob or ReplayJob).
+	Kind     Kind
+	// Spec is the kind's job document (training.EvaluationJob or training.ReplayJob).
 	Spec     json.RawMessage
 	Attempts int
 }
 
-// JobView is a job as clients see it.
-type JobView struct {
-	ID       int64     `json:"id"`
-	Kind     JobKind   `json:"kind"`
-	Policy   string    `json:"policy"`
-	Status   JobStatus `json:"status"`
-	Progress Progress  `json:"progress"`
+// View is a job as clients see it.
+type View struct {
+	ID       int64             `json:"id"`
+	Kind     Kind              `json:"kind"`
+	Policy   string            `json:"policy"`
+	Status   Status            `json:"status"`
+	Progress training.Progress `json:"progress"`
 	// Request is the request as normalised when posted (defaults filled in).
 	Request json.RawMessage `json:"request"`
 	// Episodes is the request's window as resolved when posted.
-	Episodes EpisodeSpan `json:"episodes"`
+	Episodes training.EpisodeSpan `json:"episodes"`
 	// Result is the kind's result once the job succeeded.
 	Result     json.RawMessage `json:"result,omitempty"`
 	Error      string          `json:"error,omitempty"`
@@ -61,63 +63,63 @@ type JobView struct {
 
 // Sizes of a page of jobs.
 const (
-	DefaultJobPage = 50
-	MaxJobPage     = 500
+	DefaultPage = 50
+	MaxPage     = 500
 )
 
-// JobQuery asks for one page of a policy's jobs of a kind, newest first.
-type JobQuery struct {
+// Query asks for one page of a policy's jobs of a kind, newest first.
+type Query struct {
 	Limit int
 	// Before continues a listing with the jobs older than this id; 0
 	// starts it.
 	Before int64
 }
 
-// JobPage is one page of jobs; Next, when not 0, continues the listing.
-type JobPage struct {
-	Jobs []JobView
+// Page is one page of jobs; Next, when not 0, continues the listing.
+type Page struct {
+	Jobs []View
 	Next int64
 }
 
-// JobNotFoundError says a policy has no job of a kind with an id. Job ids
+// NotFoundError says a policy has no job of a kind with an id. Job ids
 // are numbered across all policies, so an id may be another policy's, or
 // this policy's job of the other kind (OtherKind).
-type JobNotFoundError struct {
+type NotFoundError struct {
 	Policy    string
-	Kind      JobKind
+	Kind      Kind
 	ID        int64
-	OtherKind JobKind
+	OtherKind Kind
 }
 
-func (e *JobNotFoundError) Error() string {
+func (e *NotFoundError) Error() string {
 	if e.OtherKind != "" {
 		return fmt.Sprintf("policy %q has no %s job %d: job %d is its %s", e.Policy, e.Kind, e.ID, e.ID, e.OtherKind)
 	}
 	return fmt.Sprintf("policy %q has no %s job %d", e.Policy, e.Kind, e.ID)
 }
 
-func (e *JobNotFoundError) Unwrap() error { return ErrNotFound }
+func (e *NotFoundError) Unwrap() error { return training.ErrNotFound }
 
-// JobStore keeps jobs in the database, so that any process can report on a
+// Store keeps jobs in the database, so that any process can report on a
 // job any other runs.
-type JobStore interface {
+type Store interface {
 	// ClaimJob marks the oldest queued job, or a running one whose runner
 	// has not reported for staleAfter, as running by this caller. Jobs
 	// claimed maxAttempts times already are failed instead.
 	ClaimJob(ctx context.Context, staleAfter time.Duration, maxAttempts int) (Job, bool, error)
 	// ReportProgress records progress and that the runner is alive.
-	ReportProgress(ctx context.Context, job Job, p Progress) error
+	ReportProgress(ctx context.Context, job Job, p training.Progress) error
 	// FinishJob records a result (failure empty) or a failure message.
-	FinishJob(ctx context.Context, job Job, p Progress, result any, failure string) error
+	FinishJob(ctx context.Context, job Job, p training.Progress, result any, failure string) error
 	// ReleaseJob puts a job back in the queue for another runner.
 	ReleaseJob(ctx context.Context, job Job) error
 }
 
-// JobRunner runs queued jobs, one at a time, until its context ends.
-type JobRunner struct {
-	Jobs        JobStore
-	Evaluations EvaluationSource
-	Replays     ReplayStore
+// Runner runs queued jobs, one at a time, until its context ends.
+type Runner struct {
+	Jobs        Store
+	Evaluations training.EvaluationSource
+	Replays     training.ReplayStore
 	// BatchEpisodes is the most episodes one replay transaction learns.
 	BatchEpisodes int
 	// Wake receives a value when a job is queued; PollInterval is the
@@ -135,7 +137,7 @@ type JobRunner struct {
 
 // Run claims and runs jobs until ctx ends. A job cut short by the end of
 // ctx goes back to the queue.
-func (r *JobRunner) Run(ctx context.Context) error {
+func (r *Runner) Run(ctx context.Context) error {
 	poll := time.NewTimer(0)
 	defer poll.Stop()
 	backoff := time.Duration(0)
@@ -164,17 +166,17 @@ func (r *JobRunner) Run(ctx context.Context) error {
 }
 
 // run does one job, reporting its progress every ReportInterval.
-func (r *JobRunner) run(ctx context.Context, job Job) {
+func (r *Runner) run(ctx context.Context, job Job) {
 	log := r.Logger.With("job", job.ID, "kind", job.Kind, "attempt", job.Attempts)
 	log.Info("job started")
 	var mu sync.Mutex
-	latest := Progress{Phase: "starting"}
-	progress := func(p Progress) {
+	latest := training.Progress{Phase: "starting"}
+	progress := func(p training.Progress) {
 		mu.Lock()
 		latest = p
 		mu.Unlock()
 	}
-	current := func() Progress {
+	current := func() training.Progress {
 		mu.Lock()
 		defer mu.Unlock()
 		return latest
@@ -204,7 +206,7 @@ func (r *JobRunner) run(ctx context.Context, job Job) {
 	finishCtx, done := context.WithTimeout(context.WithoutCancel(ctx), 10*time.Second)
 	defer done()
 	switch {
-	case err != nil && (ctx.Err() != nil || errors.Is(err, ErrUnavailable)):
+	case err != nil && (ctx.Err() != nil || errors.Is(err, training.ErrUnavailable)):
 		log.Info("job interrupted; returning it to the queue", "error", err)
 		if rerr := r.Jobs.ReleaseJob(finishCtx, job); rerr != nil {
 			log.Warn("returning a job to the queue", "error", rerr)
@@ -225,20 +227,20 @@ func (r *JobRunner) run(ctx context.Context, job Job) {
 	}
 }
 
-func (r *JobRunner) do(ctx context.Context, job Job, progress func(Progress)) (any, error) {
+func (r *Runner) do(ctx context.Context, job Job, progress func(training.Progress)) (any, error) {
 	switch job.Kind {
-	case EvaluationJobKind:
-		var spec EvaluationJob
+	case EvaluationKind:
+		var spec training.EvaluationJob
 		if err := json.Unmarshal(job.Spec, &spec); err != nil {
 			return nil, fmt.Errorf("decode evaluation job %d: %w", job.ID, err)
 		}
-		return Evaluate(ctx, r.Evaluations, spec, progress)
-	case ReplayJobKind:
-		var spec ReplayJob
+		return training.Evaluate(ctx, r.Evaluations, spec, progress)
+	case ReplayKind:
+		var spec training.ReplayJob
 		if err := json.Unmarshal(job.Spec, &spec); err != nil {
 			return nil, fmt.Errorf("decode replay job %d: %w", job.ID, err)
 		}
-		return Replay(ctx, r.Replays, spec, r.BatchEpisodes, progress)
+		return training.Replay(ctx, r.Replays, spec, r.BatchEpisodes, progress)
 	default:
 		return nil, fmt.Errorf("job %d has unknown kind %q", job.ID, job.Kind)
 	}
@@ -247,9 +249,19 @@ func (r *JobRunner) do(ctx context.Context, job Job, progress func(Progress)) (a
 // failureMessage is what clients are told of a failed job: the domain's
 // own message, or a pointer to the log for anything else.
 func failureMessage(err error) string {
-	var verr *ValidationError
-	if errors.As(err, &verr) || errors.Is(err, ErrNotFound) || errors.Is(err, ErrConflict) {
+	var verr *training.ValidationError
+	if errors.As(err, &verr) || errors.Is(err, training.ErrNotFound) || errors.Is(err, training.ErrConflict) {
 		return err.Error()
 	}
 	return "the job failed on the server; see its log"
+}
+
+// sleep waits for d or the end of ctx, whichever comes first.
+func sleep(ctx context.Context, d time.Duration) {
+	t := time.NewTimer(d)
+	defer t.Stop()
+	select {
+	case <-ctx.Done():
+	case <-t.C:
+	}
 }

@@ -1,13 +1,15 @@
-package training
+package views
 
 import (
 	"slices"
 	"time"
+
+	"github.com/qtally/qtally/training"
 )
 
 // PolicyStatus is a policy with where its data and training stand.
 type PolicyStatus struct {
-	Policy
+	training.Policy
 	Episodes int64 `json:"episodes"`
 	// Backlog counts stored episodes not trained yet.
 	Backlog         int64      `json:"backlog"`
@@ -41,7 +43,7 @@ type StateView struct {
 // and names the action greedy mode answers with every action allowed (the
 // first of any tie, so that reading is deterministic; choosing splits ties
 // at random), "" when it has none.
-func NewStateView(p Policy, state string, stored map[int16]ActionValue) StateView {
+func NewStateView(p training.Policy, state string, stored map[int16]ActionValue) StateView {
 	v := StateView{State: state, Known: len(stored) > 0, Actions: make([]ActionValue, len(p.Actions))}
 	q, visits := make([]float64, len(p.Actions)), make([]int64, len(p.Actions))
 	for i, name := range p.Actions {
@@ -54,9 +56,9 @@ func NewStateView(p Policy, state string, stored map[int16]ActionValue) StateVie
 		v.Visits += av.Visits
 		q[i], visits[i] = av.Q, av.Visits
 	}
-	g := p.GreedyRule().Find(q, visits, slices.Index(p.Actions, p.GreedyFallback), Greedy)
+	g := p.GreedyRule().Find(q, visits, slices.Index(p.Actions, p.GreedyFallback), training.Greedy)
 	if g.Size > 0 {
-		v.GreedyAction = p.Actions[g.nth(q, visits, 0)]
+		v.GreedyAction = p.Actions[g.First(q, visits)]
 	}
 	return v
 }
