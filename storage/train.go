@@ -17,6 +17,11 @@ import (
 // (the two-key form: class, policy id).
 const trainingLockClass = 0x71746c79
 
+// TrainingLockClass is that class for those outside the package: holding
+// pg_advisory_lock(TrainingLockClass, policy id) holds a policy's training
+// (whole-system tests use it to stop training at a chosen point).
+const TrainingLockClass = trainingLockClass
+
 // TrainBatch implements training.BatchTrainer. One policy's batches are
 // serialised by a transaction-level advisory lock, so several workers can
 // share a database and spread over policies; a batch that fails or whose

@@ -1,13 +1,9 @@
 package systemtest
 
 import (
-	"bytes"
-	"context"
 	"encoding/json"
-	"io"
 	"os"
 	"path/filepath"
-	"regexp"
 	"strconv"
 	"strings"
 	"testing"
@@ -15,41 +11,6 @@ import (
 
 	"github.com/qtally/qtally/storage/pgtest"
 )
-
-// as is the same service seen by a client sending secret ("" for none).
-func (s *service) as(secret string) *service {
-	if secret == "" {
-		return s.withAuthorization("")
-	}
-	return s.withAuthorization("Bearer " + secret)
-}
-
-// withAuthorization is the same service seen by a client sending this
-// Authorization header ("" for none).
-func (s *service) withAuthorization(header string) *service {
-	c := *s
-	c.authorization = header
-	return &c
-}
-
-// qtally runs a command of the binary against the service's database.
-func (s *service) qtally(args ...string) (string, error) {
-	var out bytes.Buffer
-	env := map[string]string{"DATABASE_URL": s.databaseURL, "QTALLY_TOKEN_PEPPER": testPepper}
-	err := run(context.Background(), append([]string{"qtally"}, args...), func(k string) string { return env[k] }, &out, io.Discard)
-	return out.String(), err
-}
-
-var tokenIDPattern = regexp.MustCompile(`^qtk_(\d+)_`)
-
-func tokenID(t testing.TB, secret string) string {
-	t.Helper()
-	m := tokenIDPattern.FindStringSubmatch(secret)
-	if m == nil {
-		t.Fatalf("%q is not a token secret", secret)
-	}
-	return m[1]
-}
 
 var oneStepBody = func(id string) map[string]any {
 	return map[string]any{"episodes": []episodeJSON{{ID: id, Steps: []stepJSON{{State: "s", Action: "a", Reward: 1}}}}}

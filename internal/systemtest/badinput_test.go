@@ -155,13 +155,6 @@ func TestBadInputIsRefusedAndChangesNothing(t *testing.T) {
 	t.Logf("%d hostile requests: %v", len(cases), fmt.Sprint(counts))
 }
 
-// withT reports the service's failures to t, a subtest.
-func (s *service) withT(t testing.TB) *service {
-	c := *s
-	c.t = t
-	return &c
-}
-
 // Names that look like SQL, markup, paths or escapes are data: they are
 // stored, learned and shown back exactly, and harm nothing.
 func TestHostileNamesAreStoredAndShownAsSent(t *testing.T) {

@@ -4,7 +4,6 @@ import (
 	"encoding/json"
 	"fmt"
 	"math/rand/v2"
-	"net"
 	"net/http"
 	"net/url"
 	"os"
@@ -159,16 +158,6 @@ func grafanaVariables(policy string) *strings.Replacer {
 // prometheusServer is a real Prometheus on loopback.
 type prometheusServer struct {
 	URL string
-}
-
-func freeLoopbackPort(t *testing.T) string {
-	t.Helper()
-	l, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer l.Close()
-	return l.Addr().String()
 }
 
 // startPrometheus runs Prometheus with its own storage, scraping the given

@@ -1,7 +1,6 @@
 package systemtest
 
 import (
-	"encoding/json"
 	"fmt"
 	"math"
 	"math/rand/v2"
@@ -14,84 +13,6 @@ import (
 
 	"github.com/qtally/qtally/storage/pgtest"
 )
-
-type stepJSON struct {
-	State       string   `json:"state"`
-	Action      string   `json:"action"`
-	Reward      float64  `json:"reward"`
-	Probability *float64 `json:"probability,omitempty"`
-}
-
-type episodeJSON struct {
-	ID    string     `json:"id"`
-	Steps []stepJSON `json:"steps"`
-}
-
-type pair struct{ state, action string }
-
-type estimate struct {
-	q      float64
-	visits int64
-}
-
-// sequentialReference is the plainest reading of the update rule: one
-// episode after another in arrival order, returns G <- gamma G + r from the
-// last step back, Q <- Q + alpha (G - Q) at each (first) visit.
-func sequentialReference(episodes []episodeJSON, gamma, alpha float64, firstVisit bool, table map[pair]estimate) {
-	for _, ep := range episodes {
-		g := 0.0
-		for t := len(ep.Steps) - 1; t >= 0; t-- {
-			st := ep.Steps[t]
-			g = gamma*g + st.Reward
-			k := pair{st.State, st.Action}
-			if firstVisit && firstIndex(ep, k) < t {
-				continue
-			}
-			e := table[k]
-			e.q += alpha * (g - e.q)
-			e.visits++
-			table[k] = e
-		}
-	}
-}
-
-func firstIndex(ep episodeJSON, k pair) int {
-	for i, st := range ep.Steps {
-		if st.State == k.state && st.Action == k.action {
-			return i
-		}
-	}
-	return -1
-}
-
-// randomBatch makes episodes over few states and actions, so that pairs
-// repeat within episodes and across them.
-func randomBatch(rng *rand.Rand, prefix string, n int, actions []string) []episodeJSON {
-	eps := make([]episodeJSON, n)
-	for i := range eps {
-		steps := make([]stepJSON, 1+rng.IntN(15))
-		for j := range steps {
-			p := 0.1 + 0.9*rng.Float64()
-			steps[j] = stepJSON{
-				State:       fmt.Sprintf("day %d/bucket", rng.IntN(6)),
-				Action:      actions[rng.IntN(len(actions))],
-				Reward:      math.Round(rng.NormFloat64()*1000) / 100,
-				Probability: &p,
-			}
-		}
-		eps[i] = episodeJSON{ID: fmt.Sprintf("%s-%d", prefix, i), Steps: steps}
-	}
-	return eps
-}
-
-func ndjson(t testing.TB, eps []episodeJSON) []byte {
-	var b strings.Builder
-	for _, ep := range eps {
-		b.Write(must(json.Marshal(ep)))
-		b.WriteByte('\n')
-	}
-	return []byte(b.String())
-}
 
 type policyStatus struct {
 	Revision int64 `json:"revision"`
@@ -137,19 +58,6 @@ func (s *service) table(policy string, states []string) map[pair]estimate {
 		}
 	}
 	return out
-}
-
-func compareTables(t testing.TB, got, want map[pair]estimate) {
-	t.Helper()
-	if len(got) != len(want) {
-		t.Fatalf("service has %d learned pairs, reference %d", len(got), len(want))
-	}
-	for k, w := range want {
-		g := got[k]
-		if math.Abs(g.q-w.q) > 1e-9 || g.visits != w.visits {
-			t.Fatalf("pair %v: service Q=%v N=%d, sequential reference Q=%v N=%d", k, g.q, g.visits, w.q, w.visits)
-		}
-	}
 }
 
 // Episodes posted through HTTP, with pairs repeated within and across

@@ -4,9 +4,7 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
-	"net"
 	"net/http"
-	"os/exec"
 	"strings"
 	"testing"
 	"time"
@@ -14,17 +12,6 @@ import (
 	"github.com/qtally/qtally/internal/load"
 	"github.com/qtally/qtally/storage/pgtest"
 )
-
-// freeLoopbackAddr is a TCP address on 127.0.0.1 that was free a moment ago.
-func freeLoopbackAddr(t *testing.T) string {
-	t.Helper()
-	l, err := net.Listen("tcp", "127.0.0.1:0")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer l.Close()
-	return l.Addr().String()
-}
 
 // runLoad runs `qtally load args...` and decodes its JSON output into v.
 func runLoad(t *testing.T, v any, args ...string) {
@@ -147,18 +134,4 @@ func TestLoadDrainStartsAWorker(t *testing.T) {
 	if d.Episodes != 300 || d.Steps != 300*20 || d.Pairs != 200 || d.StepsPerSec <= 0 {
 		t.Fatalf("drain: %+v", d)
 	}
-}
-
-// runBinary runs bin to completion and returns its standard output, or
-// its standard error with the failure.
-func runBinary(bin string, args ...string) ([]byte, error) {
-	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
-	defer cancel()
-	var out, errOut bytes.Buffer
-	cmd := exec.CommandContext(ctx, bin, args...)
-	cmd.Stdout, cmd.Stderr = &out, &errOut
-	if err := cmd.Run(); err != nil {
-		return errOut.Bytes(), err
-	}
-	return out.Bytes(), nil
 }

@@ -17,67 +17,9 @@ import (
 
 	"github.com/jackc/pgx/v5"
 	dto "github.com/prometheus/client_model/go"
-	"github.com/prometheus/common/expfmt"
-	"github.com/prometheus/common/model"
 
 	"github.com/qtally/qtally/storage/pgtest"
 )
-
-// scrape reads /metrics through the OpenAPI-checked client.
-func (s *service) scrape() (string, map[string]*dto.MetricFamily) {
-	s.t.Helper()
-	r := s.send("GET", "/metrics", "", nil, false)
-	if r.Status != 200 {
-		s.t.Fatalf("GET /metrics: %d %s", r.Status, r.Body)
-	}
-	parser := expfmt.NewTextParser(model.UTF8Validation)
-	families, err := parser.TextToMetricFamilies(bytes.NewReader(r.Body))
-	if err != nil {
-		s.t.Fatalf("parse /metrics: %v", err)
-	}
-	return string(r.Body), families
-}
-
-// sample finds the series of a family whose labels include want.
-func sample(families map[string]*dto.MetricFamily, name string, want map[string]string) *dto.Metric {
-	f := families[name]
-	if f == nil {
-		return nil
-	}
-	for _, m := range f.GetMetric() {
-		labels := map[string]string{}
-		for _, l := range m.GetLabel() {
-			labels[l.GetName()] = l.GetValue()
-		}
-		match := true
-		for k, v := range want {
-			match = match && labels[k] == v
-		}
-		if match {
-			return m
-		}
-	}
-	return nil
-}
-
-// gaugeOf reads one gauge, or NaN when the series is missing.
-func gaugeOf(families map[string]*dto.MetricFamily, name, policy string) float64 {
-	m := sample(families, name, map[string]string{"policy": policy})
-	if m == nil {
-		return math.NaN()
-	}
-	return m.GetGauge().GetValue()
-}
-
-// promtool finds the Prometheus command-line tool the checks run.
-func promtool(t testing.TB) string {
-	t.Helper()
-	path, err := exec.LookPath("promtool")
-	if err != nil {
-		t.Fatalf("promtool not found (Debian package prometheus; scripts/setup-test-machine.sh installs it): %v", err)
-	}
-	return path
-}
 
 // feedLearningWork gives a service's every metric something to count:
 // trained episodes, a duplicate, a rejected batch, and choices greedy and

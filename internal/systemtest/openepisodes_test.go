@@ -1,7 +1,6 @@
 package systemtest
 
 import (
-	"context"
 	"encoding/json"
 	"fmt"
 	"math/rand/v2"
@@ -12,8 +11,6 @@ import (
 	"sync"
 	"testing"
 	"time"
-
-	"github.com/jackc/pgx/v5"
 
 	"github.com/qtally/qtally/storage/pgtest"
 )
@@ -68,40 +65,6 @@ type openEpisodeJSON struct {
 		Allowed     []string `json:"allowed"`
 		Reward      float64  `json:"reward"`
 	} `json:"steps"`
-}
-
-type storedEpisode struct {
-	id            string
-	states        []string
-	actions       []int16
-	rewards       []float64
-	probabilities []float64
-	allowed       []byte
-}
-
-// storedEpisodes reads a policy's stored episodes in arrival (seq) order.
-func storedEpisodes(t testing.TB, databaseURL, policy string) []storedEpisode {
-	t.Helper()
-	ctx := context.Background()
-	conn, err := pgx.Connect(ctx, databaseURL)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer conn.Close(ctx)
-	rows, err := conn.Query(ctx, `SELECT e.episode_id, e.states, e.actions, e.rewards, e.probabilities, e.allowed
-		FROM episodes e JOIN policies p ON p.policy_id = e.policy_id WHERE p.name = $1 ORDER BY e.seq`, policy)
-	if err != nil {
-		t.Fatal(err)
-	}
-	out, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (storedEpisode, error) {
-		var e storedEpisode
-		err := r.Scan(&e.id, &e.states, &e.actions, &e.rewards, &e.probabilities, &e.allowed)
-		return e, err
-	})
-	if err != nil {
-		t.Fatal(err)
-	}
-	return out
 }
 
 // A decision recorded, retried, refused out of order, rewarded and ended:

@@ -18,9 +18,6 @@ import (
 	"time"
 
 	"github.com/jackc/pgx/v5"
-	dto "github.com/prometheus/client_model/go"
-	"github.com/prometheus/common/expfmt"
-	"github.com/prometheus/common/model"
 
 	"github.com/qtally/qtally/storage/pgtest"
 )
@@ -416,40 +413,6 @@ func greedyOf(table map[pair]estimate, state string, actions []string) (string, 
 		}
 	}
 	return best, unique
-}
-
-// metricSum adds up a counter, or a histogram's _sum or _count, over its
-// labels on a process's /metrics.
-func metricSum(t testing.TB, base, name string) float64 {
-	t.Helper()
-	resp, err := http.Get(base + "/metrics")
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer resp.Body.Close()
-	parser := expfmt.NewTextParser(model.UTF8Validation)
-	families, err := parser.TextToMetricFamilies(resp.Body)
-	if err != nil {
-		t.Fatalf("%s/metrics: %v", base, err)
-	}
-	var sum float64
-	if f, ok := families[name]; ok {
-		for _, m := range f.GetMetric() {
-			sum += m.GetCounter().GetValue()
-		}
-	}
-	// A histogram's _sum and _count are fields of its one family.
-	for suffix, field := range map[string]func(*dto.Histogram) float64{
-		"_sum":   (*dto.Histogram).GetSampleSum,
-		"_count": func(h *dto.Histogram) float64 { return float64(h.GetSampleCount()) },
-	} {
-		if base, ok := strings.CutSuffix(name, suffix); ok {
-			for _, m := range families[base].GetMetric() {
-				sum += field(m.GetHistogram())
-			}
-		}
-	}
-	return sum
 }
 
 func postJSON(ctx context.Context, client *http.Client, url string, body []byte, out any) error {

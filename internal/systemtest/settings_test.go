@@ -9,18 +9,6 @@ import (
 	"github.com/qtally/qtally/storage/pgtest"
 )
 
-// withHeader is the same service seen by a client that adds this header to
-// every request.
-func (s *service) withHeader(name, value string) *service {
-	c := *s
-	c.headers = map[string]string{}
-	for k, v := range s.headers {
-		c.headers[k] = v
-	}
-	c.headers[name] = value
-	return &c
-}
-
 // patch sends a JSON merge patch.
 func (s *service) patch(path, body string, wantStatus int) reply {
 	s.t.Helper()

@@ -40,28 +40,6 @@ type tableChange struct {
 	Pairs    int    `json:"pairs"`
 }
 
-type chosen struct {
-	Action       string  `json:"action"`
-	Probability  float64 `json:"probability"`
-	GreedyAction string  `json:"greedy_action"`
-	KnownState   bool    `json:"known_state"`
-	Revision     int64   `json:"revision"`
-}
-
-func (s *service) choose(policy, state string) chosen {
-	var c chosen
-	s.call("POST", "/v1/policies/"+policy+"/choose", map[string]any{"state": state, "mode": "greedy"}, 200).decode(s.t, &c)
-	return c
-}
-
-func (s *service) post(policy string, eps ...episodeJSON) {
-	s.call("POST", "/v1/policies/"+policy+"/episodes", map[string]any{"episodes": eps}, 202)
-}
-
-func oneStep(id, state, action string, reward float64) episodeJSON {
-	return episodeJSON{ID: id, Steps: []stepJSON{{State: state, Action: action, Reward: reward}}}
-}
-
 func (s *service) export(path string) tableExport {
 	var t tableExport
 	s.call("GET", path, nil, 200).decode(s.t, &t)
@@ -75,19 +53,6 @@ func rowsByPair(rows []tableRow) map[pair]tableRow {
 	}
 	return out
 }
-
-// policyID reads a policy's id, for holding its locks from the test.
-func policyID(t *testing.T, conn *pgx.Conn, name string) int32 {
-	t.Helper()
-	var id int32
-	if err := conn.QueryRow(context.Background(), `SELECT policy_id FROM policies WHERE name = $1`, name).Scan(&id); err != nil {
-		t.Fatal(err)
-	}
-	return id
-}
-
-// trainingLockClass is storage's advisory lock class for training.
-const trainingLockClass = 0x71746c79
 
 // Freeze a table, learn on, compare, then roll back: the restore waits for
 // the training lock, choose serves the restored table at once in the

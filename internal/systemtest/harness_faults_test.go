@@ -1,7 +1,6 @@
 package systemtest
 
 import (
-	"bufio"
 	"bytes"
 	"context"
 	"encoding/json"
@@ -9,15 +8,9 @@ import (
 	"io"
 	"math/rand/v2"
 	"net/http"
-	"net/url"
-	"strconv"
-	"strings"
 	"sync"
-	"syscall"
 	"testing"
 	"time"
-
-	"github.com/jackc/pgx/v5"
 )
 
 // Helpers of the fault tests: real processes, real PostgreSQL, and clients
@@ -32,79 +25,6 @@ func faultStates() []string {
 		states[i] = fmt.Sprintf("day %d/bucket", i)
 	}
 	return states
-}
-
-// processEnv is the environment of a qtally process on databaseURL.
-func processEnv(databaseURL string) map[string]string {
-	return map[string]string{"DATABASE_URL": databaseURL, "QTALLY_LISTEN": "127.0.0.1:0",
-		"QTALLY_POLL_INTERVAL": "300ms", "QTALLY_LOG_FORMAT": "text"}
-}
-
-// withAppName tags a process's database sessions, so the test can find
-// them in pg_stat_activity and pg_locks.
-func withAppName(t testing.TB, databaseURL, name string) string {
-	t.Helper()
-	u, err := url.Parse(databaseURL)
-	if err != nil {
-		t.Fatalf("parse database URL: %v", err)
-	}
-	q := u.Query()
-	q.Set("application_name", name)
-	u.RawQuery = q.Encode()
-	return u.String()
-}
-
-// api is the OpenAPI-checked client of startService, pointed at a process.
-func (p *process) api() *service {
-	return &service{t: p.t, URL: p.URL, stderr: p.stderr, router: openAPIRouter(p.t),
-		client: &http.Client{Timeout: 30 * time.Second}, authorization: p.authorization}
-}
-
-// signal sends sig to the process.
-func (p *process) signal(sig syscall.Signal) {
-	p.t.Helper()
-	if err := p.cmd.Process.Signal(sig); err != nil {
-		p.t.Fatalf("signal %v: %v", sig, err)
-	}
-}
-
-// metric reads one unlabelled sample, or the sum over a metric's labels,
-// from the process's /metrics.
-func (p *process) metric(name string) float64 {
-	p.t.Helper()
-	resp, err := http.Get(p.URL + "/metrics")
-	if err != nil {
-		p.t.Fatalf("GET /metrics: %v", err)
-	}
-	defer resp.Body.Close()
-	sum := 0.0
-	sc := bufio.NewScanner(resp.Body)
-	for sc.Scan() {
-		line := sc.Text()
-		rest, ok := strings.CutPrefix(line, name)
-		if !ok || (rest[0] != ' ' && rest[0] != '{') {
-			continue
-		}
-		fields := strings.Fields(rest[strings.LastIndexByte(rest, '}')+1:])
-		v, err := strconv.ParseFloat(fields[0], 64)
-		if err != nil {
-			p.t.Fatalf("metric line %q: %v", line, err)
-		}
-		sum += v
-	}
-	return sum
-}
-
-// policySpec is a policy of a fault test and the settings its reference
-// computation needs.
-type policySpec struct {
-	name         string
-	gamma, alpha float64
-	visit        string
-}
-
-func (ps policySpec) create(s *service) {
-	s.call("PUT", "/v1/policies/"+ps.name, map[string]any{"actions": faultActions, "gamma": ps.gamma, "alpha": ps.alpha, "visit": ps.visit}, 201)
 }
 
 // ledger records, per policy, every episode the service answered 202 for,
@@ -233,78 +153,6 @@ func (l *ledger) postUntil(ctx context.Context, seed uint64, name string, n int,
 		l.post(ctx, client, urls[rng.IntN(len(urls))], ps.name, batch)
 		time.Sleep(time.Duration(rng.IntN(15)) * time.Millisecond)
 	}
-}
-
-// choice is the part of a choose answer the fault tests look at.
-type choice struct {
-	Action   string  `json:"action"`
-	Revision int64   `json:"revision"`
-	CopyAge  float64 `json:"copy_age_seconds"`
-}
-
-// choose asks for an action, exploring so that a state not trained yet has
-// an answer too; anything but 200 is an error.
-func choose(client *http.Client, baseURL, policy, state string) (choice, error) {
-	body := must(json.Marshal(map[string]any{"state": state, "mode": "explore"}))
-	resp, err := client.Post(baseURL+"/v1/policies/"+policy+"/choose", "application/json", bytes.NewReader(body))
-	if err != nil {
-		return choice{}, fmt.Errorf("choose: %w", err)
-	}
-	defer resp.Body.Close()
-	data, _ := io.ReadAll(resp.Body)
-	var c choice
-	if resp.StatusCode != http.StatusOK {
-		return c, fmt.Errorf("choose: %d %s", resp.StatusCode, data)
-	}
-	if err := json.Unmarshal(data, &c); err != nil {
-		return c, fmt.Errorf("choose: %w: %s", err, data)
-	}
-	return c, nil
-}
-
-// storedOrder reads a policy's stored episode ids in the order the
-// database assigned them (seq), which is the order training must follow,
-// and the ids not trained yet. Test-only SQL: the API has no such listing.
-func storedOrder(t testing.TB, databaseURL, policy string) (ids, untrained []string) {
-	t.Helper()
-	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
-	defer cancel()
-	conn, err := pgx.Connect(ctx, databaseURL)
-	if err != nil {
-		t.Fatalf("connect: %v", err)
-	}
-	defer conn.Close(ctx)
-	rows, err := conn.Query(ctx, `
-		SELECT e.episode_id, e.seq > p.trained_through FROM episodes e JOIN policies p USING (policy_id)
-		WHERE p.name = $1
-		ORDER BY e.seq`, policy)
-	if err != nil {
-		t.Fatalf("read stored episodes: %v", err)
-	}
-	var id string
-	var pending bool
-	_, err = pgx.ForEachRow(rows, []any{&id, &pending}, func() error {
-		ids = append(ids, id)
-		if pending {
-			untrained = append(untrained, id)
-		}
-		return nil
-	})
-	if err != nil {
-		t.Fatalf("read stored episodes: %v", err)
-	}
-	return ids, untrained
-}
-
-// lockWaits counts the sessions of the database waiting for a lock.
-func lockWaits(t testing.TB, conn *pgx.Conn) int {
-	t.Helper()
-	var n int
-	if err := conn.QueryRow(context.Background(), `SELECT count(*) FROM pg_stat_activity
-		WHERE datname = current_database() AND wait_event_type = 'Lock'`).Scan(&n); err != nil {
-		t.Fatalf("count lock waits: %v", err)
-	}
-	return n
 }
 
 // verifyLearnedOnce waits until the policy has no backlog and checks that

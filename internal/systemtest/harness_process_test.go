@@ -2,7 +2,11 @@ package systemtest
 
 import (
 	"bufio"
+	"bytes"
+	"context"
+	"net"
 	"net/http"
+	"net/url"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -133,5 +137,74 @@ func (p *process) terminate(within time.Duration) time.Duration {
 	case <-time.After(within):
 		p.t.Fatalf("process did not exit within %v of SIGTERM\n%s", within, p.stderr)
 		return 0
+	}
+}
+
+func freeLoopbackPort(t *testing.T) string {
+	t.Helper()
+	l, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer l.Close()
+	return l.Addr().String()
+}
+
+// freeLoopbackAddr is a TCP address on 127.0.0.1 that was free a moment ago.
+func freeLoopbackAddr(t *testing.T) string {
+	t.Helper()
+	l, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer l.Close()
+	return l.Addr().String()
+}
+
+// runBinary runs bin to completion and returns its standard output, or
+// its standard error with the failure.
+func runBinary(bin string, args ...string) ([]byte, error) {
+	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
+	defer cancel()
+	var out, errOut bytes.Buffer
+	cmd := exec.CommandContext(ctx, bin, args...)
+	cmd.Stdout, cmd.Stderr = &out, &errOut
+	if err := cmd.Run(); err != nil {
+		return errOut.Bytes(), err
+	}
+	return out.Bytes(), nil
+}
+
+// processEnv is the environment of a qtally process on databaseURL.
+func processEnv(databaseURL string) map[string]string {
+	return map[string]string{"DATABASE_URL": databaseURL, "QTALLY_LISTEN": "127.0.0.1:0",
+		"QTALLY_POLL_INTERVAL": "300ms", "QTALLY_LOG_FORMAT": "text"}
+}
+
+// withAppName tags a process's database sessions, so the test can find
+// them in pg_stat_activity and pg_locks.
+func withAppName(t testing.TB, databaseURL, name string) string {
+	t.Helper()
+	u, err := url.Parse(databaseURL)
+	if err != nil {
+		t.Fatalf("parse database URL: %v", err)
+	}
+	q := u.Query()
+	q.Set("application_name", name)
+	u.RawQuery = q.Encode()
+	return u.String()
+}
+
+// api is the OpenAPI-checked client of startService, pointed at a process.
+func (p *process) api() *service {
+	return &service{t: p.t, URL: p.URL, stderr: p.stderr, router: openAPIRouter(p.t),
+		client: &http.Client{Timeout: 30 * time.Second}, authorization: p.authorization}
+}
+
+// signal sends sig to the process.
+func (p *process) signal(sig syscall.Signal) {
+	p.t.Helper()
+	if err := p.cmd.Process.Signal(sig); err != nil {
+		p.t.Fatalf("signal %v: %v", sig, err)
 	}
 }
