@@ -14,6 +14,7 @@ import (
 	"slices"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"testing"
 	"time"
 
@@ -265,6 +266,8 @@ func runSharedDatabaseFleet(t testing.TB, requests int) []time.Duration {
 	}
 	// Watchers: each policy's committed revision, from either API.
 	committed := make([][]sighting, policies)
+	// watched is the last revision each watcher saw, for the main goroutine.
+	watched := make([]atomic.Int64, policies)
 	for p := range policies {
 		polling.Go(func() {
 			last := int64(-1)
@@ -281,6 +284,7 @@ func runSharedDatabaseFleet(t testing.TB, requests int) []time.Duration {
 				if st.Revision > last {
 					last = st.Revision
 					committed[p] = append(committed[p], sighting{st.Revision, prevStart})
+					watched[p].Store(last)
 				}
 				prevStart = start
 				time.Sleep(5 * time.Millisecond)
@@ -329,7 +333,14 @@ func runSharedDatabaseFleet(t testing.TB, requests int) []time.Duration {
 		}
 		return true
 	})
-	time.Sleep(50 * time.Millisecond) // let the watchers see the final revisions too
+	waitFor(t, 30*time.Second, "the watchers to see the final revisions too", func() bool {
+		for p := range policies {
+			if watched[p].Load() < final[p] {
+				return false
+			}
+		}
+		return true
+	})
 	stopPolling()
 	polling.Wait()
 	if len(failures) > 0 {
