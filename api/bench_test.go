@@ -4,9 +4,16 @@ import (
 	"bytes"
 	"encoding/json"
 	"fmt"
+	"io"
+	"log/slog"
 	"math/rand/v2"
+	"net/http"
+	"net/http/httptest"
 	"testing"
 
+	"github.com/prometheus/client_golang/prometheus"
+
+	"github.com/qtally/qtally/metrics"
 	"github.com/qtally/qtally/training"
 )
 
@@ -160,4 +167,21 @@ func BenchmarkDecodeAndEncodeMaskedEpisodes(b *testing.B) {
 		}
 	}
 	reportSteps(b, len(batch))
+}
+
+// BenchmarkRequestOverhead is what every request pays around its handler:
+// routing, the metrics, the request id, the request log line (at the
+// default level, which leaves out a fast answer) and the panic guard.
+// /livez is served because its handler does almost nothing else.
+func BenchmarkRequestOverhead(b *testing.B) {
+	logger := slog.New(slog.NewJSONHandler(io.Discard, &slog.HandlerOptions{Level: slog.LevelInfo}))
+	h := NewServer(Config{}, Deps{Logger: logger, Metrics: metrics.New(prometheus.NewRegistry())})
+	b.ReportAllocs()
+	for b.Loop() {
+		rec := httptest.NewRecorder()
+		h.ServeHTTP(rec, httptest.NewRequest(http.MethodGet, "/livez", nil))
+		if rec.Code != http.StatusOK {
+			b.Fatalf("status %d", rec.Code)
+		}
+	}
 }
