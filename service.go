@@ -117,7 +117,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	}
 	if cfg.RunWorker {
 		subs[storage.ChannelEpisodes] = storage.Subscription{Notify: func(int32) { nudge(wake) }, CatchUp: func() { nudge(wake) }}
-		reg.MustRegister(metrics.NewTableCollector(db, 5*time.Second, logger))
+		reg.MustRegister(metrics.NewBacklogCollector(db, 5*time.Second, logger))
 		reg.MustRegister(metrics.NewOpenEpisodeCollector(db, 5*time.Second, logger))
 		startHousekeeping(cfg, db, reg, m, logger, subs, goBackground)
 	}
@@ -143,7 +143,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	var handler http.Handler
 	if cfg.RunAPI {
 		handler = api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, History: db, Eraser: db, Episodes: db, States: db,
-			Chooser: replica, Recorder: keeper, OpenEpisodes: db, Inspect: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth, Sessions: sessions,
+			Chooser: replica, Recorder: keeper, OpenEpisodes: db, Reports: db, Ready: db, Metrics: m, Gatherer: reg, Auth: auth, Sessions: sessions,
 			Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db, Audit: db})
 	} else {
 		handler = api.NewHealthServer(cfg.HTTP, api.Deps{Logger: logger, Ready: db, Metrics: m, Gatherer: reg})

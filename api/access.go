@@ -164,9 +164,9 @@ func joinField(path, name string) string {
 func authorizeJobNames(c echo.Context, job training.JobView) error {
 	var req any
 	switch job.Kind {
-	case training.EvaluationJobKind:
+	case training.JobEvaluation:
 		req = &training.EvaluationRequest{}
-	case training.ReplayJobKind:
+	case training.JobReplay:
 		req = &training.ReplayRequest{}
 	default:
 		return nil

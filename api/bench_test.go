@@ -92,10 +92,10 @@ func BenchmarkEncodeEpisodes(b *testing.B) {
 	eps := benchEpisodeList()
 	s := training.DefaultSettings()
 	s.Actions = benchActions
-	index, lim := s.ActionIndex(), training.DefaultLimits()
+	lim := training.DefaultLimits()
 	b.ReportAllocs()
 	for b.Loop() {
-		if _, err := training.EncodeEpisodes(s, index, eps, lim); err != nil {
+		if _, err := training.ValidateAndEncodeEpisodes(s, eps, lim); err != nil {
 			b.Fatal(err)
 		}
 	}
@@ -107,14 +107,14 @@ func BenchmarkDecodeAndEncodeEpisodes(b *testing.B) {
 	batch, _ := benchBodies(b)
 	s := training.DefaultSettings()
 	s.Actions = benchActions
-	index, lim := s.ActionIndex(), training.DefaultLimits()
+	lim := training.DefaultLimits()
 	b.ReportAllocs()
 	for b.Loop() {
 		eps, err := decodeEpisodes(batch, mediaJSON)
 		if err != nil {
 			b.Fatal(err)
 		}
-		if _, err := training.EncodeEpisodes(s, index, eps, lim); err != nil {
+		if _, err := training.ValidateAndEncodeEpisodes(s, eps, lim); err != nil {
 			b.Fatal(err)
 		}
 	}
@@ -155,14 +155,14 @@ func BenchmarkDecodeAndEncodeMaskedEpisodes(b *testing.B) {
 	}
 	s := training.DefaultSettings()
 	s.Actions = benchActions
-	index, lim := s.ActionIndex(), training.DefaultLimits()
+	lim := training.DefaultLimits()
 	b.ReportAllocs()
 	for b.Loop() {
 		eps, err := decodeEpisodes(batch, mediaJSON)
 		if err != nil {
 			b.Fatal(err)
 		}
-		if _, err := training.EncodeEpisodes(s, index, eps, lim); err != nil {
+		if _, err := training.ValidateAndEncodeEpisodes(s, eps, lim); err != nil {
 			b.Fatal(err)
 		}
 	}

@@ -15,16 +15,16 @@ import (
 
 // Jobs queues evaluations and replays and reports on them.
 type Jobs interface {
-	StartEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (training.JobView, error)
-	StartReplay(ctx context.Context, policy string, req training.ReplayRequest) (training.JobView, error)
+	QueueEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (training.JobView, error)
+	QueueReplay(ctx context.Context, policy string, req training.ReplayRequest) (training.JobView, error)
 	Job(ctx context.Context, policy string, kind training.JobKind, id int64) (training.JobView, error)
 	ListJobs(ctx context.Context, policy string, kind training.JobKind, q training.JobQuery) (training.JobPage, error)
 }
 
 // jobPaths are the collection paths of each kind of job.
 var jobPaths = map[training.JobKind]string{
-	training.EvaluationJobKind: "evaluations",
-	training.ReplayJobKind:     "replays",
+	training.JobEvaluation: "evaluations",
+	training.JobReplay:     "replays",
 }
 
 // accepted answers 202 with the queued job and where to follow it.
@@ -33,7 +33,7 @@ func accepted(c echo.Context, job training.JobView) error {
 	return c.JSON(http.StatusAccepted, job)
 }
 
-func handleStartEvaluation(j Jobs, cfg Config) echo.HandlerFunc {
+func handleQueueEvaluation(j Jobs, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		policy, err := policyParam(c)
 		if err != nil {
@@ -47,7 +47,7 @@ func handleStartEvaluation(j Jobs, cfg Config) echo.HandlerFunc {
 		if err := req.Validate(); err != nil {
 			return err
 		}
-		job, err := j.StartEvaluation(c.Request().Context(), policy, req)
+		job, err := j.QueueEvaluation(c.Request().Context(), policy, req)
 		if err != nil {
 			return err
 		}
@@ -55,7 +55,7 @@ func handleStartEvaluation(j Jobs, cfg Config) echo.HandlerFunc {
 	}
 }
 
-func handleStartReplay(j Jobs, cfg Config) echo.HandlerFunc {
+func handleQueueReplay(j Jobs, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		policy, err := policyParam(c)
 		if err != nil {
@@ -71,7 +71,7 @@ func handleStartReplay(j Jobs, cfg Config) echo.HandlerFunc {
 		if string(req.Target) == policy {
 			return training.Invalid(-1, -1, "target", "must name a new policy, not the source")
 		}
-		job, err := j.StartReplay(c.Request().Context(), policy, req)
+		job, err := j.QueueReplay(c.Request().Context(), policy, req)
 		if err != nil {
 			return err
 		}

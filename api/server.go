@@ -45,9 +45,16 @@ type Episodes interface {
 	CheckEpisodes(ctx context.Context, policy string, episodes []training.Episode) error
 }
 
-// States reads one state's estimates.
+// States reads a policy's states: one state's estimates, or one page of
+// the list of its states.
 type States interface {
 	State(ctx context.Context, policy, state string) (training.StateView, error)
+	ListStates(ctx context.Context, policy string, q training.StateQuery) (training.StatePage, error)
+}
+
+// PolicyReports reads the status page's report of a policy.
+type PolicyReports interface {
+	PolicyReport(ctx context.Context, policy string, window time.Duration, top int) (training.PolicyReport, error)
 }
 
 // Chooser picks actions.
@@ -113,7 +120,7 @@ type Deps struct {
 	// Recorder and OpenEpisodes serve the episodes qtally keeps open.
 	Recorder     RecordedChooser
 	OpenEpisodes OpenEpisodes
-	Inspect      Inspector
+	Reports      PolicyReports
 	Ready        Readiness
 	Metrics      *metrics.Metrics
 	Gatherer     prometheus.Gatherer

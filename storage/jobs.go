@@ -106,9 +106,9 @@ func (db *DB) queueJob(ctx context.Context, tx pgx.Tx, policyID int32, kind trai
 	return id, nil
 }
 
-// StartEvaluation checks an evaluation request against what is stored,
+// QueueEvaluation checks an evaluation request against what is stored,
 // resolves its window and queues it.
-func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (training.JobView, error) {
+func (db *DB) QueueEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (training.JobView, error) {
 	var id int64
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1`, policy))
@@ -151,18 +151,18 @@ func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.E
 				return err
 			}
 		}
-		id, err = db.queueJob(ctx, tx, p.ID, training.EvaluationJobKind, job)
+		id, err = db.queueJob(ctx, tx, p.ID, training.JobEvaluation, job)
 		return err
 	})
 	if err != nil {
 		return training.JobView{}, err
 	}
-	return db.Job(ctx, policy, training.EvaluationJobKind, id)
+	return db.Job(ctx, policy, training.JobEvaluation, id)
 }
 
-// StartReplay creates the replay's target policy and queues the replay, in
+// QueueReplay creates the replay's target policy and queues the replay, in
 // one transaction.
-func (db *DB) StartReplay(ctx context.Context, policy string, req training.ReplayRequest) (training.JobView, error) {
+func (db *DB) QueueReplay(ctx context.Context, policy string, req training.ReplayRequest) (training.JobView, error) {
 	var id int64
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1 FOR KEY SHARE`, policy))
@@ -199,14 +199,14 @@ func (db *DB) StartReplay(ctx context.Context, policy string, req training.Repla
 		if err := recordSettingsChange(ctx, tx, targetID, training.ChangeCreate, by, training.DiffSettings(nil, target.Settings)); err != nil {
 			return err
 		}
-		id, err = db.queueJob(ctx, tx, p.ID, training.ReplayJobKind,
+		id, err = db.queueJob(ctx, tx, p.ID, training.JobReplay,
 			training.ReplayJob{Request: req, PolicyID: p.ID, TargetPolicyID: targetID, Episodes: span})
 		return err
 	})
 	if err != nil {
 		return training.JobView{}, err
 	}
-	return db.Job(ctx, policy, training.ReplayJobKind, id)
+	return db.Job(ctx, policy, training.JobReplay, id)
 }
 
 // jobColumns are what scanJob reads, in its order.

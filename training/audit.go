@@ -63,4 +63,4 @@ type AuditPage struct {
 const MaxAuditPathLen = 2048
 
 // TruncateAuditPath shortens a path for the audit log.
-func TruncateAuditPath(path string) string { return truncate(path, MaxAuditPathLen) }
+func TruncateAuditPath(path string) string { return Truncate(path, MaxAuditPathLen) }

@@ -4,7 +4,6 @@ import (
 	"fmt"
 	"math"
 	"time"
-	"unicode/utf8"
 )
 
 // Step is one decision of an episode as the client reports it.
@@ -106,10 +105,12 @@ type StoredEpisode struct {
 	EpisodeRecord
 }
 
-// EncodeEpisodes validates a batch against a policy and the limits and
-// returns it in stored form. It reports every problem it finds, each with
-// its episode index, step index and field, and encodes nothing if any.
-func EncodeEpisodes(p Settings, actionIndex map[string]int16, episodes []Episode, lim Limits) ([]EpisodeRecord, error) {
+// ValidateAndEncodeEpisodes validates a batch against a policy's settings
+// and the limits and returns it in stored form. It reports every problem
+// it finds, each with its episode index, step index and field, and encodes
+// nothing if any.
+func ValidateAndEncodeEpisodes(p Settings, episodes []Episode, lim Limits) ([]EpisodeRecord, error) {
+	actionIndex := p.ActionIndex()
 	var l problemList
 	if len(episodes) == 0 {
 		l.add(-1, -1, "episodes", "must hold at least one episode")
@@ -157,7 +158,7 @@ func EncodeEpisodes(p Settings, actionIndex map[string]int16, episodes []Episode
 				if st.Action == "" {
 					l.add(i, j, "action", "is missing")
 				} else {
-					l.add(i, j, "action", "%q is not one of the policy's actions", truncate(st.Action, 64))
+					l.add(i, j, "action", "%q is not one of the policy's actions", Truncate(st.Action, 64))
 				}
 			}
 			if math.IsNaN(st.Reward) || math.IsInf(st.Reward, 0) {
@@ -229,13 +230,13 @@ func checkAllowed(l *problemList, i, j int, st Step, actionIndex map[string]int1
 		a, ok := actionIndex[name]
 		switch {
 		case !ok:
-			l.add(i, j, fmt.Sprintf("allowed[%d]", k), "%q is not one of the policy's actions", truncate(name, 64))
+			l.add(i, j, fmt.Sprintf("allowed[%d]", k), "%q is not one of the policy's actions", Truncate(name, 64))
 		case !set.add(a):
-			l.add(i, j, fmt.Sprintf("allowed[%d]", k), "repeats %q", truncate(name, 64))
+			l.add(i, j, fmt.Sprintf("allowed[%d]", k), "repeats %q", Truncate(name, 64))
 		}
 	}
 	if a, ok := actionIndex[st.Action]; ok && !set.Has(a) {
-		l.add(i, j, "allowed", "%q, the step's action, is not in it: a step's action must be one of those it was chosen from", truncate(st.Action, 64))
+		l.add(i, j, "allowed", "%q, the step's action, is not in it: a step's action must be one of those it was chosen from", Truncate(st.Action, 64))
 	}
 }
 
@@ -273,14 +274,4 @@ func encode(actionIndex map[string]int16, episodes []Episode, totalSteps int) []
 		records[i] = rec
 	}
 	return records
-}
-
-func truncate(s string, n int) string {
-	if len(s) <= n {
-		return s
-	}
-	for n > 0 && !utf8.RuneStart(s[n]) {
-		n--
-	}
-	return s[:n] + "…"
 }

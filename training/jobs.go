@@ -15,8 +15,8 @@ type JobKind string
 
 // Kinds of jobs.
 const (
-	EvaluationJobKind JobKind = "evaluation"
-	ReplayJobKind     JobKind = "replay"
+	JobEvaluation JobKind = "evaluation"
+	JobReplay     JobKind = "replay"
 )
 
 // JobStatus is where a job stands.
@@ -227,13 +227,13 @@ func (r *JobRunner) run(ctx context.Context, job Job) {
 
 func (r *JobRunner) do(ctx context.Context, job Job, progress func(Progress)) (any, error) {
 	switch job.Kind {
-	case EvaluationJobKind:
+	case JobEvaluation:
 		var spec EvaluationJob
 		if err := json.Unmarshal(job.Spec, &spec); err != nil {
 			return nil, fmt.Errorf("decode evaluation job %d: %w", job.ID, err)
 		}
 		return Evaluate(ctx, r.Evaluations, spec, progress)
-	case ReplayJobKind:
+	case JobReplay:
 		var spec ReplayJob
 		if err := json.Unmarshal(job.Spec, &spec); err != nil {
 			return nil, fmt.Errorf("decode replay job %d: %w", job.ID, err)

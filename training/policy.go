@@ -234,7 +234,7 @@ var ruleMessages = map[string]string{
 func (s Settings) Validate() error {
 	var l problemList
 	if s.GreedyFallback != "" && !slices.Contains(s.Actions, s.GreedyFallback) {
-		l.add(-1, -1, "greedy_fallback", "%q is not one of the policy's actions", truncate(s.GreedyFallback, 64))
+		l.add(-1, -1, "greedy_fallback", "%q is not one of the policy's actions", Truncate(s.GreedyFallback, 64))
 	}
 	if s.StateShape != nil {
 		s.StateShape.check(&l)

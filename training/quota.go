@@ -41,7 +41,7 @@ func StatesBeyondQuota(sightings []StateSighting, isNew func(string) bool, room,
 			continue
 		}
 		beyond++
-		l.add(s.Episode, s.Step, "state", "%q would be a new state beyond the policy's max_states of %d", truncate(s.State, 64), maxStates)
+		l.add(s.Episode, s.Step, "state", "%q would be a new state beyond the policy's max_states of %d", Truncate(s.State, 64), maxStates)
 	}
 	if beyond == 0 {
 		return nil

@@ -156,11 +156,11 @@ func (r *Replica) choose(ctx context.Context, policy string, req ChooseRequest, 
 		for i, name := range req.Allowed {
 			a, ok := t.index[name]
 			if !ok {
-				return ChooseResult{}, in, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "%q is not one of the policy's actions", truncate(name, 64))
+				return ChooseResult{}, in, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "%q is not one of the policy's actions", Truncate(name, 64))
 			}
 			for _, prev := range allowed {
 				if prev == a {
-					return ChooseResult{}, in, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "repeats %q", truncate(name, 64))
+					return ChooseResult{}, in, Invalid(-1, -1, fmt.Sprintf("allowed[%d]", i), "repeats %q", Truncate(name, 64))
 				}
 			}
 			allowed = append(allowed, a)
@@ -219,9 +219,9 @@ func noAnswer(p Policy, state string) error {
 	}
 	why := "the policy has no greedy_fallback"
 	if p.GreedyFallback != "" {
-		why = fmt.Sprintf("its greedy_fallback %q is not among the allowed actions", truncate(p.GreedyFallback, 64))
+		why = fmt.Sprintf("its greedy_fallback %q is not among the allowed actions", Truncate(p.GreedyFallback, 64))
 	}
-	return &kindError{ErrNoAnswer, fmt.Sprintf("greedy has no answer in state %q: no allowed action has been %s, and %s; choose with mode explore, set greedy_fallback, or allow the fallback", truncate(state, 64), tried, why)}
+	return &kindError{ErrNoAnswer, fmt.Sprintf("greedy has no answer in state %q: no allowed action has been %s, and %s; choose with mode explore, set greedy_fallback, or allow the fallback", Truncate(state, 64), tried, why)}
 }
 
 // table returns a policy's table, loading it on first use.

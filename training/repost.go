@@ -22,7 +22,7 @@ func EpisodeDifference(stored, posted EpisodeRecord, actions []string) string {
 	for t := range stored.States {
 		switch {
 		case stored.States[t] != posted.States[t]:
-			return fmt.Sprintf("step %d state: stored %q, posted %q", t, truncate(stored.States[t], 64), truncate(posted.States[t], 64))
+			return fmt.Sprintf("step %d state: stored %q, posted %q", t, Truncate(stored.States[t], 64), Truncate(posted.States[t], 64))
 		case stored.Actions[t] != posted.Actions[t]:
 			return fmt.Sprintf("step %d action: stored %q, posted %q", t, name(stored.Actions[t]), name(posted.Actions[t]))
 		case stored.Rewards[t] != posted.Rewards[t]:

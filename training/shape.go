@@ -56,7 +56,7 @@ func (sh *StateShape) check(l *problemList) {
 		case bad(f.Name) || strings.Contains(f.Name, "="):
 			l.add(-1, -1, field, "name must be non-empty, printable, without '=' or the separator %q", sep)
 		case seen[f.Name]:
-			l.add(-1, -1, field, "repeats the name %q", truncate(f.Name, 64))
+			l.add(-1, -1, field, "repeats the name %q", Truncate(f.Name, 64))
 		}
 		seen[f.Name] = true
 		ranged := f.Min != nil || f.Max != nil
@@ -95,10 +95,10 @@ func (sh *StateShape) Problem(state string) string {
 		}
 		if len(f.Values) > 0 {
 			if !slices.Contains(f.Values, value) {
-				return fmt.Sprintf("field %q is %q, not one of the values the policy's state_shape lists", f.Name, truncate(value, 64))
+				return fmt.Sprintf("field %q is %q, not one of the values the policy's state_shape lists", f.Name, Truncate(value, 64))
 			}
 		} else if n, err := strconv.ParseInt(value, 10, 64); err != nil || n < *f.Min || n > *f.Max {
-			return fmt.Sprintf("field %q must be an integer from %d to %d, got %q", f.Name, *f.Min, *f.Max, truncate(value, 64))
+			return fmt.Sprintf("field %q must be an integer from %d to %d, got %q", f.Name, *f.Min, *f.Max, Truncate(value, 64))
 		}
 	}
 	if strings.Contains(rest, sep) {

@@ -115,7 +115,7 @@ func EncodeTable(p Policy, rows []TableRow, maxStateLength int) ([]PairResult, e
 		}
 		a, ok := index[r.Action]
 		if !ok {
-			l.add(-1, -1, field("action"), "%q is not one of the policy's actions", truncate(r.Action, 64))
+			l.add(-1, -1, field("action"), "%q is not one of the policy's actions", Truncate(r.Action, 64))
 		}
 		if math.IsNaN(r.Q) || math.IsInf(r.Q, 0) {
 			l.add(-1, -1, field("q"), "must be a finite number")
@@ -128,7 +128,7 @@ func EncodeTable(p Policy, rows []TableRow, maxStateLength int) ([]PairResult, e
 		}
 		k := PairKey{State: r.State, Action: a}
 		if first, dup := seen[k]; dup {
-			l.add(-1, -1, field("state"), "repeats the pair (%q, %q) of rows[%d]", truncate(r.State, 64), r.Action, first)
+			l.add(-1, -1, field("state"), "repeats the pair (%q, %q) of rows[%d]", Truncate(r.State, 64), r.Action, first)
 			continue
 		}
 		seen[k] = i

@@ -69,7 +69,7 @@ func (t *Token) Authorize(s Scope, policy string) error {
 // path names. The answer is the same whether that policy exists or not.
 func (t *Token) AuthorizePolicy(policy string) error {
 	if !t.CoversPolicy(policy) {
-		return Forbiddenf("token %d is limited to other policies than %q", t.ID, truncate(policy, 64))
+		return Forbiddenf("token %d is limited to other policies than %q", t.ID, Truncate(policy, 64))
 	}
 	return nil
 }
@@ -79,7 +79,7 @@ func (t *Token) AuthorizePolicy(policy string) error {
 // answer is the same whether that policy exists or not.
 func (t *Token) AuthorizeNamed(field, policy string) error {
 	if !t.CoversPolicy(policy) {
-		return Forbiddenf("token %d is limited to other policies than %q, which %s names", t.ID, truncate(policy, 64), field)
+		return Forbiddenf("token %d is limited to other policies than %q, which %s names", t.ID, Truncate(policy, 64), field)
 	}
 	return nil
 }
@@ -112,14 +112,14 @@ func (s TokenSpec) Validate() error {
 	}
 	for i, sc := range s.Scopes {
 		if !slices.Contains(AllScopes, sc) {
-			l.add(-1, -1, "scopes", "%q is not a scope; scopes are %s", truncate(string(sc), 64), joinScopes(AllScopes))
+			l.add(-1, -1, "scopes", "%q is not a scope; scopes are %s", Truncate(string(sc), 64), joinScopes(AllScopes))
 		} else if slices.Index(s.Scopes, sc) < i {
 			l.add(-1, -1, "scopes", "repeats %q", sc)
 		}
 	}
 	for _, p := range s.Policies {
 		if ValidatePolicyName(p) != nil {
-			l.add(-1, -1, "policies", "%q is not a valid policy name", truncate(p, 64))
+			l.add(-1, -1, "policies", "%q is not a valid policy name", Truncate(p, 64))
 		}
 	}
 	if math.IsNaN(s.RatePerSecond) || math.IsInf(s.RatePerSecond, 0) || s.RatePerSecond < 0 {

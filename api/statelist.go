@@ -1,25 +1,16 @@
 package api
 
 import (
-	"context"
 	"encoding/base64"
 	"encoding/json"
 	"net/http"
 	"slices"
 	"strconv"
-	"time"
 
 	"github.com/labstack/echo/v4"
 
 	"github.com/qtally/qtally/training"
 )
-
-// Inspector reads what operators look at: a policy's states and the
-// status page's report of a policy.
-type Inspector interface {
-	ListStates(ctx context.Context, policy string, q training.StateQuery) (training.StatePage, error)
-	PolicyReport(ctx context.Context, policy string, window time.Duration, top int) (training.PolicyReport, error)
-}
 
 type statesResponse struct {
 	States []training.StateSummary `json:"states"`
@@ -27,7 +18,7 @@ type statesResponse struct {
 	NextCursor string `json:"next_cursor,omitempty"`
 }
 
-func handleListStates(in Inspector) echo.HandlerFunc {
+func handleListStates(s States) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
@@ -37,7 +28,7 @@ func handleListStates(in Inspector) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
-		page, err := in.ListStates(c.Request().Context(), name, q)
+		page, err := s.ListStates(c.Request().Context(), name, q)
 		if err != nil {
 			return err
 		}
@@ -55,7 +46,7 @@ func bindStateQuery(c echo.Context) (training.StateQuery, error) {
 	if s := c.QueryParam("sort"); s != "" {
 		q.Order = training.StateOrder(s)
 		if !slices.Contains(training.StateOrders, q.Order) {
-			return q, training.Invalid(-1, -1, "sort", "%q is not a sort order; use one of %q", truncateRunes(s, 64), training.StateOrders)
+			return q, training.Invalid(-1, -1, "sort", "%q is not a sort order; use one of %q", training.Truncate(s, 64), training.StateOrders)
 		}
 	}
 	if s := c.QueryParam("limit"); s != "" {
@@ -98,12 +89,4 @@ func decodeCursor(s string) (training.StateKey, error) {
 		return k, err
 	}
 	return k, json.Unmarshal(data, &k)
-}
-
-func truncateRunes(s string, n int) string {
-	r := []rune(s)
-	if len(r) <= n {
-		return s
-	}
-	return string(r[:n]) + "…"
 }
