@@ -13,7 +13,7 @@ import (
 // serve, which runs both roles, keeps all of them.
 func TestWorkerHelpListsOnlyWhatTheWorkerReads(t *testing.T) {
 	workerFlags := []string{
-		flagDatabaseURL, flagListen, flagLogFormat, flagPollInterval, flagShutdownGrace, flagDBMaxConns, flagPprofListen,
+		flagDatabaseURL, flagListen, flagLogFormat, flagLogLevel, flagPollInterval, flagShutdownGrace, flagDBMaxConns, flagPprofListen,
 		flagProblemDocs, // the health server answers problems too
 		// and bounds slow and idle clients like the API's
 		flagReadHeaderTimeout, flagReadTimeout, flagWriteTimeout, flagIdleTimeout, flagMaxHeaderBytes,

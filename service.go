@@ -55,7 +55,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		go func() {
 			defer wg.Done()
 			if err := fn(bgCtx); err != nil {
-				logger.Error(name+" stopped", "error", err)
+				logger.Error("background task stopped", "task", name, "error", err)
 			}
 		}()
 	}

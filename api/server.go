@@ -198,9 +198,10 @@ func newEcho(cfg Config, d Deps) *echo.Echo {
 	e := echo.New()
 	e.HideBanner = true
 	e.HidePort = true
-	e.HTTPErrorHandler = errorHandler(d.Logger, problemTypes{docs: cfg.ProblemDocs})
+	types := problemTypes{docs: cfg.ProblemDocs}
+	e.HTTPErrorHandler = errorHandler(d.Logger, types)
 	e.Pre(routeOnEscapedPath)
-	e.Use(observe(d.Metrics, e))
+	e.Use(observe(d.Metrics, d.Logger, types, e))
 	return e
 }
 
