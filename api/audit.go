@@ -54,7 +54,8 @@ func (a auditedRoutes) record(log AuditLog, logger *slog.Logger) echo.Middleware
 			ctx, cancel := context.WithTimeout(context.WithoutCancel(c.Request().Context()), auditWriteTimeout)
 			defer cancel()
 			if err := log.RecordAudit(ctx, e); err != nil {
-				logger.Error("writing the audit log", "error", err, "method", e.Method, "route", e.Route, "status", e.Status)
+				logger.Error("writing the audit log", logKeyRequestID, requestID(c), logKeyMethod, e.Method, logKeyRoute, e.Route,
+					logKeyStatus, e.Status, logKeyError, err)
 			}
 			return nil
 		}

@@ -137,12 +137,12 @@ func jsonProblem(err error, data []byte, episode int) error {
 		}
 		want := jsonKind(typeErr.Type)
 		if number, ok := strings.CutPrefix(typeErr.Value, "number "); ok && want == "a number" {
-			return training.Invalid(episode, -1, field, "the number %s is out of range", truncateBytes(number, 64))
+			return training.Invalid(episode, -1, field, "the number %s is out of range", training.Truncate(number, 64))
 		}
 		got, _, _ := strings.Cut(typeErr.Value, " ")
 		return training.Invalid(episode, -1, field, "expected %s, got %s", want, jsonKind(got))
 	case strings.HasPrefix(err.Error(), "json: unknown field "):
-		return training.Invalid(episode, -1, "", "%s is not a field of this request", truncateBytes(strings.TrimPrefix(err.Error(), "json: unknown field "), 64))
+		return training.Invalid(episode, -1, "", "%s is not a field of this request", training.Truncate(strings.TrimPrefix(err.Error(), "json: unknown field "), 64))
 	default:
 		return training.Invalid(episode, -1, "", "the JSON could not be decoded: %s", err.Error())
 	}
@@ -221,18 +221,6 @@ func invalidUTF8Field(data []byte) string {
 		return ""
 	}
 	return bad[0]
-}
-
-// truncateBytes shortens what a message echoes of a request to about n
-// bytes, at a character boundary.
-func truncateBytes(s string, n int) string {
-	if len(s) <= n {
-		return s
-	}
-	for n > 0 && !utf8.RuneStart(s[n]) {
-		n--
-	}
-	return s[:n] + "..."
 }
 
 // undecodedBatch is an episode batch that did not decode: every problem
@@ -474,8 +462,8 @@ func locate(problems []training.FieldError, step int, field string) []training.F
 // unknownMember is the problem of a member that names no field; it is
 // located at the member's own name.
 func unknownMember(name string, episode, step int) training.FieldError {
-	return training.FieldError{Episode: episode, Step: step, Field: truncateBytes(name, 61),
-		Message: truncateBytes(`"`+name+`"`, 64) + " is not a field of this request"}
+	return training.FieldError{Episode: episode, Step: step, Field: training.Truncate(name, 61),
+		Message: training.Truncate(`"`+name+`"`, 64) + " is not a field of this request"}
 }
 
 // jsonMember is one member of a JSON object, in the order sent.

@@ -17,6 +17,9 @@ type Problem struct {
 	Status int            `json:"status"`
 	Detail string         `json:"detail,omitempty"`
 	Errors []ProblemField `json:"errors,omitempty"`
+	// RequestID names the request in the server's log (and in the
+	// X-Request-Id header).
+	RequestID string `json:"request_id,omitempty"`
 }
 
 // ProblemField locates one problem of an invalid request.
@@ -30,16 +33,14 @@ type ProblemField struct {
 const problemContentType = "application/problem+json"
 
 // errorHandler answers every error as problem JSON, with the status its
-// domain error calls for.
+// domain error calls for. observe logs the request, failures included.
 func errorHandler(logger *slog.Logger, types problemTypes) echo.HTTPErrorHandler {
 	return func(err error, c echo.Context) {
 		if c.Response().Committed {
 			return
 		}
 		p := types.toProblem(err)
-		if p.Status >= 500 {
-			logger.Error("request failed", "method", c.Request().Method, "path", c.Request().URL.Path, "error", err)
-		}
+		p.RequestID = requestID(c)
 		h := c.Response().Header()
 		if (p.Status == http.StatusServiceUnavailable || p.Status == http.StatusTooManyRequests) && h.Get("Retry-After") == "" {
 			h.Set("Retry-After", "1")
@@ -57,7 +58,7 @@ func errorHandler(logger *slog.Logger, types problemTypes) echo.HTTPErrorHandler
 			return
 		}
 		if err := jsonEncode(c.Response(), p); err != nil {
-			logger.Warn("writing problem", "error", err)
+			logger.Warn("writing problem", logKeyRequestID, p.RequestID, logKeyRoute, c.Path(), logKeyError, err)
 		}
 	}
 }

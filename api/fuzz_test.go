@@ -48,7 +48,6 @@ func printable(s string) bool {
 // rule the store and the learner rely on.
 func FuzzDecodeEpisodes(f *testing.F) {
 	settings := training.Settings{Actions: []string{"truck", "drone", "wait"}, Gamma: 0.9, Alpha: 0.1, Visit: training.FirstVisit}
-	index := settings.ActionIndex()
 	lim := training.Limits{MaxEpisodes: 20, MaxSteps: 20, MaxIDLength: 16, MaxStateLength: 24}
 	for _, seed := range []struct {
 		body   string
@@ -82,7 +81,7 @@ func FuzzDecodeEpisodes(f *testing.F) {
 			checkRefusal(t, err)
 			return
 		}
-		records, err := training.EncodeEpisodes(settings, index, episodes, lim)
+		records, err := training.ValidateAndEncodeEpisodes(settings, episodes, lim)
 		if err != nil {
 			checkRefusal(t, err)
 			return

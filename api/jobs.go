@@ -16,8 +16,8 @@ import (
 
 // Jobs queues evaluations and replays and reports on them.
 type Jobs interface {
-	StartEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (jobs.View, error)
-	StartReplay(ctx context.Context, policy string, req training.ReplayRequest) (jobs.View, error)
+	QueueEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (jobs.View, error)
+	QueueReplay(ctx context.Context, policy string, req training.ReplayRequest) (jobs.View, error)
 	Job(ctx context.Context, policy string, kind jobs.Kind, id int64) (jobs.View, error)
 	ListJobs(ctx context.Context, policy string, kind jobs.Kind, q jobs.Query) (jobs.Page, error)
 }
@@ -34,7 +34,7 @@ func accepted(c echo.Context, job jobs.View) error {
 	return c.JSON(http.StatusAccepted, job)
 }
 
-func handleStartEvaluation(j Jobs, cfg Config) echo.HandlerFunc {
+func handleQueueEvaluation(j Jobs, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		policy, err := policyParam(c)
 		if err != nil {
@@ -48,7 +48,7 @@ func handleStartEvaluation(j Jobs, cfg Config) echo.HandlerFunc {
 		if err := req.Validate(); err != nil {
 			return err
 		}
-		job, err := j.StartEvaluation(c.Request().Context(), policy, req)
+		job, err := j.QueueEvaluation(c.Request().Context(), policy, req)
 		if err != nil {
 			return err
 		}
@@ -56,7 +56,7 @@ func handleStartEvaluation(j Jobs, cfg Config) echo.HandlerFunc {
 	}
 }
 
-func handleStartReplay(j Jobs, cfg Config) echo.HandlerFunc {
+func handleQueueReplay(j Jobs, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		policy, err := policyParam(c)
 		if err != nil {
@@ -72,7 +72,7 @@ func handleStartReplay(j Jobs, cfg Config) echo.HandlerFunc {
 		if string(req.Target) == policy {
 			return training.Invalid(-1, -1, "target", "must name a new policy, not the source")
 		}
-		job, err := j.StartReplay(c.Request().Context(), policy, req)
+		job, err := j.QueueReplay(c.Request().Context(), policy, req)
 		if err != nil {
 			return err
 		}

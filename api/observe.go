@@ -1,6 +1,7 @@
 package api
 
 import (
+	"log/slog"
 	"net/http"
 	"strconv"
 	"sync"
@@ -18,17 +19,23 @@ var methodLabels = map[string]bool{
 	http.MethodPatch: true, http.MethodDelete: true, http.MethodOptions: true,
 }
 
-// observe records each request's latency with labels from fixed sets only:
-// the route pattern (or "unmatched"), a known method (or "other") and the
-// status code. Requests arrive before authentication, so a label taken from
-// the request itself would let anyone grow the series without bound.
-func observe(m *metrics.Metrics, e *echo.Echo) echo.MiddlewareFunc {
+// observe is the outermost middleware of every request: it gives the
+// request its id, turns a panic into an error (callRecovering), answers
+// any error the handler returned (so that what it
+// records is what was sent), and records the request in the latency
+// histogram and the request log line. The histogram's labels come from
+// fixed sets only: the route pattern (or "unmatched"), a known method (or
+// "other") and the status code. Requests arrive before authentication, so
+// a label taken from the request itself would let anyone grow the series
+// without bound; the log line uses the same route and method.
+func observe(m *metrics.Metrics, logger *slog.Logger, types problemTypes, e *echo.Echo) echo.MiddlewareFunc {
 	var routes map[string]bool
 	var learnRoutes sync.Once
 	return func(next echo.HandlerFunc) echo.HandlerFunc {
 		return func(c echo.Context) error {
 			start := time.Now()
-			err := next(c)
+			line := requestLine{id: assignRequestID(c)}
+			err := callRecovering(next, c)
 			if err != nil {
 				c.Error(err)
 			}
@@ -39,16 +46,22 @@ func observe(m *metrics.Metrics, e *echo.Echo) echo.MiddlewareFunc {
 					routes[r.Path] = true
 				}
 			})
-			route := c.Path()
-			if !routes[route] {
-				route = "unmatched"
+			line.route = c.Path()
+			if !routes[line.route] {
+				line.route = "unmatched"
 			}
-			method := c.Request().Method
-			if !methodLabels[method] {
-				method = "other"
+			line.method = c.Request().Method
+			if !methodLabels[line.method] {
+				line.method = "other"
 			}
-			m.HTTPDuration.WithLabelValues(route, method, strconv.Itoa(c.Response().Status)).
-				Observe(time.Since(start).Seconds())
+			res := c.Response()
+			line.status, line.bytes, line.elapsed = res.Status, res.Size, time.Since(start)
+			// An error after the answer was committed still fails the request.
+			if err != nil && types.toProblem(err).Status >= http.StatusInternalServerError {
+				line.failure = err
+			}
+			m.HTTPDuration.WithLabelValues(line.route, line.method, strconv.Itoa(line.status)).Observe(line.elapsed.Seconds())
+			line.log(c.Request().Context(), logger)
 			return nil
 		}
 	}

@@ -41,7 +41,7 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoute
 	e.POST("/v1/policies/:policy/open-episodes/:episode/end", handleEndEpisode(d.OpenEpisodes, d.Metrics, cfg), ingest)
 	e.GET("/v1/policies/:policy/open-episodes/:episode", handleGetOpenEpisode(d.OpenEpisodes, cfg),
 		g.requireScope(access.ScopeIngest, access.ScopeChoose))
-	e.GET("/v1/policies/:policy/states", handleListStates(d.Inspect), choose)
+	e.GET("/v1/policies/:policy/states", handleListStates(d.States), choose)
 	e.GET("/v1/policies/:policy/states/:state", handleGetState(d.States, cfg), choose)
 
 	audit.add(e.GET("/v1/policies/:policy/table", handleExportTable(d.Snapshots, false), admin, bulk))
@@ -53,10 +53,10 @@ func addAPIRoutes(e *echo.Echo, cfg Config, d Deps, g *guard, audit auditedRoute
 	audit.add(e.DELETE("/v1/policies/:policy/snapshots/:snapshot", handleDeleteSnapshot(d.Snapshots), admin))
 	audit.add(e.GET("/v1/policies/:policy/snapshots/:snapshot/table", handleExportTable(d.Snapshots, true), admin, bulk))
 	audit.add(e.POST("/v1/policies/:policy/snapshots/:snapshot/restore", handleRestoreSnapshot(d.Tables), admin))
-	audit.add(e.POST("/v1/policies/:policy/evaluations", handleStartEvaluation(d.Jobs, cfg), admin))
+	audit.add(e.POST("/v1/policies/:policy/evaluations", handleQueueEvaluation(d.Jobs, cfg), admin))
 	audit.add(e.GET("/v1/policies/:policy/evaluations", handleListJobs(d.Jobs, jobs.EvaluationKind), admin))
 	audit.add(e.GET("/v1/policies/:policy/evaluations/:id", handleGetJob(d.Jobs, jobs.EvaluationKind), admin))
-	audit.add(e.POST("/v1/policies/:policy/replays", handleStartReplay(d.Jobs, cfg), admin))
+	audit.add(e.POST("/v1/policies/:policy/replays", handleQueueReplay(d.Jobs, cfg), admin))
 	audit.add(e.GET("/v1/policies/:policy/replays", handleListJobs(d.Jobs, jobs.ReplayKind), admin))
 	audit.add(e.GET("/v1/policies/:policy/replays/:id", handleGetJob(d.Jobs, jobs.ReplayKind), admin))
 }
@@ -73,6 +73,6 @@ func addStatusRoutes(e *echo.Echo, cfg Config, d Deps, g *guard) {
 		e.POST(signOutPath, s.handleSignOut())
 	}
 	e.GET("/", handleOverview(d.Policies), admin)
-	e.GET("/policies/:policy", handlePolicyPage(d.Inspect, d.History, d.OpenEpisodes, cfg), admin)
-	e.GET("/policies/:policy/states", handleStatesPage(d.Inspect), admin)
+	e.GET("/policies/:policy", handlePolicyPage(d.Reports, d.History, d.OpenEpisodes, cfg), admin)
+	e.GET("/policies/:policy/states", handleStatesPage(d.States), admin)
 }

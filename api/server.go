@@ -46,9 +46,16 @@ type Episodes interface {
 	CheckEpisodes(ctx context.Context, policy string, episodes []training.Episode) error
 }
 
-// States reads one state's estimates.
+// States reads a policy's states: one state's estimates, or one page of
+// the list of its states.
 type States interface {
 	State(ctx context.Context, policy, state string) (views.StateView, error)
+	ListStates(ctx context.Context, policy string, q views.StateQuery) (views.StatePage, error)
+}
+
+// PolicyReports reads the status page's report of a policy.
+type PolicyReports interface {
+	PolicyReport(ctx context.Context, policy string, window time.Duration, top int) (views.PolicyReport, error)
 }
 
 // Chooser picks actions.
@@ -114,7 +121,7 @@ type Deps struct {
 	// Recorder and OpenEpisodes serve the episodes qtally keeps open.
 	Recorder     RecordedChooser
 	OpenEpisodes OpenEpisodes
-	Inspect      Inspector
+	Reports      PolicyReports
 	Ready        Readiness
 	Metrics      *metrics.Metrics
 	Gatherer     prometheus.Gatherer
@@ -192,9 +199,10 @@ func newEcho(cfg Config, d Deps) *echo.Echo {
 	e := echo.New()
 	e.HideBanner = true
 	e.HidePort = true
-	e.HTTPErrorHandler = errorHandler(d.Logger, problemTypes{docs: cfg.ProblemDocs})
+	types := problemTypes{docs: cfg.ProblemDocs}
+	e.HTTPErrorHandler = errorHandler(d.Logger, types)
 	e.Pre(routeOnEscapedPath)
-	e.Use(observe(d.Metrics, e))
+	e.Use(observe(d.Metrics, d.Logger, types, e))
 	return e
 }
 

@@ -192,7 +192,7 @@ type policyView struct {
 // API pages through all of them.
 const shownChanges = 10
 
-func handlePolicyPage(in Inspector, h SettingsHistory, open OpenEpisodes, cfg Config) echo.HandlerFunc {
+func handlePolicyPage(reports PolicyReports, h SettingsHistory, open OpenEpisodes, cfg Config) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
@@ -202,7 +202,7 @@ func handlePolicyPage(in Inspector, h SettingsHistory, open OpenEpisodes, cfg Co
 		if err != nil {
 			return err
 		}
-		report, err := in.PolicyReport(c.Request().Context(), name, window, topStates)
+		report, err := reports.PolicyReport(c.Request().Context(), name, window, topStates)
 		if err != nil {
 			return err
 		}
@@ -446,7 +446,7 @@ type statesView struct {
 	NextURL string
 }
 
-func handleStatesPage(in Inspector) echo.HandlerFunc {
+func handleStatesPage(s States) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
@@ -456,7 +456,7 @@ func handleStatesPage(in Inspector) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
-		page, err := in.ListStates(c.Request().Context(), name, q)
+		page, err := s.ListStates(c.Request().Context(), name, q)
 		if err != nil {
 			return err
 		}

@@ -47,7 +47,7 @@ const (
 func snapshotParam(c echo.Context) (string, error) {
 	name := c.Param("snapshot")
 	if training.ValidateSnapshotName(name) != nil {
-		return "", training.Invalid(-1, -1, "snapshot", "%q is not a snapshot name", truncateParam(name))
+		return "", training.Invalid(-1, -1, "snapshot", "%q is not a snapshot name", training.Truncate(name, 64))
 	}
 	return name, nil
 }
@@ -60,13 +60,6 @@ func snapshotParams(c echo.Context) (string, string, error) {
 	}
 	name, err := snapshotParam(c)
 	return policy, name, err
-}
-
-func truncateParam(s string) string {
-	if len(s) > 64 {
-		return s[:64] + "..."
-	}
-	return s
 }
 
 func handleCreateSnapshot(s Snapshots, cfg Config) echo.HandlerFunc {
@@ -214,7 +207,7 @@ func decodeTable(body []byte, media, initialQuery string) ([]training.TableRow, 
 	if initialQuery != "" {
 		x, err := strconv.ParseFloat(initialQuery, 64)
 		if err != nil {
-			return nil, nil, training.Invalid(-1, -1, "initial_q", "%q is not a number", truncateParam(initialQuery))
+			return nil, nil, training.Invalid(-1, -1, "initial_q", "%q is not a number", training.Truncate(initialQuery, 64))
 		}
 		initialQ = &x
 	}

@@ -22,7 +22,7 @@ func (db *DB) CheckEpisodes(ctx context.Context, policy string, episodes []train
 	if err != nil {
 		return err
 	}
-	_, err = training.EncodeEpisodes(p.Settings, p.ActionIndex(), episodes, db.limits)
+	_, err = training.ValidateAndEncodeEpisodes(p.Settings, episodes, db.limits)
 	return err
 }
 
@@ -40,7 +40,7 @@ func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Epi
 		if err != nil {
 			return fmt.Errorf("read policy: %w", err)
 		}
-		records, err := training.EncodeEpisodes(p.Settings, p.ActionIndex(), episodes, db.limits)
+		records, err := training.ValidateAndEncodeEpisodes(p.Settings, episodes, db.limits)
 		if err != nil {
 			return err
 		}

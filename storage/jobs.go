@@ -107,9 +107,9 @@ func (db *DB) queueJob(ctx context.Context, tx pgx.Tx, policyID int32, kind jobs
 	return id, nil
 }
 
-// StartEvaluation checks an evaluation request against what is stored,
+// QueueEvaluation checks an evaluation request against what is stored,
 // resolves its window and queues it.
-func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (jobs.View, error) {
+func (db *DB) QueueEvaluation(ctx context.Context, policy string, req training.EvaluationRequest) (jobs.View, error) {
 	var id int64
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1`, policy))
@@ -161,9 +161,9 @@ func (db *DB) StartEvaluation(ctx context.Context, policy string, req training.E
 	return db.Job(ctx, policy, jobs.EvaluationKind, id)
 }
 
-// StartReplay creates the replay's target policy and queues the replay, in
+// QueueReplay creates the replay's target policy and queues the replay, in
 // one transaction.
-func (db *DB) StartReplay(ctx context.Context, policy string, req training.ReplayRequest) (jobs.View, error) {
+func (db *DB) QueueReplay(ctx context.Context, policy string, req training.ReplayRequest) (jobs.View, error) {
 	var id int64
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE name = $1 FOR KEY SHARE`, policy))

@@ -43,11 +43,11 @@ func TestQueuedJobsPinTheirEpisodes(t *testing.T) {
 			break
 		}
 	}
-	replay, err := db.StartReplay(ctx, "renewals", training.ReplayRequest{Target: "renewals-again", Window: training.EpisodeWindow{Last: 4}})
+	replay, err := db.QueueReplay(ctx, "renewals", training.ReplayRequest{Target: "renewals-again", Window: training.EpisodeWindow{Last: 4}})
 	if err != nil {
 		t.Fatal(err)
 	}
-	evaluation, err := db.StartEvaluation(ctx, "renewals", training.EvaluationRequest{Target: training.EvaluationTarget{Table: training.LiveTable, Mode: training.Greedy},
+	evaluation, err := db.QueueEvaluation(ctx, "renewals", training.EvaluationRequest{Target: training.EvaluationTarget{Table: training.LiveTable, Mode: training.Greedy},
 		Window: training.EpisodeWindow{Last: 3}, Resamples: 10}.WithDefaults())
 	if err != nil {
 		t.Fatal(err)
@@ -150,7 +150,7 @@ func TestPruningRacingQueuedJobsLosesNoWindowEpisodes(t *testing.T) {
 				t.Error(err)
 			}
 		}()
-		job, err := db.StartReplay(ctx, "renewals", training.ReplayRequest{Target: training.PolicyName(fmt.Sprintf("again-%d", round)), Window: training.EpisodeWindow{Last: 10}})
+		job, err := db.QueueReplay(ctx, "renewals", training.ReplayRequest{Target: training.PolicyName(fmt.Sprintf("again-%d", round)), Window: training.EpisodeWindow{Last: 10}})
 		wg.Wait()
 		if err != nil && strings.Contains(err.Error(), "holds no stored episodes") {
 			continue // pruning took every episode first: no window, no job

@@ -205,7 +205,7 @@ func checkNaiveEstimates(b *testing.B, conn *pgx.Conn, p training.Policy, batche
 	b.Helper()
 	want := map[training.PairKey]training.Estimate{}
 	for _, eps := range batches {
-		records, err := training.EncodeEpisodes(p.Settings, p.ActionIndex(), eps, training.DefaultLimits())
+		records, err := training.ValidateAndEncodeEpisodes(p.Settings, eps, training.DefaultLimits())
 		if err != nil {
 			b.Fatal(err)
 		}

@@ -4,7 +4,6 @@ import (
 	"fmt"
 	"math"
 	"time"
-	"unicode/utf8"
 )
 
 // Step is one decision of an episode as the client reports it.
@@ -106,10 +105,12 @@ type StoredEpisode struct {
 	EpisodeRecord
 }
 
-// EncodeEpisodes validates a batch against a policy and the limits and
-// returns it in stored form. It reports every problem it finds, each with
-// its episode index, step index and field, and encodes nothing if any.
-func EncodeEpisodes(p Settings, actionIndex map[string]int16, episodes []Episode, lim Limits) ([]EpisodeRecord, error) {
+// ValidateAndEncodeEpisodes validates a batch against a policy's settings
+// and the limits and returns it in stored form. It reports every problem
+// it finds, each with its episode index, step index and field, and encodes
+// nothing if any.
+func ValidateAndEncodeEpisodes(p Settings, episodes []Episode, lim Limits) ([]EpisodeRecord, error) {
+	actionIndex := p.ActionIndex()
 	var l problemList
 	if len(episodes) == 0 {
 		l.add(-1, -1, "episodes", "must hold at least one episode")
@@ -273,16 +274,4 @@ func encode(actionIndex map[string]int16, episodes []Episode, totalSteps int) []
 		records[i] = rec
 	}
 	return records
-}
-
-// Truncate shortens s to at most n bytes and an ellipsis, never cutting a
-// UTF-8 character in half.
-func Truncate(s string, n int) string {
-	if len(s) <= n {
-		return s
-	}
-	for n > 0 && !utf8.RuneStart(s[n]) {
-		n--
-	}
-	return s[:n] + "…"
 }

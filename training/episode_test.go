@@ -10,9 +10,9 @@ import (
 
 func ptr(f float64) *float64 { return &f }
 
-func TestEncodeEpisodesPacksColumns(t *testing.T) {
+func TestValidateAndEncodeEpisodesPacksColumns(t *testing.T) {
 	s := Settings{Actions: []string{"left", "right"}}
-	recs, err := EncodeEpisodes(s, s.ActionIndex(), []Episode{
+	recs, err := ValidateAndEncodeEpisodes(s, []Episode{
 		{ID: "a", Steps: []Step{{State: "s1", Action: "right", Reward: 1}, {State: "s2", Action: "left", Reward: -2, Probability: ptr(0.25)}}},
 		{ID: "b", Steps: []Step{{State: "s3", Action: "left", Reward: 0.5}}},
 	}, DefaultLimits())
@@ -35,10 +35,10 @@ func TestEncodeEpisodesPacksColumns(t *testing.T) {
 	}
 }
 
-func TestEncodeEpisodesReportsEveryProblemWithItsPlace(t *testing.T) {
+func TestValidateAndEncodeEpisodesReportsEveryProblemWithItsPlace(t *testing.T) {
 	s := Settings{Actions: []string{"left", "right"}}
 	lim := Limits{MaxEpisodes: 10, MaxSteps: 3, MaxIDLength: 8, MaxStateLength: 4}
-	_, err := EncodeEpisodes(s, s.ActionIndex(), []Episode{
+	_, err := ValidateAndEncodeEpisodes(s, []Episode{
 		{ID: "", Steps: []Step{{State: "s", Action: "up", Reward: math.NaN()}}},
 		{ID: "much-too-long-id", Steps: nil},
 		{ID: "ok", Steps: []Step{{State: "toolong", Action: "left", Probability: ptr(0)}, {State: "", Action: "", Reward: math.Inf(1), Probability: ptr(1.5)}}},
@@ -78,15 +78,15 @@ func TestEncodeEpisodesReportsEveryProblemWithItsPlace(t *testing.T) {
 	}
 }
 
-func TestEncodeEpisodesRefusesEmptyAndOversizedBatches(t *testing.T) {
+func TestValidateAndEncodeEpisodesRefusesEmptyAndOversizedBatches(t *testing.T) {
 	s := Settings{Actions: []string{"a", "b"}}
-	if _, err := EncodeEpisodes(s, s.ActionIndex(), nil, DefaultLimits()); err == nil {
+	if _, err := ValidateAndEncodeEpisodes(s, nil, DefaultLimits()); err == nil {
 		t.Fatal("empty batch accepted")
 	}
 	lim := DefaultLimits()
 	lim.MaxEpisodes = 1
 	eps := []Episode{{ID: "1", Steps: []Step{{State: "s", Action: "a"}}}, {ID: "2", Steps: []Step{{State: "s", Action: "a"}}}}
-	if _, err := EncodeEpisodes(s, s.ActionIndex(), eps, lim); err == nil || !strings.Contains(err.Error(), "more than the limit of 1") {
+	if _, err := ValidateAndEncodeEpisodes(s, eps, lim); err == nil || !strings.Contains(err.Error(), "more than the limit of 1") {
 		t.Fatalf("oversized batch: %v", err)
 	}
 }

@@ -154,7 +154,7 @@ func TestTargetProbabilitiesFollowEachStepsAllowedSet(t *testing.T) {
 	}
 }
 
-// EncodeEpisodes stores a step's set as bits over action indexes, width
+// ValidateAndEncodeEpisodes stores a step's set as bits over action indexes, width
 // ceil(actions / 8) bytes a step, all zero for a step without a set, and
 // nothing at all for an episode without any.
 func TestAllowedSetsAreStoredAsBitsPerStep(t *testing.T) {
@@ -167,7 +167,7 @@ func TestAllowedSetsAreStoredAsBitsPerStep(t *testing.T) {
 		{ID: "masked", Steps: []Step{{State: "s", Action: "j", Allowed: []string{"j", "a"}}, {State: "s", Action: "b"}, {State: "s", Action: "l", Allowed: []string{"l"}}}},
 		{ID: "plain", Steps: []Step{{State: "s", Action: "b"}}},
 	}
-	recs, err := EncodeEpisodes(p, p.ActionIndex(), eps, DefaultLimits())
+	recs, err := ValidateAndEncodeEpisodes(p, eps, DefaultLimits())
 	if err != nil {
 		t.Fatal(err)
 	}

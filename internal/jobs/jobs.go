@@ -167,7 +167,7 @@ func (r *Runner) Run(ctx context.Context) error {
 
 // run does one job, reporting its progress every ReportInterval.
 func (r *Runner) run(ctx context.Context, job Job) {
-	log := r.Logger.With("job", job.ID, "kind", job.Kind, "attempt", job.Attempts)
+	log := r.Logger.With("job_id", job.ID, "kind", job.Kind, "attempt", job.Attempts)
 	log.Info("job started")
 	var mu sync.Mutex
 	latest := training.Progress{Phase: "starting"}

@@ -7,7 +7,7 @@
 //     sum them across processes.
 //   - ReplicaCollector, registered by API processes, describes the
 //     process's own in-memory Q copies; aggregate it with max.
-//   - TableCollector reads table-wide figures (the backlog) from the
+//   - BacklogCollector reads each policy's backlog from the
 //     database and is registered only by processes that run the worker, so
 //     that scaling out the API does not multiply it; with several workers,
 //     aggregate it with max.

@@ -77,7 +77,7 @@ type OpenEpisodeSource interface {
 
 // OpenEpisodeCollector exports, per policy, the open episodes and their
 // ages and the totals closed each way, read from the database at scrape
-// time. Like TableCollector it is registered by worker processes only.
+// time. Like BacklogCollector it is registered by worker processes only.
 type OpenEpisodeCollector struct {
 	source  OpenEpisodeSource
 	timeout time.Duration

@@ -62,6 +62,7 @@ const (
 	flagShutdownGrace  = "shutdown-grace"
 	flagDBMaxConns     = "db-max-conns"
 	flagLogFormat      = "log-format"
+	flagLogLevel       = "log-level"
 	flagCoverageVisits = "coverage-visits"
 	flagHistoryBucket  = "history-bucket"
 	flagHistoryWindow  = "history-window"
@@ -109,8 +110,11 @@ func apiURLFlag(env flagEnv, value, usage string, olderVariables ...string) cli.
 	return &cli.StringFlag{Name: flagAPIURL, Value: value, Usage: usage, Sources: env(append([]string{"QTALLY_URL"}, olderVariables...)...)}
 }
 
-func logFlag(env flagEnv) cli.Flag {
-	return &cli.StringFlag{Name: flagLogFormat, Value: "json", Usage: "log format: json or text", Sources: env("QTALLY_LOG_FORMAT")}
+func logFlags(env flagEnv) []cli.Flag {
+	return []cli.Flag{
+		&cli.StringFlag{Name: flagLogFormat, Value: "json", Usage: "log format: json or text", Sources: env("QTALLY_LOG_FORMAT")},
+		&cli.StringFlag{Name: flagLogLevel, Value: "info", Usage: "least level logged: debug (adds a line for every request), info, warn or error", Sources: env("QTALLY_LOG_LEVEL")},
+	}
 }
 
 // serviceRoles are the roles a command's process may take; each reads its
@@ -137,8 +141,8 @@ func serviceFlags(env flagEnv, listenDefault string, roles serviceRoles) []cli.F
 		&cli.DurationFlag{Name: flagHistoryFineFor, Value: storage.DefaultHistory().FineWindow, Usage: "how long training history stays fine before it is rolled up into --history-bucket rows", Sources: env("QTALLY_HISTORY_FINE_WINDOW")},
 		&cli.StringFlag{Name: flagPprofListen, Usage: "serve Go profiles (net/http/pprof) on this loopback address, e.g. 127.0.0.1:6060; off when empty", Sources: env("QTALLY_PPROF_LISTEN")},
 		&cli.StringFlag{Name: flagProblemDocs, Value: api.DefaultProblemDocs, Usage: "address of the problem type documentation (docs/problems.md); each problem type URI is this address, # and the problem's name", Sources: env("QTALLY_PROBLEM_DOCS")},
-		logFlag(env),
 	}
+	flags = append(flags, logFlags(env)...)
 	if roles.api {
 		lim := training.DefaultLimits()
 		flags = append(flags,
@@ -381,11 +385,16 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 }
 
 func newLogger(cmd *cli.Command, w io.Writer) (*slog.Logger, error) {
+	var level slog.Level
+	if err := level.UnmarshalText([]byte(cmd.String(flagLogLevel))); err != nil {
+		return nil, fmt.Errorf("--%s must be debug, info, warn or error, got %q", flagLogLevel, cmd.String(flagLogLevel))
+	}
+	opts := &slog.HandlerOptions{Level: level}
 	switch f := cmd.String(flagLogFormat); f {
 	case "json":
-		return slog.New(slog.NewJSONHandler(w, nil)), nil
+		return slog.New(slog.NewJSONHandler(w, opts)), nil
 	case "text":
-		return slog.New(slog.NewTextHandler(w, nil)), nil
+		return slog.New(slog.NewTextHandler(w, opts)), nil
 	default:
 		return nil, fmt.Errorf("--%s must be json or text, got %q", flagLogFormat, f)
 	}

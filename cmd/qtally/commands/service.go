@@ -149,7 +149,7 @@ func startAPI(ctx context.Context, cfg apiConfig, db *storage.DB, reg *prometheu
 	batcher.Observe = m.Open.ObserveDecisionBatch
 	loops.Go("decision recorder", batcher.Run)
 	handler := api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, History: db, Eraser: db, Episodes: db, States: db,
-		Chooser: replica, Recorder: training.Keeper{Replica: replica, Recorder: batcher}, OpenEpisodes: db, Inspect: db, Ready: db,
+		Chooser: replica, Recorder: training.Keeper{Replica: replica, Recorder: batcher}, OpenEpisodes: db, Reports: db, Ready: db,
 		Metrics: m, Gatherer: reg, Auth: auth, Sessions: sessions,
 		Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db, Audit: db})
 	return apiRole{handler: handler, subscriptions: subs}
@@ -164,7 +164,7 @@ func startWorker(ctx context.Context, cfg serviceConfig, db *storage.DB, reg pro
 	subs := map[string]storage.Subscription{
 		storage.ChannelEpisodes: {Notify: func(int32) { nudge(wake) }, CatchUp: func() { nudge(wake) }},
 	}
-	reg.MustRegister(metrics.NewTableCollector(db, 5*time.Second, logger))
+	reg.MustRegister(metrics.NewBacklogCollector(db, 5*time.Second, logger))
 	reg.MustRegister(metrics.NewOpenEpisodeCollector(db, 5*time.Second, logger))
 	maps.Copy(subs, startHousekeeping(cfg.Worker, db, reg, m, logger, loops))
 	w := &training.Worker{
@@ -247,7 +247,7 @@ func newBackgroundLoops(ctx context.Context, logger *slog.Logger) *backgroundLoo
 func (b *backgroundLoops) Go(name string, fn func(context.Context) error) {
 	b.wg.Go(func() {
 		if err := fn(b.ctx); err != nil {
-			b.logger.Error("background loop stopped", "loop", name, "error", err)
+			b.logger.Error("background task stopped", "task", name, "error", err)
 		}
 	})
 }

@@ -10,15 +10,16 @@ import (
 	"github.com/qtally/qtally/internal/views"
 )
 
-// BacklogSource reads table-wide figures from the database.
+// BacklogSource reads every policy's backlog from the database.
 type BacklogSource interface {
 	Backlogs(ctx context.Context) ([]views.Backlog, error)
 }
 
-// TableCollector exports figures read from the database at scrape time,
+// BacklogCollector exports each policy's backlog (episodes not trained
+// yet, and the oldest one's age), read from the database at scrape time
 // within its own timeout. Register it in one role only (the worker), so
 // that replicas of the API do not export the same table-wide figure twice.
-type TableCollector struct {
+type BacklogCollector struct {
 	source  BacklogSource
 	timeout time.Duration
 	logger  *slog.Logger
@@ -28,9 +29,9 @@ type TableCollector struct {
 	up        *prometheus.Desc
 }
 
-// NewTableCollector returns a collector reading source within timeout.
-func NewTableCollector(source BacklogSource, timeout time.Duration, logger *slog.Logger) *TableCollector {
-	return &TableCollector{
+// NewBacklogCollector returns a collector reading source within timeout.
+func NewBacklogCollector(source BacklogSource, timeout time.Duration, logger *slog.Logger) *BacklogCollector {
+	return &BacklogCollector{
 		source: source, timeout: timeout, logger: logger,
 		backlog: prometheus.NewDesc("qtally_backlog_episodes",
 			"Stored episodes not trained yet.", []string{"policy"}, nil),
@@ -42,14 +43,14 @@ func NewTableCollector(source BacklogSource, timeout time.Duration, logger *slog
 }
 
 // Describe implements prometheus.Collector.
-func (c *TableCollector) Describe(ch chan<- *prometheus.Desc) {
+func (c *BacklogCollector) Describe(ch chan<- *prometheus.Desc) {
 	ch <- c.backlog
 	ch <- c.oldestAge
 	ch <- c.up
 }
 
 // Collect implements prometheus.Collector.
-func (c *TableCollector) Collect(ch chan<- prometheus.Metric) {
+func (c *BacklogCollector) Collect(ch chan<- prometheus.Metric) {
 	ctx, cancel := context.WithTimeout(context.Background(), c.timeout)
 	defer cancel()
 	backlogs, err := c.source.Backlogs(ctx)

@@ -1,13 +1,11 @@
 package api
 
 import (
-	"context"
 	"encoding/base64"
 	"encoding/json"
 	"net/http"
 	"slices"
 	"strconv"
-	"time"
 
 	"github.com/labstack/echo/v4"
 
@@ -15,20 +13,13 @@ import (
 	"github.com/qtally/qtally/training"
 )
 
-// Inspector reads what operators look at: a policy's states and the
-// status page's report of a policy.
-type Inspector interface {
-	ListStates(ctx context.Context, policy string, q views.StateQuery) (views.StatePage, error)
-	PolicyReport(ctx context.Context, policy string, window time.Duration, top int) (views.PolicyReport, error)
-}
-
 type statesResponse struct {
 	States []views.StateSummary `json:"states"`
 	// NextCursor continues the listing; absent on its last page.
 	NextCursor string `json:"next_cursor,omitempty"`
 }
 
-func handleListStates(in Inspector) echo.HandlerFunc {
+func handleListStates(s States) echo.HandlerFunc {
 	return func(c echo.Context) error {
 		name, err := policyParam(c)
 		if err != nil {
@@ -38,7 +29,7 @@ func handleListStates(in Inspector) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
-		page, err := in.ListStates(c.Request().Context(), name, q)
+		page, err := s.ListStates(c.Request().Context(), name, q)
 		if err != nil {
 			return err
 		}
@@ -56,7 +47,7 @@ func bindStateQuery(c echo.Context) (views.StateQuery, error) {
 	if s := c.QueryParam("sort"); s != "" {
 		q.Order = views.StateOrder(s)
 		if !slices.Contains(views.StateOrders, q.Order) {
-			return q, training.Invalid(-1, -1, "sort", "%q is not a sort order; use one of %q", truncateRunes(s, 64), views.StateOrders)
+			return q, training.Invalid(-1, -1, "sort", "%q is not a sort order; use one of %q", training.Truncate(s, 64), views.StateOrders)
 		}
 	}
 	if s := c.QueryParam("limit"); s != "" {
@@ -99,12 +90,4 @@ func decodeCursor(s string) (views.StateKey, error) {
 		return k, err
 	}
 	return k, json.Unmarshal(data, &k)
-}
-
-func truncateRunes(s string, n int) string {
-	r := []rune(s)
-	if len(r) <= n {
-		return s
-	}
-	return string(r[:n]) + "…"
 }
