@@ -29,7 +29,7 @@ func newApp(getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 					if err != nil {
 						return err
 					}
-					if err := readAuthConfig(cmd, &cfg); err != nil {
+					if err = readAuthConfig(cmd, &cfg); err != nil {
 						return err
 					}
 					cfg.RunAPI, cfg.RunWorker = true, !cmd.Bool(flagNoWorker)

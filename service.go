@@ -33,7 +33,7 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		return err
 	}
 	defer db.Close()
-	if err := db.SetHistory(cfg.History); err != nil {
+	if err = db.SetHistory(cfg.History); err != nil {
 		return err
 	}
 	db.SetWarmPairs(cfg.WarmPairs)
@@ -54,16 +54,16 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		wg.Add(1)
 		go func() {
 			defer wg.Done()
-			if err := fn(bgCtx); err != nil {
-				logger.Error(name+" stopped", "error", err)
+			if fnErr := fn(bgCtx); fnErr != nil {
+				logger.Error(name+" stopped", "error", fnErr)
 			}
 		}()
 	}
 
 	if cfg.PprofListen != "" {
-		l, err := listenProfiling(cfg.PprofListen)
-		if err != nil {
-			return err
+		l, listenErr := listenProfiling(cfg.PprofListen)
+		if listenErr != nil {
+			return listenErr
 		}
 		goBackground("profiling server", func(ctx context.Context) error { return serveProfiling(ctx, l, stdout) })
 	}
@@ -73,31 +73,31 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 		reg.MustRegister(metrics.NewReplicaCollector(replica, cfg.CoverageVisits))
 		subs[storage.ChannelPolicy] = storage.Subscription{
 			Notify: func(id int32) {
-				if err := replica.Refresh(bgCtx, id); err != nil {
-					logger.Warn("refreshing in-memory Q", "policy_id", id, "error", err)
+				if refreshErr := replica.Refresh(bgCtx, id); refreshErr != nil {
+					logger.Warn("refreshing in-memory Q", "policy_id", id, "error", refreshErr)
 				}
 			},
 			CatchUp: func() {
-				if err := replica.RefreshAll(bgCtx); err != nil {
-					logger.Warn("catching up on Q changes", "error", err)
+				if refreshErr := replica.RefreshAll(bgCtx); refreshErr != nil {
+					logger.Warn("catching up on Q changes", "error", refreshErr)
 				}
 			},
 		}
 		goBackground("choice counts", func(ctx context.Context) error {
-			err := every(ctx, choiceFlushEvery, func() {
-				if err := replica.FlushChoices(ctx, db); err != nil {
-					logger.Warn("storing choice counts", "error", err)
+			loopErr := every(ctx, choiceFlushEvery, func() {
+				if flushErr := replica.FlushChoices(ctx, db); flushErr != nil {
+					logger.Warn("storing choice counts", "error", flushErr)
 				}
 			})
 			// The counts since the last flush, before the process ends.
 			final, cancel := context.WithTimeout(context.WithoutCancel(ctx), 5*time.Second)
 			defer cancel()
-			return errors.Join(err, replica.FlushChoices(final, db))
+			return errors.Join(loopErr, replica.FlushChoices(final, db))
 		})
 		goBackground("replica poll", func(ctx context.Context) error {
 			return every(ctx, cfg.PollInterval, func() {
-				if err := replica.RefreshAll(ctx); err != nil {
-					logger.Warn("polling for Q changes", "error", err)
+				if refreshErr := replica.RefreshAll(ctx); refreshErr != nil {
+					logger.Warn("polling for Q changes", "error", refreshErr)
 				}
 			})
 		})

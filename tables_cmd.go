@@ -115,9 +115,9 @@ func importCommand(env flagEnv, stdout io.Writer) *cli.Command {
 			}
 			var r io.Reader = os.Stdin
 			if in != "" {
-				file, err := os.Open(in)
-				if err != nil {
-					return err
+				file, openErr := os.Open(in)
+				if openErr != nil {
+					return openErr
 				}
 				defer file.Close()
 				r = file

@@ -40,11 +40,11 @@ func handleStartEvaluation(j Jobs, cfg Config) echo.HandlerFunc {
 			return err
 		}
 		var req training.EvaluationRequest
-		if err := bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
+		if err = bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
 			return err
 		}
 		req = req.WithDefaults()
-		if err := req.Validate(); err != nil {
+		if err = req.Validate(); err != nil {
 			return err
 		}
 		job, err := j.StartEvaluation(c.Request().Context(), policy, req)
@@ -62,10 +62,10 @@ func handleStartReplay(j Jobs, cfg Config) echo.HandlerFunc {
 			return err
 		}
 		var req training.ReplayRequest
-		if err := bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
+		if err = bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
 			return err
 		}
-		if err := req.Validate(); err != nil {
+		if err = req.Validate(); err != nil {
 			return err
 		}
 		if string(req.Target) == policy {
@@ -131,8 +131,8 @@ func handleListJobs(j Jobs, kind training.JobKind) echo.HandlerFunc {
 		}
 		q := training.JobQuery{Limit: training.DefaultJobPage}
 		if s := c.QueryParam("limit"); s != "" {
-			n, err := strconv.Atoi(s)
-			if err != nil || n < 1 || n > training.MaxJobPage {
+			n, parseErr := strconv.Atoi(s)
+			if parseErr != nil || n < 1 || n > training.MaxJobPage {
 				return training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", training.MaxJobPage)
 			}
 			q.Limit = n

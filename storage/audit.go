@@ -55,8 +55,8 @@ func (db *DB) AuditLog(ctx context.Context, q training.AuditQuery) (training.Aud
 	}
 	entries, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.AuditEntry, error) {
 		var e training.AuditEntry
-		err := r.Scan(&e.ID, &e.At, &e.Via, &e.TokenID, &e.TokenLabel, &e.Method, &e.Route, &e.Path, &e.Policy, &e.PoliciesNamed, &e.Object, &e.Status)
-		return e, err
+		scanErr := r.Scan(&e.ID, &e.At, &e.Via, &e.TokenID, &e.TokenLabel, &e.Method, &e.Route, &e.Path, &e.Policy, &e.PoliciesNamed, &e.Object, &e.Status)
+		return e, scanErr
 	})
 	if err != nil {
 		return training.AuditPage{}, mapError(fmt.Errorf("read audit log: %w", err))
