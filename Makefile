@@ -1,13 +1,19 @@
-.PHONY: test build fmt-check dev screenshot image bench release
+.PHONY: test lint build fmt-check dev screenshot image bench release
 
-# Installs what the tests need when missing, vets and tests everything, then
-# runs every benchmark once (-short: smaller volumes) so that none of them
-# rots.
+# Installs what the tests need when missing, vets and lints (.golangci.yml;
+# any finding fails) and tests everything, then runs every benchmark once
+# (-short: smaller volumes) so that none of them rots.
 test:
 	scripts/setup-test-machine.sh
 	go vet ./...
+	bin/golangci-lint run
 	go test -count=1 ./...
 	go test -count=1 -short -run '^$$' -bench . -benchtime=1x ./...
+
+# The linters alone, installing the pinned golangci-lint into bin/ first.
+lint:
+	scripts/setup-test-machine.sh golangci-lint
+	bin/golangci-lint run
 
 build:
 	go build -o bin/qtally ./cmd/qtally

@@ -112,10 +112,10 @@ func handlePutPolicy(p Policies, cfg Config) echo.HandlerFunc {
 			return err
 		}
 		settings := training.DefaultSettings()
-		if err := bindJSON(c, cfg.MaxBodyBytes, &settings); err != nil {
+		if err = bindJSON(c, cfg.MaxBodyBytes, &settings); err != nil {
 			return err
 		}
-		if err := settings.Validate(); err != nil {
+		if err = settings.Validate(); err != nil {
 			return err
 		}
 		policy, created, err := p.ChangePolicy(c.Request().Context(), name, training.SettingsChange{
@@ -151,20 +151,20 @@ func handlePatchPolicy(p Policies, cfg Config) echo.HandlerFunc {
 			return err
 		}
 		var fields map[string]json.RawMessage
-		if err := decodeStrict(patch, &fields, -1); err != nil {
+		if err = decodeStrict(patch, &fields, -1); err != nil {
 			return err
 		}
 		if fields == nil {
 			return training.Invalid(-1, -1, "", "a settings patch must be a JSON object")
 		}
 		apply := func(current training.Settings) (training.Settings, error) {
-			doc, err := json.Marshal(current)
-			if err != nil {
-				return current, fmt.Errorf("encode settings: %w", err)
+			doc, encodeErr := json.Marshal(current)
+			if encodeErr != nil {
+				return current, fmt.Errorf("encode settings: %w", encodeErr)
 			}
-			merged, err := training.MergePatch(doc, patch)
-			if err != nil {
-				return current, fmt.Errorf("apply merge patch: %w", err)
+			merged, encodeErr := training.MergePatch(doc, patch)
+			if encodeErr != nil {
+				return current, fmt.Errorf("apply merge patch: %w", encodeErr)
 			}
 			next := training.DefaultSettings()
 			return next, decodeStrict(merged, &next, -1)
@@ -192,16 +192,16 @@ func handleSettingsHistory(h SettingsHistory) echo.HandlerFunc {
 		}
 		limit := training.DefaultHistoryPage
 		if s := c.QueryParam("limit"); s != "" {
-			n, err := strconv.Atoi(s)
-			if err != nil || n < 1 || n > training.MaxHistoryPage {
+			n, parseErr := strconv.Atoi(s)
+			if parseErr != nil || n < 1 || n > training.MaxHistoryPage {
 				return training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", training.MaxHistoryPage)
 			}
 			limit = n
 		}
 		var before int64
 		if s := c.QueryParam("cursor"); s != "" {
-			n, err := strconv.ParseInt(s, 10, 64)
-			if err != nil || n < 1 {
+			n, parseErr := strconv.ParseInt(s, 10, 64)
+			if parseErr != nil || n < 1 {
 				return training.Invalid(-1, -1, "cursor", "is not a cursor this service handed out; start the listing again without it")
 			}
 			before = n
@@ -374,10 +374,10 @@ func handleChoose(ch Chooser, rec RecordedChooser, m *metrics.Metrics, cfg Confi
 			return err
 		}
 		req := chooseRequest{Mode: training.Greedy}
-		if err := decodeFast(body, &req, -1); err != nil {
+		if err = decodeFast(body, &req, -1); err != nil {
 			return err
 		}
-		if err := validateChoose(req, cfg); err != nil {
+		if err = validateChoose(req, cfg); err != nil {
 			return err
 		}
 		chooseReq := training.ChooseRequest{State: req.State, Mode: req.Mode, Allowed: req.Allowed}
@@ -450,7 +450,7 @@ func handleGetState(s States, cfg Config) echo.HandlerFunc {
 		if err != nil {
 			return err
 		}
-		if err := training.ValidateStateName(state, cfg.MaxStateLength); err != nil {
+		if err = training.ValidateStateName(state, cfg.MaxStateLength); err != nil {
 			return err
 		}
 		view, err := s.State(c.Request().Context(), name, state)

@@ -41,11 +41,11 @@ func handleQueueEvaluation(j Jobs, cfg Config) echo.HandlerFunc {
 			return err
 		}
 		var req training.EvaluationRequest
-		if err := bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
+		if err = bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
 			return err
 		}
 		req = req.WithDefaults()
-		if err := req.Validate(); err != nil {
+		if err = req.Validate(); err != nil {
 			return err
 		}
 		job, err := j.QueueEvaluation(c.Request().Context(), policy, req)
@@ -63,10 +63,10 @@ func handleQueueReplay(j Jobs, cfg Config) echo.HandlerFunc {
 			return err
 		}
 		var req training.ReplayRequest
-		if err := bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
+		if err = bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
 			return err
 		}
-		if err := req.Validate(); err != nil {
+		if err = req.Validate(); err != nil {
 			return err
 		}
 		if string(req.Target) == policy {
@@ -132,8 +132,8 @@ func handleListJobs(j Jobs, kind jobs.Kind) echo.HandlerFunc {
 		}
 		q := jobs.Query{Limit: jobs.DefaultPage}
 		if s := c.QueryParam("limit"); s != "" {
-			n, err := strconv.Atoi(s)
-			if err != nil || n < 1 || n > jobs.MaxPage {
+			n, parseErr := strconv.Atoi(s)
+			if parseErr != nil || n < 1 || n > jobs.MaxPage {
 				return training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", jobs.MaxPage)
 			}
 			q.Limit = n

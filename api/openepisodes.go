@@ -36,10 +36,10 @@ func handleAddReward(o OpenEpisodes, m *metrics.Metrics, cfg Config) echo.Handle
 			return err
 		}
 		var add training.RewardAddition
-		if err := bindJSON(c, cfg.MaxBodyBytes, &add); err != nil {
+		if err = bindJSON(c, cfg.MaxBodyBytes, &add); err != nil {
 			return err
 		}
-		if err := add.Validate(cfg.MaxIDLength); err != nil {
+		if err = add.Validate(cfg.MaxIDLength); err != nil {
 			return err
 		}
 		res, err := o.AddReward(c.Request().Context(), name, episode, add)
@@ -60,10 +60,10 @@ func handleEndEpisode(o OpenEpisodes, m *metrics.Metrics, cfg Config) echo.Handl
 			return err
 		}
 		var req training.EndRequest
-		if err := bindOptionalJSON(c, cfg.MaxBodyBytes, &req); err != nil {
+		if err = bindOptionalJSON(c, cfg.MaxBodyBytes, &req); err != nil {
 			return err
 		}
-		if err := req.Validate(); err != nil {
+		if err = req.Validate(); err != nil {
 			return err
 		}
 		res, err := o.EndOpenEpisode(c.Request().Context(), name, episode, req)

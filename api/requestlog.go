@@ -111,7 +111,7 @@ func (p *panicError) Error() string { return fmt.Sprintf("panic: %v", p.value) }
 func callRecovering(next echo.HandlerFunc, c echo.Context) (err error) {
 	defer func() {
 		if v := recover(); v != nil {
-			if v == http.ErrAbortHandler {
+			if v == http.ErrAbortHandler { //nolint:errorlint // recover yields the very value panicked with; net/http compares it the same way
 				panic(v)
 			}
 			err = &panicError{value: v, stack: debug.Stack()}

@@ -134,7 +134,7 @@ func (s *signIn) handleSignIn() echo.HandlerFunc {
 		if err != nil {
 			return renderSignIn(c, http.StatusUnauthorized, "That token is not valid, or it was revoked.")
 		}
-		if err := tok.Authorize(access.ScopeAdmin, ""); err != nil {
+		if err = tok.Authorize(access.ScopeAdmin, ""); err != nil {
 			return renderSignIn(c, http.StatusForbidden, "The status pages need a token with the admin scope.")
 		}
 		session, err := s.sessions.Start(c.Request().Context(), tok)

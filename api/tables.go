@@ -72,10 +72,10 @@ func handleCreateSnapshot(s Snapshots, cfg Config) echo.HandlerFunc {
 			return err
 		}
 		var req request
-		if err := bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
+		if err = bindJSON(c, cfg.MaxBodyBytes, &req); err != nil {
 			return err
 		}
-		if err := training.ValidateSnapshotName(req.Name); err != nil {
+		if err = training.ValidateSnapshotName(req.Name); err != nil {
 			return err
 		}
 		snap, err := s.CreateSnapshot(c.Request().Context(), policy, req.Name)
@@ -306,13 +306,13 @@ func handleDiffTables(s Snapshots) echo.HandlerFunc {
 		}
 		limit := defaultDiffLimit
 		if v := c.QueryParam("limit"); v != "" {
-			n, err := strconv.Atoi(v)
-			if err != nil || n < 1 || n > maxDiffLimit {
+			n, parseErr := strconv.Atoi(v)
+			if parseErr != nil || n < 1 || n > maxDiffLimit {
 				checks = append(checks, training.Invalid(-1, -1, "limit", "must be a whole number from 1 to %d", maxDiffLimit))
 			}
 			limit = n
 		}
-		if err := joinProblems(checks...); err != nil {
+		if err = joinProblems(checks...); err != nil {
 			return err
 		}
 		if from == to && toPolicy == policy {

@@ -84,7 +84,7 @@ func TestEpisodesStoredBeforeAllowedSetsReadAsHavingNone(t *testing.T) {
 		VALUES ('legacy', '{a,b}', 1, 0.1, 0.1, 0, 'first', 0)`)
 	pgtest.Exec(t, url, `INSERT INTO episodes (policy_id, episode_id, states, actions, rewards, probabilities)
 		SELECT policy_id, 'old-1', '{s,t}', '{1,0}', '{2,3}', '{0.5,0.25}' FROM policies WHERE name = 'legacy'`)
-	if _, err := migrator.Up(ctx); err != nil {
+	if _, err = migrator.Up(ctx); err != nil {
 		t.Fatal(err)
 	}
 	db, err := storage.Open(ctx, url, 4, training.DefaultLimits())

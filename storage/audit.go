@@ -55,8 +55,8 @@ func (db *DB) AuditLog(ctx context.Context, q access.AuditQuery) (access.AuditPa
 	}
 	entries, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (access.AuditEntry, error) {
 		var e access.AuditEntry
-		err := r.Scan(&e.ID, &e.At, &e.Via, &e.TokenID, &e.TokenLabel, &e.Method, &e.Route, &e.Path, &e.Policy, &e.PoliciesNamed, &e.Object, &e.Status)
-		return e, err
+		scanErr := r.Scan(&e.ID, &e.At, &e.Via, &e.TokenID, &e.TokenLabel, &e.Method, &e.Route, &e.Path, &e.Policy, &e.PoliciesNamed, &e.Object, &e.Status)
+		return e, scanErr
 	})
 	if err != nil {
 		return access.AuditPage{}, mapError(fmt.Errorf("read audit log: %w", err))

@@ -110,7 +110,7 @@ func (db *DB) readChoicesAndEvents(ctx context.Context, tx pgx.Tx, report *views
 	_, err = pgx.ForEachRow(rows, []any{&e.At, &e.Kind, &e.Label, &e.Value}, func() error {
 		if e.Kind == "restore" {
 			// The path holds the snapshot's name escaped.
-			if name, err := url.PathUnescape(e.Label); err == nil {
+			if name, unescapeErr := url.PathUnescape(e.Label); unescapeErr == nil {
 				e.Label = name
 			}
 		}

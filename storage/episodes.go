@@ -56,15 +56,15 @@ func (db *DB) Ingest(ctx context.Context, policy string, episodes []training.Epi
 		// commit; without this lock a later seq could commit first, be
 		// trained, and the earlier one be trained after it, out of arrival
 		// order. Held to commit, it makes each policy's commits follow seq.
-		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
+		if _, err = tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
 			return fmt.Errorf("ingest lock: %w", err)
 		}
 		// Under the same lock, so concurrent batches count each other's
 		// states, and this sees every open id (opening an episode takes it).
-		if err := refuseOpenIDs(ctx, tx, p.ID, episodes, fresh); err != nil {
+		if err = refuseOpenIDs(ctx, tx, p.ID, episodes, fresh); err != nil {
 			return err
 		}
-		if err := admitStates(ctx, tx, p, records, fresh); err != nil {
+		if err = admitStates(ctx, tx, p, records, fresh); err != nil {
 			return err
 		}
 		_, err = tx.CopyFrom(ctx, pgx.Identifier{"episodes"},
@@ -103,8 +103,8 @@ func withoutStored(ctx context.Context, tx pgx.Tx, p training.Policy, records []
 	}
 	stored, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.EpisodeRecord, error) {
 		var e training.EpisodeRecord
-		err := r.Scan(&e.ID, &e.States, &e.Actions, &e.Rewards, &e.Probabilities)
-		return e, err
+		scanErr := r.Scan(&e.ID, &e.States, &e.Actions, &e.Rewards, &e.Probabilities)
+		return e, scanErr
 	})
 	if err != nil {
 		return nil, fmt.Errorf("look up episode ids: %w", err)

@@ -46,7 +46,7 @@ func (db *DB) DeletePolicy(ctx context.Context, name string) error {
 		// The training lock before the row lock, the order of a training
 		// batch (it updates the row under the lock): the other order
 		// deadlocks with a batch of the policy.
-		if err := lockTraining(ctx, tx, id); err != nil {
+		if err = lockTraining(ctx, tx, id); err != nil {
 			return err
 		}
 		err = tx.QueryRow(ctx, `SELECT policy_id FROM policies WHERE policy_id = $1 FOR UPDATE`, id).Scan(&id)
@@ -70,11 +70,11 @@ func (db *DB) DeletePolicy(ctx context.Context, name string) error {
 			return fmt.Errorf("list policy tables: %w", err)
 		}
 		for _, table := range tables {
-			if _, err := tx.Exec(ctx, `DELETE FROM `+pgx.Identifier{table}.Sanitize()+` WHERE policy_id = $1`, id); err != nil {
+			if _, err = tx.Exec(ctx, `DELETE FROM `+pgx.Identifier{table}.Sanitize()+` WHERE policy_id = $1`, id); err != nil {
 				return fmt.Errorf("delete from %s: %w", table, err)
 			}
 		}
-		if _, err := tx.Exec(ctx, `DELETE FROM policies WHERE policy_id = $1`, id); err != nil {
+		if _, err = tx.Exec(ctx, `DELETE FROM policies WHERE policy_id = $1`, id); err != nil {
 			return fmt.Errorf("delete policy: %w", err)
 		}
 		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, id)

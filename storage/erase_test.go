@@ -29,7 +29,7 @@ func TestDeletePolicyWaitsForATrainingBatch(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	defer batch.Rollback(ctx)
+	defer batch.Rollback(ctx) //nolint:errcheck // only releases the lock; nothing was written
 	deleted := make(chan error, 1)
 	go func() { deleted <- db.DeletePolicy(ctx, "parcels") }()
 	// The deletion now waits for the training lock.

@@ -170,7 +170,7 @@ func (db *DB) PolicyReport(ctx context.Context, name string, window time.Duratio
 		}
 		report.Status = st
 		// now() is the transaction's start: the clock every figure shares.
-		if err := tx.QueryRow(ctx, `SELECT now()`).Scan(&report.Now); err != nil {
+		if err = tx.QueryRow(ctx, `SELECT now()`).Scan(&report.Now); err != nil {
 			return fmt.Errorf("read the clock: %w", err)
 		}
 		rows, err := tx.Query(ctx, historyRead, st.ID, window.Microseconds())
@@ -195,7 +195,7 @@ func (db *DB) PolicyReport(ctx context.Context, name string, window time.Duratio
 		if err != nil {
 			return fmt.Errorf("read training history: %w", err)
 		}
-		if err := db.readChoicesAndEvents(ctx, tx, &report); err != nil {
+		if err = db.readChoicesAndEvents(ctx, tx, &report); err != nil {
 			return err
 		}
 		drift, err := listStates(ctx, tx, st.Policy, views.StateQuery{Order: views.ByDrift, Limit: top})

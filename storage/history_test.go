@@ -49,7 +49,7 @@ func setup(t *testing.T, h storage.HistorySettings) (*storage.DB, *pgx.Conn) {
 		t.Fatal(err)
 	}
 	t.Cleanup(db.Close)
-	if err := db.SetHistory(h); err != nil {
+	if err = db.SetHistory(h); err != nil {
 		t.Fatal(err)
 	}
 	conn, err := pgx.Connect(ctx, url)

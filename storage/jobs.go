@@ -136,7 +136,7 @@ func (db *DB) QueueEvaluation(ctx context.Context, policy string, req training.E
 		if !slices.Equal(h.actions, p.Actions) {
 			return training.Conflictf("the target table lists the actions %q, policy %q's episodes %q: a target must have the same actions in the same order", h.actions, p.Name, p.Actions)
 		}
-		if err := lockPins(ctx, tx, p.ID); err != nil {
+		if err = lockPins(ctx, tx, p.ID); err != nil {
 			return err
 		}
 		span, usable, err := resolveSpan(ctx, tx, p.ID, req.Window)
@@ -177,14 +177,14 @@ func (db *DB) QueueReplay(ctx context.Context, policy string, req training.Repla
 		if err != nil {
 			return err
 		}
-		if err := lockPins(ctx, tx, p.ID); err != nil {
+		if err = lockPins(ctx, tx, p.ID); err != nil {
 			return err
 		}
 		span, _, err := resolveSpan(ctx, tx, p.ID, req.Window)
 		if err != nil {
 			return err
 		}
-		if err := db.checkPolicyCount(ctx, tx); err != nil {
+		if err = db.checkPolicyCount(ctx, tx); err != nil {
 			return err
 		}
 		target, err := insertPolicy(ctx, tx, string(req.Target), s)
@@ -197,7 +197,7 @@ func (db *DB) QueueReplay(ctx context.Context, policy string, req training.Repla
 		}
 		// No token made this policy, the replay did: the label says so.
 		by := training.Actor{TokenLabel: fmt.Sprintf("replay of %s", policy)}
-		if err := recordSettingsChange(ctx, tx, targetID, training.ChangeCreate, by, training.DiffSettings(nil, target.Settings)); err != nil {
+		if err = recordSettingsChange(ctx, tx, targetID, training.ChangeCreate, by, training.DiffSettings(nil, target.Settings)); err != nil {
 			return err
 		}
 		id, err = db.queueJob(ctx, tx, p.ID, jobs.ReplayKind,
@@ -394,8 +394,8 @@ func (db *DB) ReadEpisodes(ctx context.Context, policyID int32, span training.Ep
 			}
 			page, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.StoredEpisode, error) {
 				var ep training.StoredEpisode
-				err := r.Scan(&ep.Seq, &ep.ReceivedAt, &ep.ID, &ep.States, &ep.Actions, &ep.Rewards, &ep.Probabilities, &ep.Allowed)
-				return ep, err
+				scanErr := r.Scan(&ep.Seq, &ep.ReceivedAt, &ep.ID, &ep.States, &ep.Actions, &ep.Rewards, &ep.Probabilities, &ep.Allowed)
+				return ep, scanErr
 			})
 			if err != nil {
 				return fmt.Errorf("read episodes: %w", err)
@@ -445,7 +445,7 @@ func (db *DB) LearnBatch(ctx context.Context, policyID int32, episodes []trainin
 		}
 		// The target's table takes the source's states: they count towards
 		// its own quota from now on (the source's quota bounded them).
-		if _, _, err := recordStates(ctx, tx, policyID, touched); err != nil {
+		if _, _, err = recordStates(ctx, tx, policyID, touched); err != nil {
 			return err
 		}
 		in := training.BatchInput{Policy: p, Episodes: episodes, Current: current}

@@ -111,24 +111,24 @@ func TestHistoryTiersKeepStoredRows(t *testing.T) {
 	defer conn.Close(ctx)
 	exec := func(sql string, args ...any) {
 		t.Helper()
-		if _, err := conn.Exec(ctx, sql, args...); err != nil {
-			t.Fatal(err)
+		if _, execErr := conn.Exec(ctx, sql, args...); execErr != nil {
+			t.Fatal(execErr)
 		}
 	}
 	var id int32
-	if err := conn.QueryRow(ctx, `INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q, max_states)
+	if err = conn.QueryRow(ctx, `INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q, max_states)
 		VALUES ('kept', '{a,b}', 1, 0.1, 0.1, 0, 'first', 0, 1000) RETURNING policy_id`).Scan(&id); err != nil {
 		t.Fatal(err)
 	}
 	exec(`INSERT INTO training_history (policy_id, bucket_start, batches, episodes, steps, sum_return, sum_abs_delta,
 		updates, greedy_changes, new_states, new_pairs, backlog, last_batch_at)
 		VALUES ($1, '2026-01-01T10:00:00Z', 3, 30, 90, 12.5, 4, 80, 2, 5, 9, 17, '2026-01-01T10:00:40Z')`, id)
-	if _, err := provider.UpTo(ctx, 13); err != nil {
+	if _, err = provider.UpTo(ctx, 13); err != nil {
 		t.Fatalf("migration 13: %v", err)
 	}
 	var fine bool
 	var episodes, backlog int64
-	if err := conn.QueryRow(ctx, `SELECT fine, episodes, backlog FROM training_history WHERE policy_id = $1`, id).Scan(&fine, &episodes, &backlog); err != nil {
+	if err = conn.QueryRow(ctx, `SELECT fine, episodes, backlog FROM training_history WHERE policy_id = $1`, id).Scan(&fine, &episodes, &backlog); err != nil {
 		t.Fatal(err)
 	}
 	if fine || episodes != 30 || backlog != 17 {
@@ -140,7 +140,7 @@ func TestHistoryTiersKeepStoredRows(t *testing.T) {
 		updates, greedy_changes, new_states, new_pairs, backlog, last_batch_at) VALUES
 		($1, true, '2026-01-01T10:00:50Z', 1, 10, 30, 2.5, 1, 20, 1, 1, 1, NULL, '2026-01-01T10:00:50Z'),
 		($1, true, '2026-01-01T10:01:05Z', 1, 5, 15, 1, 1, 10, 0, 0, 0, 4, '2026-01-01T10:01:05Z')`, id)
-	if _, err := provider.DownTo(ctx, 12); err != nil {
+	if _, err = provider.DownTo(ctx, 12); err != nil {
 		t.Fatalf("roll back migration 13: %v", err)
 	}
 	rows, err := conn.Query(ctx, `SELECT bucket_start, episodes, sum_return, backlog FROM training_history WHERE policy_id = $1 ORDER BY bucket_start`, id)

@@ -635,7 +635,7 @@ func (db *DB) EndOpenEpisode(ctx context.Context, policy, episode string, req tr
 		if err != nil {
 			return err
 		}
-		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
+		if _, err = tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
 			return fmt.Errorf("ingest lock: %w", err)
 		}
 		records, err := closeOpenEpisodes(ctx, tx, p, []string{episode}, req.Reward, closedByClient)
@@ -709,12 +709,12 @@ func closeOpenEpisodes(ctx context.Context, tx pgx.Tx, p training.Policy, ids []
 		if err != nil {
 			return nil, fmt.Errorf("store ended episodes: %w", err)
 		}
-		if _, err := tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelEpisodes, p.ID); err != nil {
+		if _, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelEpisodes, p.ID); err != nil {
 			return nil, err
 		}
 	}
 	for _, table := range []string{"open_episode_steps", "open_episode_reward_keys", "open_episodes"} {
-		if _, err := tx.Exec(ctx, `DELETE FROM `+table+` WHERE policy_id = $1 AND episode_id = ANY($2)`, p.ID, closing); err != nil {
+		if _, err = tx.Exec(ctx, `DELETE FROM `+table+` WHERE policy_id = $1 AND episode_id = ANY($2)`, p.ID, closing); err != nil {
 			return nil, fmt.Errorf("delete from %s: %w", table, err)
 		}
 	}
@@ -778,12 +778,12 @@ func (db *DB) OpenEpisode(ctx context.Context, policy, episode string) (training
 		err = tx.QueryRow(ctx, `SELECT opened_at, last_active_at FROM open_episodes WHERE policy_id = $1 AND episode_id = $2`,
 			p.ID, episode).Scan(&v.OpenedAt, &v.LastActiveAt)
 		if errors.Is(err, pgx.ErrNoRows) {
-			err := notOpen(ctx, tx, p, episode)
-			if errors.Is(err, training.ErrConflict) {
+			notOpenErr := notOpen(ctx, tx, p, episode)
+			if errors.Is(notOpenErr, training.ErrConflict) {
 				// Ended: no open episode by that id, and the answer says why.
-				return training.NotFoundf("%s", err.Error())
+				return training.NotFoundf("%s", notOpenErr.Error())
 			}
-			return err
+			return notOpenErr
 		}
 		if err != nil {
 			return fmt.Errorf("read open episode: %w", err)
@@ -798,11 +798,11 @@ func (db *DB) OpenEpisode(ctx context.Context, policy, episode string) (training
 			var allowed []byte
 			var mode string
 			var copyAge, reward float64
-			err := r.Scan(&d.Episode, &d.Step, &d.State, &d.Action, &d.Greedy, &d.Probability, &allowed, &mode,
+			scanErr := r.Scan(&d.Episode, &d.Step, &d.State, &d.Action, &d.Greedy, &d.Probability, &allowed, &mode,
 				&d.Explored, &d.KnownState, &d.Revision, &copyAge, &d.ChosenAt, &reward)
 			return training.OpenStep{Step: d.Step, State: d.State, Action: p.Actions[d.Action], Probability: d.Probability,
 				Allowed: training.ActionSet(allowed).Names(p.Actions), Mode: training.Mode(mode), Revision: d.Revision,
-				ChosenAt: d.ChosenAt, Reward: reward}, err
+				ChosenAt: d.ChosenAt, Reward: reward}, scanErr
 		})
 		if err != nil {
 			return fmt.Errorf("read decisions: %w", err)

@@ -68,7 +68,7 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 		err := tx.QueryRow(ctx, `SELECT policy_id FROM policies WHERE name = $1`, name).Scan(&id)
 		switch {
 		case err == nil:
-			if err := lockTraining(ctx, tx, id); err != nil {
+			if err = lockTraining(ctx, tx, id); err != nil {
 				return err
 			}
 		case !errors.Is(err, pgx.ErrNoRows):
@@ -89,10 +89,10 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 		}
 		created = current == nil
 		if created {
-			if err := s.SetStateQuota(0, db.limits.MaxPairsPerPolicy); err != nil {
+			if err = s.SetStateQuota(0, db.limits.MaxPairsPerPolicy); err != nil {
 				return err
 			}
-			if err := db.checkPolicyCount(ctx, tx); err != nil {
+			if err = db.checkPolicyCount(ctx, tx); err != nil {
 				return err
 			}
 			if p, err = insertPolicy(ctx, tx, name, s); err != nil {
@@ -103,12 +103,12 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 			if !slices.Equal(existing.Actions, s.Actions) {
 				quota = 0 // other actions: the bound on pairs applies anew
 			}
-			if err := s.SetStateQuota(quota, db.limits.MaxPairsPerPolicy); err != nil {
+			if err = s.SetStateQuota(quota, db.limits.MaxPairsPerPolicy); err != nil {
 				return err
 			}
 			if !slices.Equal(existing.Actions, s.Actions) {
 				var used bool
-				if err := tx.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM episodes WHERE policy_id = $1)
+				if err = tx.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM episodes WHERE policy_id = $1)
 					OR EXISTS (SELECT 1 FROM q_values WHERE policy_id = $1)
 					OR EXISTS (SELECT 1 FROM open_episodes WHERE policy_id = $1)`, existing.ID).Scan(&used); err != nil {
 					return fmt.Errorf("check policy use: %w", err)
@@ -147,7 +147,7 @@ func (db *DB) ChangePolicy(ctx context.Context, name string, change training.Set
 		}
 		// Diff what was stored, so that the history shows what the table
 		// holds (a setting the schema drops would not be recorded as kept).
-		if err := recordSettingsChange(ctx, tx, p.ID, kind, change.By, training.DiffSettings(old, p.Settings)); err != nil {
+		if err = recordSettingsChange(ctx, tx, p.ID, kind, change.By, training.DiffSettings(old, p.Settings)); err != nil {
 			return err
 		}
 		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelPolicy, p.ID)
@@ -220,9 +220,9 @@ func (db *DB) SettingsHistory(ctx context.Context, policy string, before int64, 
 	page.Changes, err = pgx.CollectRows(rows, func(r pgx.CollectableRow) (training.SettingsChangeRecord, error) {
 		var c training.SettingsChangeRecord
 		var kind string
-		err := r.Scan(&c.ID, &c.ChangedAt, &kind, &c.TokenID, &c.TokenLabel, &c.Fields)
+		scanErr := r.Scan(&c.ID, &c.ChangedAt, &kind, &c.TokenID, &c.TokenLabel, &c.Fields)
 		c.Kind = training.ChangeKind(kind)
-		return c, err
+		return c, scanErr
 	})
 	if err != nil {
 		return page, mapError(fmt.Errorf("read settings history: %w", err))
@@ -332,8 +332,8 @@ func (db *DB) Backlogs(ctx context.Context) ([]views.Backlog, error) {
 	}
 	out, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (views.Backlog, error) {
 		var b views.Backlog
-		err := r.Scan(&b.Policy, &b.Episodes, &b.OldestReceived)
-		return b, err
+		scanErr := r.Scan(&b.Policy, &b.Episodes, &b.OldestReceived)
+		return b, scanErr
 	})
 	if err != nil {
 		return nil, mapError(fmt.Errorf("read backlog: %w", err))

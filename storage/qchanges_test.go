@@ -30,20 +30,20 @@ func TestRowsSinceFollowsTheRecordOfChanges(t *testing.T) {
 	trainOne := func(id, state, action string) {
 		t.Helper()
 		eps := []training.Episode{{ID: id, Steps: []training.Step{{State: state, Action: action, Reward: 1}}}}
-		if _, err := db.Ingest(ctx, "reminders", eps); err != nil {
-			t.Fatal(err)
+		if _, ingestErr := db.Ingest(ctx, "reminders", eps); ingestErr != nil {
+			t.Fatal(ingestErr)
 		}
-		if _, trained, err := db.TrainBatch(ctx, 10, training.Learn); err != nil || !trained {
-			t.Fatalf("train %s: trained=%v %v", id, trained, err)
+		if _, trained, trainErr := db.TrainBatch(ctx, 10, training.Learn); trainErr != nil || !trained {
+			t.Fatalf("train %s: trained=%v %v", id, trained, trainErr)
 		}
 	}
 	keys := func(after int64) []string {
 		t.Helper()
 		var out []string
-		if err := db.QRowsSince(ctx, p.ID, after, func(r training.QRow) {
+		if listErr := db.QRowsSince(ctx, p.ID, after, func(r training.QRow) {
 			out = append(out, r.State+"/"+p.Actions[r.Action])
-		}); err != nil {
-			t.Fatal(err)
+		}); listErr != nil {
+			t.Fatal(listErr)
 		}
 		slices.Sort(out)
 		return out

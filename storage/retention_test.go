@@ -67,17 +67,17 @@ func TestQueuedJobsPinTheirEpisodes(t *testing.T) {
 
 	// The jobs run now, and read every episode their windows held.
 	for range 2 {
-		job, found, err := db.ClaimJob(ctx, time.Minute, 3)
-		if err != nil || !found {
-			t.Fatalf("claim: %v %v", found, err)
+		job, found, claimErr := db.ClaimJob(ctx, time.Minute, 3)
+		if claimErr != nil || !found {
+			t.Fatalf("claim: %v %v", found, claimErr)
 		}
 		var result any
 		switch job.Kind {
 		case jobs.ReplayKind:
 			var spec training.ReplayJob
 			must(t, json.Unmarshal(job.Spec, &spec))
-			res, err := training.Replay(ctx, db, spec, 100, func(training.Progress) {})
-			must(t, err)
+			res, replayErr := training.Replay(ctx, db, spec, 100, func(training.Progress) {})
+			must(t, replayErr)
 			if res.EpisodesReplayed != 4 {
 				t.Fatalf("the replay read %d episodes, want the 4 of its window", res.EpisodesReplayed)
 			}
@@ -85,8 +85,8 @@ func TestQueuedJobsPinTheirEpisodes(t *testing.T) {
 		case jobs.EvaluationKind:
 			var spec training.EvaluationJob
 			must(t, json.Unmarshal(job.Spec, &spec))
-			res, err := training.Evaluate(ctx, db, spec, func(training.Progress) {})
-			must(t, err)
+			res, evalErr := training.Evaluate(ctx, db, spec, func(training.Progress) {})
+			must(t, evalErr)
 			if res.EpisodesRead != 3 {
 				t.Fatalf("the evaluation read %d episodes, want the 3 of its window", res.EpisodesRead)
 			}
@@ -146,8 +146,8 @@ func TestPruningRacingQueuedJobsLosesNoWindowEpisodes(t *testing.T) {
 		wg.Add(1)
 		go func() {
 			defer wg.Done()
-			if _, err := db.PruneEpisodes(ctx, time.Millisecond, 1); err != nil {
-				t.Error(err)
+			if _, pruneErr := db.PruneEpisodes(ctx, time.Millisecond, 1); pruneErr != nil {
+				t.Error(pruneErr)
 			}
 		}()
 		job, err := db.QueueReplay(ctx, "renewals", training.ReplayRequest{Target: training.PolicyName(fmt.Sprintf("again-%d", round)), Window: training.EpisodeWindow{Last: 10}})

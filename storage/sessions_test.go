@@ -25,14 +25,14 @@ func TestPageSessionsLiveInTheDatabase(t *testing.T) {
 		t.Fatal(err)
 	}
 	keyring := access.NewKeyring(db, pepper)
-	if err := keyring.Reload(ctx); err != nil {
+	if err = keyring.Reload(ctx); err != nil {
 		t.Fatal(err)
 	}
 	sessions := access.PageSessions{Store: db, Tokens: keyring, Life: time.Hour, Key: access.SessionKey(pepper)}
 	unauthenticated := func(what, id string, s access.PageSessions) {
 		t.Helper()
-		if _, err := s.Token(ctx, id); !errors.Is(err, training.ErrUnauthenticated) {
-			t.Fatalf("%s: %v, want unauthenticated", what, err)
+		if _, tokenErr := s.Token(ctx, id); !errors.Is(tokenErr, training.ErrUnauthenticated) {
+			t.Fatalf("%s: %v, want unauthenticated", what, tokenErr)
 		}
 	}
 
@@ -43,8 +43,8 @@ func TestPageSessionsLiveInTheDatabase(t *testing.T) {
 	if strings.Contains(open.ID, random) {
 		t.Fatal("the session id carries the token secret")
 	}
-	if got, err := sessions.Token(ctx, open.ID); err != nil || got.ID != tok.ID {
-		t.Fatalf("open session: %v %v", got, err)
+	if got, tokenErr := sessions.Token(ctx, open.ID); tokenErr != nil || got.ID != tok.ID {
+		t.Fatalf("open session: %v %v", got, tokenErr)
 	}
 	forged := strings.Repeat("A", len(open.ID))
 	unauthenticated("made-up id", forged, sessions)
@@ -60,7 +60,7 @@ func TestPageSessionsLiveInTheDatabase(t *testing.T) {
 	}
 	unauthenticated("expired session", old.ID, sessions)
 
-	if err := sessions.End(ctx, open.ID); err != nil {
+	if err = sessions.End(ctx, open.ID); err != nil {
 		t.Fatal(err)
 	}
 	unauthenticated("ended session", open.ID, sessions)

@@ -44,12 +44,12 @@ func (db *DB) CreateSnapshot(ctx context.Context, policy, name string) (training
 	}
 	var s training.Snapshot
 	err = db.WithTx(ctx, func(tx pgx.Tx) error {
-		if _, err := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, snapshotQuotaLockClass, p.ID); err != nil {
-			return fmt.Errorf("snapshot quota lock: %w", err)
+		if _, lockErr := tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, snapshotQuotaLockClass, p.ID); lockErr != nil {
+			return fmt.Errorf("snapshot quota lock: %w", lockErr)
 		}
 		var n int
-		if err := tx.QueryRow(ctx, `SELECT count(*) FROM snapshots WHERE policy_id = $1`, p.ID).Scan(&n); err != nil {
-			return fmt.Errorf("count snapshots: %w", err)
+		if countErr := tx.QueryRow(ctx, `SELECT count(*) FROM snapshots WHERE policy_id = $1`, p.ID).Scan(&n); countErr != nil {
+			return fmt.Errorf("count snapshots: %w", countErr)
 		}
 		if n >= db.limits.MaxSnapshotsPerPolicy {
 			return training.Quotaf("policy %q has %d snapshots, its limit (--max-snapshots-per-policy %d); delete one first", policy, n, db.limits.MaxSnapshotsPerPolicy)
@@ -206,9 +206,9 @@ func (db *DB) ExportTable(ctx context.Context, policy, table string) (training.T
 	}
 	out := training.TableExport{Policy: p.Name, Table: table, Rows: []training.TableRow{}}
 	err = db.readTx(ctx, func(tx pgx.Tx) error {
-		h, err := readTableHeader(ctx, tx, p, table)
-		if err != nil {
-			return err
+		h, headerErr := readTableHeader(ctx, tx, p, table)
+		if headerErr != nil {
+			return headerErr
 		}
 		out.Actions, out.InitialQ, out.Revision = h.actions, h.initialQ, h.revision
 		return forEachTableRow(ctx, tx, p.ID, h, func(state string, action int16, q float64, visits int64) {
@@ -226,9 +226,9 @@ func (db *DB) LoadTable(ctx context.Context, policyID int32, table string) (*tra
 	}
 	var t *training.QTable
 	err = db.readTx(ctx, func(tx pgx.Tx) error {
-		h, err := readTableHeader(ctx, tx, p, table)
-		if err != nil {
-			return err
+		h, headerErr := readTableHeader(ctx, tx, p, table)
+		if headerErr != nil {
+			return headerErr
 		}
 		t = training.NewQTable(h.actions, h.initialQ)
 		t.Revision, t.TrainedThroughSeq = h.revision, h.trainedThrough
@@ -286,7 +286,7 @@ func lockedPolicy(ctx context.Context, tx pgx.Tx, name string) (training.Policy,
 	if err != nil {
 		return training.Policy{}, fmt.Errorf("read policy: %w", err)
 	}
-	if err := lockTraining(ctx, tx, id); err != nil {
+	if err = lockTraining(ctx, tx, id); err != nil {
 		return training.Policy{}, err
 	}
 	p, err := scanPolicy(tx.QueryRow(ctx, `SELECT `+policyColumns+` FROM policies WHERE policy_id = $1 FOR KEY SHARE`, id))
@@ -346,7 +346,7 @@ func (db *DB) RestoreSnapshot(ctx context.Context, policy, snapshot string) (tra
 			return err
 		}
 		// The live table has now learned from what the snapshot had.
-		if _, err := tx.Exec(ctx, `UPDATE policies SET trained_through_seq = $2 WHERE policy_id = $1`, p.ID, h.trainedThrough); err != nil {
+		if _, err = tx.Exec(ctx, `UPDATE policies SET trained_through_seq = $2 WHERE policy_id = $1`, p.ID, h.trainedThrough); err != nil {
 			return fmt.Errorf("restore training position: %w", err)
 		}
 		tag, err := tx.Exec(ctx, `

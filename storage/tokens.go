@@ -63,7 +63,7 @@ func (db *DB) CreateToken(ctx context.Context, spec access.TokenSpec, digest []b
 		if err != nil {
 			return fmt.Errorf("insert token: %w", err)
 		}
-		if err := insertAudit(ctx, tx, commandLineAudit("create", t.ID, 201)); err != nil {
+		if err = insertAudit(ctx, tx, commandLineAudit("create", t.ID, 201)); err != nil {
 			return err
 		}
 		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::bigint::text)`, ChannelTokens, t.ID)
@@ -95,7 +95,7 @@ func (db *DB) RevokeToken(ctx context.Context, id int64) (time.Time, error) {
 		if err != nil {
 			return fmt.Errorf("revoke token: %w", err)
 		}
-		if err := insertAudit(ctx, tx, commandLineAudit("revoke", id, 200)); err != nil {
+		if err = insertAudit(ctx, tx, commandLineAudit("revoke", id, 200)); err != nil {
 			return err
 		}
 		_, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::bigint::text)`, ChannelTokens, id)

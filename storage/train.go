@@ -85,9 +85,9 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 		warm = db.warm.take(policyID, versionOf(p))
 		states := training.TouchedStates(episodes)
 		if missing := warm.unknown(states); len(missing) > 0 {
-			read, err := estimatesOfStates(ctx, tx, policyID, missing)
-			if err != nil {
-				return err
+			read, readErr := estimatesOfStates(ctx, tx, policyID, missing)
+			if readErr != nil {
+				return readErr
 			}
 			warm.learn(missing, read, len(p.Actions))
 		}

@@ -107,7 +107,7 @@ func BenchmarkTrainBatchVersusNaive(b *testing.B) {
 	// TrainBatch picks any policy with a backlog, so each policy gets its
 	// episodes only when it is the one to train.
 	for _, name := range []string{"batched", "naive"} {
-		if _, _, err := db.PutPolicy(ctx, name, benchSettings()); err != nil {
+		if _, _, err = db.PutPolicy(ctx, name, benchSettings()); err != nil {
 			b.Fatal(err)
 		}
 	}

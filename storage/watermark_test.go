@@ -65,7 +65,7 @@ func TestWatermarkMigrationKeepsTrainingPosition(t *testing.T) {
 	}
 	defer conn.Close()
 	for _, name := range []string{"half", "all", "none", "empty"} {
-		if _, err := conn.Exec(`INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q, max_states)
+		if _, err = conn.Exec(`INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q, max_states)
 			VALUES ($1, '{go}', 1, 0.5, 0.1, 0.1, 'every', 0, 1000)`, name); err != nil {
 			t.Fatal(err)
 		}
@@ -76,7 +76,7 @@ func TestWatermarkMigrationKeepsTrainingPosition(t *testing.T) {
 	oldEpisodes(t, conn, "none", false)
 	oldEpisodes(t, conn, "half", false, false)
 	oldEpisodes(t, conn, "all", true)
-	if _, err := provider.Up(ctx); err != nil {
+	if _, err = provider.Up(ctx); err != nil {
 		t.Fatal(err)
 	}
 
@@ -130,7 +130,7 @@ func TestWatermarkMigrationRefusesAGap(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer conn.Close()
-	if _, err := conn.Exec(`INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q, max_states)
+	if _, err = conn.Exec(`INSERT INTO policies (name, actions, gamma, alpha, epsilon, epsilon_min, visit, initial_q, max_states)
 		VALUES ('gappy', '{go}', 1, 0.5, 0.1, 0.1, 'every', 0, 1000)`); err != nil {
 		t.Fatal(err)
 	}

@@ -212,7 +212,6 @@ func BenchmarkReplicaApply(b *testing.B) {
 		b.StartTimer()
 		t := loadedTable(p, rows)
 		b.StopTimer()
-		rows = nil
 		perPair = float64(heapInUse()-before) / pairs
 		runtime.KeepAlive(t)
 		b.StartTimer()

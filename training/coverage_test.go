@@ -25,8 +25,6 @@ const (
 	deskRefund   = 2
 )
 
-var deskActions = []string{"reply", "call", "refund"}
-
 // deskSolves[action][upset] and deskSours[action][upset] are the chances
 // that a contact solves the problem and, if not, that the customer is
 // upset afterwards.

@@ -2,7 +2,7 @@ package training
 
 import "errors"
 
-// ErrNoAnswer: greedy has no action it can stand behind in the state (no
+// ErrNoAnswer says greedy has no action it can stand behind in the state (no
 // allowed action tried enough there, and no allowed fallback).
 var ErrNoAnswer = errors.New("no greedy answer")
 

@@ -49,6 +49,6 @@ func StatesBeyondQuota(sightings []StateSighting, isNew func(string) bool, room,
 	return &QuotaError{
 		Detail: fmt.Sprintf("the batch brings %d new states and the policy has room for %d more (max_states %d); nothing was stored: "+
 			"raise max_states with PUT on the policy, or send fewer distinct states", fresh, max(room, 0), maxStates),
-		Problems: l.err().(*ValidationError).Problems,
+		Problems: l.err().(*ValidationError).Problems, //nolint:errorlint // err builds this *ValidationError itself: never wrapped
 	}
 }

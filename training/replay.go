@@ -91,7 +91,7 @@ func Replay(ctx context.Context, store ReplayStore, job ReplayJob, batchEpisodes
 	if err != nil {
 		return ReplayResult{}, err
 	}
-	if err := store.ClearTable(ctx, target.ID); err != nil {
+	if err = store.ClearTable(ctx, target.ID); err != nil {
 		return ReplayResult{}, err
 	}
 	res := ReplayResult{Target: target.Name}
@@ -100,9 +100,9 @@ func Replay(ctx context.Context, store ReplayStore, job ReplayJob, batchEpisodes
 		if len(batch) == 0 {
 			return nil
 		}
-		rev, out, err := store.LearnBatch(ctx, target.ID, batch, Learn)
-		if err != nil {
-			return err
+		rev, out, learnErr := store.LearnBatch(ctx, target.ID, batch, Learn)
+		if learnErr != nil {
+			return learnErr
 		}
 		res.EpisodesReplayed += int64(len(batch))
 		res.Steps += int64(out.Steps)

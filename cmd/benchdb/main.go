@@ -32,12 +32,7 @@ func main() {
 	if err != nil {
 		log.Fatalf("benchdb: %v", err)
 	}
-	// Written whole under a temporary name, so a reader never sees half a URL.
-	tmp := *urlFile + ".tmp"
-	if err := os.WriteFile(tmp, []byte(srv.URL()+"\n"), 0o600); err == nil {
-		err = os.Rename(tmp, *urlFile)
-	}
-	if err != nil {
+	if err := writeURLFile(*urlFile, srv.URL()); err != nil {
 		_ = srv.Stop()
 		log.Fatalf("benchdb: %v", err)
 	}
@@ -46,4 +41,18 @@ func main() {
 	if err := srv.Stop(); err != nil {
 		log.Fatalf("benchdb: stop: %v", err)
 	}
+}
+
+// writeURLFile writes url to path whole under a temporary name first, so a
+// reader never sees half a URL.
+func writeURLFile(path, url string) error {
+	tmp := path + ".tmp"
+	if err := os.WriteFile(tmp, []byte(url+"\n"), 0o600); err != nil {
+		return fmt.Errorf("write url file: %w", err)
+	}
+	if err := os.Rename(tmp, path); err != nil {
+		_ = os.Remove(tmp)
+		return fmt.Errorf("write url file: %w", err)
+	}
+	return nil
 }

@@ -246,7 +246,7 @@ func Run(ctx context.Context, cfg Config, out io.Writer) (Report, error) {
 	if err != nil {
 		return Report{}, err
 	}
-	if err := c.putPolicy(ctx); err != nil {
+	if err = c.putPolicy(ctx); err != nil {
 		return Report{}, err
 	}
 	before, err := c.policyStatus(ctx)

@@ -43,7 +43,7 @@ func Memory(ctx context.Context, cfg Config, pairs int, proc *Process) (MemoryRe
 	}
 	rep := MemoryReport{Policy: cfg.Policy}
 	start := time.Now()
-	if err := fillPairs(ctx, c, cfg, pairs); err != nil {
+	if err = fillPairs(ctx, c, cfg, pairs); err != nil {
 		return rep, err
 	}
 	st, err := waitTrained(ctx, c, cfg.Policy, 30*time.Minute)

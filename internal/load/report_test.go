@@ -91,14 +91,14 @@ func TestReportSustainedLoop(t *testing.T) {
 	// No flat run at all: the row says so and fails.
 	dir := t.TempDir()
 	for _, f := range []string{FileCeilings, FileSustain} {
-		data, err := os.ReadFile(filepath.Join("testdata/sustain", f))
-		if err != nil {
-			t.Fatal(err)
+		data, readErr := os.ReadFile(filepath.Join("testdata/sustain", f))
+		if readErr != nil {
+			t.Fatal(readErr)
 		}
 		if f == FileSustain {
 			data = []byte(strings.Replace(string(data), `"best": 1`, `"best": -1`, 1))
 		}
-		if err := os.WriteFile(filepath.Join(dir, f), data, 0o600); err != nil {
+		if err = os.WriteFile(filepath.Join(dir, f), data, 0o600); err != nil {
 			t.Fatal(err)
 		}
 	}

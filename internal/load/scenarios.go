@@ -111,7 +111,7 @@ func Drain(ctx context.Context, cfg Config, episodes int, startWorker func() (st
 	}
 	g := newGenerator(cfg, "drain")
 	for sent := 0; sent < episodes; sent += cfg.EpisodesPerPost {
-		if _, err := c.PostEpisodes(ctx, cfg.Policy, g.batch(min(cfg.EpisodesPerPost, episodes-sent))); err != nil {
+		if _, err = c.PostEpisodes(ctx, cfg.Policy, g.batch(min(cfg.EpisodesPerPost, episodes-sent))); err != nil {
 			return DrainReport{}, fmt.Errorf("store backlog: %w", err)
 		}
 	}

@@ -127,7 +127,7 @@ func waitDrained(ctx context.Context, obs Observer, policy string, within time.D
 			return nil
 		}
 		if time.Now().After(deadline) {
-			return fmt.Errorf("load: %d episodes of %s still untrained after %v between trials (%v)", n, policy, within, err)
+			return fmt.Errorf("load: %d episodes of %s still untrained after %v between trials (%v)", n, policy, within, err) //nolint:errorlint // err is often nil here: the backlog was read, just not 0
 		}
 		select {
 		case <-ctx.Done():

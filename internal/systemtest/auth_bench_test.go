@@ -32,7 +32,7 @@ func BenchmarkChooseTokenCheck(b *testing.B) {
 			b.SetParallelism(16)
 			b.RunParallel(func(pb *testing.PB) {
 				for pb.Next() {
-					req, err := http.NewRequest("POST", s.URL+"/v1/policies/checkout/choose", bytes.NewReader(body))
+					req, err := http.NewRequest(http.MethodPost, s.URL+"/v1/policies/checkout/choose", bytes.NewReader(body))
 					if err != nil {
 						b.Error(err)
 						return

@@ -78,7 +78,7 @@ func TestClientKeepsOpenEpisodes(t *testing.T) {
 	if err != nil || !again.Repeated || again.Action != second.Action || again.Probability != second.Probability {
 		t.Fatalf("step 1 again: %+v, %v; recorded %+v", again, err, second)
 	}
-	if _, err := c.ChooseRecorded(ctx, "renewals", "cust-1", 3, client.ChooseRequest{State: "day 3", Mode: client.Explore}); client.ProblemOf(err) != client.ProblemConflict {
+	if _, err = c.ChooseRecorded(ctx, "renewals", "cust-1", 3, client.ChooseRequest{State: "day 3", Mode: client.Explore}); client.ProblemOf(err) != client.ProblemConflict {
 		t.Fatalf("step 3 after step 1: %v, want 409 conflict", err)
 	}
 
@@ -96,8 +96,8 @@ func TestClientKeepsOpenEpisodes(t *testing.T) {
 	}
 	// An unkeyed reward whose answer is lost is not retried: it was added.
 	if n, err = lostOnce(func() error {
-		_, err := c.AddReward(ctx, "renewals", "cust-1", 0.5, client.RewardOptions{})
-		return err
+		_, addErr := c.AddReward(ctx, "renewals", "cust-1", 0.5, client.RewardOptions{})
+		return addErr
 	}); err == nil || n != 0 {
 		t.Fatalf("unkeyed reward whose answer was lost: %d retries, %v; want the error and no retry", n, err)
 	}

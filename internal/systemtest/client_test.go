@@ -56,8 +56,8 @@ func (d documentedTransport) RoundTrip(req *http.Request) (*http.Response, error
 	}
 	in := &openapi3filter.RequestValidationInput{Request: check, PathParams: params, Route: route,
 		Options: &openapi3filter.Options{MultiError: true, AuthenticationFunc: checkBearer}}
-	if err := openapi3filter.ValidateRequest(req.Context(), in); err != nil {
-		d.t.Errorf("client's %s %s does not match the OpenAPI document: %v", req.Method, req.URL.Path, err)
+	if validateErr := openapi3filter.ValidateRequest(req.Context(), in); validateErr != nil {
+		d.t.Errorf("client's %s %s does not match the OpenAPI document: %v", req.Method, req.URL.Path, validateErr)
 	}
 	req.Body, req.ContentLength = io.NopCloser(bytes.NewReader(body)), int64(len(body))
 	resp, err := d.base.RoundTrip(req)
@@ -444,11 +444,11 @@ func TestRecorderPostsInBatches(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if _, err := c.ImportRows(ctx, ps.name, nil, nil); err != nil {
+	if _, err = c.ImportRows(ctx, ps.name, nil, nil); err != nil {
 		t.Fatal(err)
 	}
-	if restored, err := c.RestoreSnapshot(ctx, ps.name, snap.Name); err != nil || restored.Pairs != snap.Pairs || restored.Source != snap.Name {
-		t.Fatalf("restore %+v: %+v, %v", snap, restored, err)
+	if restored, restoreErr := c.RestoreSnapshot(ctx, ps.name, snap.Name); restoreErr != nil || restored.Pairs != snap.Pairs || restored.Source != snap.Name {
+		t.Fatalf("restore %+v: %+v, %v", snap, restored, restoreErr)
 	}
 	var replayProgress []client.Progress
 	replay, err := c.RunReplay(ctx, ps.name, client.ReplayRequest{Target: "onboarding-tips-replayed"},
@@ -615,7 +615,7 @@ func TestClientErrorCarriesTheProblem(t *testing.T) {
 		t.Fatalf("post of an invalid batch: %v", err)
 	}
 	p := apiErr.Problem
-	if apiErr.StatusCode != 400 || p.Name() != client.ProblemInvalidInput || len(p.Errors) != 1 {
+	if apiErr.StatusCode != http.StatusBadRequest || p.Name() != client.ProblemInvalidInput || len(p.Errors) != 1 {
 		t.Fatalf("problem %+v", p)
 	}
 	if f := p.Errors[0]; f.Where() != "episode 1, step 1, action" {
@@ -716,8 +716,8 @@ func TestClientSettingsNeedTheCurrentETag(t *testing.T) {
 	if client.StatusOf(err) != http.StatusPreconditionFailed || client.ProblemOf(err) != client.ProblemPreconditionFailed {
 		t.Fatalf("PUT with a stale If-Match: %v", err)
 	}
-	if now, err := c.Policy(ctx, name); err != nil || now.Alpha != 0.2 || now.ETag != created.ETag {
-		t.Fatalf("after the refusals: alpha %v, ETag %q, %v", now.Alpha, now.ETag, err)
+	if now, readErr := c.Policy(ctx, name); readErr != nil || now.Alpha != 0.2 || now.ETag != created.ETag {
+		t.Fatalf("after the refusals: alpha %v, ETag %q, %v", now.Alpha, now.ETag, readErr)
 	}
 
 	// Greedy has no answer where nothing was tried, until a fallback is set.
@@ -747,11 +747,11 @@ func TestClientSettingsNeedTheCurrentETag(t *testing.T) {
 	if err != nil || patched.Epsilon != 0.05 || patched.Alpha != 0.05 || patched.ETag == replaced.ETag {
 		t.Fatalf("patch: %+v, %v", patched, err)
 	}
-	if _, err := c.PatchPolicy(ctx, name, map[string]any{"epsilon": 0.5}, replaced.ETag); client.ProblemOf(err) != client.ProblemPreconditionFailed {
+	if _, err = c.PatchPolicy(ctx, name, map[string]any{"epsilon": 0.5}, replaced.ETag); client.ProblemOf(err) != client.ProblemPreconditionFailed {
 		t.Fatalf("patch with a stale If-Match: %v", err)
 	}
-	if p, err := c.PatchPolicy(ctx, name, json.RawMessage(`{"greedy_fallback":null}`), ""); err != nil || p.GreedyFallback != "" || p.Epsilon != 0.05 {
-		t.Fatalf("patch to the default: %+v, %v", p, err)
+	if p, patchErr := c.PatchPolicy(ctx, name, json.RawMessage(`{"greedy_fallback":null}`), ""); patchErr != nil || p.GreedyFallback != "" || p.Epsilon != 0.05 {
+		t.Fatalf("patch to the default: %+v, %v", p, patchErr)
 	}
 	if n := len(seen.list()); n != 0 {
 		t.Fatalf("%d retries of refusals", n)

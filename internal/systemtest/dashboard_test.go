@@ -213,7 +213,7 @@ func startPrometheus(t *testing.T, jobs map[string]string) *prometheusServer {
 			return false
 		}
 		resp.Body.Close()
-		return resp.StatusCode == 200
+		return resp.StatusCode == http.StatusOK
 	})
 	return p
 }

@@ -116,7 +116,7 @@ func TestSignInBodyAndAttemptsAreLimited(t *testing.T) {
 	spoofed := 0
 	post := func(contentType string, body io.Reader) *http.Response {
 		t.Helper()
-		req, err := http.NewRequest("POST", s.URL+"/sign-in", body)
+		req, err := http.NewRequest(http.MethodPost, s.URL+"/sign-in", body)
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -256,7 +256,7 @@ func startRefused(t *testing.T, env map[string]string, args ...string) error {
 		return err
 	case <-started:
 		cancel()
-		<-done
+		<-done //nolint:errcheck // only waits for the exit; the test fails below either way
 		t.Fatalf("qtally %v started", args)
 	case <-time.After(hangGuard):
 		t.Fatalf("qtally %v neither started nor stopped", args)
@@ -508,7 +508,7 @@ func TestPageSessions(t *testing.T) {
 	}
 
 	page := do("GET", "/", "", ck, nil)
-	if page.StatusCode != 200 {
+	if page.StatusCode != http.StatusOK {
 		t.Fatalf("overview in a session: %d", page.StatusCode)
 	}
 	csp := page.Header.Get("Content-Security-Policy")
@@ -537,7 +537,7 @@ func TestPageSessions(t *testing.T) {
 	if resp := do("POST", "/sign-out", "https://elsewhere.example", ck, nil); resp.StatusCode != http.StatusForbidden {
 		t.Fatalf("sign-out posted from another site: %d", resp.StatusCode)
 	}
-	if resp := do("GET", "/", "", ck, nil); resp.StatusCode != 200 {
+	if resp := do("GET", "/", "", ck, nil); resp.StatusCode != http.StatusOK {
 		t.Fatalf("a refused sign-out ended the session: %d", resp.StatusCode)
 	}
 	out := do("POST", "/sign-out", self, ck, nil)
@@ -570,7 +570,7 @@ func TestTrustedProxy(t *testing.T) {
 	client := &http.Client{CheckRedirect: func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }}
 	post := func(forwardedFor, token string) *http.Response {
 		t.Helper()
-		req, _ := http.NewRequest("POST", s.URL+"/sign-in", strings.NewReader(url.Values{"token": {token}}.Encode()))
+		req, _ := http.NewRequest(http.MethodPost, s.URL+"/sign-in", strings.NewReader(url.Values{"token": {token}}.Encode()))
 		req.Header.Set("Content-Type", "application/x-www-form-urlencoded")
 		req.Header.Set("X-Forwarded-For", forwardedFor)
 		resp, err := client.Do(req)

@@ -200,7 +200,7 @@ func TestIngestCommitsInArrivalOrder(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer blocker.Rollback(ctx) //nolint:errcheck // rolled back below; a no-op then
-	if _, err := blocker.Exec(ctx, `
+	if _, err = blocker.Exec(ctx, `
 		INSERT INTO episodes (policy_id, episode_id, states, actions, rewards)
 		SELECT policy_id, 'early-2', '{x}', '{0}', '{0}' FROM policies WHERE name = $1`, ps.name); err != nil {
 		t.Fatal(err)

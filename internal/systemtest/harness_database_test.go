@@ -47,8 +47,8 @@ func storedEpisodes(t testing.TB, databaseURL, policy string) []storedEpisode {
 	}
 	out, err := pgx.CollectRows(rows, func(r pgx.CollectableRow) (storedEpisode, error) {
 		var e storedEpisode
-		err := r.Scan(&e.id, &e.states, &e.actions, &e.rewards, &e.probabilities, &e.allowed)
-		return e, err
+		scanErr := r.Scan(&e.id, &e.states, &e.actions, &e.rewards, &e.probabilities, &e.allowed)
+		return e, scanErr
 	})
 	if err != nil {
 		t.Fatal(err)

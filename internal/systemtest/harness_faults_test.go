@@ -88,7 +88,7 @@ func (l *ledger) post(ctx context.Context, client *http.Client, baseURL, policy 
 	for ctx.Err() == nil {
 		// A post once sent runs to its answer even when the clients are told
 		// to stop, so that every episode the service stored is accounted for.
-		req := must(http.NewRequestWithContext(context.WithoutCancel(ctx), "POST", baseURL+"/v1/policies/"+policy+"/episodes", bytes.NewReader(body)))
+		req := must(http.NewRequestWithContext(context.WithoutCancel(ctx), http.MethodPost, baseURL+"/v1/policies/"+policy+"/episodes", bytes.NewReader(body)))
 		req.Header.Set("Content-Type", "application/json")
 		resp, err := client.Do(req)
 		if err != nil {

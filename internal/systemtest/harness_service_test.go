@@ -139,7 +139,7 @@ func openAPIRouter(t testing.TB) routers.Router {
 	if err != nil {
 		t.Fatalf("load OpenAPI document: %v", err)
 	}
-	if err := doc.Validate(loader.Context); err != nil {
+	if err = doc.Validate(loader.Context); err != nil {
 		t.Fatalf("OpenAPI document is invalid: %v", err)
 	}
 	router, err := gorillamux.NewRouter(doc)
@@ -187,7 +187,7 @@ func (s *service) send(method, path, contentType string, body []byte, raw bool) 
 	in := &openapi3filter.RequestValidationInput{Request: req, PathParams: params, Route: route,
 		Options: &openapi3filter.Options{MultiError: true, AuthenticationFunc: checkBearer}}
 	if !raw {
-		if err := openapi3filter.ValidateRequest(context.Background(), in); err != nil {
+		if err = openapi3filter.ValidateRequest(context.Background(), in); err != nil {
 			s.t.Fatalf("request %s %s does not match the OpenAPI document: %v", method, path, err)
 		}
 		// The validator may have put a body with the document's defaults

@@ -8,6 +8,7 @@ import (
 	"maps"
 	"math"
 	"math/rand/v2"
+	"net/http"
 	"os/exec"
 	"slices"
 	"strconv"
@@ -290,7 +291,7 @@ func BenchmarkScrapeMetrics(b *testing.B) {
 				var buf bytes.Buffer
 				_, err = buf.ReadFrom(resp.Body)
 				resp.Body.Close()
-				if err != nil || resp.StatusCode != 200 {
+				if err != nil || resp.StatusCode != http.StatusOK {
 					b.Fatalf("GET /metrics: %d %v", resp.StatusCode, err)
 				}
 				size = buf.Len()

@@ -54,7 +54,7 @@ func (k *keeper) send(client *http.Client, path string, body any) (int, []byte, 
 	data := must(json.Marshal(body))
 	unanswered := false
 	for attempt := 0; attempt < 2000; attempt++ {
-		req := must(http.NewRequest("POST", k.baseURL()+path, bytes.NewReader(data)))
+		req := must(http.NewRequest(http.MethodPost, k.baseURL()+path, bytes.NewReader(data)))
 		req.Header.Set("Content-Type", "application/json")
 		resp, err := client.Do(req)
 		k.mu.Lock()

@@ -74,7 +74,7 @@ func TestProblemDocsAddressIsConfigurable(t *testing.T) {
 	if err != nil {
 		t.Fatalf("load the served OpenAPI document: %v", err)
 	}
-	if err := doc.Validate(loader.Context); err != nil {
+	if err = doc.Validate(loader.Context); err != nil {
 		t.Fatalf("the served OpenAPI document is invalid: %v", err)
 	}
 	if s.router, err = gorillamux.NewRouter(doc); err != nil {

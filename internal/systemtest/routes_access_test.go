@@ -200,8 +200,8 @@ func TestEveryRouteEnforcesAccess(t *testing.T) {
 			}
 			covered[key] = true
 			t.Run(key, func(t *testing.T) {
-				s := s.withT(t)
-				checkRouteAccess(t, s, method, path, op, item, c, unlimited, limitedToBeta, limitedToAlpha)
+				sub := s.withT(t)
+				checkRouteAccess(t, sub, method, path, op, item, c, unlimited, limitedToBeta, limitedToAlpha)
 			})
 		}
 	}

@@ -55,7 +55,7 @@ func BenchmarkOnePostgres(b *testing.B) {
 		b.Fatal(err)
 	}
 	b.Cleanup(func() { _ = srv.Stop() })
-	if _, err := storage.Migrate(ctx, srv.URL()); err != nil {
+	if _, err = storage.Migrate(ctx, srv.URL()); err != nil {
 		b.Fatal(err)
 	}
 	bin := buildBinary(b)
@@ -100,9 +100,9 @@ func BenchmarkOnePostgres(b *testing.B) {
 					return
 				}
 				var res struct{ Accepted int }
-				err := postJSON(ctx, client, api.URL+"/v1/policies/"+names[r%benchPolicies]+"/episodes", bodies[r], &res)
-				if err != nil || res.Accepted != benchPerRequest {
-					failed.Store(fmt.Sprintf("request %d: accepted %d: %v", r, res.Accepted, err))
+				postErr := postJSON(ctx, client, api.URL+"/v1/policies/"+names[r%benchPolicies]+"/episodes", bodies[r], &res)
+				if postErr != nil || res.Accepted != benchPerRequest {
+					failed.Store(fmt.Sprintf("request %d: accepted %d: %v", r, res.Accepted, postErr))
 					return
 				}
 			}
@@ -151,7 +151,7 @@ func BenchmarkOnePostgres(b *testing.B) {
 	// The first choice of a policy loads its table; that is not choosing.
 	for _, name := range names {
 		var res struct{ Action string }
-		if err := postJSON(ctx, client, chooserProc.URL+"/v1/policies/"+name+"/choose", []byte(`{"state":"s00000","mode":"explore"}`), &res); err != nil {
+		if err = postJSON(ctx, client, chooserProc.URL+"/v1/policies/"+name+"/choose", []byte(`{"state":"s00000","mode":"explore"}`), &res); err != nil {
 			b.Fatal(err)
 		}
 	}
@@ -165,8 +165,8 @@ func BenchmarkOnePostgres(b *testing.B) {
 				body := fmt.Appendf(nil, `{"state":"s%05d","mode":"explore"}`, rng.IntN(benchStates*11/10))
 				t0 := time.Now()
 				var res struct{ Action string }
-				if err := postJSON(ctx, client, chooserProc.URL+"/v1/policies/"+names[rng.IntN(benchPolicies)]+"/choose", body, &res); err != nil {
-					failed.Store(err.Error())
+				if postErr := postJSON(ctx, client, chooserProc.URL+"/v1/policies/"+names[rng.IntN(benchPolicies)]+"/choose", body, &res); postErr != nil {
+					failed.Store(postErr.Error())
 					return
 				}
 				latencies[c] = append(latencies[c], time.Since(t0))
@@ -188,7 +188,7 @@ func BenchmarkOnePostgres(b *testing.B) {
 		b.Fatal(err)
 	}
 	defer conn.Close(ctx)
-	if _, err := conn.Exec(ctx, "VACUUM ANALYZE"); err != nil {
+	if _, err = conn.Exec(ctx, "VACUUM ANALYZE"); err != nil {
 		b.Fatal(err)
 	}
 	var episodeBytes, pairBytes, storedEpisodes, pairs float64

@@ -147,7 +147,7 @@ func TestSIGTERM(t *testing.T) {
 	case <-time.After(500 * time.Millisecond):
 	}
 	h.release()
-	if err := <-answer; err != nil {
+	if err = <-answer; err != nil {
 		t.Fatalf("post in flight at SIGTERM: %v\n%s", err, p.stderr)
 	}
 	for _, ep := range post {

@@ -145,7 +145,7 @@ func TestSnapshotDiffAndRestoreRollBack(t *testing.T) {
 	}
 	restored := make(chan *http.Response, 1)
 	go func() {
-		resp, err := tokenClient(s.authorization, 30*time.Second).Post(s.URL+"/v1/policies/routing/snapshots/before-promo/restore", "", nil)
+		resp, err := tokenClient(s.authorization, 30*time.Second).Post(s.URL+"/v1/policies/routing/snapshots/before-promo/restore", "", nil) //nolint:bodyclose // sent on restored, closed after the select below
 		if err != nil {
 			resp = nil
 		}
@@ -166,7 +166,7 @@ func TestSnapshotDiffAndRestoreRollBack(t *testing.T) {
 		t.Fatal("the restore did not finish after the lock was released")
 	}
 	var change tableChange
-	if resp == nil || resp.StatusCode != 200 || json.NewDecoder(resp.Body).Decode(&change) != nil {
+	if resp == nil || resp.StatusCode != http.StatusOK || json.NewDecoder(resp.Body).Decode(&change) != nil {
 		t.Fatalf("restore answered %v", resp)
 	}
 	resp.Body.Close()

@@ -84,7 +84,7 @@ func screenshot(t *testing.T, ctx context.Context, name string) {
 	if err != nil {
 		t.Fatalf("page height: %v", err)
 	}
-	if err := chromedp.Do(ctx, chromedp.EmulateViewport(browserWidth, height)); err != nil {
+	if err = chromedp.Do(ctx, chromedp.EmulateViewport(browserWidth, height)); err != nil {
 		t.Fatalf("resize the viewport: %v", err)
 	}
 	png, err := chromedp.Run(ctx, chromedp.CaptureScreenshot())
@@ -414,7 +414,7 @@ func TestStatusPagesRefuseBadInput(t *testing.T) {
 	}
 	s.call("GET", "/policies/nobody", nil, 404)
 	for _, w := range []string{"5", "30s", "49h", "soon"} {
-		r := s.send("GET", "/policies/plain?window="+w, "", nil, true)
+		r = s.send("GET", "/policies/plain?window="+w, "", nil, true)
 		if r.Status != 400 || !strings.Contains(string(r.Body), `"field":"window"`) {
 			t.Fatalf("window=%s: %d %s", w, r.Status, r.Body)
 		}
@@ -535,7 +535,7 @@ func screenshotCharts(t *testing.T, ctx context.Context, name string) {
 	if err != nil {
 		t.Fatalf("find the charts: %v", err)
 	}
-	if err := chromedp.Do(ctx, chromedp.EmulateViewport(browserWidth, int64(bottom))); err != nil {
+	if err = chromedp.Do(ctx, chromedp.EmulateViewport(browserWidth, int64(bottom))); err != nil {
 		t.Fatalf("resize the viewport: %v", err)
 	}
 	png, err := chromedp.Run(ctx, chromedp.CaptureScreenshot())

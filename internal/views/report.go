@@ -45,8 +45,8 @@ func (p HistoryPoint) MeanDrift() float64 {
 // number of stored buckets, so that no bucket is split, and at most
 // maxPoints points over the span.
 func HistoryStep(span, bucket time.Duration, maxPoints int) time.Duration {
-	n := (span + bucket*time.Duration(maxPoints) - 1) / (bucket * time.Duration(maxPoints))
-	return bucket * max(n, 1)
+	buckets := int64((span + bucket*time.Duration(maxPoints) - 1) / (bucket * time.Duration(maxPoints)))
+	return bucket * time.Duration(max(buckets, 1))
 }
 
 // PolicyReport is what the status page shows of one policy.

@@ -351,9 +351,9 @@ func (s *Server) setUp(ctx context.Context, p *process, out *tail) error {
 			if strings.Contains(out.String(), "could not bind") {
 				return fmt.Errorf("postgres on port %d: %w\n%s", s.port, errPortTaken, out)
 			}
-			return fmt.Errorf("postgres exited during startup (%v):\n%s", p.err, out)
+			return fmt.Errorf("postgres exited during startup (%v):\n%s", p.err, out) //nolint:errorlint // an exit status is for reading, not for errors.Is
 		case <-ctx.Done():
-			return fmt.Errorf("postgres not ready: %w (last error: %v)\n%s", ctx.Err(), err, out)
+			return fmt.Errorf("postgres not ready: %w (last error: %v)\n%s", ctx.Err(), err, out) //nolint:errorlint // the timeout is the cause; the last attempt's error is context
 		case <-time.After(20 * time.Millisecond):
 		}
 	}

@@ -117,7 +117,7 @@ func TestFindBinariesPicksNewestInstall(t *testing.T) {
 	}
 	for _, version := range []string{"9.6", "10", "15", "16"} {
 		bin := filepath.Join(root, version, "bin")
-		if err := os.MkdirAll(bin, 0o755); err != nil {
+		if err = os.MkdirAll(bin, 0o755); err != nil {
 			t.Fatal(err)
 		}
 		names := []string{"initdb", "postgres"}
@@ -125,7 +125,7 @@ func TestFindBinariesPicksNewestInstall(t *testing.T) {
 			names = names[:1] // incomplete: no server binary
 		}
 		for _, name := range names {
-			if err := os.WriteFile(filepath.Join(bin, name), nil, 0o755); err != nil {
+			if err = os.WriteFile(filepath.Join(bin, name), nil, 0o755); err != nil {
 				t.Fatal(err)
 			}
 		}

@@ -37,7 +37,7 @@ func devCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 			// dev is for a first look on one machine: no tokens, and it says
 			// so; others cannot reach it.
 			cfg.API.Auth.Off = true
-			if err := requireLoopback(cfg.Process.Listen); err != nil {
+			if err = requireLoopback(cfg.Process.Listen); err != nil {
 				return err
 			}
 			if cmd.String(flagLogFormat) == "json" && !cmd.IsSet(flagLogFormat) {
@@ -56,7 +56,7 @@ func devCommand(env flagEnv, stdout, stderr io.Writer) *cli.Command {
 				if err != nil {
 					return err
 				}
-				defer pg.Stop()
+				defer pg.Stop() //nolint:errcheck // on the way out: nothing is left to act on a failed stop
 				cfg.Storage.DatabaseURL = pg.URL()
 				fmt.Fprintf(stdout, "qtally: PostgreSQL is up: DATABASE_URL=%s\n", pg.URL())
 			}

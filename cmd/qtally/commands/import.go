@@ -24,9 +24,9 @@ func importCommand(env flagEnv, stdin io.Reader, stdout io.Writer) *cli.Command 
 			}
 			r := stdin
 			if in != "" {
-				file, err := os.Open(in)
-				if err != nil {
-					return err
+				file, openErr := os.Open(in)
+				if openErr != nil {
+					return openErr
 				}
 				defer file.Close()
 				r = file
