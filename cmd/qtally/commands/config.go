@@ -381,7 +381,31 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 		}
 		errs = append(errs, cfg.Worker.validate())
 	}
-	return cfg, errors.Join(errs...)
+	return cfg, joinDistinct(errs...)
+}
+
+// joinDistinct joins problems, each once: a flag two roles read (the poll
+// interval) is reported once however many components check it.
+func joinDistinct(errs ...error) error {
+	var out []error
+	seen := map[string]bool{}
+	var add func(err error)
+	add = func(err error) {
+		if joined, ok := err.(interface{ Unwrap() []error }); ok {
+			for _, e := range joined.Unwrap() {
+				add(e)
+			}
+			return
+		}
+		if err != nil && !seen[err.Error()] {
+			seen[err.Error()] = true
+			out = append(out, err)
+		}
+	}
+	for _, err := range errs {
+		add(err)
+	}
+	return errors.Join(out...)
 }
 
 func newLogger(cmd *cli.Command, w io.Writer) (*slog.Logger, error) {
