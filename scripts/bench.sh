@@ -5,7 +5,7 @@
 # and prints a markdown table of figures, ceilings, ratios and targets
 # (BENCHMARKS.md explains each figure).
 #
-#   --quick    short runs (about 5 minutes instead of 17): a smoke check, noisy
+#   --quick    short runs (about 6 minutes instead of 20): a smoke check, noisy
 #   --long     the mixed run lasts 10 minutes instead of 1
 #   --profile  also take CPU profiles of the API under choose and post load
 #   --record   write the table into BENCHMARKS.md
