@@ -5,7 +5,7 @@
 # and prints a markdown table of figures, ceilings, ratios and targets
 # (BENCHMARKS.md explains each figure).
 #
-#   --quick    short runs (about 5 minutes instead of 17): a smoke check, noisy
+#   --quick    short runs (about 6 minutes instead of 20): a smoke check, noisy
 #   --long     the mixed run lasts 10 minutes instead of 1
 #   --profile  also take CPU profiles of the API under choose and post load
 #   --record   write the table into BENCHMARKS.md
@@ -255,7 +255,18 @@ say "sustained loop: $SUSTAIN_TRIALS runs of ${SUSTAIN_S}s from $START episodes/
 qtally_load sustain --policy sustain --states "$STATES" --rate "$START" --choose-every 1 --workers 256 --posters "$POST_WORKERS" \
   --trials "$SUSTAIN_TRIALS" --duration "${SUSTAIN_S}s" >"$OUT/sustain.json"
 
-# 8. Mixed with the episodes kept by qtally: every step's choose recorded,
+# 8. Sustained loop with the episodes kept by qtally: every step's choose
+#    recorded and its reward added, each episode ended; from a quarter of
+#    what the recorded-choose figure allows at 20 recorded chooses an
+#    episode.
+"$QT" load wait --url "$API" --json --policy sustain --duration 30m >/dev/null
+RECORDED_RPS=$(json_field "$OUT/recorded-choose.json" throughput_per_s)
+KEPT_START=$(awk -v c="$RECORDED_RPS" 'BEGIN { r = int(0.25 * c / 20); print (r < 1 ? 1 : r) }')
+say "sustained loop, episodes kept by qtally: $SUSTAIN_TRIALS runs of ${SUSTAIN_S}s from $KEPT_START episodes/s ..."
+qtally_load sustain --keep-episodes --policy sustain-kept --states "$STATES" --rate "$KEPT_START" --workers 256 \
+  --trials "$SUSTAIN_TRIALS" --duration "${SUSTAIN_S}s" >"$OUT/sustain-kept.json"
+
+# 9. Mixed with the episodes kept by qtally: every step's choose recorded,
 #    its reward added, the episode ended; 80% of the recorded-choose rate
 #    (two requests a step) in episodes of 20 steps.
 KEPT_RPS=$(json_field "$OUT/recorded-choose.json" throughput_per_s)

@@ -68,7 +68,7 @@ func TestChoiceCountsFlushOnce(t *testing.T) {
 
 	// A choice recorded in an open episode counts once; asked again, the
 	// recorded answer is not a new choice.
-	batcher := db.NewDecisionBatcher(time.Millisecond, 256)
+	batcher := db.NewDecisionBatcher(storage.GroupCommit{MaxBatch: 256, InFlight: 4, Window: time.Millisecond})
 	runCtx, stop := context.WithCancel(ctx)
 	done := make(chan struct{})
 	go func() { _ = batcher.Run(runCtx); close(done) }()

@@ -15,14 +15,16 @@ import (
 )
 
 // DecisionBatcher records the decisions of concurrent requests together:
-// it gathers them for a short window, commits each policy's in one
-// transaction, and only then lets each request answer. One durable commit
-// costs about as much for a hundred rows as for one, so recording costs a
-// request a share of a commit rather than a commit of its own.
+// it gathers those that arrive while earlier commits are under way, commits
+// each policy's in one transaction, and only then lets each request
+// answer. One durable commit costs about as much for a hundred rows as for
+// one, so recording costs a request a share of a commit rather than a
+// commit of its own.
 type DecisionBatcher struct {
 	db       *DB
 	window   time.Duration
 	maxBatch int
+	inFlight int
 	timeout  time.Duration
 	queue    chan *pendingDecision
 	stopped  chan struct{}
@@ -38,11 +40,24 @@ type pendingDecision struct {
 	done     chan struct{}
 }
 
-// NewDecisionBatcher returns a batcher that gathers for window, at most
-// maxBatch decisions a batch; Run must be running for Record to answer.
-func (db *DB) NewDecisionBatcher(window time.Duration, maxBatch int) *DecisionBatcher {
-	return &DecisionBatcher{db: db, window: window, maxBatch: maxBatch, timeout: 10 * time.Second,
-		queue: make(chan *pendingDecision, 4*maxBatch), stopped: make(chan struct{})}
+// GroupCommit shapes how a DecisionBatcher commits.
+type GroupCommit struct {
+	// MaxBatch bounds the decisions of one commit.
+	MaxBatch int
+	// InFlight bounds the commits under way at once.
+	InFlight int
+	// Window: with commits under way but fewer than InFlight, a batch goes
+	// once its first decision has waited this long (0: at once). With no
+	// commit under way it goes at once; with InFlight under way it waits
+	// for one to end (or for the batch to fill).
+	Window time.Duration
+}
+
+// NewDecisionBatcher returns a batcher committing as cfg says; Run must be
+// running for Record to answer.
+func (db *DB) NewDecisionBatcher(cfg GroupCommit) *DecisionBatcher {
+	return &DecisionBatcher{db: db, window: cfg.Window, maxBatch: cfg.MaxBatch, inFlight: max(cfg.InFlight, 1),
+		timeout: 10 * time.Second, queue: make(chan *pendingDecision, 4*cfg.MaxBatch), stopped: make(chan struct{})}
 }
 
 var errRecorderStopped = training.Unavailablef("this process is shutting down and records no more decisions; retry")
@@ -68,49 +83,71 @@ func (b *DecisionBatcher) Record(ctx context.Context, d training.Decision) (trai
 	}
 }
 
-// decisionCommitsInFlight is how many batches commit at once: while some
-// wait for their commit, the next gathers and goes, so throughput is not
-// one batch per commit latency.
-const decisionCommitsInFlight = 4
-
 // Run gathers and commits batches until ctx ends. It runs until after the
 // HTTP server has stopped, so requests in flight get their commit.
+//
+// A decision that arrives while no commit is under way goes at once, alone:
+// there is nothing to wait for. Decisions that arrive while commits are
+// under way gather into the next batch, which goes when a commit ends (or,
+// with a free slot, once it is full or its first decision has waited the
+// window), so the batch size follows the load: one decision a commit when
+// idle, a commit's worth of arrivals under load.
 func (b *DecisionBatcher) Run(ctx context.Context) error {
 	defer close(b.stopped)
-	slots := make(chan struct{}, decisionCommitsInFlight)
+	ended := make(chan struct{}, b.inFlight)
+	inFlight := 0
 	var committing sync.WaitGroup
 	defer committing.Wait()
-	timer := time.NewTimer(b.window)
+	var batch []*pendingDecision
+	var since time.Time
+	timer := time.NewTimer(time.Hour)
 	timer.Stop()
+	timerSet := false
+	send := func() {
+		if timerSet {
+			timer.Stop()
+			timerSet = false
+		}
+		inFlight++
+		sent := batch
+		committing.Go(func() {
+			b.commit(ctx, sent)
+			ended <- struct{}{}
+		})
+		batch = nil
+	}
 	for {
-		var batch []*pendingDecision
+		if len(batch) > 0 && inFlight < b.inFlight {
+			waited := time.Since(since)
+			switch {
+			case inFlight == 0, len(batch) >= b.maxBatch, waited >= b.window:
+				send()
+			case !timerSet:
+				timer.Reset(b.window - waited)
+				timerSet = true
+			}
+		}
+		queue := b.queue
+		if len(batch) >= b.maxBatch {
+			queue = nil
+		}
 		select {
 		case <-ctx.Done():
+			if len(batch) > 0 {
+				// Gathered requests are waiting for their commit.
+				b.commit(ctx, batch)
+			}
 			return nil
-		case p := <-b.queue:
+		case p := <-queue:
+			if len(batch) == 0 {
+				since = time.Now()
+			}
 			batch = append(batch, p)
+		case <-ended:
+			inFlight--
+		case <-timer.C:
+			timerSet = false
 		}
-		timer.Reset(b.window)
-	gather:
-		for len(batch) < b.maxBatch {
-			select {
-			case p := <-b.queue:
-				batch = append(batch, p)
-			case <-timer.C:
-				break gather
-			}
-		}
-		if !timer.Stop() {
-			select {
-			case <-timer.C:
-			default:
-			}
-		}
-		slots <- struct{}{}
-		committing.Go(func() {
-			b.commit(ctx, batch)
-			<-slots
-		})
 	}
 }
 

@@ -32,7 +32,7 @@ func BenchmarkRecordDecisions(b *testing.B) {
 	if err != nil {
 		b.Fatal(err)
 	}
-	batcher := db.NewDecisionBatcher(time.Millisecond, 256)
+	batcher := db.NewDecisionBatcher(storage.GroupCommit{MaxBatch: 256, InFlight: 2, Window: 500 * time.Microsecond})
 	var batches, decisions atomic.Int64
 	batcher.Observe = func(n int, _ time.Duration) { batches.Add(1); decisions.Add(int64(n)) }
 	runCtx, stop := context.WithCancel(ctx)

@@ -8,6 +8,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/training"
 )
 
@@ -23,7 +24,7 @@ func TestPostAndOpeningOfOneIDNeverBothSucceed(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	batcher := db.NewDecisionBatcher(time.Millisecond, 256)
+	batcher := db.NewDecisionBatcher(storage.GroupCommit{MaxBatch: 256, InFlight: 4, Window: time.Millisecond})
 	runCtx, stop := context.WithCancel(ctx)
 	done := make(chan struct{})
 	go func() { _ = batcher.Run(runCtx); close(done) }()
@@ -59,7 +60,7 @@ func TestPostAndOpeningOfOneIDNeverBothSucceed(t *testing.T) {
 // rather than left waiting.
 func TestStoppedBatcherRefusesDecisions(t *testing.T) {
 	db := openDB(t)
-	batcher := db.NewDecisionBatcher(time.Millisecond, 8)
+	batcher := db.NewDecisionBatcher(storage.GroupCommit{MaxBatch: 8, InFlight: 4, Window: time.Millisecond})
 	ctx, stop := context.WithCancel(context.Background())
 	stop()
 	if err := batcher.Run(ctx); err != nil {

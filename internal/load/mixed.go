@@ -43,6 +43,10 @@ type MixedOptions struct {
 	// recorded in the episode, its reward added, and the episode ended,
 	// instead of posting it finished (ChooseEvery must be 1).
 	KeepEpisodes bool
+	// GoClient makes the simulated clients send their chooses (and, kept,
+	// rewards and ends) with Go's http.Client instead of hand-formatted
+	// requests on their own connection (see httpConn): for comparison.
+	GoClient bool
 }
 
 // MixedReport is what the mixed scenario saw.
@@ -99,6 +103,10 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	if opt.KeepEpisodes && opt.ChooseEvery != 1 {
 		return MixedReport{}, fmt.Errorf("load: episodes qtally keeps record every step: choose every step")
 	}
+	target, err := newHTTPTarget(cfg)
+	if err != nil {
+		return MixedReport{}, err
+	}
 	obs, source := opt.Observer, "notifications"
 	if obs == nil {
 		obs, source = statusObserver{c}, "status poll (20 ms)"
@@ -118,7 +126,9 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	var wg sync.WaitGroup
 	wg.Add(3)
 	if opt.ProbeArrival {
-		wg.Go(func() { rep.ArrivalToServed, rep.ArrivalUnserved = probeArrival(runCtx, c, cfg, &errs) })
+		wg.Go(func() {
+			rep.ArrivalToServed, rep.ArrivalUnserved = probeArrival(runCtx, c, cfg, opt.KeepEpisodes, &errs)
+		})
 	}
 	go func() {
 		defer wg.Done()
@@ -134,9 +144,9 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 	}()
 	start := time.Now()
 	if opt.KeepEpisodes {
-		keepEpisodes(runCtx, c, cfg, &episodes, &chooses, &errs, &skipped)
+		keepEpisodes(runCtx, c, target, cfg, opt.GoClient, &episodes, &chooses, &errs, &skipped)
 	} else {
-		simulate(runCtx, c, cfg, opt.ChooseEvery, finished, &chooses, &errs, &skipped)
+		simulate(runCtx, c, target, cfg, opt.ChooseEvery, opt.GoClient, finished, &chooses, &errs, &skipped)
 	}
 	close(finished)
 	wg.Wait()
@@ -167,30 +177,30 @@ func Mixed(ctx context.Context, cfg Config, opt MixedOptions) (MixedReport, erro
 // keepEpisodes starts episodes at cfg.Rate per second on cfg.Workers
 // clients that let qtally keep them: each step's choose records it, its
 // reward is added, and the episode is ended.
-func keepEpisodes(ctx context.Context, c *client.Client, cfg Config, ended, chooses, errs, skipped *atomic.Int64) {
+func keepEpisodes(ctx context.Context, c *client.Client, target httpTarget, cfg Config, goClient bool, ended, chooses, errs, skipped *atomic.Int64) {
 	run := time.Now().UnixNano()
 	startEpisodes(ctx, cfg, skipped, func(w int, starts <-chan struct{}) {
 		g := newGenerator(Config{States: cfg.States, Actions: cfg.Actions, StepsPerEpisode: cfg.StepsPerEpisode, Seed: cfg.Seed + uint64(w)},
 			fmt.Sprintf("kept-%d-%d", run, w))
+		k := keeperClient(c, target, goClient)
+		defer k.close()
 	episodes:
 		for range starts {
 			ep := g.episode()
 			for i, st := range ep.Steps {
-				req := client.ChooseRequest{State: st.State, Mode: client.Explore}
-				if _, err := c.ChooseRecorded(ctx, cfg.Policy, ep.ID, i, req); err != nil {
-					if ctx.Err() == nil {
+				if err := k.choose(ctx, ep.ID, i, st.State); err != nil {
+					if !runOver(ctx, err) {
 						errs.Add(1)
 					}
 					continue episodes // a gap now: this episode stays open
 				}
 				chooses.Add(1)
-				add := client.RewardOptions{Key: strconv.Itoa(i)}
-				if _, err := c.AddReward(ctx, cfg.Policy, ep.ID, st.Reward, add); err != nil && ctx.Err() == nil {
+				if err := k.addReward(ctx, ep.ID, i, st.Reward); err != nil && !runOver(ctx, err) {
 					errs.Add(1)
 				}
 			}
-			if _, err := c.EndEpisode(ctx, cfg.Policy, ep.ID, nil); err != nil {
-				if ctx.Err() == nil {
+			if err := k.end(ctx, ep.ID); err != nil {
+				if !runOver(ctx, err) {
 					errs.Add(1)
 				}
 				continue
@@ -199,6 +209,87 @@ func keepEpisodes(ctx context.Context, c *client.Client, cfg Config, ended, choo
 		}
 	})
 }
+
+// episodeKeeper is what a simulated client of kept episodes sends: a
+// recorded choose, a reward added with a key, an end.
+type episodeKeeper interface {
+	choose(ctx context.Context, episode string, step int, state string) error
+	addReward(ctx context.Context, episode string, step int, reward float64) error
+	end(ctx context.Context, episode string) error
+	close()
+}
+
+func keeperClient(c *client.Client, target httpTarget, goClient bool) episodeKeeper {
+	if goClient {
+		return goKeeper{c, target.policy}
+	}
+	return &rawKeeper{ch: newChooser(target), policy: target.policy}
+}
+
+type goKeeper struct {
+	c      *client.Client
+	policy string
+}
+
+func (k goKeeper) choose(ctx context.Context, episode string, step int, state string) error {
+	_, err := k.c.ChooseRecorded(ctx, k.policy, episode, step, client.ChooseRequest{State: state, Mode: client.Explore})
+	return err
+}
+
+func (k goKeeper) addReward(ctx context.Context, episode string, step int, reward float64) error {
+	_, err := k.c.AddReward(ctx, k.policy, episode, reward, client.RewardOptions{Key: strconv.Itoa(step)})
+	return err
+}
+
+func (k goKeeper) end(ctx context.Context, episode string) error {
+	_, err := k.c.EndEpisode(ctx, k.policy, episode, nil)
+	return err
+}
+
+func (goKeeper) close() {}
+
+type rawKeeper struct {
+	ch     *chooser
+	policy string
+	body   []byte
+}
+
+func (k *rawKeeper) choose(ctx context.Context, episode string, step int, state string) error {
+	_, _, err := k.ch.choose(ctx, state, episode, step)
+	return err
+}
+
+// addReward adds reward to the latest decision, keyed by its step so that
+// a retry adds nothing.
+func (k *rawKeeper) addReward(ctx context.Context, episode string, step int, reward float64) error {
+	k.body = append(k.body[:0], `{"reward":`...)
+	k.body = strconv.AppendFloat(k.body, reward, 'g', -1, 64)
+	k.body = append(k.body, `,"key":"`...)
+	k.body = strconv.AppendInt(k.body, int64(step), 10)
+	k.body = append(k.body, `"}`...)
+	return k.send(ctx, policyPath(k.policy, "open-episodes", episode, "rewards"), k.body, `"step":`)
+}
+
+func (k *rawKeeper) end(ctx context.Context, episode string) error {
+	return k.send(ctx, policyPath(k.policy, "open-episodes", episode, "end"), []byte(`{}`), `"steps":`)
+}
+
+// send posts body and wants 200 with an answer holding field.
+func (k *rawKeeper) send(ctx context.Context, path string, body []byte, field string) error {
+	status, answer, err := k.ch.conn.post(ctx, path, body)
+	switch {
+	case err != nil:
+		return fmt.Errorf("%s: %w", path, err)
+	case status != 200:
+		return fmt.Errorf("%s: %d %s", path, status, excerpt(answer))
+	}
+	if _, ok := jsonField(answer, field); !ok {
+		return fmt.Errorf("%s: no %s in %s", path, field, excerpt(answer))
+	}
+	return nil
+}
+
+func (k *rawKeeper) close() { k.ch.conn.close() }
 
 // startEpisodes runs cfg.Workers clients and hands them episode starts at
 // cfg.Rate per second until ctx ends. Starts are counted against the
@@ -235,27 +326,36 @@ loop:
 // simulate starts episodes at cfg.Rate per second on cfg.Workers clients,
 // which choose at every chooseEvery-th step and hand each finished episode
 // to be posted.
-func simulate(ctx context.Context, c *client.Client, cfg Config, chooseEvery int, finished chan<- client.Episode, chooses, errs, skipped *atomic.Int64) {
+func simulate(ctx context.Context, c *client.Client, target httpTarget, cfg Config, chooseEvery int, goClient bool, finished chan<- client.Episode, chooses, errs, skipped *atomic.Int64) {
 	run := time.Now().UnixNano()
 	startEpisodes(ctx, cfg, skipped, func(w int, starts <-chan struct{}) {
 		g := newGenerator(Config{States: cfg.States, Actions: cfg.Actions, StepsPerEpisode: cfg.StepsPerEpisode, Seed: cfg.Seed + uint64(w)},
 			fmt.Sprintf("mixed-%d-%d", run, w))
+		choose := func(state string) (string, float64, error) {
+			r, err := c.Choose(ctx, cfg.Policy, client.ChooseRequest{State: state, Mode: client.Explore})
+			return r.Action, r.Probability, err
+		}
+		if !goClient {
+			ch := newChooser(target)
+			defer ch.conn.close()
+			choose = func(state string) (string, float64, error) { return ch.choose(ctx, state, "", 0) }
+		}
 		for range starts {
 			ep := g.episode()
 			for i := range ep.Steps {
 				if i%chooseEvery != 0 {
 					continue
 				}
-				r, err := c.Choose(ctx, cfg.Policy, client.ChooseRequest{State: ep.Steps[i].State, Mode: client.Explore})
+				action, probability, err := choose(ep.Steps[i].State)
 				if err != nil {
-					if ctx.Err() != nil {
+					if runOver(ctx, err) {
 						return // the run is over: this episode is not posted
 					}
 					errs.Add(1)
 					continue
 				}
 				chooses.Add(1)
-				ep.Steps[i].Action, ep.Steps[i].Probability = r.Action, r.Probability
+				ep.Steps[i].Action, ep.Steps[i].Probability = action, probability
 			}
 			select {
 			case finished <- ep:
@@ -374,13 +474,14 @@ const arrivalProbePause = 100 * time.Millisecond
 // other traffic uses, each as its own request beside the load, and for
 // each measures the time from the post's 202 to the first choose (polled
 // every 5 ms) that knows the state: the episode waited behind whatever
-// backlog there was, was trained, and reached the API's copy.
-func probeArrival(ctx context.Context, c *client.Client, cfg Config, errs *atomic.Int64) (served []time.Duration, unserved int64) {
+// backlog there was, was trained, and reached the API's copy. With keep,
+// each probe is an episode qtally keeps (one recorded decision, its reward,
+// the end), timed from the end's answer.
+func probeArrival(ctx context.Context, c *client.Client, cfg Config, keep bool, errs *atomic.Int64) (served []time.Duration, unserved int64) {
 	run := time.Now().UnixNano()
 	for n := 0; ctx.Err() == nil; n++ {
 		state := fmt.Sprintf("arrival-probe-%d-%d", run, n)
-		ep := client.Episode{ID: state, Steps: []client.Step{{State: state, Action: cfg.Actions[0], Reward: 1, Probability: 1}}}
-		if _, err := c.PostEpisodes(ctx, cfg.Policy, []client.Episode{ep}); err != nil {
+		if err := arrive(ctx, c, cfg.Policy, state, cfg.Actions[0], keep); err != nil {
 			if ctx.Err() == nil {
 				errs.Add(1)
 			}
@@ -403,6 +504,24 @@ func probeArrival(ctx context.Context, c *client.Client, cfg Config, errs *atomi
 		}
 	}
 	return served, unserved
+}
+
+// arrive hands qtally a one-step episode in state, finished: posted, or
+// (keep) recorded, rewarded and ended in qtally.
+func arrive(ctx context.Context, c *client.Client, policy, state, action string, keep bool) error {
+	if !keep {
+		ep := client.Episode{ID: state, Steps: []client.Step{{State: state, Action: action, Reward: 1, Probability: 1}}}
+		_, err := c.PostEpisodes(ctx, policy, []client.Episode{ep})
+		return err
+	}
+	if _, err := c.ChooseRecorded(ctx, policy, state, 0, client.ChooseRequest{State: state, Mode: client.Explore}); err != nil {
+		return err
+	}
+	if _, err := c.AddReward(ctx, policy, state, 1, client.RewardOptions{Key: "0"}); err != nil {
+		return err
+	}
+	_, err := c.EndEpisode(ctx, policy, state, nil)
+	return err
 }
 
 // statusObserver follows training through the status route: no database

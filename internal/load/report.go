@@ -29,6 +29,8 @@ const (
 	FileMixedKept = "mixed-kept.json"
 	FileMemory    = "memory.json"
 	FileSustain   = "sustain.json"
+	// FileSustainKept: the sustained loop with the episodes kept by qtally.
+	FileSustainKept = "sustain-kept.json"
 )
 
 // Ceiling is one figure of the ceilings script's JSON output.
@@ -144,6 +146,10 @@ func Report(dir string) (string, error) {
 	if err := readJSON(filepath.Join(dir, FileSustain), &sustain); t.ok("sustained loop", err) {
 		t.sustained(sustain)
 	}
+	var sustainKept SustainReport
+	if err := readJSON(filepath.Join(dir, FileSustainKept), &sustainKept); t.ok("sustained loop, kept by qtally", err) {
+		t.sustainedKept(sustainKept, sustain)
+	}
 	var mem MemoryReport
 	if err := readJSON(filepath.Join(dir, FileMemory), &mem); t.ok("memory", err) {
 		scale := 1e6 / float64(max(mem.Pairs, 1))
@@ -231,30 +237,15 @@ func (t *table) info(label, value, ceiling string, raw float64) {
 // choose ceiling over the chooses of an episode and the COPY ceiling over
 // its steps), and arrival to served at that rate.
 func (t *table) sustained(s SustainReport) {
-	flat := 0
-	for _, tr := range s.Trials {
-		if tr.Flat {
-			flat++
-		}
-	}
-	label := fmt.Sprintf("sustained loop: highest flat rate (%.0f chooses and %d steps an episode; %d of %d trials of %.0f s flat)",
-		s.ChoosesPerEpisode, s.StepsPerEpisode, flat, len(s.Trials), s.TrialSec)
+	label := fmt.Sprintf("sustained loop: highest flat rate (%.0f chooses and %d steps an episode; %s)",
+		s.ChoosesPerEpisode, s.StepsPerEpisode, s.flatTrials())
 	row := [6]string{label, "no rate kept up", "", "", fmt.Sprintf(">= %gx", targetSustainRatio), "no"}
-	choose, okChoose := t.ceilings["echo_get_lookup_rps"]
-	store, okStore := t.ceilings["episode_copy_steps_per_s"]
-	var bound float64
-	if okChoose && okStore && s.ChoosesPerEpisode > 0 && s.StepsPerEpisode > 0 {
-		bound = min(choose.Median/s.ChoosesPerEpisode, store.Median/float64(s.StepsPerEpisode))
-		row[2] = fmt.Sprintf("min(`echo_get_lookup_rps` / %.0f, `episode_copy_steps_per_s` / %d) %s episodes/s",
-			s.ChoosesPerEpisode, s.StepsPerEpisode, human(bound))
-	} else {
-		row[2] = "`echo_get_lookup_rps` or `episode_copy_steps_per_s` missing"
-	}
-	if s.Best < 0 || s.Best >= len(s.Trials) {
+	bound := t.sustainBound(&row, s.ChoosesPerEpisode, s.StepsPerEpisode)
+	best, ok := s.best()
+	if !ok {
 		t.rows = append(t.rows, row)
 		return
 	}
-	best := s.Trials[s.Best]
 	row[1] = fmt.Sprintf("%s episodes/s (%s chooses/s)", human(best.EpisodesPerSec), human(best.ChoosesPerSec))
 	if bound > 0 {
 		r := best.EpisodesPerSec / bound
@@ -264,9 +255,73 @@ func (t *table) sustained(s SustainReport) {
 		}
 	}
 	t.rows = append(t.rows, row)
-	t.verdict(fmt.Sprintf("sustained loop: arrival to served p99 at that rate (%d probes, %d unserved at the end)", best.ArrivalProbes, best.ArrivalUnserved),
+	t.arrival("sustained loop", best)
+}
+
+// sustainedKept adds the rows of the sustained loop with the episodes kept
+// by qtally. Its bound is the ceilings' for the HTTP requests of an episode
+// (a recorded choose and a reward each step, and the end) and its steps'
+// COPY; no ceiling measures the durable writes every one of those requests
+// makes, so the ratio is shown without a target, beside the ratio to the
+// posted loop of the same run.
+func (t *table) sustainedKept(s, posted SustainReport) {
+	label := fmt.Sprintf("sustained loop, kept by qtally: highest flat rate (%.0f requests and %d steps an episode; %s)",
+		s.RequestsPerEpisode, s.StepsPerEpisode, s.flatTrials())
+	row := [6]string{label, "no rate kept up", "", "", "", ""}
+	bound := t.sustainBound(&row, s.RequestsPerEpisode, s.StepsPerEpisode)
+	best, ok := s.best()
+	if !ok {
+		t.rows = append(t.rows, row)
+		return
+	}
+	row[1] = fmt.Sprintf("%s episodes/s (%s recorded chooses/s)", human(best.EpisodesPerSec), human(best.ChoosesPerSec))
+	if p, ok := posted.best(); ok && p.EpisodesPerSec > 0 {
+		row[1] += fmt.Sprintf("; %.2fx the posted loop's rate", best.EpisodesPerSec/p.EpisodesPerSec)
+	}
+	if bound > 0 {
+		row[3] = fmt.Sprintf("%.2fx", best.EpisodesPerSec/bound)
+	}
+	t.rows = append(t.rows, row)
+	t.arrival("sustained loop, kept", best)
+}
+
+// sustainBound fills row's ceiling cell with the smaller of the choose
+// ceiling over the requests of an episode and the COPY ceiling over its
+// steps, and returns it (0 when a ceiling is missing).
+func (t *table) sustainBound(row *[6]string, requests float64, steps int) float64 {
+	choose, okChoose := t.ceilings["echo_get_lookup_rps"]
+	store, okStore := t.ceilings["episode_copy_steps_per_s"]
+	if !okChoose || !okStore || requests <= 0 || steps <= 0 {
+		row[2] = "`echo_get_lookup_rps` or `episode_copy_steps_per_s` missing"
+		return 0
+	}
+	bound := min(choose.Median/requests, store.Median/float64(steps))
+	row[2] = fmt.Sprintf("min(`echo_get_lookup_rps` / %.0f, `episode_copy_steps_per_s` / %d) %s episodes/s",
+		requests, steps, human(bound))
+	return bound
+}
+
+func (t *table) arrival(what string, best SustainTrial) {
+	t.verdict(fmt.Sprintf("%s: arrival to served p99 at that rate (%d probes, %d unserved at the end)", what, best.ArrivalProbes, best.ArrivalUnserved),
 		fmtDuration(best.ArrivalP99)+" (p50 "+fmtDuration(best.ArrivalP50)+", max "+fmtDuration(best.ArrivalMax)+")",
 		"<= "+fmtDuration(targetArrivalP99), best.ArrivalProbes > 0 && best.ArrivalP99 <= targetArrivalP99)
+}
+
+func (s SustainReport) flatTrials() string {
+	flat := 0
+	for _, tr := range s.Trials {
+		if tr.Flat {
+			flat++
+		}
+	}
+	return fmt.Sprintf("%d of %d trials of %.0f s flat", flat, len(s.Trials), s.TrialSec)
+}
+
+func (s SustainReport) best() (SustainTrial, bool) {
+	if s.Best < 0 || s.Best >= len(s.Trials) {
+		return SustainTrial{}, false
+	}
+	return s.Trials[s.Best], true
 }
 
 func (t *table) verdict(label, value, target string, met bool) {

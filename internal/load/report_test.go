@@ -111,3 +111,27 @@ func TestReportSustainedLoop(t *testing.T) {
 		t.Errorf("a run with no flat rate gave:\n%s", table)
 	}
 }
+
+// testdata/sustain/sustain-kept.json is a real `qtally load sustain
+// --keep-episodes` run at --quick size on a busy machine. Its bound counts
+// the requests of a kept episode (a recorded choose and a reward each
+// step, and the end), and it is shown beside the posted loop's rate of the
+// same directory, without a target.
+func TestReportSustainedLoopKeptByQtally(t *testing.T) {
+	table, err := Report("testdata/sustain")
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Best run: 22.9 episodes/s ended. Bound: min(4658 req/s / 41
+	// requests, 61,168 steps/s / 20 steps) = 114 episodes/s; 22.9 / 114 =
+	// 0.20; 22.9 / 79.8 (the posted loop's best) = 0.29.
+	want := "| sustained loop, kept by qtally: highest flat rate (41 requests and 20 steps an episode; 1 of 3 trials of 10 s flat) | " +
+		"22.9 episodes/s (737 recorded chooses/s); 0.29x the posted loop's rate | " +
+		"min(`echo_get_lookup_rps` / 41, `episode_copy_steps_per_s` / 20) 114 episodes/s | 0.20x |  |  |"
+	if !strings.Contains(table, want) {
+		t.Errorf("the table lacks\n%s\nin\n%s", want, table)
+	}
+	if !strings.Contains(table, "| sustained loop, kept: arrival to served p99 at that rate (16 probes, 0 unserved at the end) | 498.78 ms") {
+		t.Errorf("no arrival row for the kept loop in\n%s", table)
+	}
+}

@@ -39,7 +39,14 @@ type SustainTrial struct {
 type SustainReport struct {
 	StepsPerEpisode   int     `json:"steps_per_episode"`
 	ChoosesPerEpisode float64 `json:"chooses_per_episode"`
-	TrialSec          float64 `json:"trial_s"`
+	// KeepEpisodes: qtally kept the episodes (a recorded choose and a
+	// reward addition every step, an end), rather than clients posting
+	// them finished in batches.
+	KeepEpisodes bool `json:"keep_episodes,omitempty"`
+	// RequestsPerEpisode is what one episode costs the API in requests,
+	// posts counted as their share of a batch.
+	RequestsPerEpisode float64 `json:"requests_per_episode"`
+	TrialSec           float64 `json:"trial_s"`
 	// Best is the index in Trials of the highest flat rate; -1: none.
 	Best   int            `json:"best"`
 	Trials []SustainTrial `json:"trials"`
@@ -76,8 +83,13 @@ func Sustain(ctx context.Context, cfg Config, opt SustainOptions) (SustainReport
 		obs = statusObserver{c}
 	}
 	opt.Mixed.ProbeArrival = true
+	chooses := float64((cfg.StepsPerEpisode + opt.Mixed.ChooseEvery - 1) / opt.Mixed.ChooseEvery)
 	rep := SustainReport{StepsPerEpisode: cfg.StepsPerEpisode, TrialSec: cfg.Duration.Seconds(), Best: -1,
-		ChoosesPerEpisode: float64((cfg.StepsPerEpisode + opt.Mixed.ChooseEvery - 1) / opt.Mixed.ChooseEvery)}
+		ChoosesPerEpisode: chooses, KeepEpisodes: opt.Mixed.KeepEpisodes, RequestsPerEpisode: chooses + 1/float64(cfg.EpisodesPerPost)}
+	if opt.Mixed.KeepEpisodes {
+		// A recorded choose and a reward every step, and the end.
+		rep.RequestsPerEpisode = 2*float64(cfg.StepsPerEpisode) + 1
+	}
 	lo, hi := 0, 0 // highest flat rate, lowest rate that was not (0: none yet)
 	rate := cfg.Rate
 	for range opt.Trials {

@@ -106,6 +106,31 @@ func TestLoadScenariosAgainstService(t *testing.T) {
 		}
 	}
 
+	// The same loop with the episodes kept by qtally: a recorded choose
+	// and a reward each step, and the end, counted as requests an episode.
+	var sustainKept load.SustainReport
+	runLoad(t, &sustainKept, append([]string{"sustain", "--keep-episodes", "--duration", "2s", "--trials", "1", "--rate", "10", "--steps", "5",
+		"--workers", "8", "--database-url", databaseURL}, common...)...)
+	if len(sustainKept.Trials) != 1 || !sustainKept.KeepEpisodes || sustainKept.RequestsPerEpisode != 11 {
+		t.Fatalf("sustain, kept: %+v", sustainKept)
+	}
+	if tr := sustainKept.Trials[0]; tr.EpisodesPerSec == 0 || tr.ArrivalProbes == 0 || tr.Errors != 0 {
+		t.Fatalf("sustain, kept: %+v", tr)
+	}
+
+	// Go's http.Client, kept for comparison, sends the same requests.
+	for _, keep := range []bool{false, true} {
+		var viaGo load.MixedReport
+		args := []string{"mixed", "--go-client", "--duration", "1s", "--rate", "20", "--steps", "5", "--workers", "4", "--database-url", databaseURL}
+		if keep {
+			args = append(args, "--keep-episodes")
+		}
+		runLoad(t, &viaGo, append(args, common...)...)
+		if viaGo.Chooses == 0 || viaGo.Errors != 0 {
+			t.Fatalf("mixed with Go's client (kept %v): %d chooses, %d errors", keep, viaGo.Chooses, viaGo.Errors)
+		}
+	}
+
 	var mem load.MemoryReport
 	runLoad(t, &mem, append([]string{"memory", "--pairs", "4000", "--pprof-url", "http://" + pprofAddr}, common...)...)
 	if mem.Pairs != 4000 || mem.Before.HeapBytes == 0 || mem.After.RSSBytes == 0 {

@@ -20,6 +20,8 @@ import (
 func loadCommand(env flagEnv, getenv func(string) string, stdout, stderr io.Writer) *cli.Command {
 	def := load.DefaultConfig()
 	pprofURLFlag := &cli.StringFlag{Name: "pprof-url", Usage: "profiling server of the API process (its --pprof-listen), to read its memory"}
+	keepEpisodesFlag := &cli.BoolFlag{Name: "keep-episodes", Usage: "let qtally keep the episodes: record every step's choose, add its reward, end the episode (instead of posting it)"}
+	goClientFlag := &cli.BoolFlag{Name: "go-client", Usage: "simulated clients send with Go's http.Client instead of hand-formatted requests on kept-alive connections (for comparison: it costs the load generator about as much per request as the service)"}
 	common := []cli.Flag{
 		apiURLFlag(env, def.BaseURL, "base URL of the qtally to load (loopback only)", "QTALLY_LOAD_URL"),
 		&cli.StringFlag{Name: "policy", Value: def.Policy, Usage: "policy to create and load"},
@@ -79,10 +81,10 @@ func loadCommand(env flagEnv, getenv func(string) string, stdout, stderr io.Writ
 			{Name: "mixed", Usage: "simulated clients choose during episodes and post them as they end, at --rate episodes/s (a worker must run)",
 				Flags: append(common, &cli.IntFlag{Name: "choose-every", Value: 1, Usage: "choose at every n-th step (1: every step)"},
 					&cli.IntFlag{Name: "posters", Value: 16, Usage: "posts of finished episodes under way at once"},
-					&cli.BoolFlag{Name: "keep-episodes", Usage: "let qtally keep the episodes: record every step's choose, add its reward, end the episode (instead of posting it)"},
-					databaseFlag(env, false), pprofURLFlag),
+					keepEpisodesFlag, goClientFlag, databaseFlag(env, false), pprofURLFlag),
 				Action: func(ctx context.Context, cmd *cli.Command) error {
-					opt := load.MixedOptions{ChooseEvery: cmd.Int("choose-every"), Posters: cmd.Int("posters"), KeepEpisodes: cmd.Bool("keep-episodes")}
+					opt := load.MixedOptions{ChooseEvery: cmd.Int("choose-every"), Posters: cmd.Int("posters"),
+						KeepEpisodes: cmd.Bool(keepEpisodesFlag.Name), GoClient: cmd.Bool(goClientFlag.Name)}
 					if u := cmd.String(flagDatabaseURL); u != "" {
 						obs, err := openObserver(ctx, u, stderr)
 						if err != nil {
@@ -109,10 +111,11 @@ func loadCommand(env flagEnv, getenv func(string) string, stdout, stderr io.Writ
 					&cli.IntFlag{Name: "posters", Value: 16, Usage: "posts of finished episodes under way at once"},
 					&cli.IntFlag{Name: "trials", Value: 6, Usage: "rates to try"},
 					&cli.DurationFlag{Name: "drain-within", Value: 5 * time.Minute, Usage: "longest wait for the backlog to empty between trials"},
-					databaseFlag(env, false)),
+					keepEpisodesFlag, goClientFlag, databaseFlag(env, false)),
 				Action: func(ctx context.Context, cmd *cli.Command) error {
 					opt := load.SustainOptions{Trials: cmd.Int("trials"), Drain: cmd.Duration("drain-within"),
-						Mixed: load.MixedOptions{ChooseEvery: cmd.Int("choose-every"), Posters: cmd.Int("posters")}}
+						Mixed: load.MixedOptions{ChooseEvery: cmd.Int("choose-every"), Posters: cmd.Int("posters"),
+							KeepEpisodes: cmd.Bool(keepEpisodesFlag.Name), GoClient: cmd.Bool(goClientFlag.Name)}}
 					if u := cmd.String(flagDatabaseURL); u != "" {
 						obs, err := openObserver(ctx, u, stderr)
 						if err != nil {
