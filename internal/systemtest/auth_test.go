@@ -149,7 +149,7 @@ func TestRevokedTokensStopWorking(t *testing.T) {
 		t.Fatalf("revoke: %v\n%s", err, out)
 	}
 	revoked := time.Now()
-	waitFor(t, 30*time.Second, "the revoked token to be refused", func() bool {
+	waitFor(t, patience, "the revoked token to be refused", func() bool {
 		return s.as(secret).send("POST", "/v1/policies/alpha/choose", "application/json", []byte(`{"state":"s","mode":"explore"}`), false).Status == 401
 	})
 	t.Logf("refused %v after revocation (notification)", time.Since(revoked))
@@ -159,12 +159,12 @@ func TestRevokedTokensStopWorking(t *testing.T) {
 	// must still catch it.
 	reloading := startService(t, s.databaseURL, "serve", "--token-refresh", "1s")
 	quiet := createToken(t, s.databaseURL, "--label", "revoked quietly", "--scope", "choose")
-	waitFor(t, 30*time.Second, "a new token to be accepted", func() bool {
+	waitFor(t, patience, "a new token to be accepted", func() bool {
 		return reloading.as(quiet).send("POST", "/v1/policies/alpha/choose", "application/json", []byte(`{"state":"s","mode":"explore"}`), false).Status == 200
 	})
 	pgtest.Exec(t, s.databaseURL, `UPDATE api_tokens SET revoked_at = now() WHERE token_id = $1`, must(strconv.ParseInt(tokenID(t, quiet), 10, 64)))
 	revoked = time.Now()
-	waitFor(t, 30*time.Second, "the quietly revoked token to be refused", func() bool {
+	waitFor(t, patience, "the quietly revoked token to be refused", func() bool {
 		return reloading.as(quiet).send("POST", "/v1/policies/alpha/choose", "application/json", []byte(`{"state":"s","mode":"explore"}`), false).Status == 401
 	})
 	t.Logf("refused %v after revocation (periodic reload every 1 s)", time.Since(revoked))

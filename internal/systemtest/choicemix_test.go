@@ -89,7 +89,7 @@ func TestPolicyPageShowsChoicesAndEvents(t *testing.T) {
 	// The API process stores its counts every few seconds.
 	counted := regexp.MustCompile(`\(([\d,]+) of ([\d,]+)\)$`)
 	var page mixPage
-	waitFor(t, 60*time.Second, "the page to show all 100 choices", func() bool {
+	waitFor(t, patience, "the page to show all 100 choices", func() bool {
 		if err := chromedp.Do(ctx, chromedp.Navigate(s.URL+"/policies/"+policy+"?window=10m"), chromedp.WaitReady(chromedp.CSS("footer"))); err != nil {
 			t.Fatalf("open the policy page: %v", err)
 		}

@@ -294,11 +294,11 @@ func TestClientRetriesWithoutCountingTwice(t *testing.T) {
 			}
 		}
 	}()
-	waitFor(t, 20*time.Second, "some posts before the outage", func() bool { mu.Lock(); defer mu.Unlock(); return len(posted) > 3 })
+	waitFor(t, patience, "some posts before the outage", func() bool { mu.Lock(); defer mu.Unlock(); return len(posted) > 3 })
 	if err := srv.Halt(); err != nil {
 		t.Fatal(err)
 	}
-	waitFor(t, 20*time.Second, "the clients to retry after a 503", func() bool {
+	waitFor(t, patience, "the clients to retry after a 503", func() bool {
 		return len(seen.withStatus(http.StatusServiceUnavailable)) > 0 && len(seenByRecorder.withStatus(http.StatusServiceUnavailable)) > 2
 	})
 	if err := srv.Resume(ctx); err != nil {
@@ -307,7 +307,7 @@ func TestClientRetriesWithoutCountingTwice(t *testing.T) {
 	mu.Lock()
 	after := len(posted)
 	mu.Unlock()
-	waitFor(t, 30*time.Second, "posts to go through after the outage", func() bool { mu.Lock(); defer mu.Unlock(); return len(posted) > after+3 })
+	waitFor(t, patience, "posts to go through after the outage", func() bool { mu.Lock(); defer mu.Unlock(); return len(posted) > after+3 })
 	close(stop)
 	<-done
 	if postErr != nil {
@@ -562,7 +562,7 @@ func TestClientHonoursRetryAfterAndBoundsTheRecorder(t *testing.T) {
 	fill()
 	// Once the sender holds a batch (its post waiting out a 429), the queue
 	// takes more, up to its size again.
-	waitFor(t, 30*time.Second, "the sender to take a batch", func() bool { return rec.Stats().Posting == batch })
+	waitFor(t, patience, "the sender to take a batch", func() bool { return rec.Stats().Posting == batch })
 	fill()
 	if err := rec.Close(ctx); err != nil {
 		t.Fatal(err)
@@ -733,7 +733,7 @@ func TestClientSettingsNeedTheCurrentETag(t *testing.T) {
 	}
 	// The API's copy takes the new settings on notification.
 	var ch client.Choice
-	waitFor(t, 10*time.Second, "the fallback to reach choose", func() bool {
+	waitFor(t, patience, "the fallback to reach choose", func() bool {
 		ch, err = c.Choose(ctx, name, client.ChooseRequest{State: "stage=new", Mode: client.Greedy})
 		return client.ProblemOf(err) != client.ProblemNoGreedyAnswer
 	})

@@ -30,7 +30,7 @@ func (s *service) settings(policy string) policySettingsView {
 func waitChoice(t *testing.T, s *service, name, policy, state, want string, revision int64) chosen {
 	t.Helper()
 	var c chosen
-	waitFor(t, 30*time.Second, fmt.Sprintf("the %s process to answer %q for %q", name, want, state), func() bool {
+	waitFor(t, patience, fmt.Sprintf("the %s process to answer %q for %q", name, want, state), func() bool {
 		c = s.choose(policy, state)
 		return c.Action == want && (revision == 0 || c.Revision == revision)
 	})

@@ -202,7 +202,7 @@ func startPrometheus(t *testing.T, jobs map[string]string) *prometheusServer {
 		}
 	})
 	p := &prometheusServer{URL: "http://" + addr}
-	waitFor(t, 30*time.Second, "prometheus to be ready", func() bool {
+	waitFor(t, patience, "prometheus to be ready", func() bool {
 		select {
 		case <-exited:
 			t.Fatalf("prometheus exited:\n%s", logs)
@@ -293,7 +293,7 @@ func TestDashboardQueriesReturnData(t *testing.T) {
 	// Keep the service busy while Prometheus takes enough samples for
 	// rate() over the substituted $__rate_interval.
 	round := 1
-	waitFor(t, 60*time.Second, "8 scrapes of both targets", func() bool {
+	waitFor(t, patience, "8 scrapes of both targets", func() bool {
 		feedLearningWork(t, apiProc, policy, rng, round)
 		round++
 		time.Sleep(500 * time.Millisecond)

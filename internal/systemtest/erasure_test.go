@@ -86,7 +86,7 @@ func TestErasingAnEpisodeAndDeletingAPolicy(t *testing.T) {
 		}
 	}
 	s.call("GET", base, nil, 404)
-	waitFor(t, 10*time.Second, "choose to forget the deleted policy", func() bool {
+	waitFor(t, patience, "choose to forget the deleted policy", func() bool {
 		return s.send("POST", base+"/choose", "application/json", []byte(`{"state":"day=2","mode":"greedy"}`), false).Status == 404
 	})
 	// The name can be used again, for a policy that starts empty.

@@ -150,7 +150,7 @@ func TestSeveralProcessesShareOneDatabase(t *testing.T) {
 	for _, ps := range policies {
 		final := s.status(ps.name).Revision
 		for i, a := range apis {
-			waitFor(t, 30*time.Second, fmt.Sprintf("API %d to choose from revision %d of %s", i, final, ps.name), func() bool {
+			waitFor(t, patience, fmt.Sprintf("API %d to choose from revision %d of %s", i, final, ps.name), func() bool {
 				c, err := choose(a.client(30*time.Second), a.URL, ps.name, "day 0/bucket")
 				return err == nil && c.Revision == final
 			})
@@ -214,11 +214,11 @@ func TestIngestCommitsInArrivalOrder(t *testing.T) {
 		t.Fatal(err)
 	}
 	defer watch.Close(ctx)
-	waitFor(t, 30*time.Second, "the first request to wait on the held id", func() bool { return lockWaits(t, watch) == 1 })
+	waitFor(t, patience, "the first request to wait on the held id", func() bool { return lockWaits(t, watch) == 1 })
 	posts.Go(func() { l.post(ctx, client, s.URL, ps.name, late) })
 	// Either the second request waits for the first, or it is stored and
 	// trained ahead of it.
-	waitFor(t, 30*time.Second, "the second request to wait or be trained", func() bool {
+	waitFor(t, patience, "the second request to wait or be trained", func() bool {
 		if lockWaits(t, watch) == 2 {
 			return true
 		}

@@ -4,7 +4,6 @@ import (
 	"net/url"
 	"strings"
 	"testing"
-	"time"
 
 	"github.com/qtally/qtally/storage/pgtest"
 )
@@ -46,7 +45,7 @@ func TestGreedyAnswersOnlyWithTriedActions(t *testing.T) {
 			req["allowed"] = allowed
 		}
 		var c chooseAnswer
-		waitFor(t, 10*time.Second, "choose to hold the latest revision", func() bool {
+		waitFor(t, patience, "choose to hold the latest revision", func() bool {
 			s.call("POST", base+"/choose", req, 200).decode(t, &c)
 			return c.Revision >= revision
 		})
@@ -85,7 +84,7 @@ func TestGreedyAnswersOnlyWithTriedActions(t *testing.T) {
 
 	// With a fallback action, greedy answers it where nothing is tried enough.
 	s.patch(base, `{"greedy_fallback":"wait","greedy_min_visits":2}`, 200)
-	waitFor(t, 10*time.Second, "the fallback to reach choose", func() bool {
+	waitFor(t, patience, "the fallback to reach choose", func() bool {
 		var c chooseAnswer
 		r := s.send("POST", base+"/choose", "application/json", []byte(`{"state":"day=9","mode":"greedy"}`), false)
 		if r.Status != 200 {
@@ -114,7 +113,7 @@ func TestGreedyAnswersOnlyWithTriedActions(t *testing.T) {
 
 	// The policy may let untried actions compete with their initial value.
 	s.patch(base, `{"greedy_untried":true,"greedy_min_visits":0,"greedy_fallback":null}`, 200)
-	waitFor(t, 10*time.Second, "greedy_untried to reach choose", func() bool {
+	waitFor(t, patience, "greedy_untried to reach choose", func() bool {
 		var c chooseAnswer
 		s.call("POST", base+"/choose", map[string]any{"state": "day=3", "mode": "greedy"}, 200).decode(t, &c)
 		return c.Action == "write_off" && c.Visits == 0

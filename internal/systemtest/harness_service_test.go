@@ -268,6 +268,11 @@ func (s *service) call(method, path string, body any, wantStatus int) reply {
 }
 
 // waitFor polls cond until it holds or the deadline passes.
+// patience is how long a test waits for what must happen: only a hang
+// takes this long, even on a machine busy with a benchmark beside the tests
+// and the other tests running in parallel.
+const patience = 2 * time.Minute
+
 func waitFor(t testing.TB, within time.Duration, what string, cond func() bool) {
 	t.Helper()
 	deadline := time.Now().Add(within)

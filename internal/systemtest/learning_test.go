@@ -29,7 +29,7 @@ func (s *service) status(policy string) policyStatus {
 
 func (s *service) waitTrained(policy string, episodes int64) policyStatus {
 	var st policyStatus
-	waitFor(s.t, 30*time.Second, policy+" to train every episode", func() bool {
+	waitFor(s.t, patience, policy+" to train every episode", func() bool {
 		st = s.status(policy)
 		return st.Episodes == episodes && st.Backlog == 0
 	})
@@ -153,7 +153,7 @@ func TestChooseSeesEveryTrainingCommit(t *testing.T) {
 		s.call("POST", "/v1/policies/handoff/episodes", map[string]any{"episodes": eps}, 202)
 		st := s.waitTrained("handoff", int64(2*(round+1)))
 		committed := time.Now()
-		waitFor(t, 30*time.Second, "choose to see revision "+fmt.Sprint(st.Revision), func() bool {
+		waitFor(t, patience, "choose to see revision "+fmt.Sprint(st.Revision), func() bool {
 			s.call("POST", "/v1/policies/handoff/choose", map[string]any{"state": "angry customer", "mode": "greedy"}, 200).decode(t, &c)
 			return c.Revision >= st.Revision
 		})
@@ -215,7 +215,7 @@ func TestChooseFrequenciesOverHTTP(t *testing.T) {
 	s.call("POST", "/v1/policies/sampled/episodes", map[string]any{"episodes": []episodeJSON{
 		{ID: "1", Steps: []stepJSON{{State: "late", Action: "remind", Reward: 5}}}}}, 202)
 	s.waitTrained("sampled", 1)
-	waitFor(t, 30*time.Second, "choose to know the state", func() bool {
+	waitFor(t, patience, "choose to know the state", func() bool {
 		var c struct {
 			KnownState bool `json:"known_state"`
 		}

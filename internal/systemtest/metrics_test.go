@@ -64,7 +64,7 @@ func TestMetricsPassPromtoolAndFollowRoles(t *testing.T) {
 	apiOnly.call("POST", "/v1/policies/"+policy+"/open-episodes/kept-1/rewards", map[string]any{"reward": 1}, 200)
 	apiOnly.call("POST", "/v1/policies/"+policy+"/open-episodes/kept-1/end", nil, 200)
 	st := apiOnly.waitTrained(policy, 21)
-	waitFor(t, 30*time.Second, "the API's copy to reach the trained revision", func() bool {
+	waitFor(t, patience, "the API's copy to reach the trained revision", func() bool {
 		_, f := apiOnly.scrape()
 		return gaugeOf(f, "qtally_q_copy_revision", policy) >= float64(st.Revision)
 	})
@@ -196,7 +196,7 @@ func TestVisitMetricsFollowTheTable(t *testing.T) {
 		// notification.
 		s.call("POST", "/v1/policies/"+policy+"/choose", map[string]any{"state": "day 0/bucket", "mode": "explore"}, 200)
 		var families map[string]*dto.MetricFamily
-		waitFor(t, 30*time.Second, "the copy to reach the trained revision", func() bool {
+		waitFor(t, patience, "the copy to reach the trained revision", func() bool {
 			_, families = s.scrape()
 			return gaugeOf(families, "qtally_q_copy_revision", policy) == float64(st.Revision)
 		})

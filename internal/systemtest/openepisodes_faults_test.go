@@ -217,7 +217,7 @@ func TestKilledProcessAnswersRetriesWithRecordedDecisions(t *testing.T) {
 	fmt.Fprintf(conn, "POST /v1/policies/arrears/choose HTTP/1.1\r\nHost: x\r\nAuthorization: Bearer %s\r\nContent-Type: application/json\r\nContent-Length: %d\r\n\r\n%s", token, len(body), body)
 	db := must(pgx.Connect(context.Background(), databaseURL))
 	defer db.Close(context.Background())
-	waitFor(t, 20*time.Second, "the decision to be stored", func() bool {
+	waitFor(t, patience, "the decision to be stored", func() bool {
 		var n int
 		must(0, db.QueryRow(context.Background(), `SELECT count(*) FROM open_episode_steps WHERE episode_id = 'lost-answer'`).Scan(&n))
 		return n == 1
@@ -288,7 +288,7 @@ func TestRecordedChoosesThroughDatabaseOutage(t *testing.T) {
 		defer k.mu.Unlock()
 		return k.requests, k.unavailable
 	}
-	waitFor(t, 20*time.Second, "some episodes to end", func() bool {
+	waitFor(t, patience, "some episodes to end", func() bool {
 		k.mu.Lock()
 		defer k.mu.Unlock()
 		return len(k.ended) > 5
@@ -296,7 +296,7 @@ func TestRecordedChoosesThroughDatabaseOutage(t *testing.T) {
 	if err := srv.Halt(); err != nil {
 		t.Fatal(err)
 	}
-	waitFor(t, 20*time.Second, "a request to be answered 503", func() bool {
+	waitFor(t, patience, "a request to be answered 503", func() bool {
 		_, unavailable := counts()
 		return unavailable > 0
 	})
@@ -305,7 +305,7 @@ func TestRecordedChoosesThroughDatabaseOutage(t *testing.T) {
 		t.Fatal(err)
 	}
 	requestsBefore, _ := counts()
-	waitFor(t, 30*time.Second, "requests to be answered again", func() bool {
+	waitFor(t, patience, "requests to be answered again", func() bool {
 		requests, _ := counts()
 		return requests > requestsBefore+20
 	})
@@ -313,7 +313,7 @@ func TestRecordedChoosesThroughDatabaseOutage(t *testing.T) {
 		t.Fatal(err)
 	}
 	requestsBefore, _ = counts()
-	waitFor(t, 30*time.Second, "requests to be answered after the restart", func() bool {
+	waitFor(t, patience, "requests to be answered after the restart", func() bool {
 		requests, _ := counts()
 		return requests > requestsBefore+20
 	})

@@ -10,7 +10,6 @@ import (
 	"strings"
 	"sync"
 	"testing"
-	"time"
 
 	"github.com/qtally/qtally/storage/pgtest"
 )
@@ -338,7 +337,7 @@ func TestIdleOpenEpisodesAreEndedOrDropped(t *testing.T) {
 			s.record(p.name, fmt.Sprintf("e%d", i), 0, "x")
 		}
 	}
-	waitFor(t, 30*time.Second, "idle episodes to be closed", func() bool {
+	waitFor(t, patience, "idle episodes to be closed", func() bool {
 		m := string(s.call("GET", "/metrics", nil, 200).Body)
 		return strings.Contains(m, `qtally_open_episodes_closed_total{how="idle_ended",policy="patient"} 3`) &&
 			strings.Contains(m, `qtally_open_episodes_closed_total{how="idle_dropped",policy="strict"} 3`)

@@ -93,10 +93,10 @@ func TestDatabaseOutage(t *testing.T) {
 			l.postUntil(ctx, uint64(30+c), fmt.Sprintf("client%d", c), 0, []string{api.URL}, []policySpec{ps})
 		})
 	}
-	waitFor(t, 30*time.Second, "some episodes to be trained", func() bool { return s.status(ps.name).Revision > 2 })
+	waitFor(t, patience, "some episodes to be trained", func() bool { return s.status(ps.name).Revision > 2 })
 	pr := &probe{readyCodes: map[int]int{}, authorization: s.authorization}
 	clients.Go(func() { pr.run(ctx, api.URL, ps.name) })
-	waitFor(t, 30*time.Second, "choose to answer", func() bool { return pr.ready() == http.StatusOK })
+	waitFor(t, patience, "choose to answer", func() bool { return pr.ready() == http.StatusOK })
 
 	// A stop of some seconds.
 	_, unavailableBefore, _, _ := l.counts()
@@ -106,8 +106,8 @@ func TestDatabaseOutage(t *testing.T) {
 		t.Fatal(err)
 	}
 	halted := time.Now()
-	waitFor(t, 30*time.Second, "/readyz to report the outage", func() bool { return pr.ready() == http.StatusServiceUnavailable })
-	waitFor(t, 30*time.Second, "a post to be answered 503", func() bool {
+	waitFor(t, patience, "/readyz to report the outage", func() bool { return pr.ready() == http.StatusServiceUnavailable })
+	waitFor(t, patience, "a post to be answered 503", func() bool {
 		_, unavailable, _, _ := l.counts()
 		return unavailable > unavailableBefore
 	})

@@ -41,14 +41,14 @@ func TestTrainedEpisodesArePrunedAfterTheRetention(t *testing.T) {
 	if st := s.waitTrained("alerts", 10); st.Pairs != 1 {
 		t.Fatalf("alerts: %+v", st)
 	}
-	waitFor(t, 30*time.Second, "trained episodes to be pruned", func() bool { return s.status("alerts").Episodes == 0 })
+	waitFor(t, patience, "trained episodes to be pruned", func() bool { return s.status("alerts").Episodes == 0 })
 	if st := s.status("alerts"); st.Pairs != 1 {
 		t.Fatalf("pruning lost learned values: %+v", st)
 	}
 	// A pass counts what it deleted once it has been through every policy,
 	// a moment after the deletes commit.
 	var metrics string
-	waitFor(t, 30*time.Second, "the metrics to count the 10 pruned episodes", func() bool {
+	waitFor(t, patience, "the metrics to count the 10 pruned episodes", func() bool {
 		metrics = string(s.send("GET", "/metrics", "", nil, false).Body)
 		return strings.Contains(metrics, `qtally_episodes_pruned_total{policy="alerts"} 10`)
 	})
@@ -60,7 +60,7 @@ func TestTrainedEpisodesArePrunedAfterTheRetention(t *testing.T) {
 	if _, err := conn.Exec(context.Background(), `SELECT pg_advisory_unlock($1, $2)`, trainingLockClass, held); err != nil {
 		t.Fatal(err)
 	}
-	waitFor(t, 30*time.Second, "held episodes to be trained, then pruned", func() bool {
+	waitFor(t, patience, "held episodes to be trained, then pruned", func() bool {
 		st := s.status("held")
 		return st.Episodes == 0 && st.Pairs == 1
 	})

@@ -333,7 +333,7 @@ func runSharedDatabaseFleet(t testing.TB, requests int) []time.Duration {
 		}
 		return true
 	})
-	waitFor(t, 30*time.Second, "the watchers to see the final revisions too", func() bool {
+	waitFor(t, patience, "the watchers to see the final revisions too", func() bool {
 		for p := range policies {
 			if watched[p].Load() < final[p] {
 				return false

@@ -117,10 +117,10 @@ func TestSIGTERM(t *testing.T) {
 		h := holdUp(t, ctx, databaseURL, ps.name, name+"-post-2")
 		batch := []episodeJSON{episode(name+"-batch-1", 3), episode(name+"-batch-2", -1)}
 		postNow(s, batch...)
-		waitFor(t, 30*time.Second, "the worker to wait for the locked rows", func() bool { return lockWaits(t, watch) == 1 })
+		waitFor(t, patience, "the worker to wait for the locked rows", func() bool { return lockWaits(t, watch) == 1 })
 		post := []episodeJSON{episode(name+"-post-1", 5), episode(name+"-post-2", 7)}
 		answer := postAsync(p.client(30*time.Second), p.URL, ps.name, post)
-		waitFor(t, 30*time.Second, "the post to wait for the held id", func() bool { return lockWaits(t, watch) == 2 })
+		waitFor(t, patience, "the post to wait for the held id", func() bool { return lockWaits(t, watch) == 2 })
 		p.signal(syscall.SIGTERM)
 		return p, h, answer, batch, post
 	}

@@ -181,7 +181,7 @@ func TestSnapshotDiffAndRestoreRollBack(t *testing.T) {
 	if c := s.choose("routing", "angry reply"); c.KnownState {
 		t.Fatalf("a state learned after the snapshot is still served: %+v", c)
 	}
-	waitFor(t, 30*time.Second, "the other API process to drop the rows the restore removed", func() bool {
+	waitFor(t, patience, "the other API process to drop the rows the restore removed", func() bool {
 		c := other.choose("routing", "angry reply")
 		return !c.KnownState && other.choose("routing", "late invoice").Action == "call"
 	})
