@@ -5,7 +5,6 @@ import (
 	"fmt"
 	"strings"
 	"testing"
-	"time"
 
 	"github.com/jackc/pgx/v5"
 
@@ -52,7 +51,22 @@ func TestTrainedEpisodesArePrunedAfterTheRetention(t *testing.T) {
 		metrics = string(s.send("GET", "/metrics", "", nil, false).Body)
 		return strings.Contains(metrics, `qtally_episodes_pruned_total{policy="alerts"} 10`)
 	})
-	time.Sleep(1500 * time.Millisecond) // older than the retention, and several passes
+	// The held episodes age past the retention (moved back in SQL: pruning
+	// compares with the database's now()). Passes run one after another,
+	// so when an alerts episode posted after the pass that counted the one
+	// before it is pruned and counted too, a whole pass, held included, ran
+	// after the aging.
+	pgtest.Exec(t, db, `UPDATE episodes SET received_at = received_at - interval '1 hour' WHERE policy_id = $1`, held)
+	alerts := policyID(t, conn, "alerts")
+	for n := 11; n <= 12; n++ {
+		s.post("alerts", oneStep(fmt.Sprint("after-aging-", n), "disk full", "page", 1))
+		s.waitTrained("alerts", 1)
+		pgtest.Exec(t, db, `UPDATE episodes SET received_at = received_at - interval '1 hour' WHERE policy_id = $1`, alerts)
+		waitFor(t, patience, "a pruning pass after the held episodes aged", func() bool {
+			metrics = string(s.send("GET", "/metrics", "", nil, false).Body)
+			return strings.Contains(metrics, fmt.Sprintf(`qtally_episodes_pruned_total{policy="alerts"} %d`, n))
+		})
+	}
 	if st := s.status("held"); st.Episodes != 4 || st.Backlog != 4 {
 		t.Fatalf("untrained episodes were pruned: %+v", st)
 	}
