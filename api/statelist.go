@@ -19,17 +19,32 @@ type statesResponse struct {
 	NextCursor string `json:"next_cursor,omitempty"`
 }
 
+// stateListing is a page of states as a request asked for it: the policy
+// of its path, the query of its parameters and what they found.
+type stateListing struct {
+	policy string
+	query  views.StateQuery
+	views.StatePage
+}
+
+// listStates reads the page of states a request asks for; the JSON route
+// and the status page share it.
+func listStates(c echo.Context, s States) (stateListing, error) {
+	name, err := policyParam(c)
+	if err != nil {
+		return stateListing{}, err
+	}
+	q, err := bindStateQuery(c)
+	if err != nil {
+		return stateListing{}, err
+	}
+	page, err := s.ListStates(c.Request().Context(), name, q)
+	return stateListing{policy: name, query: q, StatePage: page}, err
+}
+
 func handleListStates(s States) echo.HandlerFunc {
 	return func(c echo.Context) error {
-		name, err := policyParam(c)
-		if err != nil {
-			return err
-		}
-		q, err := bindStateQuery(c)
-		if err != nil {
-			return err
-		}
-		page, err := s.ListStates(c.Request().Context(), name, q)
+		page, err := listStates(c, s)
 		if err != nil {
 			return err
 		}

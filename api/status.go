@@ -448,19 +448,12 @@ type statesView struct {
 
 func handleStatesPage(s States) echo.HandlerFunc {
 	return func(c echo.Context) error {
-		name, err := policyParam(c)
-		if err != nil {
-			return err
-		}
-		q, err := bindStateQuery(c)
-		if err != nil {
-			return err
-		}
-		page, err := s.ListStates(c.Request().Context(), name, q)
+		page, err := listStates(c, s)
 		if err != nil {
 			return err
 		}
 		now := time.Now()
+		name, q := page.policy, page.query
 		v := statesView{pageBase: pageBase{Title: name + " states", Now: now, SignOut: inSession(c)}, Policy: name, Sort: q.Order,
 			Rows: newStateRows(page.States, now)}
 		for _, o := range views.StateOrders {

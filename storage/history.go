@@ -74,6 +74,17 @@ func (db *DB) History() HistorySettings {
 	return db.history
 }
 
+// historySums adds a history row's sums to the stored row of its bucket:
+// the rolled-up rows and a batch's own row add up the same way.
+const historySums = `episodes = h.episodes + excluded.episodes,
+	steps = h.steps + excluded.steps,
+	sum_return = h.sum_return + excluded.sum_return,
+	sum_abs_delta = h.sum_abs_delta + excluded.sum_abs_delta,
+	updates = h.updates + excluded.updates,
+	greedy_changes = h.greedy_changes + excluded.greedy_changes,
+	new_states = h.new_states + excluded.new_states,
+	new_pairs = h.new_pairs + excluded.new_pairs,`
+
 // historyWrite adds a batch to its policy's current fine bucket, rolls the
 // policy's fine rows that left the fine window up into coarse rows, and
 // drops coarse rows that left the window, in one statement of the batch's
@@ -100,14 +111,7 @@ const historyWrite = `
 		GROUP BY 3
 		ON CONFLICT (policy_id, fine, bucket_start) DO UPDATE SET
 			batches = h.batches + excluded.batches,
-			episodes = h.episodes + excluded.episodes,
-			steps = h.steps + excluded.steps,
-			sum_return = h.sum_return + excluded.sum_return,
-			sum_abs_delta = h.sum_abs_delta + excluded.sum_abs_delta,
-			updates = h.updates + excluded.updates,
-			greedy_changes = h.greedy_changes + excluded.greedy_changes,
-			new_states = h.new_states + excluded.new_states,
-			new_pairs = h.new_pairs + excluded.new_pairs,
+			` + historySums + `
 			backlog = coalesce(h.backlog, excluded.backlog),
 			last_batch_at = greatest(h.last_batch_at, excluded.last_batch_at)
 	), pruned AS (
@@ -128,14 +132,7 @@ const historyWrite = `
 	FROM bucket b
 	ON CONFLICT (policy_id, fine, bucket_start) DO UPDATE SET
 		batches = h.batches + 1,
-		episodes = h.episodes + excluded.episodes,
-		steps = h.steps + excluded.steps,
-		sum_return = h.sum_return + excluded.sum_return,
-		sum_abs_delta = h.sum_abs_delta + excluded.sum_abs_delta,
-		updates = h.updates + excluded.updates,
-		greedy_changes = h.greedy_changes + excluded.greedy_changes,
-		new_states = h.new_states + excluded.new_states,
-		new_pairs = h.new_pairs + excluded.new_pairs,
+		` + historySums + `
 		-- A later batch of the bucket keeps the sample of an earlier one.
 		backlog = coalesce(h.backlog, excluded.backlog),
 		last_batch_at = excluded.last_batch_at`
