@@ -16,7 +16,8 @@ import (
 
 // DecisionBatcher records the decisions of concurrent requests together:
 // it gathers those that arrive while earlier commits are under way, commits
-// each policy's in one transaction, and only then lets each request
+// each policy's together (the next steps of open episodes in one round
+// trip, the rest in one more transaction), and only then lets each request
 // answer. One durable commit costs about as much for a hundred rows as for
 // one, so recording costs a request a share of a commit rather than a
 // commit of its own.
@@ -192,10 +193,26 @@ type decisionOutcome struct {
 // transactions in turn, one each attempt, so once is not enough.
 const recordAttempts = 8
 
-// recordDecisions records one policy's decisions in one transaction and
-// sets each one's outcome. A deadlock or a unique violation (another batch
-// or process opened the same episode meanwhile) is retried.
+// recordDecisions records one policy's decisions and sets each one's
+// outcome. The next steps of open episodes, nearly every decision under a
+// steady load, are stored in one round trip; the rest (openings, retries,
+// refusals, and any next step the first attempt did not take) in one
+// transaction that reads before it writes. A deadlock or a unique
+// violation (another batch or process opened the same episode meanwhile)
+// is retried.
 func (db *DB) recordDecisions(ctx context.Context, policyID int32, group []*pendingDecision) {
+	if next, others := splitNextSteps(group); len(next) > 0 {
+		left, err := db.recordNextSteps(ctx, policyID, next)
+		if err != nil {
+			// Nothing of the attempt is stored: the whole group takes the
+			// general path.
+			left = next
+		}
+		group = append(others, left...)
+		if len(group) == 0 {
+			return
+		}
+	}
 	outcomes, err := db.recordOnce(ctx, policyID, group)
 	for attempt := 1; attempt < recordAttempts && (isUniqueViolation(err) || isDeadlock(err)); attempt++ {
 		outcomes, err = db.recordOnce(ctx, policyID, group)
@@ -207,6 +224,78 @@ func (db *DB) recordDecisions(ctx context.Context, policyID int32, group []*pend
 		}
 		p.stored, p.repeated, p.err = outcomes[i].stored, outcomes[i].repeated, outcomes[i].err
 	}
+}
+
+// splitNextSteps picks the decisions that may be next steps of open
+// episodes: not step 0 (which opens an episode, or repeats its opening) and
+// the only decision of its episode in the group.
+func splitNextSteps(group []*pendingDecision) (next, others []*pendingDecision) {
+	perEpisode := make(map[string]int, len(group))
+	for _, p := range group {
+		perEpisode[p.d.Episode]++
+	}
+	for _, p := range group {
+		if p.d.Step > 0 && perEpisode[p.d.Episode] == 1 {
+			next = append(next, p)
+		} else {
+			others = append(others, p)
+		}
+	}
+	return next, others
+}
+
+// recordNextSteps stores, in one round trip (BEGIN, one statement, COMMIT
+// pipelined), those decisions whose step is the next of an open episode
+// within the policy's step limit, sets their outcomes, and returns the
+// others untouched for the general path, which answers each with a repeat
+// or a refusal. The episodes' rows are locked in one order, as the general
+// path and ending lock them; a row changed meanwhile is checked again
+// after the other transaction commits, so a step is taken once.
+func (db *DB) recordNextSteps(ctx context.Context, policyID int32, next []*pendingDecision) ([]*pendingDecision, error) {
+	now := time.Now()
+	ds := make([]training.Decision, len(next))
+	for i, p := range next {
+		ds[i] = p.d
+		ds[i].ChosenAt = now
+	}
+	stored := make(map[string]bool, len(next))
+	err := db.WithConn(ctx, func(conn *pgx.Conn) error {
+		var b pgx.Batch
+		b.Queue(`BEGIN`)
+		b.Queue(`
+			WITH asked AS (`+decisionsFromArrays+`),
+			locked AS (
+				SELECT o.episode_id FROM open_episodes o JOIN asked a ON a.episode_id = o.episode_id
+				WHERE o.policy_id = $1 AND o.steps = a.step
+					AND a.step < (SELECT max_open_episode_steps FROM policies WHERE policy_id = $1)
+				ORDER BY o.episode_id FOR UPDATE OF o),
+			taken AS (
+				UPDATE open_episodes o SET steps = o.steps + 1, last_active_at = now()
+				FROM locked l WHERE o.policy_id = $1 AND o.episode_id = l.episode_id
+				RETURNING o.episode_id)
+			INSERT INTO open_episode_steps (policy_id, `+decisionColumns+`)
+			SELECT $1, a.* FROM asked a JOIN taken USING (episode_id)
+			RETURNING episode_id`, decisionArrays(policyID, ds)...).
+			Query(func(rows pgx.Rows) error {
+				var id string
+				_, err := pgx.ForEachRow(rows, []any{&id}, func() error { stored[id] = true; return nil })
+				return err
+			})
+		b.Queue(`COMMIT`)
+		return conn.SendBatch(ctx, &b).Close()
+	})
+	if err != nil {
+		return nil, fmt.Errorf("record next steps: %w", err)
+	}
+	var left []*pendingDecision
+	for i, p := range next {
+		if stored[p.d.Episode] {
+			p.stored = ds[i]
+		} else {
+			left = append(left, p)
+		}
+	}
+	return left, nil
 }
 
 // recordOnce runs recordInTx on a connection of its own; the transaction
@@ -433,6 +522,19 @@ func recordInTx(ctx context.Context, conn *pgx.Conn, policyID int32, group []*pe
 }
 
 func queueDecisions(b *pgx.Batch, policyID int32, ds []training.Decision) {
+	b.Queue(`INSERT INTO open_episode_steps (policy_id, `+decisionColumns+`) SELECT $1, * FROM (`+decisionsFromArrays+`) a`,
+		decisionArrays(policyID, ds)...)
+}
+
+// decisionsFromArrays is a relation of decisions, in decisionColumns'
+// order, from the arrays decisionArrays gives as $2 on ($1 is the policy).
+const decisionsFromArrays = `SELECT * FROM unnest($2::text[], $3::integer[], $4::text[], $5::smallint[], $6::smallint[],
+	$7::double precision[], $8::bytea[], $9::text[], $10::boolean[], $11::boolean[], $12::bigint[],
+	$13::double precision[], $14::timestamptz[]) AS d(` + decisionColumns + `)`
+
+// decisionArrays is the policy and one array per column of ds, the
+// arguments of a statement using decisionsFromArrays.
+func decisionArrays(policyID int32, ds []training.Decision) []any {
 	n := len(ds)
 	episodes, states, modes := make([]string, n), make([]string, n), make([]string, n)
 	steps := make([]int32, n)
@@ -447,12 +549,7 @@ func queueDecisions(b *pgx.Batch, policyID int32, ds []training.Decision) {
 		actions[i], greedy[i], probs[i], allowed[i] = d.Action, d.Greedy, d.Probability, d.Allowed
 		explored[i], known[i], revisions[i], ages[i], chosen[i] = d.Explored, d.KnownState, d.Revision, d.CopyAge.Seconds(), d.ChosenAt
 	}
-	b.Queue(`
-		INSERT INTO open_episode_steps (policy_id, `+decisionColumns+`)
-		SELECT $1, * FROM unnest($2::text[], $3::integer[], $4::text[], $5::smallint[], $6::smallint[],
-			$7::double precision[], $8::bytea[], $9::text[], $10::boolean[], $11::boolean[], $12::bigint[],
-			$13::double precision[], $14::timestamptz[])`,
-		policyID, episodes, steps, states, actions, greedy, probs, allowed, modes, explored, known, revisions, ages, chosen)
+	return []any{policyID, episodes, steps, states, actions, greedy, probs, allowed, modes, explored, known, revisions, ages, chosen}
 }
 
 // countShards is how many rows a policy's open-episode counts spread over:

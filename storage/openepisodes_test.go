@@ -71,3 +71,129 @@ func TestStoppedBatcherRefusesDecisions(t *testing.T) {
 		t.Fatalf("Record after Run ended: %v, want unavailable", err)
 	}
 }
+
+// Two processes' batchers racing for the same next steps: each step of
+// each episode is stored once and every other request for it is answered
+// with that same decision (or refused, when it names another state); a
+// step past the policy's limit is refused; an end racing a next step
+// either carries the step or refuses it, never loses an answered one.
+func TestRacingNextStepsAreRecordedOnce(t *testing.T) {
+	ctx := context.Background()
+	db := openDB(t)
+	settings := training.DefaultSettings()
+	settings.Actions = []string{"a", "b"}
+	settings.MaxOpenEpisodeSteps = 6
+	p, _, err := db.PutPolicy(ctx, "racing", settings)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var batchers []*storage.DecisionBatcher
+	runCtx, stop := context.WithCancel(ctx)
+	var running sync.WaitGroup
+	defer func() { stop(); running.Wait() }()
+	for range 2 {
+		b := db.NewDecisionBatcher(storage.GroupCommit{MaxBatch: 64, InFlight: 2, Window: 200 * time.Microsecond})
+		batchers = append(batchers, b)
+		running.Go(func() { _ = b.Run(runCtx) })
+	}
+	decision := func(episode string, step int, state string, action int16) training.Decision {
+		return training.Decision{PolicyID: p.ID, Episode: episode, Step: step, State: state, Action: action,
+			Probability: 0.5, Allowed: training.ActionSet{3}, Mode: training.Explore}
+	}
+	const episodes, racers = 12, 6
+	type answer struct {
+		stored   training.Decision
+		repeated bool
+		err      error
+	}
+	// Step by step, every racer of every episode at once: racers draw
+	// different actions, so a second store would show in the answers.
+	for step := range settings.MaxOpenEpisodeSteps + 1 {
+		answers := make([][]answer, episodes)
+		var wg sync.WaitGroup
+		for e := range episodes {
+			answers[e] = make([]answer, racers+1)
+			for r := range racers + 1 {
+				state := fmt.Sprintf("s%d", step)
+				if r == racers {
+					state = "elsewhere" // names another state: refused unless it wins
+				}
+				wg.Go(func() {
+					a := &answers[e][r]
+					a.stored, a.repeated, a.err = batchers[r%2].Record(ctx, decision(fmt.Sprintf("e%d", e), step, state, int16(r%2)))
+				})
+			}
+		}
+		wg.Wait()
+		for e := range episodes {
+			if step == settings.MaxOpenEpisodeSteps {
+				for r, a := range answers[e] {
+					if !errors.Is(a.err, training.ErrConflict) {
+						t.Fatalf("episode %d step %d (past the limit), racer %d: %v, want a conflict", e, step, r, a.err)
+					}
+				}
+				continue
+			}
+			var winner *training.Decision
+			for r, a := range answers[e] {
+				if a.err == nil && !a.repeated {
+					if winner != nil {
+						t.Fatalf("episode %d step %d stored twice: %+v and %+v", e, step, *winner, a.stored)
+					}
+					winner = &answers[e][r].stored
+				}
+			}
+			if winner == nil {
+				t.Fatalf("episode %d step %d: no answer stored it: %+v", e, step, answers[e])
+			}
+			for r, a := range answers[e] {
+				state := fmt.Sprintf("s%d", step)
+				if r == racers {
+					state = "elsewhere"
+				}
+				switch {
+				case state != winner.State && errors.Is(a.err, training.ErrConflict):
+				case a.err != nil:
+					t.Fatalf("episode %d step %d racer %d: %v (stored: %+v)", e, step, r, a.err, *winner)
+				case a.stored.State != winner.State || a.stored.Action != winner.Action || a.stored.Step != step:
+					t.Fatalf("episode %d step %d racer %d answered %+v, the stored decision is %+v", e, step, r, a.stored, *winner)
+				}
+			}
+			// A step that skips one is refused and stores nothing.
+			if _, _, err := batchers[e%2].Record(ctx, decision(fmt.Sprintf("e%d", e), step+2, "ahead", 0)); !errors.Is(err, training.ErrConflict) {
+				t.Fatalf("episode %d: step %d after step %d: %v, want a conflict", e, step+2, step, err)
+			}
+		}
+	}
+	for e := range episodes {
+		v, err := db.OpenEpisode(ctx, "racing", fmt.Sprintf("e%d", e))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if len(v.Steps) != settings.MaxOpenEpisodeSteps {
+			t.Fatalf("episode %d holds %d steps, want %d", e, len(v.Steps), settings.MaxOpenEpisodeSteps)
+		}
+	}
+
+	// Ends racing next steps: an answered step is in the ended episode.
+	for e := range episodes {
+		id := fmt.Sprintf("f%d", e)
+		if _, _, err := batchers[0].Record(ctx, decision(id, 0, "s0", 0)); err != nil {
+			t.Fatal(err)
+		}
+		var wg sync.WaitGroup
+		var stepErr, endErr error
+		var ended training.EndResult
+		wg.Go(func() { _, _, stepErr = batchers[e%2].Record(ctx, decision(id, 1, "s1", 1)) })
+		wg.Go(func() { ended, endErr = db.EndOpenEpisode(ctx, "racing", id, training.EndRequest{}) })
+		wg.Wait()
+		if endErr != nil {
+			t.Fatal(endErr)
+		}
+		switch {
+		case stepErr == nil && ended.Steps == 2, errors.Is(stepErr, training.ErrConflict) && ended.Steps == 1:
+		default:
+			t.Fatalf("episode %s: next step %v, end stored %d steps", id, stepErr, ended.Steps)
+		}
+	}
+}
