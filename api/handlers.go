@@ -389,7 +389,7 @@ func handleChoose(ch Chooser, rec RecordedChooser, m *metrics.Metrics, cfg Confi
 			return err
 		}
 		m.Choices.WithLabelValues(name, string(req.Mode), strconv.FormatBool(res.Explored), strconv.FormatBool(res.KnownState)).Inc()
-		return c.JSON(http.StatusOK, newChooseResponse(res))
+		return writeChooseAnswer(c, newChooseResponse(res))
 	}
 }
 
@@ -416,7 +416,7 @@ func chooseRecorded(c echo.Context, rec RecordedChooser, m *metrics.Metrics, nam
 	}
 	out := newChooseResponse(res.ChooseResult)
 	out.Episode, out.Step, out.Repeated = res.Episode, &res.Step, &res.Repeated
-	return c.JSON(http.StatusOK, out)
+	return writeChooseAnswer(c, out)
 }
 
 func validateChoose(req chooseRequest, cfg Config) error {
