@@ -22,13 +22,9 @@ import (
 // one, so recording costs a request a share of a commit rather than a
 // commit of its own.
 type DecisionBatcher struct {
-	db       *DB
-	window   time.Duration
-	maxBatch int
-	inFlight int
-	timeout  time.Duration
-	queue    chan *pendingDecision
-	stopped  chan struct{}
+	db      *DB
+	timeout time.Duration
+	group   *groupCommitter[*pendingDecision]
 	// Observe, when set, is told each committed batch's size and duration.
 	Observe func(decisions int, took time.Duration)
 }
@@ -41,24 +37,12 @@ type pendingDecision struct {
 	done     chan struct{}
 }
 
-// GroupCommit shapes how a DecisionBatcher commits.
-type GroupCommit struct {
-	// MaxBatch bounds the decisions of one commit.
-	MaxBatch int
-	// InFlight bounds the commits under way at once.
-	InFlight int
-	// Window: with commits under way but fewer than InFlight, a batch goes
-	// once its first decision has waited this long (0: at once). With no
-	// commit under way it goes at once; with InFlight under way it waits
-	// for one to end (or for the batch to fill).
-	Window time.Duration
-}
-
 // NewDecisionBatcher returns a batcher committing as cfg says; Run must be
 // running for Record to answer.
 func (db *DB) NewDecisionBatcher(cfg GroupCommit) *DecisionBatcher {
-	return &DecisionBatcher{db: db, window: cfg.Window, maxBatch: cfg.MaxBatch, inFlight: max(cfg.InFlight, 1),
-		timeout: 10 * time.Second, queue: make(chan *pendingDecision, 4*cfg.MaxBatch), stopped: make(chan struct{})}
+	b := &DecisionBatcher{db: db, timeout: 10 * time.Second}
+	b.group = newGroupCommitter(cfg, b.commit)
+	return b
 }
 
 var errRecorderStopped = training.Unavailablef("this process is shutting down and records no more decisions; retry")
@@ -67,90 +51,14 @@ var errRecorderStopped = training.Unavailablef("this process is shutting down an
 // decision (or the earlier one at its step) is committed.
 func (b *DecisionBatcher) Record(ctx context.Context, d training.Decision) (training.Decision, bool, error) {
 	p := &pendingDecision{d: d, done: make(chan struct{})}
-	select {
-	case b.queue <- p:
-	case <-b.stopped:
-		return d, false, errRecorderStopped
-	case <-ctx.Done():
-		return d, false, ctx.Err()
+	if err := b.group.await(ctx, p, p.done, errRecorderStopped); err != nil {
+		return d, false, err
 	}
-	select {
-	case <-p.done:
-		return p.stored, p.repeated, p.err
-	case <-b.stopped:
-		return d, false, errRecorderStopped
-	case <-ctx.Done():
-		return d, false, ctx.Err()
-	}
+	return p.stored, p.repeated, p.err
 }
 
-// Run gathers and commits batches until ctx ends. It runs until after the
-// HTTP server has stopped, so requests in flight get their commit.
-//
-// A decision that arrives while no commit is under way goes at once, alone:
-// there is nothing to wait for. Decisions that arrive while commits are
-// under way gather into the next batch, which goes when a commit ends (or,
-// with a free slot, once it is full or its first decision has waited the
-// window), so the batch size follows the load: one decision a commit when
-// idle, a commit's worth of arrivals under load.
-func (b *DecisionBatcher) Run(ctx context.Context) error {
-	defer close(b.stopped)
-	ended := make(chan struct{}, b.inFlight)
-	inFlight := 0
-	var committing sync.WaitGroup
-	defer committing.Wait()
-	var batch []*pendingDecision
-	var since time.Time
-	timer := time.NewTimer(time.Hour)
-	timer.Stop()
-	timerSet := false
-	send := func() {
-		if timerSet {
-			timer.Stop()
-			timerSet = false
-		}
-		inFlight++
-		sent := batch
-		committing.Go(func() {
-			b.commit(ctx, sent)
-			ended <- struct{}{}
-		})
-		batch = nil
-	}
-	for {
-		if len(batch) > 0 && inFlight < b.inFlight {
-			waited := time.Since(since)
-			switch {
-			case inFlight == 0, len(batch) >= b.maxBatch, waited >= b.window:
-				send()
-			case !timerSet:
-				timer.Reset(b.window - waited)
-				timerSet = true
-			}
-		}
-		queue := b.queue
-		if len(batch) >= b.maxBatch {
-			queue = nil
-		}
-		select {
-		case <-ctx.Done():
-			if len(batch) > 0 {
-				// Gathered requests are waiting for their commit.
-				b.commit(ctx, batch)
-			}
-			return nil
-		case p := <-queue:
-			if len(batch) == 0 {
-				since = time.Now()
-			}
-			batch = append(batch, p)
-		case <-ended:
-			inFlight--
-		case <-timer.C:
-			timerSet = false
-		}
-	}
-}
+// Run gathers and commits batches until ctx ends (see groupCommitter.run).
+func (b *DecisionBatcher) Run(ctx context.Context) error { return b.group.run(ctx) }
 
 // commit records a batch, one transaction per policy (no transaction spans
 // policies), and wakes every request of it.
@@ -759,39 +667,167 @@ const (
 	closedIdleDropped
 )
 
-// EndOpenEpisode ends an open episode: it becomes a stored episode, trained
-// like a posted one, in the order episodes end. Ending an episode that has
-// ended already changes nothing and says so.
-func (db *DB) EndOpenEpisode(ctx context.Context, policy, episode string, req training.EndRequest) (training.EndResult, error) {
-	res := training.EndResult{ID: episode}
-	err := db.WithTx(ctx, func(tx pgx.Tx) error {
-		p, err := policyInTx(ctx, tx, policy)
+// EndBatcher ends the open episodes of concurrent requests together: an
+// end holds its policy's ingest lock exclusively until it commits (so that
+// episodes take their training order in the order they end), so ends one
+// transaction each would queue for that lock and a durable commit apiece.
+type EndBatcher struct {
+	db      *DB
+	timeout time.Duration
+	group   *groupCommitter[*pendingEnd]
+}
+
+type pendingEnd struct {
+	policy, episode string
+	req             training.EndRequest
+	res             training.EndResult
+	err             error
+	done            chan struct{}
+}
+
+// NewEndBatcher returns a batcher committing as cfg says; Run must be
+// running for EndOpenEpisode to answer.
+func (db *DB) NewEndBatcher(cfg GroupCommit) *EndBatcher {
+	b := &EndBatcher{db: db, timeout: 10 * time.Second}
+	b.group = newGroupCommitter(cfg, b.commit)
+	return b
+}
+
+var errEnderStopped = training.Unavailablef("this process is shutting down and ends no more episodes; retry")
+
+// EndOpenEpisode ends an open episode (with an optional final reward added
+// to its last step), or reports how it ended before.
+func (b *EndBatcher) EndOpenEpisode(ctx context.Context, policy, episode string, req training.EndRequest) (training.EndResult, error) {
+	p := &pendingEnd{policy: policy, episode: episode, req: req, done: make(chan struct{})}
+	if err := b.group.await(ctx, p, p.done, errEnderStopped); err != nil {
+		return training.EndResult{ID: episode}, err
+	}
+	return p.res, p.err
+}
+
+// Run gathers and commits batches until ctx ends.
+func (b *EndBatcher) Run(ctx context.Context) error { return b.group.run(ctx) }
+
+// commit ends a batch, one transaction per policy, and wakes every request.
+func (b *EndBatcher) commit(ctx context.Context, batch []*pendingEnd) {
+	ctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), b.timeout)
+	defer cancel()
+	byPolicy := map[string][]*pendingEnd{}
+	for _, p := range batch {
+		byPolicy[p.policy] = append(byPolicy[p.policy], p)
+	}
+	var wg sync.WaitGroup
+	for policy, group := range byPolicy {
+		wg.Go(func() {
+			err := b.db.WithTx(ctx, func(tx pgx.Tx) error { return endInTx(ctx, tx, policy, group) })
+			for _, p := range group {
+				if err != nil {
+					p.err = err
+				}
+			}
+		})
+	}
+	wg.Wait()
+	for _, p := range batch {
+		close(p.done)
+	}
+}
+
+// endInTx ends the open episodes of group, all of one policy, in the order
+// of group, and sets each request's result; an error returned fails the
+// whole group (nothing of it is stored). A request refused on its own (a
+// final reward out of bounds, an unknown episode) gets its error and
+// leaves the others be.
+func endInTx(ctx context.Context, tx pgx.Tx, policy string, group []*pendingEnd) error {
+	p, err := policyInTx(ctx, tx, policy)
+	if err != nil {
+		return err
+	}
+	if _, err = tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
+		return fmt.Errorf("ingest lock: %w", err)
+	}
+	var ids []string
+	first := map[string]*pendingEnd{}
+	for _, e := range group {
+		e.res = training.EndResult{ID: e.episode}
+		if first[e.episode] == nil {
+			first[e.episode] = e
+			ids = append(ids, e.episode)
+		}
+	}
+	open, err := openIDs(ctx, tx, p.ID, ids, true)
+	if err != nil {
+		return err
+	}
+	isOpen := map[string]bool{}
+	for _, id := range open {
+		isOpen[id] = true
+	}
+	var openInOrder []string
+	for _, id := range ids {
+		if isOpen[id] {
+			openInOrder = append(openInOrder, id)
+		}
+	}
+	records, err := openEpisodeRecords(ctx, tx, p, openInOrder)
+	if err != nil {
+		return err
+	}
+	var closing []string
+	var kept []training.EpisodeRecord
+	for _, r := range records {
+		e := first[r.ID]
+		if final := e.req.Reward; final != nil {
+			last := r.Rewards[len(r.Rewards)-1] + *final
+			if last > training.MaxAbsReward || last < -training.MaxAbsReward {
+				e.err = training.Invalid(-1, -1, "reward", "the last step's rewards would sum to %g, larger in magnitude than the limit of %g", last, training.MaxAbsReward)
+				continue
+			}
+			r.Rewards[len(r.Rewards)-1] = last
+		}
+		e.res.Steps, e.res.Return = len(r.States), sum(r.Rewards)
+		closing, kept = append(closing, r.ID), append(kept, r)
+	}
+	if err := storeClosing(ctx, tx, p, closing, kept, closedByClient); err != nil {
+		return err
+	}
+	// Those not open: ended before (a retry), or never open.
+	var notOpen []string
+	for _, id := range ids {
+		if !isOpen[id] {
+			notOpen = append(notOpen, id)
+		}
+	}
+	endedBefore := map[string][]float64{}
+	if len(notOpen) > 0 {
+		rows, err := tx.Query(ctx, `SELECT episode_id, rewards FROM episodes WHERE policy_id = $1 AND episode_id = ANY($2)`, p.ID, notOpen)
 		if err != nil {
-			return err
+			return fmt.Errorf("read ended episodes: %w", err)
 		}
-		if _, err = tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
-			return fmt.Errorf("ingest lock: %w", err)
-		}
-		records, err := closeOpenEpisodes(ctx, tx, p, []string{episode}, req.Reward, closedByClient)
-		if err != nil {
-			return err
-		}
-		if len(records) == 1 {
-			res.Steps, res.Return = len(records[0].States), sum(records[0].Rewards)
-			return nil
-		}
+		var id string
 		var rewards []float64
-		err = tx.QueryRow(ctx, `SELECT rewards FROM episodes WHERE policy_id = $1 AND episode_id = $2`, p.ID, episode).Scan(&rewards)
-		if errors.Is(err, pgx.ErrNoRows) {
-			return training.NotFoundf("policy %q has no open episode %q", p.Name, episode)
+		if _, err := pgx.ForEachRow(rows, []any{&id, &rewards}, func() error { endedBefore[id] = rewards; return nil }); err != nil {
+			return fmt.Errorf("read ended episodes: %w", err)
 		}
-		if err != nil {
-			return fmt.Errorf("read ended episode: %w", err)
+	}
+	for _, e := range group {
+		if e.err != nil {
+			continue
 		}
-		res.Steps, res.Return, res.AlreadyEnded = len(rewards), sum(rewards), true
-		return nil
-	})
-	return res, err
+		switch rewards, before := endedBefore[e.episode]; {
+		case first[e.episode] != e && first[e.episode].err == nil:
+			// The same end twice in one batch: the second is a retry.
+			e.res = first[e.episode].res
+			e.res.AlreadyEnded = true
+		case first[e.episode] != e:
+			e.err = first[e.episode].err
+		case before:
+			e.res.Steps, e.res.Return, e.res.AlreadyEnded = len(rewards), sum(rewards), true
+		case !isOpen[e.episode]:
+			e.err = training.NotFoundf("policy %q has no open episode %q", p.Name, e.episode)
+		}
+	}
+	return nil
 }
 
 func sum(xs []float64) float64 {
@@ -803,13 +839,13 @@ func sum(xs []float64) float64 {
 }
 
 // closeOpenEpisodes ends or drops those of ids that are open, in the order
-// of ids, and returns the records of those it ended. The caller holds the
+// of ids (the idle sweep's closing, with no final reward). The caller holds the
 // policy's ingest lock, so that ended episodes take their arrival order
 // (seq) in the order they end, exactly as posted ones do.
-func closeOpenEpisodes(ctx context.Context, tx pgx.Tx, p training.Policy, ids []string, final *float64, how closing) ([]training.EpisodeRecord, error) {
+func closeOpenEpisodes(ctx context.Context, tx pgx.Tx, p training.Policy, ids []string, how closing) error {
 	open, err := openIDs(ctx, tx, p.ID, ids, true)
 	if err != nil || len(open) == 0 {
-		return nil, err
+		return err
 	}
 	isOpen := map[string]bool{}
 	for _, id := range open {
@@ -823,45 +859,49 @@ func closeOpenEpisodes(ctx context.Context, tx pgx.Tx, p training.Policy, ids []
 	}
 	var records []training.EpisodeRecord
 	if how != closedIdleDropped {
-		records, err = openEpisodeRecords(ctx, tx, p, closing)
-		if err != nil {
-			return nil, err
+		if records, err = openEpisodeRecords(ctx, tx, p, closing); err != nil {
+			return err
 		}
-		if final != nil && len(records) == 1 {
-			r := records[0].Rewards
-			r[len(r)-1] += *final
-			if r[len(r)-1] > training.MaxAbsReward || r[len(r)-1] < -training.MaxAbsReward {
-				return nil, training.Invalid(-1, -1, "reward", "the last step's rewards would sum to %g, larger in magnitude than the limit of %g", r[len(r)-1], training.MaxAbsReward)
-			}
-		}
-		_, err = tx.CopyFrom(ctx, pgx.Identifier{"episodes"},
+	}
+	return storeClosing(ctx, tx, p, closing, records, how)
+}
+
+// storeClosing stores records (the ended ones of ids, in order) as
+// finished episodes and deletes every episode of ids from the open
+// ones, counting them as how says. The caller holds the policy's ingest
+// lock and the episodes' rows.
+func storeClosing(ctx context.Context, tx pgx.Tx, p training.Policy, ids []string, records []training.EpisodeRecord, how closing) error {
+	if len(ids) == 0 {
+		return nil
+	}
+	if len(records) > 0 {
+		_, err := tx.CopyFrom(ctx, pgx.Identifier{"episodes"},
 			[]string{"policy_id", "episode_id", "states", "actions", "rewards", "probabilities", "allowed"},
 			pgx.CopyFromSlice(len(records), func(i int) ([]any, error) {
 				r := records[i]
 				return []any{p.ID, r.ID, r.States, r.Actions, r.Rewards, r.Probabilities, r.Allowed}, nil
 			}))
 		if err != nil {
-			return nil, fmt.Errorf("store ended episodes: %w", err)
+			return fmt.Errorf("store ended episodes: %w", err)
 		}
 		if _, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelEpisodes, p.ID); err != nil {
-			return nil, err
+			return err
 		}
 	}
 	for _, table := range []string{"open_episode_steps", "open_episode_reward_keys", "open_episodes"} {
-		if _, err = tx.Exec(ctx, `DELETE FROM `+table+` WHERE policy_id = $1 AND episode_id = ANY($2)`, p.ID, closing); err != nil {
-			return nil, fmt.Errorf("delete from %s: %w", table, err)
+		if _, err := tx.Exec(ctx, `DELETE FROM `+table+` WHERE policy_id = $1 AND episode_id = ANY($2)`, p.ID, ids); err != nil {
+			return fmt.Errorf("delete from %s: %w", table, err)
 		}
 	}
-	n := len(closing)
+	n := len(ids)
 	switch how {
 	case closedByClient:
-		err = addCounts(ctx, tx, p.ID, -n, n, 0, 0)
+		return addCounts(ctx, tx, p.ID, -n, n, 0, 0)
 	case closedIdleEnded:
-		err = addCounts(ctx, tx, p.ID, -n, 0, n, 0)
-	case closedIdleDropped:
-		err = addCounts(ctx, tx, p.ID, -n, 0, 0, n)
+		return addCounts(ctx, tx, p.ID, -n, 0, n, 0)
+	default:
+		return addCounts(ctx, tx, p.ID, -n, 0, 0, n)
 	}
-	return records, err
 }
 
 // openEpisodeRecords reads open episodes in stored form, in the order of ids.
@@ -987,7 +1027,7 @@ func (db *DB) CloseIdleEpisodes(ctx context.Context, perPolicy int) ([]training.
 			if p.OnIdle == training.IdleDrop {
 				how = closedIdleDropped
 			}
-			if _, err := closeOpenEpisodes(ctx, tx, p, ids, nil, how); err != nil {
+			if err := closeOpenEpisodes(ctx, tx, p, ids, how); err != nil {
 				return err
 			}
 			if how == closedIdleDropped {

@@ -96,6 +96,8 @@ func TestRacingNextStepsAreRecordedOnce(t *testing.T) {
 		batchers = append(batchers, b)
 		running.Go(func() { _ = b.Run(runCtx) })
 	}
+	ender := db.NewEndBatcher(storage.GroupCommit{MaxBatch: 64, InFlight: 1})
+	running.Go(func() { _ = ender.Run(runCtx) })
 	decision := func(episode string, step int, state string, action int16) training.Decision {
 		return training.Decision{PolicyID: p.ID, Episode: episode, Step: step, State: state, Action: action,
 			Probability: 0.5, Allowed: training.ActionSet{3}, Mode: training.Explore}
@@ -185,7 +187,7 @@ func TestRacingNextStepsAreRecordedOnce(t *testing.T) {
 		var stepErr, endErr error
 		var ended training.EndResult
 		wg.Go(func() { _, _, stepErr = batchers[e%2].Record(ctx, decision(id, 1, "s1", 1)) })
-		wg.Go(func() { ended, endErr = db.EndOpenEpisode(ctx, "racing", id, training.EndRequest{}) })
+		wg.Go(func() { ended, endErr = ender.EndOpenEpisode(ctx, "racing", id, training.EndRequest{}) })
 		wg.Wait()
 		if endErr != nil {
 			t.Fatal(endErr)
@@ -195,5 +197,106 @@ func TestRacingNextStepsAreRecordedOnce(t *testing.T) {
 		default:
 			t.Fatalf("episode %s: next step %v, end stored %d steps", id, stepErr, ended.Steps)
 		}
+	}
+}
+
+// Ends that arrive together are committed together, and each still gets
+// its own answer: ended with its final reward, refused alone when that
+// reward is out of bounds (its episode stays open), a retry in the same
+// batch told it ended, an unknown id not found; the ended episodes enter
+// the log in the order their ends arrived.
+func TestEndsCommittedTogetherAnswerEachRequest(t *testing.T) {
+	ctx := context.Background()
+	db := openDB(t)
+	settings := training.DefaultSettings()
+	settings.Actions = []string{"a", "b"}
+	p, _, err := db.PutPolicy(ctx, "ends", settings)
+	if err != nil {
+		t.Fatal(err)
+	}
+	recorder := db.NewDecisionBatcher(storage.GroupCommit{MaxBatch: 64, InFlight: 2})
+	// A long window and one commit at a time: the ends below, sent
+	// together, gather into few batches.
+	ender := db.NewEndBatcher(storage.GroupCommit{MaxBatch: 64, InFlight: 1, Window: 50 * time.Millisecond})
+	runCtx, stop := context.WithCancel(ctx)
+	var running sync.WaitGroup
+	defer func() { stop(); running.Wait() }()
+	running.Go(func() { _ = recorder.Run(runCtx) })
+	running.Go(func() { _ = ender.Run(runCtx) })
+
+	const episodes = 40
+	for e := range episodes {
+		for step := range 1 + e%3 {
+			d := training.Decision{PolicyID: p.ID, Episode: fmt.Sprintf("e%d", e), Step: step, State: fmt.Sprintf("s%d", step),
+				Probability: 1, Allowed: training.ActionSet{3}, Mode: training.Greedy}
+			if _, _, recErr := recorder.Record(ctx, d); recErr != nil {
+				t.Fatal(recErr)
+			}
+		}
+	}
+	final := func(e int) *float64 {
+		v := float64(e)
+		if e%10 == 7 {
+			v = 2 * training.MaxAbsReward // out of bounds: refused
+		}
+		return &v
+	}
+	type answer struct {
+		res training.EndResult
+		err error
+	}
+	answers := make([]answer, episodes+2)
+	var wg sync.WaitGroup
+	for e := range episodes {
+		wg.Go(func() {
+			answers[e].res, answers[e].err = ender.EndOpenEpisode(ctx, "ends", fmt.Sprintf("e%d", e), training.EndRequest{Reward: final(e)})
+		})
+	}
+	wg.Go(func() {
+		answers[episodes].res, answers[episodes].err = ender.EndOpenEpisode(ctx, "ends", "e3", training.EndRequest{})
+	})
+	wg.Go(func() {
+		answers[episodes+1].res, answers[episodes+1].err = ender.EndOpenEpisode(ctx, "ends", "nobody", training.EndRequest{})
+	})
+	wg.Wait()
+
+	for e := range episodes {
+		a := answers[e]
+		if e%10 == 7 {
+			var invalid *training.ValidationError
+			if !errors.As(a.err, &invalid) {
+				t.Fatalf("e%d with an out-of-bounds final reward: %v, want refused", e, a.err)
+			}
+			if _, openErr := db.OpenEpisode(ctx, "ends", fmt.Sprintf("e%d", e)); openErr != nil {
+				t.Fatalf("e%d, refused, is no longer open: %v", e, openErr)
+			}
+			continue
+		}
+		if a.err != nil {
+			t.Fatalf("e%d: %v", e, a.err)
+		}
+		if a.res.Steps != 1+e%3 || a.res.Return != float64(e) {
+			t.Fatalf("e%d ended with %+v, want %d steps and return %d", e, a.res, 1+e%3, e)
+		}
+	}
+	// e3 was ended twice: one answer ended it, the other says it had ended.
+	first, second := answers[3], answers[episodes]
+	if first.err != nil || second.err != nil || first.res.AlreadyEnded == second.res.AlreadyEnded ||
+		first.res.Steps != second.res.Steps || first.res.Return != second.res.Return {
+		t.Fatalf("e3 ended twice at once: %+v and %+v", first, second)
+	}
+	if !errors.Is(answers[episodes+1].err, training.ErrNotFound) {
+		t.Fatalf("ending an unknown episode: %v, want not found", answers[episodes+1].err)
+	}
+	again, err := ender.EndOpenEpisode(ctx, "ends", "e5", training.EndRequest{})
+	if err != nil || !again.AlreadyEnded || again.Steps != 3 || again.Return != 5 {
+		t.Fatalf("ending e5 again: %+v, %v", again, err)
+	}
+	figures, err := db.PolicyOpenEpisodes(ctx, "ends")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if figures.Open != 4 || figures.Ended != episodes-4 {
+		t.Fatalf("counts after the ends: %+v, want 4 open and %d ended", figures, episodes-4)
 	}
 }

@@ -39,7 +39,22 @@ const (
 	decisionBatchWindow     = 500 * time.Microsecond
 	decisionCommitsInFlight = 2
 	decisionBatchMax        = 256
+	// Ends of open episodes commit one batch at a time: each holds its
+	// policy's ingest lock until it commits, so two at once would only
+	// queue for it. Ends arriving meanwhile gather, up to endBatchMax.
+	endBatchMax = 256
 )
+
+// keptEpisodes serves the open-episode routes: ends go through the batcher
+// that commits concurrent ends together, the rest to the database.
+type keptEpisodes struct {
+	*storage.DB
+	ender *storage.EndBatcher
+}
+
+func (k keptEpisodes) EndOpenEpisode(ctx context.Context, policy, episode string, req training.EndRequest) (training.EndResult, error) {
+	return k.ender.EndOpenEpisode(ctx, policy, episode, req)
+}
 
 // runService runs the API, the worker, or both, until ctx ends, then shuts
 // down within the grace period: in-flight requests finish and the worker
@@ -153,8 +168,10 @@ func startAPI(ctx context.Context, cfg apiConfig, db *storage.DB, reg *prometheu
 	batcher := db.NewDecisionBatcher(storage.GroupCommit{MaxBatch: decisionBatchMax, InFlight: decisionCommitsInFlight, Window: decisionBatchWindow})
 	batcher.Observe = m.Open.ObserveDecisionBatch
 	loops.Go("decision recorder", batcher.Run)
+	ender := db.NewEndBatcher(storage.GroupCommit{MaxBatch: endBatchMax, InFlight: 1})
+	loops.Go("episode ender", ender.Run)
 	handler := api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, History: db, Eraser: db, Episodes: db, States: db,
-		Chooser: replica, Recorder: training.Keeper{Replica: replica, Recorder: batcher}, OpenEpisodes: db, Reports: db, Ready: db,
+		Chooser: replica, Recorder: training.Keeper{Replica: replica, Recorder: batcher}, OpenEpisodes: keptEpisodes{DB: db, ender: ender}, Reports: db, Ready: db,
 		Metrics: m, Gatherer: reg, Auth: auth, Sessions: sessions,
 		Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db, Audit: db})
 	return apiRole{handler: handler, subscriptions: subs}

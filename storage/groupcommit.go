@@ -1,0 +1,125 @@
+package storage
+
+import (
+	"context"
+	"sync"
+	"time"
+)
+
+// GroupCommit shapes how requests that each need a durable write are
+// committed together.
+type GroupCommit struct {
+	// MaxBatch bounds the requests of one commit.
+	MaxBatch int
+	// InFlight bounds the commits under way at once.
+	InFlight int
+	// Window: with commits under way but fewer than InFlight, a batch goes
+	// once its first request has waited this long (0: at once). With no
+	// commit under way it goes at once; with InFlight under way it waits
+	// for one to end (or for the batch to fill).
+	Window time.Duration
+}
+
+// groupCommitter gathers requests and hands them to commit in batches, as
+// its GroupCommit says. commit must settle every request of its batch.
+type groupCommitter[P any] struct {
+	window   time.Duration
+	maxBatch int
+	inFlight int
+	queue    chan P
+	stopped  chan struct{}
+	commit   func(ctx context.Context, batch []P)
+}
+
+func newGroupCommitter[P any](cfg GroupCommit, commit func(context.Context, []P)) *groupCommitter[P] {
+	return &groupCommitter[P]{window: cfg.Window, maxBatch: cfg.MaxBatch, inFlight: max(cfg.InFlight, 1),
+		queue: make(chan P, 4*cfg.MaxBatch), stopped: make(chan struct{}), commit: commit}
+}
+
+// await queues p and waits until done closes (its batch was committed or
+// failed), ctx ends, or the committer stops (then it returns stopped).
+func (g *groupCommitter[P]) await(ctx context.Context, p P, done <-chan struct{}, stopped error) error {
+	select {
+	case g.queue <- p:
+	case <-g.stopped:
+		return stopped
+	case <-ctx.Done():
+		return ctx.Err()
+	}
+	select {
+	case <-done:
+		return nil
+	case <-g.stopped:
+		return stopped
+	case <-ctx.Done():
+		return ctx.Err()
+	}
+}
+
+// run gathers and commits batches until ctx ends. It runs until after the
+// HTTP server has stopped, so requests in flight get their commit.
+//
+// A request that arrives while no commit is under way goes at once, alone:
+// there is nothing to wait for. Requests that arrive while commits are
+// under way gather into the next batch, which goes when a commit ends (or,
+// with a free slot, once it is full or its first request has waited the
+// window), so the batch size follows the load: one request a commit when
+// idle, a commit's worth of arrivals under load.
+func (g *groupCommitter[P]) run(ctx context.Context) error {
+	defer close(g.stopped)
+	ended := make(chan struct{}, g.inFlight)
+	inFlight := 0
+	var committing sync.WaitGroup
+	defer committing.Wait()
+	var batch []P
+	var since time.Time
+	timer := time.NewTimer(time.Hour)
+	timer.Stop()
+	timerSet := false
+	send := func() {
+		if timerSet {
+			timer.Stop()
+			timerSet = false
+		}
+		inFlight++
+		sent := batch
+		committing.Go(func() {
+			g.commit(ctx, sent)
+			ended <- struct{}{}
+		})
+		batch = nil
+	}
+	for {
+		if len(batch) > 0 && inFlight < g.inFlight {
+			waited := time.Since(since)
+			switch {
+			case inFlight == 0, len(batch) >= g.maxBatch, waited >= g.window:
+				send()
+			case !timerSet:
+				timer.Reset(g.window - waited)
+				timerSet = true
+			}
+		}
+		queue := g.queue
+		if len(batch) >= g.maxBatch {
+			queue = nil
+		}
+		select {
+		case <-ctx.Done():
+			if len(batch) > 0 {
+				// Gathered requests are waiting for their commit.
+				g.commit(ctx, batch)
+			}
+			return nil
+		case p := <-queue:
+			if len(batch) == 0 {
+				since = time.Now()
+			}
+			batch = append(batch, p)
+		case <-ended:
+			inFlight--
+		case <-timer.C:
+			timerSet = false
+		}
+	}
+}
