@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"math/rand/v2"
+	"strings"
 	"sync"
 	"time"
 
@@ -35,6 +36,8 @@ type pendingDecision struct {
 	repeated bool
 	err      error
 	done     chan struct{}
+	// answered: done was closed before the rest of its batch committed.
+	answered bool
 }
 
 // NewDecisionBatcher returns a batcher committing as cfg says; Run must be
@@ -84,7 +87,9 @@ func (b *DecisionBatcher) commit(ctx context.Context, batch []*pendingDecision) 
 		b.Observe(len(batch), time.Since(start))
 	}
 	for _, p := range batch {
-		close(p.done)
+		if !p.answered {
+			close(p.done)
+		}
 	}
 }
 
@@ -154,7 +159,7 @@ func splitNextSteps(group []*pendingDecision) (next, others []*pendingDecision) 
 
 // recordNextSteps stores, in one round trip (BEGIN, one statement, COMMIT
 // pipelined), those decisions whose step is the next of an open episode
-// within the policy's step limit, sets their outcomes, and returns the
+// within the policy's step limit, answers them, and returns the
 // others untouched for the general path, which answers each with a repeat
 // or a refusal. The episodes' rows are locked in one order, as the general
 // path and ending lock them; a row changed meanwhile is checked again
@@ -198,7 +203,10 @@ func (db *DB) recordNextSteps(ctx context.Context, policyID int32, next []*pendi
 	var left []*pendingDecision
 	for i, p := range next {
 		if stored[p.d.Episode] {
-			p.stored = ds[i]
+			// Answered now, not when the rest of the batch is: that may
+			// wait for the ingest lock (openings) or read more (retries).
+			p.stored, p.answered = ds[i], true
+			close(p.done)
 		} else {
 			left = append(left, p)
 		}
@@ -465,17 +473,6 @@ func decisionArrays(policyID int32, ds []training.Decision) []any {
 // drawn at random by batches opening episodes.
 const countShards = 16
 
-// addCounts moves a policy's open-episode counts as a closing; callers
-// hold its ingest lock.
-func addCounts(ctx context.Context, tx pgx.Tx, policyID int32, open, ended, endedIdle, dropped int) error {
-	var b pgx.Batch
-	queueCounts(&b, policyID, 0, open, ended, endedIdle, dropped)
-	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
-		return fmt.Errorf("count open episodes: %w", err)
-	}
-	return nil
-}
-
 func queueCounts(b *pgx.Batch, policyID int32, shard, open, ended, endedIdle, dropped int) {
 	b.Queue(`
 		INSERT INTO open_episode_counts AS c (policy_id, shard, open, ended, ended_idle, dropped) VALUES ($1, $2, $3, $4, $5, $6)
@@ -526,92 +523,223 @@ func notOpen(ctx context.Context, tx pgx.Tx, p training.Policy, episode string) 
 	return training.NotFoundf("policy %q has no open episode %q", p.Name, episode)
 }
 
-// AddReward adds a reward to a decision of an open episode: the named step,
-// or the latest. Several additions to one decision sum. It costs three
-// round trips: BEGIN with the reads, the writes, COMMIT.
-func (db *DB) AddReward(ctx context.Context, policy, episode string, add training.RewardAddition) (training.RewardResult, error) {
-	var res training.RewardResult
-	err := db.WithConn(ctx, func(conn *pgx.Conn) error {
-		var reads pgx.Batch
-		reads.Queue(`BEGIN`)
-		var policyID *int32
-		reads.Queue(`SELECT policy_id FROM policies WHERE name = $1 FOR KEY SHARE`, policy).
-			QueryRow(func(r pgx.Row) error {
-				var id int32
-				err := r.Scan(&id)
-				if errors.Is(err, pgx.ErrNoRows) {
-					return nil
+// RewardBatcher adds the rewards of concurrent requests together, one
+// transaction per policy: a reward addition one transaction each waited
+// for a WAL flush apiece, and each held a share lock on its policy's row,
+// whose many concurrent holders cost PostgreSQL a multixact each.
+type RewardBatcher struct {
+	db      *DB
+	timeout time.Duration
+	group   *groupCommitter[*pendingReward]
+}
+
+type pendingReward struct {
+	policy, episode string
+	add             training.RewardAddition
+	res             training.RewardResult
+	err             error
+	done            chan struct{}
+}
+
+// NewRewardBatcher returns a batcher committing as cfg says; Run must be
+// running for AddReward to answer.
+func (db *DB) NewRewardBatcher(cfg GroupCommit) *RewardBatcher {
+	b := &RewardBatcher{db: db, timeout: 10 * time.Second}
+	b.group = newGroupCommitter(cfg, b.commit)
+	return b
+}
+
+var errRewarderStopped = training.Unavailablef("this process is shutting down and adds no more rewards; retry")
+
+// AddReward adds a reward to a decision of an open episode: the named
+// step, or the latest. Several additions to one decision sum; a second
+// addition with the same key adds nothing and answers what the first went
+// to.
+func (b *RewardBatcher) AddReward(ctx context.Context, policy, episode string, add training.RewardAddition) (training.RewardResult, error) {
+	p := &pendingReward{policy: policy, episode: episode, add: add, done: make(chan struct{})}
+	if err := b.group.await(ctx, p, p.done, errRewarderStopped); err != nil {
+		return training.RewardResult{}, err
+	}
+	return p.res, p.err
+}
+
+// Run gathers and commits batches until ctx ends.
+func (b *RewardBatcher) Run(ctx context.Context) error { return b.group.run(ctx) }
+
+// commit adds a batch, one transaction per policy, and wakes every request.
+func (b *RewardBatcher) commit(ctx context.Context, batch []*pendingReward) {
+	ctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), b.timeout)
+	defer cancel()
+	byPolicy := map[string][]*pendingReward{}
+	for _, p := range batch {
+		byPolicy[p.policy] = append(byPolicy[p.policy], p)
+	}
+	var wg sync.WaitGroup
+	for policy, group := range byPolicy {
+		wg.Go(func() {
+			err := b.db.WithConn(ctx, func(conn *pgx.Conn) error { return addRewardsInTx(ctx, conn, policy, group) })
+			if err != nil {
+				for _, p := range group {
+					p.err = err
 				}
-				policyID = &id
-				return err
-			})
-		steps := -1
-		reads.Queue(`SELECT steps FROM open_episodes
-			WHERE policy_id = (SELECT policy_id FROM policies WHERE name = $1) AND episode_id = $2 FOR UPDATE`, policy, episode).
-			QueryRow(func(r pgx.Row) error {
-				err := r.Scan(&steps)
-				if errors.Is(err, pgx.ErrNoRows) {
-					return nil
-				}
-				return err
-			})
-		if err := conn.SendBatch(ctx, &reads).Close(); err != nil {
-			return fmt.Errorf("read open episode: %w", err)
-		}
-		if policyID == nil {
-			return training.NotFoundf("no policy named %q", policy)
-		}
-		if steps < 0 {
-			return notOpenConn(ctx, conn, policy, *policyID, episode)
-		}
-		step := steps - 1
-		if add.Step != nil {
-			step = *add.Step
-		}
-		if step >= steps {
-			return training.Invalid(-1, -1, "step", "episode %q has %d decisions recorded (steps 0 to %d); there is no step %d", episode, steps, steps-1, step)
-		}
-		// A key used before adds nothing: the update finds no new key row.
-		added := false
-		var writes pgx.Batch
-		writes.Queue(`
-			WITH new_key AS (
-				INSERT INTO open_episode_reward_keys (policy_id, episode_id, key, step)
-				SELECT $1, $2, $5, $3 WHERE $5 <> ''
-				ON CONFLICT DO NOTHING RETURNING 1)
-			UPDATE open_episode_steps SET reward = reward + $4
-			WHERE policy_id = $1 AND episode_id = $2 AND step = $3 AND ($5 = '' OR EXISTS (SELECT 1 FROM new_key))
-			RETURNING reward`, *policyID, episode, step, add.Reward, add.Key).
-			QueryRow(func(r pgx.Row) error {
-				err := r.Scan(&res.Reward)
-				if errors.Is(err, pgx.ErrNoRows) {
-					return nil
-				}
-				added = err == nil
-				return err
-			})
-		writes.Queue(`UPDATE open_episodes SET last_active_at = now() WHERE policy_id = $1 AND episode_id = $2`, *policyID, episode)
-		if err := conn.SendBatch(ctx, &writes).Close(); err != nil {
-			return fmt.Errorf("add reward: %w", err)
-		}
-		res.Step = step
-		if !added {
-			// Used before: answer what that addition went to.
-			res.Repeated = true
-			if err := conn.QueryRow(ctx, `SELECT k.step, s.reward FROM open_episode_reward_keys k
-				JOIN open_episode_steps s USING (policy_id, episode_id, step)
-				WHERE k.policy_id = $1 AND k.episode_id = $2 AND k.key = $3`, *policyID, episode, add.Key).Scan(&res.Step, &res.Reward); err != nil {
-				return fmt.Errorf("read keyed reward: %w", err)
 			}
-		} else if res.Reward > training.MaxAbsReward || res.Reward < -training.MaxAbsReward {
-			return training.Invalid(-1, -1, "reward", "step %d's rewards would sum to %g, larger in magnitude than the limit of %g", step, res.Reward, training.MaxAbsReward)
+		})
+	}
+	wg.Wait()
+	for _, p := range batch {
+		close(p.done)
+	}
+}
+
+type stepRef struct {
+	episode string
+	step    int32
+}
+
+// addRewardsInTx applies group's additions, all of one policy, in the
+// order of group, and sets each one's result; an error returned fails the
+// whole group. An addition refused on its own (an episode not open, a step
+// not recorded, a sum out of bounds) gets its error and adds nothing. It
+// takes two round trips: BEGIN with every read, then the writes with
+// COMMIT.
+func addRewardsInTx(ctx context.Context, conn *pgx.Conn, policy string, group []*pendingReward) error {
+	seen := map[string]bool{}
+	var ids, keyEpisodes, keys []string
+	for _, p := range group {
+		if !seen[p.episode] {
+			seen[p.episode] = true
+			ids = append(ids, p.episode)
 		}
-		if _, err := conn.Exec(ctx, `COMMIT`); err != nil {
-			return fmt.Errorf("commit: %w", err)
+		if p.add.Key != "" {
+			keyEpisodes, keys = append(keyEpisodes, p.episode), append(keys, p.add.Key)
+		}
+	}
+	var policyID int32
+	found := false
+	steps := map[string]int{}
+	sums := map[stepRef]float64{}
+	keyed := map[[2]string]int32{}
+	finished := map[string]bool{}
+	const policyOf = `(SELECT policy_id FROM policies WHERE name = $1)`
+	var reads pgx.Batch
+	reads.Queue(`BEGIN`)
+	// KEY SHARE keeps the policy from being deleted under the batch.
+	reads.Queue(`SELECT policy_id FROM policies WHERE name = $1 FOR KEY SHARE`, policy).
+		QueryRow(func(r pgx.Row) error {
+			err := r.Scan(&policyID)
+			if errors.Is(err, pgx.ErrNoRows) {
+				return nil
+			}
+			found = err == nil
+			return err
+		})
+	// Locked in one order, as decisions and ends lock them; the reads
+	// after it see what committed before the locks were granted.
+	reads.Queue(`SELECT episode_id, steps FROM open_episodes
+		WHERE policy_id = `+policyOf+` AND episode_id = ANY($2) ORDER BY episode_id FOR UPDATE`, policy, ids).
+		Query(func(rows pgx.Rows) error {
+			var id string
+			var n int
+			_, err := pgx.ForEachRow(rows, []any{&id, &n}, func() error { steps[id] = n; return nil })
+			return err
+		})
+	reads.Queue(`SELECT episode_id, step, reward FROM open_episode_steps WHERE policy_id = `+policyOf+` AND episode_id = ANY($2)`, policy, ids).
+		Query(func(rows pgx.Rows) error {
+			var ref stepRef
+			var reward float64
+			_, err := pgx.ForEachRow(rows, []any{&ref.episode, &ref.step, &reward}, func() error { sums[ref] = reward; return nil })
+			return err
+		})
+	if len(keys) > 0 {
+		reads.Queue(`SELECT k.episode_id, k.key, k.step FROM unnest($2::text[], $3::text[]) AS r(episode_id, key)
+			JOIN LATERAL (SELECT episode_id, key, step FROM open_episode_reward_keys o
+				WHERE o.policy_id = `+policyOf+` AND o.episode_id = r.episode_id AND o.key = r.key) k ON true`, policy, keyEpisodes, keys).
+			Query(func(rows pgx.Rows) error {
+				var episode, key string
+				var step int32
+				_, err := pgx.ForEachRow(rows, []any{&episode, &key, &step}, func() error { keyed[[2]string{episode, key}] = step; return nil })
+				return err
+			})
+	}
+	reads.Queue(`SELECT episode_id FROM episodes WHERE policy_id = `+policyOf+` AND episode_id = ANY($2)`, policy, ids).
+		Query(func(rows pgx.Rows) error {
+			var episode string
+			_, err := pgx.ForEachRow(rows, []any{&episode}, func() error { finished[episode] = true; return nil })
+			return err
+		})
+	if err := conn.SendBatch(ctx, &reads).Close(); err != nil {
+		return fmt.Errorf("read rewards: %w", err)
+	}
+	if !found {
+		return training.NotFoundf("no policy named %q", policy)
+	}
+
+	changed := map[stepRef]bool{}
+	var newKeyEpisodes, newKeys []string
+	var newKeySteps []int32
+	for _, p := range group {
+		c, open := steps[p.episode]
+		step := c - 1
+		if p.add.Step != nil {
+			step = *p.add.Step
+		}
+		switch {
+		case !open && finished[p.episode]:
+			p.err = training.Conflictf("episode %q of policy %q is not open: it is stored as a finished episode (it ended, or was posted)", p.episode, policy)
+			continue
+		case !open:
+			p.err = training.NotFoundf("policy %q has no open episode %q", policy, p.episode)
+			continue
+		}
+		if step >= c {
+			p.err = training.Invalid(-1, -1, "step", "episode %q has %d decisions recorded (steps 0 to %d); there is no step %d", p.episode, c, c-1, step)
+			continue
+		}
+		if k, used := keyed[[2]string{p.episode, p.add.Key}]; p.add.Key != "" && used {
+			// Used before: answer what that addition went to.
+			p.res = training.RewardResult{Step: int(k), Reward: sums[stepRef{p.episode, k}], Repeated: true}
+			continue
+		}
+		ref := stepRef{p.episode, int32(step)}
+		sum := sums[ref] + p.add.Reward
+		if sum > training.MaxAbsReward || sum < -training.MaxAbsReward {
+			p.err = training.Invalid(-1, -1, "reward", "step %d's rewards would sum to %g, larger in magnitude than the limit of %g", step, sum, training.MaxAbsReward)
+			continue
+		}
+		sums[ref], changed[ref] = sum, true
+		if p.add.Key != "" {
+			keyed[[2]string{p.episode, p.add.Key}] = int32(step)
+			newKeyEpisodes, newKeys, newKeySteps = append(newKeyEpisodes, p.episode), append(newKeys, p.add.Key), append(newKeySteps, int32(step))
+		}
+		p.res = training.RewardResult{Step: step, Reward: sum}
+	}
+	if len(changed) == 0 {
+		// Nothing to write: release the locks without a durable commit.
+		if _, err := conn.Exec(ctx, `ROLLBACK`); err != nil {
+			return fmt.Errorf("end read-only batch: %w", err)
 		}
 		return nil
-	})
-	return res, err
+	}
+	var episodes []string
+	var stepNumbers []int32
+	var rewards []float64
+	for ref := range changed {
+		episodes, stepNumbers, rewards = append(episodes, ref.episode), append(stepNumbers, ref.step), append(rewards, sums[ref])
+	}
+	var writes pgx.Batch
+	writes.Queue(`UPDATE open_episode_steps o SET reward = r.reward
+		FROM unnest($2::text[], $3::integer[], $4::double precision[]) AS r(episode_id, step, reward)
+		WHERE o.policy_id = $1 AND o.episode_id = r.episode_id AND o.step = r.step`, policyID, episodes, stepNumbers, rewards)
+	if len(newKeys) > 0 {
+		writes.Queue(`INSERT INTO open_episode_reward_keys (policy_id, episode_id, key, step)
+			SELECT $1, * FROM unnest($2::text[], $3::text[], $4::integer[])`, policyID, newKeyEpisodes, newKeys, newKeySteps)
+	}
+	writes.Queue(`UPDATE open_episodes SET last_active_at = now() WHERE policy_id = $1 AND episode_id = ANY($2)`, policyID, episodes)
+	writes.Queue(`COMMIT`)
+	if err := conn.SendBatch(ctx, &writes).Close(); err != nil {
+		return fmt.Errorf("add rewards: %w", err)
+	}
+	return nil
 }
 
 // WithConn runs fn on a connection of its own, for work that pipelines its
@@ -630,19 +758,6 @@ func (db *DB) WithConn(ctx context.Context, fn func(*pgx.Conn) error) error {
 		}
 	}
 	return mapError(err)
-}
-
-// notOpenConn is notOpen for a pipelined connection.
-func notOpenConn(ctx context.Context, conn *pgx.Conn, policy string, policyID int32, episode string) error {
-	var stored bool
-	if err := conn.QueryRow(ctx, `SELECT EXISTS (SELECT 1 FROM episodes WHERE policy_id = $1 AND episode_id = $2)`,
-		policyID, episode).Scan(&stored); err != nil {
-		return fmt.Errorf("look up episode id: %w", err)
-	}
-	if stored {
-		return training.Conflictf("episode %q of policy %q is not open: it is stored as a finished episode (it ended, or was posted)", episode, policy)
-	}
-	return training.NotFoundf("policy %q has no open episode %q", policy, episode)
 }
 
 func policyInTx(ctx context.Context, tx pgx.Tx, name string) (training.Policy, error) {
@@ -739,13 +854,6 @@ func (b *EndBatcher) commit(ctx context.Context, batch []*pendingEnd) {
 // final reward out of bounds, an unknown episode) gets its error and
 // leaves the others be.
 func endInTx(ctx context.Context, tx pgx.Tx, policy string, group []*pendingEnd) error {
-	p, err := policyInTx(ctx, tx, policy)
-	if err != nil {
-		return err
-	}
-	if _, err = tx.Exec(ctx, `SELECT pg_advisory_xact_lock($1, $2)`, ingestLockClass, p.ID); err != nil {
-		return fmt.Errorf("ingest lock: %w", err)
-	}
 	var ids []string
 	first := map[string]*pendingEnd{}
 	for _, e := range group {
@@ -755,23 +863,55 @@ func endInTx(ctx context.Context, tx pgx.Tx, policy string, group []*pendingEnd)
 			ids = append(ids, e.episode)
 		}
 	}
-	open, err := openIDs(ctx, tx, p.ID, ids, true)
-	if err != nil {
-		return err
-	}
+	// One round trip for the policy, its ingest lock, the episodes' rows
+	// (locked, in id order), their steps and the ids that ended before:
+	// the lock is held from here to the commit, and ends of the policy
+	// queue for it.
+	var p training.Policy
+	found := false
 	isOpen := map[string]bool{}
-	for _, id := range open {
-		isOpen[id] = true
+	var records []training.EpisodeRecord
+	endedBefore := map[string][]float64{}
+	const policyID = `(SELECT policy_id FROM policies WHERE name = $1)`
+	var reads pgx.Batch
+	// KEY SHARE keeps the actions from changing under the transaction
+	// without blocking the worker's revision updates.
+	reads.Queue(`SELECT `+policyColumns+` FROM policies WHERE name = $1 FOR KEY SHARE`, policy).
+		QueryRow(func(r pgx.Row) error {
+			var err error
+			p, err = scanPolicy(r)
+			if errors.Is(err, pgx.ErrNoRows) {
+				return nil
+			}
+			found = err == nil
+			return err
+		})
+	reads.Queue(`SELECT pg_advisory_xact_lock($2, `+policyID+`)`, policy, ingestLockClass).Exec(func(pgconn.CommandTag) error { return nil })
+	reads.Queue(`SELECT episode_id FROM open_episodes WHERE policy_id = `+policyID+` AND episode_id = ANY($2)
+		ORDER BY episode_id FOR UPDATE`, policy, ids).
+		Query(func(rows pgx.Rows) error {
+			var id string
+			_, err := pgx.ForEachRow(rows, []any{&id}, func() error { isOpen[id] = true; return nil })
+			return err
+		})
+	reads.Queue(strings.Replace(openStepsQuery, "$1", policyID, 1), policy, ids).
+		Query(func(rows pgx.Rows) error {
+			var err error
+			records, err = scanOpenEpisodeRecords(rows, ids)
+			return err
+		})
+	reads.Queue(`SELECT episode_id, rewards FROM episodes WHERE policy_id = `+policyID+` AND episode_id = ANY($2)`, policy, ids).
+		Query(func(rows pgx.Rows) error {
+			var id string
+			var rewards []float64
+			_, err := pgx.ForEachRow(rows, []any{&id, &rewards}, func() error { endedBefore[id] = rewards; return nil })
+			return err
+		})
+	if err := tx.SendBatch(ctx, &reads).Close(); err != nil {
+		return fmt.Errorf("read open episodes: %w", err)
 	}
-	var openInOrder []string
-	for _, id := range ids {
-		if isOpen[id] {
-			openInOrder = append(openInOrder, id)
-		}
-	}
-	records, err := openEpisodeRecords(ctx, tx, p, openInOrder)
-	if err != nil {
-		return err
+	if !found {
+		return training.NotFoundf("no policy named %q", policy)
 	}
 	var closing []string
 	var kept []training.EpisodeRecord
@@ -790,25 +930,6 @@ func endInTx(ctx context.Context, tx pgx.Tx, policy string, group []*pendingEnd)
 	}
 	if err := storeClosing(ctx, tx, p, closing, kept, closedByClient); err != nil {
 		return err
-	}
-	// Those not open: ended before (a retry), or never open.
-	var notOpen []string
-	for _, id := range ids {
-		if !isOpen[id] {
-			notOpen = append(notOpen, id)
-		}
-	}
-	endedBefore := map[string][]float64{}
-	if len(notOpen) > 0 {
-		rows, err := tx.Query(ctx, `SELECT episode_id, rewards FROM episodes WHERE policy_id = $1 AND episode_id = ANY($2)`, p.ID, notOpen)
-		if err != nil {
-			return fmt.Errorf("read ended episodes: %w", err)
-		}
-		var id string
-		var rewards []float64
-		if _, err := pgx.ForEachRow(rows, []any{&id, &rewards}, func() error { endedBefore[id] = rewards; return nil }); err != nil {
-			return fmt.Errorf("read ended episodes: %w", err)
-		}
 	}
 	for _, e := range group {
 		if e.err != nil {
@@ -884,39 +1005,53 @@ func storeClosing(ctx context.Context, tx pgx.Tx, p training.Policy, ids []strin
 		if err != nil {
 			return fmt.Errorf("store ended episodes: %w", err)
 		}
-		if _, err = tx.Exec(ctx, `SELECT pg_notify($1, $2::integer::text)`, ChannelEpisodes, p.ID); err != nil {
-			return err
-		}
+	}
+	// The rest in one round trip.
+	var writes pgx.Batch
+	if len(records) > 0 {
+		writes.Queue(`SELECT pg_notify($1, $2::integer::text)`, ChannelEpisodes, p.ID)
 	}
 	for _, table := range []string{"open_episode_steps", "open_episode_reward_keys", "open_episodes"} {
-		if _, err := tx.Exec(ctx, `DELETE FROM `+table+` WHERE policy_id = $1 AND episode_id = ANY($2)`, p.ID, ids); err != nil {
-			return fmt.Errorf("delete from %s: %w", table, err)
-		}
+		writes.Queue(`DELETE FROM `+table+` WHERE policy_id = $1 AND episode_id = ANY($2)`, p.ID, ids)
 	}
 	n := len(ids)
 	switch how {
 	case closedByClient:
-		return addCounts(ctx, tx, p.ID, -n, n, 0, 0)
+		queueCounts(&writes, p.ID, 0, -n, n, 0, 0)
 	case closedIdleEnded:
-		return addCounts(ctx, tx, p.ID, -n, 0, n, 0)
+		queueCounts(&writes, p.ID, 0, -n, 0, n, 0)
 	default:
-		return addCounts(ctx, tx, p.ID, -n, 0, 0, n)
+		queueCounts(&writes, p.ID, 0, -n, 0, 0, n)
 	}
+	if err := tx.SendBatch(ctx, &writes).Close(); err != nil {
+		return fmt.Errorf("close open episodes: %w", err)
+	}
+	return nil
 }
 
 // openEpisodeRecords reads open episodes in stored form, in the order of ids.
 func openEpisodeRecords(ctx context.Context, tx pgx.Tx, p training.Policy, ids []string) ([]training.EpisodeRecord, error) {
-	rows, err := tx.Query(ctx, `SELECT episode_id, state, action, probability, allowed, reward FROM open_episode_steps
-		WHERE policy_id = $1 AND episode_id = ANY($2) ORDER BY episode_id, step`, p.ID, ids)
+	rows, err := tx.Query(ctx, openStepsQuery, p.ID, ids)
 	if err != nil {
 		return nil, fmt.Errorf("read open episodes: %w", err)
 	}
+	return scanOpenEpisodeRecords(rows, ids)
+}
+
+// openStepsQuery reads the steps of open episodes ($2) of a policy ($1),
+// as scanOpenEpisodeRecords reads them.
+const openStepsQuery = `SELECT episode_id, state, action, probability, allowed, reward FROM open_episode_steps
+	WHERE policy_id = $1 AND episode_id = ANY($2) ORDER BY episode_id, step`
+
+// scanOpenEpisodeRecords gathers the rows of openStepsQuery into records,
+// in the order of ids (those with no steps left out).
+func scanOpenEpisodeRecords(rows pgx.Rows, ids []string) ([]training.EpisodeRecord, error) {
 	byID := map[string]*training.EpisodeRecord{}
 	var id, state string
 	var action int16
 	var prob, reward float64
 	var allowed []byte
-	_, err = pgx.ForEachRow(rows, []any{&id, &state, &action, &prob, &allowed, &reward}, func() error {
+	_, err := pgx.ForEachRow(rows, []any{&id, &state, &action, &prob, &allowed, &reward}, func() error {
 		r := byID[id]
 		if r == nil {
 			r = &training.EpisodeRecord{ID: id}

@@ -300,3 +300,148 @@ func TestEndsCommittedTogetherAnswerEachRequest(t *testing.T) {
 		t.Fatalf("counts after the ends: %+v, want 4 open and %d ended", figures, episodes-4)
 	}
 }
+
+// Reward additions that arrive together are committed together, and each
+// gets its own answer: additions to one step sum, in arrival order; a key
+// used before (in an earlier batch or the same one) adds nothing and
+// answers the step and sum it went to; an addition refused on its own (no
+// such step, a sum out of bounds, an episode not open) adds nothing.
+func TestRewardsAddedTogetherAnswerEachRequest(t *testing.T) {
+	ctx := context.Background()
+	db := openDB(t)
+	settings := training.DefaultSettings()
+	settings.Actions = []string{"a", "b"}
+	p, _, err := db.PutPolicy(ctx, "rewards", settings)
+	if err != nil {
+		t.Fatal(err)
+	}
+	recorder := db.NewDecisionBatcher(storage.GroupCommit{MaxBatch: 64, InFlight: 2})
+	rewarder := db.NewRewardBatcher(storage.GroupCommit{MaxBatch: 256, InFlight: 1, Window: 50 * time.Millisecond})
+	ender := db.NewEndBatcher(storage.GroupCommit{MaxBatch: 64, InFlight: 1})
+	runCtx, stop := context.WithCancel(ctx)
+	var running sync.WaitGroup
+	defer func() { stop(); running.Wait() }()
+	running.Go(func() { _ = recorder.Run(runCtx) })
+	running.Go(func() { _ = rewarder.Run(runCtx) })
+	running.Go(func() { _ = ender.Run(runCtx) })
+
+	const episodes = 12
+	for e := range episodes {
+		for step := range 2 {
+			d := training.Decision{PolicyID: p.ID, Episode: fmt.Sprintf("e%d", e), Step: step, State: fmt.Sprintf("s%d", step),
+				Probability: 1, Allowed: training.ActionSet{3}, Mode: training.Greedy}
+			if _, _, recErr := recorder.Record(ctx, d); recErr != nil {
+				t.Fatal(recErr)
+			}
+		}
+	}
+	if _, err := ender.EndOpenEpisode(ctx, "rewards", "e0", training.EndRequest{}); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := rewarder.AddReward(ctx, "rewards", "e1", training.RewardAddition{Reward: 2, Key: "early"}); err != nil {
+		t.Fatal(err)
+	}
+	stepZero := 0
+	type addition struct {
+		episode string
+		add     training.RewardAddition
+	}
+	// For every open episode but e0 (ended): 1 to step 0, 10 keyed "k" to
+	// the latest step twice, 100 unkeyed to the latest step, a step that
+	// does not exist, and a sum out of bounds; e1 repeats its early key.
+	var all []addition
+	for e := 1; e < episodes; e++ {
+		id := fmt.Sprintf("e%d", e)
+		nine := 9
+		all = append(all,
+			addition{id, training.RewardAddition{Reward: 1, Step: &stepZero}},
+			addition{id, training.RewardAddition{Reward: 10, Key: "k"}},
+			addition{id, training.RewardAddition{Reward: 10, Key: "k"}},
+			addition{id, training.RewardAddition{Reward: 100}},
+			addition{id, training.RewardAddition{Reward: 1, Step: &nine}},
+			addition{id, training.RewardAddition{Reward: training.MaxAbsReward}},
+		)
+	}
+	all = append(all, addition{"e1", training.RewardAddition{Reward: 5, Key: "early"}},
+		addition{"e0", training.RewardAddition{Reward: 1}}, addition{"nobody", training.RewardAddition{Reward: 1}})
+	results := make([]training.RewardResult, len(all))
+	errs := make([]error, len(all))
+	// One episode's additions in order, episodes at once: each episode's
+	// additions are sent one after another so that their order is known.
+	var wg sync.WaitGroup
+	for e := 1; e < episodes; e++ {
+		wg.Go(func() {
+			for i := range 6 {
+				j := (e-1)*6 + i
+				results[j], errs[j] = rewarder.AddReward(ctx, "rewards", all[j].episode, all[j].add)
+			}
+		})
+	}
+	for j := len(all) - 3; j < len(all); j++ {
+		wg.Go(func() { results[j], errs[j] = rewarder.AddReward(ctx, "rewards", all[j].episode, all[j].add) })
+	}
+	wg.Wait()
+
+	var invalid *training.ValidationError
+	for e := 1; e < episodes; e++ {
+		j := (e - 1) * 6
+		early := 0.0
+		if e == 1 {
+			early = 2
+		}
+		want := []training.RewardResult{{Step: 0, Reward: 1}, {Step: 1, Reward: early + 10}, {Step: 1, Reward: early + 10, Repeated: true}, {Step: 1, Reward: early + 110}}
+		for i, w := range want {
+			if errs[j+i] != nil || results[j+i] != w {
+				t.Fatalf("e%d addition %d: %+v, %v; want %+v", e, i, results[j+i], errs[j+i], w)
+			}
+		}
+		if !errors.As(errs[j+4], &invalid) || !errors.As(errs[j+5], &invalid) {
+			t.Fatalf("e%d: a missing step gave %v, a sum out of bounds %v; want both refused", e, errs[j+4], errs[j+5])
+		}
+		v, err := db.OpenEpisode(ctx, "rewards", fmt.Sprintf("e%d", e))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if v.Steps[0].Reward != 1 || v.Steps[1].Reward != early+110 {
+			t.Fatalf("e%d stores rewards %g and %g, want 1 and %g", e, v.Steps[0].Reward, v.Steps[1].Reward, early+110)
+		}
+	}
+	n := len(all)
+	if errs[n-3] != nil || !results[n-3].Repeated || results[n-3].Step != 1 {
+		t.Fatalf("e1's early key again: %+v, %v; want the step it went to, repeated", results[n-3], errs[n-3])
+	}
+	if !errors.Is(errs[n-2], training.ErrConflict) || !errors.Is(errs[n-1], training.ErrNotFound) {
+		t.Fatalf("an ended episode: %v (want a conflict); an unknown one: %v (want not found)", errs[n-2], errs[n-1])
+	}
+
+	// One key sent eight times at once to each of ten episodes: all but
+	// the first to arrive gather into the batch after it, so most repeats
+	// meet in one batch. Each key is added once.
+	same := make([][]training.RewardResult, episodes)
+	for e := 2; e < episodes; e++ {
+		same[e] = make([]training.RewardResult, 8)
+		for i := range same[e] {
+			wg.Go(func() {
+				var err error
+				if same[e][i], err = rewarder.AddReward(ctx, "rewards", fmt.Sprintf("e%d", e), training.RewardAddition{Reward: 1000, Step: &stepZero, Key: "same"}); err != nil {
+					t.Error(err)
+				}
+			})
+		}
+	}
+	wg.Wait()
+	for e := 2; e < episodes; e++ {
+		added := 0
+		for _, r := range same[e] {
+			if !r.Repeated {
+				added++
+			}
+			if r.Step != 0 || r.Reward != 1001 {
+				t.Fatalf("e%d: a key sent eight times at once answered %+v, want step 0 summing to 1001", e, r)
+			}
+		}
+		if added != 1 {
+			t.Fatalf("e%d: a key sent eight times at once was added %d times", e, added)
+		}
+	}
+}

@@ -45,11 +45,17 @@ const (
 	endBatchMax = 256
 )
 
-// keptEpisodes serves the open-episode routes: ends go through the batcher
-// that commits concurrent ends together, the rest to the database.
+// keptEpisodes serves the open-episode routes: reward additions and ends
+// go through the batchers that commit concurrent ones together, reads to
+// the database. (Reward additions are gathered as decisions are.)
 type keptEpisodes struct {
 	*storage.DB
-	ender *storage.EndBatcher
+	ender    *storage.EndBatcher
+	rewarder *storage.RewardBatcher
+}
+
+func (k keptEpisodes) AddReward(ctx context.Context, policy, episode string, add training.RewardAddition) (training.RewardResult, error) {
+	return k.rewarder.AddReward(ctx, policy, episode, add)
 }
 
 func (k keptEpisodes) EndOpenEpisode(ctx context.Context, policy, episode string, req training.EndRequest) (training.EndResult, error) {
@@ -170,8 +176,10 @@ func startAPI(ctx context.Context, cfg apiConfig, db *storage.DB, reg *prometheu
 	loops.Go("decision recorder", batcher.Run)
 	ender := db.NewEndBatcher(storage.GroupCommit{MaxBatch: endBatchMax, InFlight: 1})
 	loops.Go("episode ender", ender.Run)
+	rewarder := db.NewRewardBatcher(storage.GroupCommit{MaxBatch: decisionBatchMax, InFlight: decisionCommitsInFlight, Window: decisionBatchWindow})
+	loops.Go("reward adder", rewarder.Run)
 	handler := api.NewServer(cfg.HTTP, api.Deps{Logger: logger, Policies: db, History: db, Eraser: db, Episodes: db, States: db,
-		Chooser: replica, Recorder: training.Keeper{Replica: replica, Recorder: batcher}, OpenEpisodes: keptEpisodes{DB: db, ender: ender}, Reports: db, Ready: db,
+		Chooser: replica, Recorder: training.Keeper{Replica: replica, Recorder: batcher}, OpenEpisodes: keptEpisodes{DB: db, ender: ender, rewarder: rewarder}, Reports: db, Ready: db,
 		Metrics: m, Gatherer: reg, Auth: auth, Sessions: sessions,
 		Snapshots: db, Tables: training.Tables{Store: db, Replica: replica, Logger: logger}, Jobs: db, Audit: db})
 	return apiRole{handler: handler, subscriptions: subs}
