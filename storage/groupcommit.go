@@ -123,3 +123,69 @@ func (g *groupCommitter[P]) run(ctx context.Context) error {
 		}
 	}
 }
+
+// policyBatcher gathers requests on open episodes and applies each
+// policy's together (apply: one transaction, which sets each request's
+// result or error, or fails them all by returning an error), then answers
+// each request.
+type policyBatcher[Req, Res any] struct {
+	group   *groupCommitter[*pendingOn[Req, Res]]
+	apply   func(ctx context.Context, policy string, group []*pendingOn[Req, Res]) error
+	stopped error
+}
+
+// pendingOn is one request waiting in a policyBatcher.
+type pendingOn[Req, Res any] struct {
+	policy, episode string
+	req             Req
+	res             Res
+	err             error
+	done            chan struct{}
+}
+
+// batchTimeout bounds one batch's transaction.
+const batchTimeout = 10 * time.Second
+
+func newPolicyBatcher[Req, Res any](cfg GroupCommit, stopped error,
+	apply func(ctx context.Context, policy string, group []*pendingOn[Req, Res]) error) *policyBatcher[Req, Res] {
+	b := &policyBatcher[Req, Res]{apply: apply, stopped: stopped}
+	b.group = newGroupCommitter(cfg, b.commit)
+	return b
+}
+
+// Run gathers and commits batches until ctx ends.
+func (b *policyBatcher[Req, Res]) Run(ctx context.Context) error { return b.group.run(ctx) }
+
+func (b *policyBatcher[Req, Res]) submit(ctx context.Context, policy, episode string, req Req) (Res, error) {
+	p := &pendingOn[Req, Res]{policy: policy, episode: episode, req: req, done: make(chan struct{})}
+	if err := b.group.await(ctx, p, p.done, b.stopped); err != nil {
+		var none Res
+		return none, err
+	}
+	return p.res, p.err
+}
+
+// commit applies a batch, one transaction per policy (no transaction spans
+// policies), and wakes every request of it.
+func (b *policyBatcher[Req, Res]) commit(ctx context.Context, batch []*pendingOn[Req, Res]) {
+	ctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), batchTimeout)
+	defer cancel()
+	byPolicy := map[string][]*pendingOn[Req, Res]{}
+	for _, p := range batch {
+		byPolicy[p.policy] = append(byPolicy[p.policy], p)
+	}
+	var wg sync.WaitGroup
+	for policy, group := range byPolicy {
+		wg.Go(func() {
+			if err := b.apply(ctx, policy, group); err != nil {
+				for _, p := range group {
+					p.err = err
+				}
+			}
+		})
+	}
+	wg.Wait()
+	for _, p := range batch {
+		close(p.done)
+	}
+}

@@ -6,7 +6,6 @@ import (
 	"fmt"
 	"math/rand/v2"
 	"strings"
-	"sync"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -528,25 +527,17 @@ func notOpen(ctx context.Context, tx pgx.Tx, p training.Policy, episode string) 
 // for a WAL flush apiece, and each held a share lock on its policy's row,
 // whose many concurrent holders cost PostgreSQL a multixact each.
 type RewardBatcher struct {
-	db      *DB
-	timeout time.Duration
-	group   *groupCommitter[*pendingReward]
+	*policyBatcher[training.RewardAddition, training.RewardResult]
 }
 
-type pendingReward struct {
-	policy, episode string
-	add             training.RewardAddition
-	res             training.RewardResult
-	err             error
-	done            chan struct{}
-}
+type pendingReward = pendingOn[training.RewardAddition, training.RewardResult]
 
 // NewRewardBatcher returns a batcher committing as cfg says; Run must be
 // running for AddReward to answer.
 func (db *DB) NewRewardBatcher(cfg GroupCommit) *RewardBatcher {
-	b := &RewardBatcher{db: db, timeout: 10 * time.Second}
-	b.group = newGroupCommitter(cfg, b.commit)
-	return b
+	return &RewardBatcher{newPolicyBatcher(cfg, errRewarderStopped, func(ctx context.Context, policy string, group []*pendingReward) error {
+		return db.WithConn(ctx, func(conn *pgx.Conn) error { return addRewardsInTx(ctx, conn, policy, group) })
+	})}
 }
 
 var errRewarderStopped = training.Unavailablef("this process is shutting down and adds no more rewards; retry")
@@ -556,39 +547,7 @@ var errRewarderStopped = training.Unavailablef("this process is shutting down an
 // addition with the same key adds nothing and answers what the first went
 // to.
 func (b *RewardBatcher) AddReward(ctx context.Context, policy, episode string, add training.RewardAddition) (training.RewardResult, error) {
-	p := &pendingReward{policy: policy, episode: episode, add: add, done: make(chan struct{})}
-	if err := b.group.await(ctx, p, p.done, errRewarderStopped); err != nil {
-		return training.RewardResult{}, err
-	}
-	return p.res, p.err
-}
-
-// Run gathers and commits batches until ctx ends.
-func (b *RewardBatcher) Run(ctx context.Context) error { return b.group.run(ctx) }
-
-// commit adds a batch, one transaction per policy, and wakes every request.
-func (b *RewardBatcher) commit(ctx context.Context, batch []*pendingReward) {
-	ctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), b.timeout)
-	defer cancel()
-	byPolicy := map[string][]*pendingReward{}
-	for _, p := range batch {
-		byPolicy[p.policy] = append(byPolicy[p.policy], p)
-	}
-	var wg sync.WaitGroup
-	for policy, group := range byPolicy {
-		wg.Go(func() {
-			err := b.db.WithConn(ctx, func(conn *pgx.Conn) error { return addRewardsInTx(ctx, conn, policy, group) })
-			if err != nil {
-				for _, p := range group {
-					p.err = err
-				}
-			}
-		})
-	}
-	wg.Wait()
-	for _, p := range batch {
-		close(p.done)
-	}
+	return b.submit(ctx, policy, episode, add)
 }
 
 type stepRef struct {
@@ -610,8 +569,8 @@ func addRewardsInTx(ctx context.Context, conn *pgx.Conn, policy string, group []
 			seen[p.episode] = true
 			ids = append(ids, p.episode)
 		}
-		if p.add.Key != "" {
-			keyEpisodes, keys = append(keyEpisodes, p.episode), append(keys, p.add.Key)
+		if p.req.Key != "" {
+			keyEpisodes, keys = append(keyEpisodes, p.episode), append(keys, p.req.Key)
 		}
 	}
 	var policyID int32
@@ -680,8 +639,8 @@ func addRewardsInTx(ctx context.Context, conn *pgx.Conn, policy string, group []
 	for _, p := range group {
 		c, open := steps[p.episode]
 		step := c - 1
-		if p.add.Step != nil {
-			step = *p.add.Step
+		if p.req.Step != nil {
+			step = *p.req.Step
 		}
 		switch {
 		case !open && finished[p.episode]:
@@ -695,21 +654,21 @@ func addRewardsInTx(ctx context.Context, conn *pgx.Conn, policy string, group []
 			p.err = training.Invalid(-1, -1, "step", "episode %q has %d decisions recorded (steps 0 to %d); there is no step %d", p.episode, c, c-1, step)
 			continue
 		}
-		if k, used := keyed[[2]string{p.episode, p.add.Key}]; p.add.Key != "" && used {
+		if k, used := keyed[[2]string{p.episode, p.req.Key}]; p.req.Key != "" && used {
 			// Used before: answer what that addition went to.
 			p.res = training.RewardResult{Step: int(k), Reward: sums[stepRef{p.episode, k}], Repeated: true}
 			continue
 		}
 		ref := stepRef{p.episode, int32(step)}
-		sum := sums[ref] + p.add.Reward
+		sum := sums[ref] + p.req.Reward
 		if sum > training.MaxAbsReward || sum < -training.MaxAbsReward {
 			p.err = training.Invalid(-1, -1, "reward", "step %d's rewards would sum to %g, larger in magnitude than the limit of %g", step, sum, training.MaxAbsReward)
 			continue
 		}
 		sums[ref], changed[ref] = sum, true
-		if p.add.Key != "" {
-			keyed[[2]string{p.episode, p.add.Key}] = int32(step)
-			newKeyEpisodes, newKeys, newKeySteps = append(newKeyEpisodes, p.episode), append(newKeys, p.add.Key), append(newKeySteps, int32(step))
+		if p.req.Key != "" {
+			keyed[[2]string{p.episode, p.req.Key}] = int32(step)
+			newKeyEpisodes, newKeys, newKeySteps = append(newKeyEpisodes, p.episode), append(newKeys, p.req.Key), append(newKeySteps, int32(step))
 		}
 		p.res = training.RewardResult{Step: step, Reward: sum}
 	}
@@ -787,25 +746,17 @@ const (
 // episodes take their training order in the order they end), so ends one
 // transaction each would queue for that lock and a durable commit apiece.
 type EndBatcher struct {
-	db      *DB
-	timeout time.Duration
-	group   *groupCommitter[*pendingEnd]
+	*policyBatcher[training.EndRequest, training.EndResult]
 }
 
-type pendingEnd struct {
-	policy, episode string
-	req             training.EndRequest
-	res             training.EndResult
-	err             error
-	done            chan struct{}
-}
+type pendingEnd = pendingOn[training.EndRequest, training.EndResult]
 
 // NewEndBatcher returns a batcher committing as cfg says; Run must be
 // running for EndOpenEpisode to answer.
 func (db *DB) NewEndBatcher(cfg GroupCommit) *EndBatcher {
-	b := &EndBatcher{db: db, timeout: 10 * time.Second}
-	b.group = newGroupCommitter(cfg, b.commit)
-	return b
+	return &EndBatcher{newPolicyBatcher(cfg, errEnderStopped, func(ctx context.Context, policy string, group []*pendingEnd) error {
+		return db.WithTx(ctx, func(tx pgx.Tx) error { return endInTx(ctx, tx, policy, group) })
+	})}
 }
 
 var errEnderStopped = training.Unavailablef("this process is shutting down and ends no more episodes; retry")
@@ -813,39 +764,7 @@ var errEnderStopped = training.Unavailablef("this process is shutting down and e
 // EndOpenEpisode ends an open episode (with an optional final reward added
 // to its last step), or reports how it ended before.
 func (b *EndBatcher) EndOpenEpisode(ctx context.Context, policy, episode string, req training.EndRequest) (training.EndResult, error) {
-	p := &pendingEnd{policy: policy, episode: episode, req: req, done: make(chan struct{})}
-	if err := b.group.await(ctx, p, p.done, errEnderStopped); err != nil {
-		return training.EndResult{ID: episode}, err
-	}
-	return p.res, p.err
-}
-
-// Run gathers and commits batches until ctx ends.
-func (b *EndBatcher) Run(ctx context.Context) error { return b.group.run(ctx) }
-
-// commit ends a batch, one transaction per policy, and wakes every request.
-func (b *EndBatcher) commit(ctx context.Context, batch []*pendingEnd) {
-	ctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), b.timeout)
-	defer cancel()
-	byPolicy := map[string][]*pendingEnd{}
-	for _, p := range batch {
-		byPolicy[p.policy] = append(byPolicy[p.policy], p)
-	}
-	var wg sync.WaitGroup
-	for policy, group := range byPolicy {
-		wg.Go(func() {
-			err := b.db.WithTx(ctx, func(tx pgx.Tx) error { return endInTx(ctx, tx, policy, group) })
-			for _, p := range group {
-				if err != nil {
-					p.err = err
-				}
-			}
-		})
-	}
-	wg.Wait()
-	for _, p := range batch {
-		close(p.done)
-	}
+	return b.submit(ctx, policy, episode, req)
 }
 
 // endInTx ends the open episodes of group, all of one policy, in the order

@@ -208,21 +208,12 @@ func TestRacingNextStepsAreRecordedOnce(t *testing.T) {
 func TestEndsCommittedTogetherAnswerEachRequest(t *testing.T) {
 	ctx := context.Background()
 	db := openDB(t)
-	settings := training.DefaultSettings()
-	settings.Actions = []string{"a", "b"}
-	p, _, err := db.PutPolicy(ctx, "ends", settings)
-	if err != nil {
-		t.Fatal(err)
-	}
+	p := putPolicy(t, db, "ends", training.DefaultSettings())
 	recorder := db.NewDecisionBatcher(storage.GroupCommit{MaxBatch: 64, InFlight: 2})
 	// A long window and one commit at a time: the ends below, sent
 	// together, gather into few batches.
 	ender := db.NewEndBatcher(storage.GroupCommit{MaxBatch: 64, InFlight: 1, Window: 50 * time.Millisecond})
-	runCtx, stop := context.WithCancel(ctx)
-	var running sync.WaitGroup
-	defer func() { stop(); running.Wait() }()
-	running.Go(func() { _ = recorder.Run(runCtx) })
-	running.Go(func() { _ = ender.Run(runCtx) })
+	runUntilCleanup(t, recorder.Run, ender.Run)
 
 	const episodes = 40
 	for e := range episodes {
@@ -309,21 +300,11 @@ func TestEndsCommittedTogetherAnswerEachRequest(t *testing.T) {
 func TestRewardsAddedTogetherAnswerEachRequest(t *testing.T) {
 	ctx := context.Background()
 	db := openDB(t)
-	settings := training.DefaultSettings()
-	settings.Actions = []string{"a", "b"}
-	p, _, err := db.PutPolicy(ctx, "rewards", settings)
-	if err != nil {
-		t.Fatal(err)
-	}
+	p := putPolicy(t, db, "rewards", training.DefaultSettings())
 	recorder := db.NewDecisionBatcher(storage.GroupCommit{MaxBatch: 64, InFlight: 2})
 	rewarder := db.NewRewardBatcher(storage.GroupCommit{MaxBatch: 256, InFlight: 1, Window: 50 * time.Millisecond})
 	ender := db.NewEndBatcher(storage.GroupCommit{MaxBatch: 64, InFlight: 1})
-	runCtx, stop := context.WithCancel(ctx)
-	var running sync.WaitGroup
-	defer func() { stop(); running.Wait() }()
-	running.Go(func() { _ = recorder.Run(runCtx) })
-	running.Go(func() { _ = rewarder.Run(runCtx) })
-	running.Go(func() { _ = ender.Run(runCtx) })
+	runUntilCleanup(t, recorder.Run, rewarder.Run, ender.Run)
 
 	const episodes = 12
 	for e := range episodes {
@@ -444,4 +425,25 @@ func TestRewardsAddedTogetherAnswerEachRequest(t *testing.T) {
 			t.Fatalf("e%d: a key sent eight times at once was added %d times", e, added)
 		}
 	}
+}
+
+// putPolicy stores a policy of two actions, a and b, with settings.
+func putPolicy(t *testing.T, db *storage.DB, name string, settings training.Settings) training.Policy {
+	t.Helper()
+	settings.Actions = []string{"a", "b"}
+	p, _, err := db.PutPolicy(context.Background(), name, settings)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return p
+}
+
+// runUntilCleanup runs each of runs (a batcher's Run) until the test ends.
+func runUntilCleanup(t *testing.T, runs ...func(context.Context) error) {
+	ctx, stop := context.WithCancel(context.Background())
+	var running sync.WaitGroup
+	for _, run := range runs {
+		running.Go(func() { _ = run(ctx) })
+	}
+	t.Cleanup(func() { stop(); running.Wait() })
 }
