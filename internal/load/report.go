@@ -116,21 +116,11 @@ func Report(dir string) (string, error) {
 	}
 	var kept MixedReport
 	if err := readJSON(filepath.Join(dir, FileMixedKept), &kept); t.ok("mixed, episodes kept by qtally", err) {
-		t.info(fmt.Sprintf("mixed: kept by qtally (offered %s episodes/s, %.0f s)", human(kept.OfferedPerSec), kept.DurationSec),
-			fmt.Sprintf("%s episodes/s, %s recorded chooses/s, %d errors, %d skipped", human(kept.EpisodesPerSec), human(kept.ChoosesPerSec), kept.Errors, kept.Skipped), "", 0)
-		bound := boundedSlopeShare * kept.EpisodesPerSec
-		t.verdict("mixed, kept: backlog trend (max "+human(float64(kept.BacklogMax))+")",
-			fmt.Sprintf("%.1f episodes/s", kept.BacklogSlopePer), fmt.Sprintf("< %.1f /s (2%% of ending)", bound),
-			kept.BacklogSlopePer < bound && kept.Errors == 0 && len(kept.Backlog) > 1)
+		t.mixedRows(kept, "mixed: kept by qtally", "recorded chooses", "mixed, kept: backlog trend", "ending")
 	}
 	var mixed MixedReport
 	if err := readJSON(filepath.Join(dir, FileMixed), &mixed); t.ok("mixed", err) {
-		t.info(fmt.Sprintf("mixed: posted (offered %s episodes/s, %.0f s)", human(mixed.OfferedPerSec), mixed.DurationSec),
-			fmt.Sprintf("%s episodes/s, %s chooses/s, %d errors, %d skipped", human(mixed.EpisodesPerSec), human(mixed.ChoosesPerSec), mixed.Errors, mixed.Skipped), "", 0)
-		bound := boundedSlopeShare * mixed.EpisodesPerSec
-		t.verdict("mixed: backlog trend (max "+human(float64(mixed.BacklogMax))+")",
-			fmt.Sprintf("%.1f episodes/s", mixed.BacklogSlopePer), fmt.Sprintf("< %.1f /s (2%% of posting)", bound),
-			mixed.BacklogSlopePer < bound && mixed.Errors == 0 && len(mixed.Backlog) > 1)
+		t.mixedRows(mixed, "mixed: posted", "chooses", "mixed: backlog trend", "posting")
 		t.verdict(fmt.Sprintf("mixed: commit to choose p99 (%d commits, %s)", len(mixed.Visibility), mixed.VisibilitySource),
 			fmtDuration(mixed.VisibilityP99)+" (p50 "+fmtDuration(mixed.VisibilityP50)+", max "+fmtDuration(mixed.VisibilityMax)+")",
 			"<= "+fmtDuration(targetVisibilityP99), len(mixed.Visibility) > 0 && mixed.VisibilityP99 <= targetVisibilityP99)
@@ -322,6 +312,18 @@ func (s SustainReport) best() (SustainTrial, bool) {
 		return SustainTrial{}, false
 	}
 	return s.Trials[s.Best], true
+}
+
+// mixedRows adds a mixed run's rate row and its backlog verdict: the
+// trend must stay below boundedSlopeShare of the rate episodes arrive
+// (arriving: "posting", or "ending" when qtally keeps them).
+func (t *table) mixedRows(r MixedReport, label, chooses, backlogLabel, arriving string) {
+	t.info(fmt.Sprintf("%s (offered %s episodes/s, %.0f s)", label, human(r.OfferedPerSec), r.DurationSec),
+		fmt.Sprintf("%s episodes/s, %s %s/s, %d errors, %d skipped", human(r.EpisodesPerSec), human(r.ChoosesPerSec), chooses, r.Errors, r.Skipped), "", 0)
+	bound := boundedSlopeShare * r.EpisodesPerSec
+	t.verdict(backlogLabel+" (max "+human(float64(r.BacklogMax))+")",
+		fmt.Sprintf("%.1f episodes/s", r.BacklogSlopePer), fmt.Sprintf("< %.1f /s (2%% of %s)", bound, arriving),
+		r.BacklogSlopePer < bound && r.Errors == 0 && len(r.Backlog) > 1)
 }
 
 func (t *table) verdict(label, value, target string, met bool) {
