@@ -1,0 +1,77 @@
+package storage_test
+
+import (
+	"context"
+	"fmt"
+	"testing"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/qtally/qtally/storage"
+	"github.com/qtally/qtally/storage/pgtest"
+	"github.com/qtally/qtally/training"
+)
+
+// A training batch reads its episodes, not the policy's whole backlog,
+// whatever the planner believes about the table. The counter-example: a
+// new policy's 50,000 episodes stored after the table's statistics were
+// gathered (autovacuum analyses a large table only after a tenth of it
+// changed) looked like one row to the planner, which re-ran the batch's
+// range search once per backlog row: one batch read took 27 s. The check
+// counts the rows the read's plan touched, for the plan made for the
+// values and the generic plan used after a few executions.
+func TestBatchReadTouchesItsBatchWhateverTheStatistics(t *testing.T) {
+	ctx := context.Background()
+	url := pgtest.NewDatabase(t)
+	db, err := storage.Open(ctx, url, 4, training.DefaultLimits())
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(db.Close)
+	conn, err := pgx.Connect(ctx, url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { conn.Close(context.Background()) })
+	// Statistics change only when this test says so.
+	must(t, exec(ctx, conn, `ALTER TABLE episodes SET (autovacuum_enabled = false)`))
+
+	settings := training.Settings{Actions: []string{"wait", "remind"}, Gamma: 0.9, Alpha: 0.1, Visit: training.FirstVisit}
+	store := func(policy string, n int) training.Policy {
+		p, _, err := db.PutPolicy(ctx, policy, settings)
+		must(t, err)
+		for from := 0; from < n; from += 500 {
+			eps := make([]training.Episode, 500)
+			for i := range eps {
+				eps[i] = training.Episode{ID: fmt.Sprintf("%s-%d", policy, from+i), Steps: []training.Step{
+					{State: "overdue", Action: "remind", Reward: 0}, {State: "paid", Action: "wait", Reward: 1}}}
+			}
+			_, err := db.Ingest(ctx, policy, eps)
+			must(t, err)
+		}
+		return p
+	}
+	const batch = 100
+	check := func(p training.Policy, when string) {
+		t.Helper()
+		for _, generic := range []bool{false, true} {
+			examined, err := db.RowsExaminedByBatchRead(ctx, p.ID, 0, batch, generic)
+			must(t, err)
+			if examined > 6*batch {
+				t.Errorf("%s, generic plan %v: reading a batch of %d episodes touched %d rows; want at most %d", when, generic, batch, examined, 6*batch)
+			}
+		}
+	}
+	invoices := store("invoices", 1000)
+	check(invoices, "no statistics yet")
+	must(t, exec(ctx, conn, `ANALYZE episodes`))
+	renewals := store("renewals", 5000)
+	check(renewals, "statistics from before the backlog")
+	must(t, exec(ctx, conn, `ANALYZE episodes`))
+	check(renewals, "statistics of the backlog")
+}
+
+func exec(ctx context.Context, conn *pgx.Conn, sql string) error {
+	_, err := conn.Exec(ctx, sql)
+	return err
+}
