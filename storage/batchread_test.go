@@ -75,3 +75,53 @@ func exec(ctx context.Context, conn *pgx.Conn, sql string) error {
 	_, err := conn.Exec(ctx, sql)
 	return err
 }
+
+// Reading every policy's backlog (the metrics' backlog gauges, at every
+// scrape) counts the untrained episodes, not every stored one: the
+// counter-example read the whole table, trained episodes of every policy
+// included.
+func TestBacklogsCountOnlyUntrainedEpisodes(t *testing.T) {
+	ctx := context.Background()
+	db := openDB(t)
+	settings := training.Settings{Actions: []string{"wait", "remind"}, Gamma: 0.9, Alpha: 0.1, Visit: training.FirstVisit}
+	for _, policy := range []string{"invoices", "renewals"} {
+		if _, _, err := db.PutPolicy(ctx, policy, settings); err != nil {
+			t.Fatal(err)
+		}
+	}
+	store := func(policy string, from, n int) {
+		t.Helper()
+		eps := make([]training.Episode, n)
+		for i := range eps {
+			eps[i] = training.Episode{ID: fmt.Sprintf("%s-%d", policy, from+i), Steps: []training.Step{
+				{State: "overdue", Action: "remind", Reward: 0}, {State: "paid", Action: "wait", Reward: 1}}}
+		}
+		_, err := db.Ingest(ctx, policy, eps)
+		must(t, err)
+	}
+	for from := 0; from < 4000; from += 500 {
+		store("invoices", from, 500)
+	}
+	for {
+		_, found, err := db.TrainBatch(ctx, 10000, training.Learn)
+		must(t, err)
+		if !found {
+			break
+		}
+	}
+	store("invoices", 4000, 30)
+	store("renewals", 0, 70)
+	backlogs, err := db.Backlogs(ctx)
+	must(t, err)
+	if len(backlogs) != 2 || backlogs[0].Episodes != 30 || backlogs[1].Episodes != 70 {
+		t.Fatalf("backlogs %+v; want invoices 30 and renewals 70", backlogs)
+	}
+	const untrained = 100
+	for _, generic := range []bool{false, true} {
+		examined, err := db.RowsExaminedByBacklogs(ctx, generic)
+		must(t, err)
+		if examined > 4*untrained {
+			t.Errorf("generic plan %v: reading the backlogs touched %d rows; %d episodes are untrained, 4,000 trained", generic, examined, untrained)
+		}
+	}
+}

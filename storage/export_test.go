@@ -3,6 +3,7 @@ package storage
 import (
 	"context"
 	"fmt"
+	"strings"
 
 	"github.com/jackc/pgx/v5"
 )
@@ -34,23 +35,42 @@ func (db *DB) CountWaitingAdvisoryLocks(ctx context.Context) (int, error) {
 // and returns the rows its plan's nodes produced or filtered out, summed
 // over all their loops: the work the read did, whatever the timing.
 func (db *DB) RowsExaminedByBatchRead(ctx context.Context, policyID int32, after int64, limit int, generic bool) (int64, error) {
+	return db.rowsExamined(ctx, generic, untrainedEpisodesQuery, "integer, bigint, integer", int64(policyID), after, int64(limit))
+}
+
+// RowsExaminedByBacklogs is RowsExaminedByBatchRead for the read of every
+// policy's backlog.
+func (db *DB) RowsExaminedByBacklogs(ctx context.Context, generic bool) (int64, error) {
+	return db.rowsExamined(ctx, generic, backlogsQuery, "")
+}
+
+func (db *DB) rowsExamined(ctx context.Context, generic bool, query, paramTypes string, args ...int64) (int64, error) {
 	mode := "force_custom_plan"
 	if generic {
 		mode = "force_generic_plan"
+	}
+	prepare, execute := `PREPARE examined AS `, `EXECUTE examined`
+	if len(args) > 0 {
+		values := make([]string, len(args))
+		for i, a := range args {
+			values[i] = fmt.Sprint(a)
+		}
+		prepare = `PREPARE examined(` + paramTypes + `) AS `
+		execute += `(` + strings.Join(values, ", ") + `)`
 	}
 	var examined int64
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
 		if _, err := tx.Exec(ctx, `SELECT set_config('plan_cache_mode', $1, true)`, mode); err != nil {
 			return err
 		}
-		if _, err := tx.Exec(ctx, `PREPARE batch_read(integer, bigint, integer) AS `+untrainedEpisodesQuery); err != nil {
+		if _, err := tx.Exec(ctx, prepare+query); err != nil {
 			return err
 		}
 		var plan []struct{ Plan planNode }
-		if err := tx.QueryRow(ctx, fmt.Sprintf(`EXPLAIN (ANALYZE, FORMAT JSON) EXECUTE batch_read(%d, %d, %d)`, policyID, after, limit)).Scan(&plan); err != nil {
+		if err := tx.QueryRow(ctx, `EXPLAIN (ANALYZE, FORMAT JSON) `+execute).Scan(&plan); err != nil {
 			return err
 		}
-		if _, err := tx.Exec(ctx, `DEALLOCATE batch_read`); err != nil {
+		if _, err := tx.Exec(ctx, `DEALLOCATE examined`); err != nil {
 			return err
 		}
 		for _, p := range plan {

@@ -321,12 +321,19 @@ func (db *DB) ListPolicyStatus(ctx context.Context) ([]views.PolicyStatus, error
 	return out, nil
 }
 
+// backlogsQuery counts each policy's episodes past its watermark by a
+// range of the primary key; a join of the two tables read every stored
+// episode, trained ones included, at every metrics scrape.
+const backlogsQuery = `
+	SELECT p.name, b.episodes, b.oldest
+	FROM policies p CROSS JOIN LATERAL (
+		SELECT count(*) AS episodes, min(e.received_at) AS oldest
+		FROM episodes e WHERE e.policy_id = p.policy_id AND ` + untrained + `) b
+	ORDER BY p.name`
+
 // Backlogs reads every policy's untrained episode count and oldest arrival.
 func (db *DB) Backlogs(ctx context.Context) ([]views.Backlog, error) {
-	rows, err := db.pool.Query(ctx, `
-		SELECT p.name, count(e.seq), min(e.received_at)
-		FROM policies p LEFT JOIN episodes e ON e.policy_id = p.policy_id AND `+untrained+`
-		GROUP BY p.name ORDER BY p.name`)
+	rows, err := db.pool.Query(ctx, backlogsQuery)
 	if err != nil {
 		return nil, mapError(fmt.Errorf("read backlog: %w", err))
 	}
