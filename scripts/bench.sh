@@ -213,6 +213,9 @@ say "choose: ${LOAD_S}s with vegeta, 64 connections ..."
 qtally_load choose --policy bench --states "$STATES" --workers 64 --duration "${LOAD_S}s" >"$OUT/choose.json"
 say "recorded choose: ${LOAD_S}s with vegeta, 64 connections, each decision recorded in an open episode ..."
 qtally_load recorded-choose --policy bench --states "$STATES" --workers 64 --duration "${LOAD_S}s" >"$OUT/recorded-choose.json"
+say "choose and recorded choose again with 256 connections: ${LOAD_S}s each ..."
+qtally_load choose --policy bench --states "$STATES" --workers 256 --duration "${LOAD_S}s" >"$OUT/choose-256.json"
+qtally_load recorded-choose --policy bench --states "$STATES" --workers 256 --duration "${LOAD_S}s" >"$OUT/recorded-choose-256.json"
 if command -v wrk >/dev/null; then
   say "choose: ${LOAD_S}s with wrk -t1 -c64 ..."
   CHOOSE_URL=$API/v1/policies/bench/choose

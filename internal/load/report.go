@@ -22,6 +22,11 @@ const (
 	FileChoose    = "choose.json"
 	// FileRecordedChoose: choose that records each decision in an open episode.
 	FileRecordedChoose = "recorded-choose.json"
+	// FileChooseWide and FileRecordedChooseWide: the same two at 256
+	// connections, where the durable commit's latency no longer caps
+	// what the connections can ask.
+	FileChooseWide         = "choose-256.json"
+	FileRecordedChooseWide = "recorded-choose-256.json"
 	FilePost           = "post.json"
 	FileDrain          = "drain.json"
 	FileMixed          = "mixed.json"
@@ -93,14 +98,13 @@ func Report(dir string) (string, error) {
 		t.info("choose, vegeta 64 connections", fmt.Sprintf("%s req/s (success %.4f)", human(choose.Throughput), choose.Success),
 			"echo_get_lookup_rps", choose.Throughput)
 		t.info("choose p99, vegeta", fmtDuration(choose.P99), "echo_get_p99_ms", float64(choose.P99)/1e6)
-		var recorded Figures
-		if err := readJSON(filepath.Join(dir, FileRecordedChoose), &recorded); t.ok("recorded choose", err) && choose.Throughput > 0 {
-			ratio := recorded.Throughput / choose.Throughput
-			t.verdict("recorded choose / choose, vegeta 64 connections, same run",
-				fmt.Sprintf("%.2fx (%s req/s, success %.4f)", ratio, human(recorded.Throughput), recorded.Success),
-				fmt.Sprintf(">= %gx", targetRecordedRatio), ratio >= targetRecordedRatio && recorded.Success == 1)
-			t.info("recorded choose p99, vegeta", fmtDuration(recorded.P99), "", 0)
-		}
+		t.recordedRatio(dir, FileRecordedChoose, choose, 64)
+	}
+	var chooseWide Figures
+	if err := readJSON(filepath.Join(dir, FileChooseWide), &chooseWide); t.ok("choose (vegeta, 256 connections)", err) {
+		t.info("choose, vegeta 256 connections", fmt.Sprintf("%s req/s (success %.4f, p99 %s)", human(chooseWide.Throughput),
+			chooseWide.Success, fmtDuration(chooseWide.P99)), "", 0)
+		t.recordedRatio(dir, FileRecordedChooseWide, chooseWide, 256)
 	}
 	var post Figures
 	if err := readJSON(filepath.Join(dir, FilePost), &post); t.ok("post", err) {
@@ -164,6 +168,20 @@ func (t *table) ok(what string, err error) bool {
 		t.missing = append(t.missing, fmt.Sprintf("%s: not measured (%v)", what, err))
 	}
 	return err == nil
+}
+
+// recordedRatio adds the row of recorded choose against plain choose
+// measured with the same number of connections in the same run.
+func (t *table) recordedRatio(dir, file string, choose Figures, connections int) {
+	var recorded Figures
+	if err := readJSON(filepath.Join(dir, file), &recorded); !t.ok(fmt.Sprintf("recorded choose (%d connections)", connections), err) || choose.Throughput <= 0 {
+		return
+	}
+	ratio := recorded.Throughput / choose.Throughput
+	t.verdict(fmt.Sprintf("recorded choose / choose, vegeta %d connections, same run", connections),
+		fmt.Sprintf("%.2fx (%s req/s, success %.4f)", ratio, human(recorded.Throughput), recorded.Success),
+		fmt.Sprintf(">= %gx", targetRecordedRatio), ratio >= targetRecordedRatio && recorded.Success == 1)
+	t.info(fmt.Sprintf("recorded choose p99, vegeta %d connections", connections), fmtDuration(recorded.P99), "", 0)
 }
 
 func (t *table) ceiling(name string) (Ceiling, string, bool) {
