@@ -32,11 +32,26 @@ func readBody(c echo.Context, limit int64, accepted ...string) ([]byte, string, 
 		return nil, "", echo.NewHTTPError(http.StatusUnsupportedMediaType,
 			fmt.Sprintf("Content-Type must be %s", strings.Join(accepted, " or ")))
 	}
-	body, err := io.ReadAll(http.MaxBytesReader(c.Response(), req.Body, limit))
-	var tooLarge *http.MaxBytesError
-	if errors.As(err, &tooLarge) {
-		return nil, "", echo.NewHTTPError(http.StatusRequestEntityTooLarge,
+	tooLarge := func() error {
+		return echo.NewHTTPError(http.StatusRequestEntityTooLarge,
 			fmt.Sprintf("the body is larger than the limit of %d bytes; send fewer episodes per request", limit))
+	}
+	var body []byte
+	if n := req.ContentLength; n >= 0 {
+		// The server stops the body at its declared length: read exactly
+		// that into one buffer, refusing a declared length over the limit
+		// before reading any of it.
+		if n > limit {
+			return nil, "", tooLarge()
+		}
+		body = make([]byte, n)
+		_, err = io.ReadFull(req.Body, body)
+	} else {
+		body, err = io.ReadAll(http.MaxBytesReader(c.Response(), req.Body, limit))
+		var over *http.MaxBytesError
+		if errors.As(err, &over) {
+			return nil, "", tooLarge()
+		}
 	}
 	if err != nil {
 		return nil, "", echo.NewHTTPError(http.StatusBadRequest, "the body could not be read: "+err.Error())
