@@ -27,9 +27,9 @@ const (
 	// what the connections can ask.
 	FileChooseWide         = "choose-256.json"
 	FileRecordedChooseWide = "recorded-choose-256.json"
-	FilePost           = "post.json"
-	FileDrain          = "drain.json"
-	FileMixed          = "mixed.json"
+	FilePost               = "post.json"
+	FileDrain              = "drain.json"
+	FileMixed              = "mixed.json"
 	// FileMixedKept: the mixed scenario with the episodes kept by qtally.
 	FileMixedKept = "mixed-kept.json"
 	FileMemory    = "memory.json"
