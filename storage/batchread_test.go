@@ -55,7 +55,7 @@ func TestBatchReadTouchesItsBatchWhateverTheStatistics(t *testing.T) {
 	check := func(p training.Policy, when string) {
 		t.Helper()
 		for _, generic := range []bool{false, true} {
-			examined, err := db.RowsExaminedByBatchRead(ctx, p.ID, 0, batch, generic)
+			examined, err := db.RowsExaminedByBatchRead(ctx, p.ID, 0, training.BatchLimits{Episodes: batch, Steps: 1 << 20}, generic)
 			must(t, err)
 			if examined > 6*batch {
 				t.Errorf("%s, generic plan %v: reading a batch of %d episodes touched %d rows; want at most %d", when, generic, batch, examined, 6*batch)
@@ -103,7 +103,7 @@ func TestBacklogsCountOnlyUntrainedEpisodes(t *testing.T) {
 		store("invoices", from, 500)
 	}
 	for {
-		_, found, err := db.TrainBatch(ctx, 10000, training.Learn)
+		_, found, err := db.TrainBatch(ctx, training.BatchLimits{Episodes: 10000}, training.Learn)
 		must(t, err)
 		if !found {
 			break
@@ -123,5 +123,41 @@ func TestBacklogsCountOnlyUntrainedEpisodes(t *testing.T) {
 		if examined > 4*untrained {
 			t.Errorf("generic plan %v: reading the backlogs touched %d rows; %d episodes are untrained, 4,000 trained", generic, examined, untrained)
 		}
+	}
+}
+
+// A batch takes episodes in arrival order until it holds its episode
+// limit or at least its step bound: the episode that crosses the bound is
+// the batch's last.
+func TestTrainingBatchStopsAtItsStepBound(t *testing.T) {
+	ctx := context.Background()
+	db := openDB(t)
+	settings := training.Settings{Actions: []string{"wait", "remind"}, Gamma: 0.9, Alpha: 0.1, Visit: training.FirstVisit}
+	if _, _, err := db.PutPolicy(ctx, "renewals", settings); err != nil {
+		t.Fatal(err)
+	}
+	lengths := []int{30, 1, 40, 5, 5, 5, 100, 2, 2}
+	eps := make([]training.Episode, len(lengths))
+	for i, n := range lengths {
+		eps[i].ID = fmt.Sprintf("renewal-%d", i)
+		for range n {
+			eps[i].Steps = append(eps[i].Steps, training.Step{State: "overdue", Action: "remind", Reward: 1})
+		}
+	}
+	_, err := db.Ingest(ctx, "renewals", eps)
+	must(t, err)
+	limits := training.BatchLimits{Episodes: 5, Steps: 50}
+	// 30+1 < 50, then 40 makes 71: stop. 5+5+5 = 15, then 100: stop at
+	// 115. 2+2: the rest.
+	for i, want := range []struct{ episodes, steps int }{{3, 71}, {4, 115}, {2, 4}} {
+		report, found, err := db.TrainBatch(ctx, limits, training.Learn)
+		must(t, err)
+		if !found || report.Episodes != want.episodes || report.Result.Steps != want.steps {
+			t.Fatalf("batch %d: found %v, %d episodes, %d steps; want %d episodes, %d steps",
+				i+1, found, report.Episodes, report.Result.Steps, want.episodes, want.steps)
+		}
+	}
+	if _, found, err := db.TrainBatch(ctx, limits, training.Learn); err != nil || found {
+		t.Fatalf("after the backlog: found %v, %v", found, err)
 	}
 }

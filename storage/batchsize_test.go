@@ -39,7 +39,7 @@ func TestTrainBatchFollowsTheSizer(t *testing.T) {
 	drain := func() []int {
 		var sizes []int
 		for {
-			report, trained, err := db.TrainBatch(ctx, 1000, training.Learn)
+			report, trained, err := db.TrainBatch(ctx, training.BatchLimits{Episodes: 1000}, training.Learn)
 			if err != nil {
 				t.Fatal(err)
 			}

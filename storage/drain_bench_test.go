@@ -47,7 +47,7 @@ func BenchmarkDrain(b *testing.B) {
 		b.StartTimer()
 		start := time.Now()
 		for {
-			report, trained, err := db.TrainBatch(ctx, batch, training.Learn)
+			report, trained, err := db.TrainBatch(ctx, training.BatchLimits{Episodes: batch}, training.Learn)
 			if err != nil {
 				b.Fatal(err)
 			}

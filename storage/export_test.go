@@ -6,6 +6,8 @@ import (
 	"strings"
 
 	"github.com/jackc/pgx/v5"
+
+	"github.com/qtally/qtally/training"
 )
 
 // BeginTrainingBatch opens a transaction holding a policy's training lock,
@@ -34,8 +36,9 @@ func (db *DB) CountWaitingAdvisoryLocks(ctx context.Context) (int, error) {
 // values (custom) or for any values (generic, as after a few executions),
 // and returns the rows its plan's nodes produced or filtered out, summed
 // over all their loops: the work the read did, whatever the timing.
-func (db *DB) RowsExaminedByBatchRead(ctx context.Context, policyID int32, after int64, limit int, generic bool) (int64, error) {
-	return db.rowsExamined(ctx, generic, untrainedEpisodesQuery, "integer, bigint, integer", int64(policyID), after, int64(limit))
+func (db *DB) RowsExaminedByBatchRead(ctx context.Context, policyID int32, after int64, limits training.BatchLimits, generic bool) (int64, error) {
+	return db.rowsExamined(ctx, generic, untrainedEpisodesQuery, "integer, bigint, integer, bigint",
+		int64(policyID), after, int64(limits.Episodes), stepBound(limits))
 }
 
 // RowsExaminedByBacklogs is RowsExaminedByBatchRead for the read of every

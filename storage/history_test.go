@@ -79,7 +79,7 @@ func ingest(t *testing.T, db *storage.DB, prefix string, n int) {
 
 func train(t *testing.T, db *storage.DB, max int) training.BatchReport {
 	t.Helper()
-	report, found, err := db.TrainBatch(context.Background(), max, training.Learn)
+	report, found, err := db.TrainBatch(context.Background(), training.BatchLimits{Episodes: max}, training.Learn)
 	if err != nil || !found {
 		t.Fatalf("train: found %v, %v", found, err)
 	}

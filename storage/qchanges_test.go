@@ -33,7 +33,7 @@ func TestRowsSinceFollowsTheRecordOfChanges(t *testing.T) {
 		if _, ingestErr := db.Ingest(ctx, "reminders", eps); ingestErr != nil {
 			t.Fatal(ingestErr)
 		}
-		if _, trained, trainErr := db.TrainBatch(ctx, 10, training.Learn); trainErr != nil || !trained {
+		if _, trained, trainErr := db.TrainBatch(ctx, training.BatchLimits{Episodes: 10}, training.Learn); trainErr != nil || !trained {
 			t.Fatalf("train %s: trained=%v %v", id, trained, trainErr)
 		}
 	}

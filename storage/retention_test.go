@@ -35,7 +35,7 @@ func TestQueuedJobsPinTheirEpisodes(t *testing.T) {
 		t.Fatal(err)
 	}
 	for {
-		_, trained, err := db.TrainBatch(ctx, 100, training.Learn)
+		_, trained, err := db.TrainBatch(ctx, training.BatchLimits{Episodes: 100}, training.Learn)
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -76,7 +76,7 @@ func TestQueuedJobsPinTheirEpisodes(t *testing.T) {
 		case jobs.ReplayKind:
 			var spec training.ReplayJob
 			must(t, json.Unmarshal(job.Spec, &spec))
-			res, replayErr := training.Replay(ctx, db, spec, 100, func(training.Progress) {})
+			res, replayErr := training.Replay(ctx, db, spec, training.BatchLimits{Episodes: 100}, func(training.Progress) {})
 			must(t, replayErr)
 			if res.EpisodesReplayed != 4 {
 				t.Fatalf("the replay read %d episodes, want the 4 of its window", res.EpisodesReplayed)
@@ -138,7 +138,7 @@ func TestPruningRacingQueuedJobsLosesNoWindowEpisodes(t *testing.T) {
 		_, err := db.Ingest(ctx, "renewals", batch)
 		must(t, err)
 		for trained := true; trained; {
-			_, trained, err = db.TrainBatch(ctx, 100, training.Learn)
+			_, trained, err = db.TrainBatch(ctx, training.BatchLimits{Episodes: 100}, training.Learn)
 			must(t, err)
 		}
 		time.Sleep(2 * time.Millisecond)

@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"math"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -24,7 +25,7 @@ const TrainingLockClass = trainingLockClass
 // serialised by a transaction-level advisory lock, so several workers can
 // share a database and spread over policies; a batch that fails or whose
 // worker dies rolls back whole and is claimed again.
-func (db *DB) TrainBatch(ctx context.Context, maxEpisodes int, learn func(training.BatchInput) training.BatchResult) (training.BatchReport, bool, error) {
+func (db *DB) TrainBatch(ctx context.Context, limits training.BatchLimits, learn func(training.BatchInput) training.BatchResult) (training.BatchReport, bool, error) {
 	rows, err := db.pool.Query(ctx, `
 		SELECT policy_id FROM policies p
 		WHERE EXISTS (SELECT 1 FROM episodes e WHERE e.policy_id = p.policy_id AND `+untrained+`)
@@ -37,7 +38,7 @@ func (db *DB) TrainBatch(ctx context.Context, maxEpisodes int, learn func(traini
 		return training.BatchReport{}, false, mapError(fmt.Errorf("find backlog: %w", err))
 	}
 	for _, id := range candidates {
-		report, trained, err := db.trainPolicy(ctx, id, maxEpisodes, learn)
+		report, trained, err := db.trainPolicy(ctx, id, limits, learn)
 		if err != nil || trained {
 			return report, trained, err
 		}
@@ -47,13 +48,13 @@ func (db *DB) TrainBatch(ctx context.Context, maxEpisodes int, learn func(traini
 
 var errSkip = errors.New("policy busy or drained")
 
-func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, learn func(training.BatchInput) training.BatchResult) (training.BatchReport, bool, error) {
+func (db *DB) trainPolicy(ctx context.Context, policyID int32, limits training.BatchLimits, learn func(training.BatchInput) training.BatchResult) (training.BatchReport, bool, error) {
 	start := time.Now()
-	limit := maxEpisodes
 	if db.sizer != nil {
-		limit = db.sizer.Limit(policyID, maxEpisodes)
+		limits.Episodes = db.sizer.Limit(policyID, limits.Episodes)
 	}
 	var report training.BatchReport
+	var steps int
 	var warm *warmTable
 	var wrote warmVersion
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
@@ -72,12 +73,15 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 		if err != nil {
 			return err
 		}
-		episodes, err := untrainedEpisodes(ctx, tx, policyID, through, limit)
+		episodes, err := untrainedEpisodes(ctx, tx, policyID, through, limits)
 		if err != nil {
 			return err
 		}
 		if len(episodes) == 0 {
 			return errSkip
+		}
+		for _, ep := range episodes {
+			steps += len(ep.Actions)
 		}
 		// Estimates this process wrote and still current need no reading.
 		warm = db.warm.take(policyID, versionOf(p))
@@ -111,7 +115,7 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, maxEpisodes int, 
 	db.warm.put(policyID, warm, wrote)
 	report.Duration = time.Since(start)
 	if db.sizer != nil {
-		db.sizer.Observe(policyID, report.Episodes, limit, report.Duration)
+		db.sizer.Observe(policyID, report.Episodes, limits.Full(report.Episodes, steps), report.Duration)
 	}
 	return report, true, nil
 }
@@ -134,8 +138,9 @@ func trainedThrough(ctx context.Context, tx pgx.Tx, policyID int32) (int64, erro
 	return seq, nil
 }
 
-// untrainedEpisodesQuery reads the first $3 episodes after seq $2, in seq
-// order. The batch's last seq is found on the seqs alone, once (a scalar
+// untrainedEpisodesQuery reads, in seq order, the episodes after seq $2 up
+// to the $3rd, and none once those before it hold $4 steps. The batch's
+// last seq is found once, from the seqs and step counts (a scalar
 // subquery, not a join: over a backlog the statistics had not seen, the
 // planner re-ran a joined range search once per backlog row, 27 s for one
 // batch of a 50,000-episode backlog), and the rows are read by that range
@@ -149,11 +154,16 @@ const untrainedEpisodesQuery = `
 	SELECT seq, received_at, episode_id, states, actions, rewards, probabilities
 	FROM episodes WHERE policy_id = $1 AND seq > $2 AND seq <= (
 		SELECT max(seq) FROM (
-			SELECT seq FROM episodes WHERE policy_id = $1 AND seq > $2 ORDER BY seq LIMIT $3) first)
+			SELECT seq, sum(cardinality(actions)) OVER (ORDER BY seq) - cardinality(actions) AS steps_before
+			FROM (SELECT seq, actions FROM episodes WHERE policy_id = $1 AND seq > $2 ORDER BY seq LIMIT $3) first) counted
+		WHERE steps_before < $4)
 	ORDER BY seq`
 
-func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, after int64, limit int) ([]training.StoredEpisode, error) {
-	rows, err := tx.Query(ctx, untrainedEpisodesQuery, policyID, after, limit)
+// untrainedEpisodes reads the episodes after seq after within limits: up to
+// limits.Episodes of them, and no episode once those before it hold
+// limits.Steps steps.
+func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, after int64, limits training.BatchLimits) ([]training.StoredEpisode, error) {
+	rows, err := tx.Query(ctx, untrainedEpisodesQuery, policyID, after, limits.Episodes, stepBound(limits))
 	if err != nil {
 		return nil, fmt.Errorf("read untrained episodes: %w", err)
 	}
@@ -168,6 +178,14 @@ func untrainedEpisodes(ctx context.Context, tx pgx.Tx, policyID int32, after int
 		return nil, fmt.Errorf("read untrained episodes: %w", err)
 	}
 	return out, nil
+}
+
+// stepBound is limits.Steps as the read's bound: none when 0.
+func stepBound(limits training.BatchLimits) int64 {
+	if limits.Steps <= 0 {
+		return math.MaxInt64
+	}
+	return int64(limits.Steps)
 }
 
 func estimatesOfStates(ctx context.Context, tx pgx.Tx, policyID int32, states []string) (map[training.PairKey]training.Estimate, error) {

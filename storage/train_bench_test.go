@@ -67,7 +67,7 @@ func ingestForBench(b *testing.B, db *storage.DB, policy string, eps []training.
 
 func trainOne(b *testing.B, db *storage.DB) training.BatchReport {
 	b.Helper()
-	report, trained, err := db.TrainBatch(context.Background(), benchBatch, training.Learn)
+	report, trained, err := db.TrainBatch(context.Background(), training.BatchLimits{Episodes: benchBatch}, training.Learn)
 	if err != nil || !trained {
 		b.Fatalf("train batch: trained %v, %v", trained, err)
 	}

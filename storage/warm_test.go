@@ -84,13 +84,13 @@ func TestWarmEstimatesFollowOtherWriters(t *testing.T) {
 			for {
 				// Runs of one worker: the same one again two times in three.
 				w := workers[rng.IntN(2)]
-				if _, trained, err := w.TrainBatch(ctx, 1+rng.IntN(4), training.Learn); err != nil {
+				if _, trained, err := w.TrainBatch(ctx, training.BatchLimits{Episodes: 1 + rng.IntN(4)}, training.Learn); err != nil {
 					t.Fatal(err)
 				} else if !trained {
 					break
 				}
 				for rng.IntN(3) > 0 {
-					if _, trained, err := w.TrainBatch(ctx, 1+rng.IntN(4), training.Learn); err != nil || !trained {
+					if _, trained, err := w.TrainBatch(ctx, training.BatchLimits{Episodes: 1 + rng.IntN(4)}, training.Learn); err != nil || !trained {
 						break
 					}
 				}

@@ -98,7 +98,7 @@ func TestWatermarkMigrationKeepsTrainingPosition(t *testing.T) {
 	}
 	trainedIDs := map[string]int{}
 	for {
-		_, found, err := db.TrainBatch(ctx, 100, func(in training.BatchInput) training.BatchResult {
+		_, found, err := db.TrainBatch(ctx, training.BatchLimits{Episodes: 100}, func(in training.BatchInput) training.BatchResult {
 			for _, ep := range in.Episodes {
 				trainedIDs[ep.ID]++
 			}

@@ -25,6 +25,22 @@ type BatchSizer struct {
 	policies map[int32]*batchHistory
 }
 
+// BatchLimits bound one training or replay transaction: it takes episodes
+// in arrival order until it holds Episodes of them or at least Steps steps
+// (Steps 0: no bound on steps). The step bound keeps a batch's memory and
+// duration in proportion whatever the episodes' lengths; the episode bound
+// keeps them so for very short episodes.
+type BatchLimits struct {
+	Episodes int
+	Steps    int
+}
+
+// Full reports whether a batch of episodes episodes and steps steps
+// reached these limits: more may have been waiting.
+func (l BatchLimits) Full(episodes, steps int) bool {
+	return episodes >= l.Episodes || (l.Steps > 0 && steps >= l.Steps)
+}
+
 type batchHistory struct {
 	// perEpisode is a moving average of a batch's time per episode.
 	perEpisode time.Duration
@@ -45,8 +61,9 @@ func (s *BatchSizer) Limit(policyID int32, most int) int {
 }
 
 // Observe records a committed batch of the policy: how many episodes it
-// took, under which limit, and how long it took.
-func (s *BatchSizer) Observe(policyID int32, episodes, limit int, took time.Duration) {
+// took, whether it was full (it reached its limits, so more may have been
+// waiting), and how long it took.
+func (s *BatchSizer) Observe(policyID int32, episodes int, full bool, took time.Duration) {
 	if episodes < 1 {
 		return
 	}
@@ -65,8 +82,10 @@ func (s *BatchSizer) Observe(policyID int32, episodes, limit int, took time.Dura
 		// does not swing the size.
 		h.perEpisode = (3*h.perEpisode + per) / 4
 	}
-	if episodes >= limit {
-		h.limit = 2 * limit
+	if full {
+		// Behind: double, and never shrink because the step bound cut
+		// the batch short of its episode limit.
+		h.limit = max(2*episodes, h.limit)
 		return
 	}
 	keepUp := s.Min

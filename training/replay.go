@@ -86,7 +86,7 @@ type ReplayStore interface {
 // Replay trains the target policy from the source's episodes in arrival
 // order, batchEpisodes at a time, with Learn: the same updates the worker
 // would have made had the episodes been posted to the target.
-func Replay(ctx context.Context, store ReplayStore, job ReplayJob, batchEpisodes int, progress func(Progress)) (ReplayResult, error) {
+func Replay(ctx context.Context, store ReplayStore, job ReplayJob, limits BatchLimits, progress func(Progress)) (ReplayResult, error) {
 	target, err := store.PolicyByID(ctx, job.TargetPolicyID)
 	if err != nil {
 		return ReplayResult{}, err
@@ -95,7 +95,8 @@ func Replay(ctx context.Context, store ReplayStore, job ReplayJob, batchEpisodes
 		return ReplayResult{}, err
 	}
 	res := ReplayResult{Target: target.Name}
-	batch := make([]StoredEpisode, 0, batchEpisodes)
+	var batch []StoredEpisode
+	steps := 0
 	flush := func() error {
 		if len(batch) == 0 {
 			return nil
@@ -108,14 +109,15 @@ func Replay(ctx context.Context, store ReplayStore, job ReplayJob, batchEpisodes
 		res.Steps += int64(out.Steps)
 		res.Updates += int64(len(out.AbsDeltas))
 		res.Revision = rev
-		batch = batch[:0]
+		batch, steps = batch[:0], 0
 		progress(Progress{Phase: "replaying episodes", Done: res.EpisodesReplayed, Total: job.Episodes.Episodes})
 		return nil
 	}
 	progress(Progress{Phase: "replaying episodes", Done: 0, Total: job.Episodes.Episodes})
 	err = store.ReadEpisodes(ctx, job.PolicyID, job.Episodes, func(ep StoredEpisode) error {
 		batch = append(batch, ep)
-		if len(batch) < batchEpisodes {
+		steps += len(ep.Actions)
+		if !limits.Full(len(batch), steps) {
 			return nil
 		}
 		return flush()

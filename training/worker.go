@@ -21,18 +21,18 @@ type BatchReport struct {
 // BatchTrainer is the storage side of the worker.
 type BatchTrainer interface {
 	// TrainBatch picks a policy that has untrained episodes and that no
-	// other worker is training, reads up to maxEpisodes of them in arrival
-	// order with the estimates they touch, calls learn, and writes the
-	// result and records them as trained in one transaction. It reports
-	// false when no policy had work waiting.
-	TrainBatch(ctx context.Context, maxEpisodes int, learn func(BatchInput) BatchResult) (BatchReport, bool, error)
+	// other worker is training, reads them in arrival order within limits
+	// with the estimates they touch, calls learn, and writes the result and
+	// records them as trained in one transaction. It reports false when no
+	// policy had work waiting.
+	TrainBatch(ctx context.Context, limits BatchLimits, learn func(BatchInput) BatchResult) (BatchReport, bool, error)
 }
 
 // Worker trains stored episodes into Q until its context ends.
 type Worker struct {
 	Store BatchTrainer
-	// BatchEpisodes is the most episodes one transaction trains.
-	BatchEpisodes int
+	// Batch bounds what one transaction trains.
+	Batch BatchLimits
 	// Wake receives a value when episodes arrive; PollInterval is the
 	// fallback for missed notifications.
 	Wake         <-chan struct{}
@@ -61,7 +61,7 @@ func (w *Worker) Run(ctx context.Context) error {
 			return nil
 		}
 		batchCtx, cancel := context.WithTimeout(context.WithoutCancel(ctx), w.BatchTimeout)
-		report, found, err := w.Store.TrainBatch(batchCtx, w.BatchEpisodes, Learn)
+		report, found, err := w.Store.TrainBatch(batchCtx, w.Batch, Learn)
 		cancel()
 		switch {
 		case err != nil:
@@ -97,8 +97,11 @@ func (w *Worker) check() error {
 	if w.PollInterval <= 0 {
 		errs = append(errs, fmt.Errorf("worker: the poll interval must be positive, got %v", w.PollInterval))
 	}
-	if w.BatchEpisodes < 1 {
-		errs = append(errs, fmt.Errorf("worker: a batch must take at least one episode, got %d", w.BatchEpisodes))
+	if w.Batch.Episodes < 1 {
+		errs = append(errs, fmt.Errorf("worker: a batch must take at least one episode, got %d", w.Batch.Episodes))
+	}
+	if w.Batch.Steps < 0 {
+		errs = append(errs, fmt.Errorf("worker: a batch's step bound cannot be negative, got %d", w.Batch.Steps))
 	}
 	if w.BatchTimeout <= 0 {
 		errs = append(errs, fmt.Errorf("worker: the batch timeout must be positive, got %v", w.BatchTimeout))

@@ -10,7 +10,7 @@ import (
 // named, before it asks for any work: with a zero poll interval an idle
 // worker would otherwise ask again and again without pause.
 func TestWorkerRefusesSettingsThatWouldSpin(t *testing.T) {
-	w := &Worker{Store: nil, PollInterval: 0, BatchEpisodes: 0, BatchTimeout: 0}
+	w := &Worker{Store: nil, PollInterval: 0, Batch: BatchLimits{Episodes: 0, Steps: -1}, BatchTimeout: 0}
 	err := w.Run(context.Background())
 	if err == nil {
 		t.Fatal("a worker with a zero poll interval ran")

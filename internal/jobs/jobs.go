@@ -120,8 +120,8 @@ type Runner struct {
 	Jobs        Store
 	Evaluations training.EvaluationSource
 	Replays     training.ReplayStore
-	// BatchEpisodes is the most episodes one replay transaction learns.
-	BatchEpisodes int
+	// Batch bounds what one replay transaction learns.
+	Batch training.BatchLimits
 	// Wake receives a value when a job is queued; PollInterval is the
 	// fallback for missed notifications.
 	Wake         <-chan struct{}
@@ -240,7 +240,7 @@ func (r *Runner) do(ctx context.Context, job Job, progress func(training.Progres
 		if err := json.Unmarshal(job.Spec, &spec); err != nil {
 			return nil, fmt.Errorf("decode replay job %d: %w", job.ID, err)
 		}
-		return training.Replay(ctx, r.Replays, spec, r.BatchEpisodes, progress)
+		return training.Replay(ctx, r.Replays, spec, r.Batch, progress)
 	default:
 		return nil, fmt.Errorf("job %d has unknown kind %q", job.ID, job.Kind)
 	}

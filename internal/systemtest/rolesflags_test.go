@@ -22,7 +22,7 @@ func TestWorkerHelpListsOnlyWhatTheWorkerReads(t *testing.T) {
 		"history-bucket", "history-window", "history-fine-bucket", "history-fine-window",
 		// and trains in batches sized to the backlog, with warm estimates
 		"batch-target", "warm-pairs",
-		"batch-episodes", "episode-retention", "prune-interval", "prune-batch", "job-stale-after",
+		"batch-episodes", "batch-steps", "episode-retention", "prune-interval", "prune-batch", "job-stale-after",
 	}
 	apiFlags := []string{"max-body-bytes", "max-episodes-per-request", "max-steps", "max-id-length", "max-state-length", "coverage-visits", "no-auth", "no-worker"}
 

@@ -50,6 +50,7 @@ const (
 	flagDatabaseURL    = "database-url"
 	flagListen         = "listen"
 	flagBatchEpisodes  = "batch-episodes"
+	flagBatchSteps     = "batch-steps"
 	flagWarmPairs      = "warm-pairs"
 	flagBatchTarget    = "batch-target"
 	flagPollInterval   = "poll-interval"
@@ -161,7 +162,8 @@ func serviceFlags(env flagEnv, listenDefault string, roles serviceRoles) []cli.F
 	}
 	if roles.worker {
 		flags = append(flags,
-			&cli.IntFlag{Name: flagBatchEpisodes, Value: 10_000, Usage: "most episodes one training transaction takes (a batch takes what is waiting, up to this)", Sources: env("QTALLY_BATCH_EPISODES")},
+			&cli.IntFlag{Name: flagBatchEpisodes, Value: 50_000, Usage: "most episodes one training or replay transaction takes (a batch takes what is waiting, up to this and --batch-steps)", Sources: env("QTALLY_BATCH_EPISODES")},
+			&cli.IntFlag{Name: flagBatchSteps, Value: 500_000, Usage: "a training or replay transaction takes no further episode once it holds this many steps, which bounds the worker's memory for a batch (about 150 MB at 500,000 steps; 0: no bound)", Sources: env("QTALLY_BATCH_STEPS")},
 			&cli.DurationFlag{Name: flagBatchTarget, Value: 300 * time.Millisecond, Usage: "how long a training batch should take while training keeps up; a policy that is behind gets batches that double up to --batch-episodes (0: always up to --batch-episodes)", Sources: env("QTALLY_BATCH_TARGET")},
 			&cli.IntFlag{Name: flagWarmPairs, Value: storage.DefaultWarmPairs, Usage: "estimates the worker keeps in memory between batches of the policies it trains, so it need not read them again (0: read every batch; about 65 bytes a pair)", Sources: env("QTALLY_WARM_PAIRS")},
 			&cli.DurationFlag{Name: flagEpisodeRetention, Usage: "keep trained episodes this long for evaluation and replay, then delete them (0 keeps them forever; untrained episodes are always kept)", Sources: env("QTALLY_EPISODE_RETENTION")},
@@ -217,6 +219,7 @@ type storageConfig struct {
 // workerConfig is the training worker's and its housekeeping's.
 type workerConfig struct {
 	BatchEpisodes    int
+	BatchSteps       int
 	BatchTarget      time.Duration
 	WarmPairs        int
 	PollInterval     time.Duration
@@ -275,9 +278,15 @@ func (c storageConfig) validate() error {
 	return errors.Join(p...)
 }
 
+// Batch is what one training or replay transaction may take.
+func (c workerConfig) Batch() training.BatchLimits {
+	return training.BatchLimits{Episodes: c.BatchEpisodes, Steps: c.BatchSteps}
+}
+
 func (c workerConfig) validate() error {
 	var p problems
 	p.atLeast(flagBatchEpisodes, int64(c.BatchEpisodes), 1)
+	p.atLeast(flagBatchSteps, int64(c.BatchSteps), 0)
 	p.atLeast(flagPruneBatch, int64(c.PruneBatch), 1)
 	p.positive(flagPollInterval, c.PollInterval)
 	p.positive(flagPruneInterval, c.PruneInterval)
@@ -371,6 +380,7 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 	if roles.worker {
 		cfg.Worker = workerConfig{
 			BatchEpisodes:    cmd.Int(flagBatchEpisodes),
+			BatchSteps:       cmd.Int(flagBatchSteps),
 			BatchTarget:      cmd.Duration(flagBatchTarget),
 			WarmPairs:        cmd.Int(flagWarmPairs),
 			PollInterval:     cmd.Duration(flagPollInterval),

@@ -33,7 +33,7 @@ func startHousekeeping(cfg workerConfig, db *storage.DB, reg prometheus.Register
 		storage.ChannelJobs: {Notify: func(int32) { nudge(jobWake) }, CatchUp: func() { nudge(jobWake) }},
 	}
 	runner := &jobs.Runner{
-		Jobs: db, Evaluations: db, Replays: db, BatchEpisodes: cfg.BatchEpisodes,
+		Jobs: db, Evaluations: db, Replays: db, Batch: cfg.Batch(),
 		Wake: jobWake, PollInterval: cfg.PollInterval,
 		ReportInterval: jobReportInterval, StaleAfter: cfg.JobStaleAfter, MaxAttempts: jobMaxAttempts,
 		Logger: logger,

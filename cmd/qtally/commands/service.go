@@ -198,7 +198,7 @@ func startWorker(ctx context.Context, cfg serviceConfig, db *storage.DB, reg pro
 	reg.MustRegister(metrics.NewOpenEpisodeCollector(db, 5*time.Second, logger))
 	maps.Copy(subs, startHousekeeping(cfg.Worker, db, reg, m, logger, loops))
 	w := &training.Worker{
-		Store: db, BatchEpisodes: cfg.Worker.BatchEpisodes, Wake: wake, PollInterval: cfg.Worker.PollInterval,
+		Store: db, Batch: cfg.Worker.Batch(), Wake: wake, PollInterval: cfg.Worker.PollInterval,
 		BatchTimeout: cfg.Process.ShutdownGrace, OnBatch: m.ObserveBatch, Logger: logger,
 		OnError: func(error) { m.TrainingErrors.Inc() },
 	}
