@@ -27,12 +27,12 @@ func TestTrainBatchFollowsTheSizer(t *testing.T) {
 	if _, _, err := db.PutPolicy(ctx, "tickets", training.Settings{Actions: []string{"close", "escalate"}, Gamma: 1, Alpha: 0.5, Visit: training.EveryVisit}); err != nil {
 		t.Fatal(err)
 	}
-	post := func(prefix string, n int) {
+	post := func(policy, prefix string, n int) {
 		eps := make([]training.Episode, n)
 		for i := range eps {
 			eps[i] = training.Episode{ID: fmt.Sprintf("%s-%d", prefix, i), Steps: []training.Step{{State: "open", Action: "close", Reward: 1}}}
 		}
-		if _, err := db.Ingest(ctx, "tickets", eps); err != nil {
+		if _, err := db.Ingest(ctx, policy, eps); err != nil {
 			t.Fatal(err)
 		}
 	}
@@ -52,12 +52,31 @@ func TestTrainBatchFollowsTheSizer(t *testing.T) {
 	if got := drain(); got != nil {
 		t.Fatalf("nothing posted, batches %v", got)
 	}
-	post("a", 5)
+	post("tickets", "a", 5)
 	if got := drain(); !slices.Equal(got, []int{5}) {
 		t.Fatalf("first batch of a policy: %v, want what was waiting", got)
 	}
-	post("b", 500)
+	post("tickets", "b", 500)
 	if got, want := drain(), []int{10, 20, 40, 80, 160, 190}; !slices.Equal(got, want) {
 		t.Fatalf("a burst after keeping up: batches %v, want %v", got, want)
+	}
+
+	// A batch that does not commit (its time ran out while it wrote) is
+	// taken again at half its size, and grows back while full: a fresh
+	// policy's first batch takes all 300 waiting.
+	if _, _, err := db.PutPolicy(ctx, "refunds", training.Settings{Actions: []string{"close", "escalate"}, Gamma: 1, Alpha: 0.5, Visit: training.EveryVisit}); err != nil {
+		t.Fatal(err)
+	}
+	post("refunds", "c", 300)
+	batchCtx, timeUp := context.WithCancel(ctx)
+	_, _, err = db.TrainBatch(batchCtx, training.BatchLimits{Episodes: 1000}, func(in training.BatchInput) training.BatchResult {
+		timeUp()
+		return training.Learn(in)
+	})
+	if err == nil {
+		t.Fatal("a batch whose context ended before its write committed")
+	}
+	if got, want := drain(), []int{150, 150}; !slices.Equal(got, want) {
+		t.Fatalf("after a failed batch of 300: batches %v, want %v", got, want)
 	}
 }

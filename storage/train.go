@@ -54,7 +54,7 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, limits training.B
 		limits.Episodes = db.sizer.Limit(policyID, limits.Episodes)
 	}
 	var report training.BatchReport
-	var steps int
+	var read, steps int
 	var warm *warmTable
 	var wrote warmVersion
 	err := db.WithTx(ctx, func(tx pgx.Tx) error {
@@ -80,6 +80,7 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, limits training.B
 		if len(episodes) == 0 {
 			return errSkip
 		}
+		read = len(episodes)
 		for _, ep := range episodes {
 			steps += len(ep.Actions)
 		}
@@ -110,6 +111,9 @@ func (db *DB) trainPolicy(ctx context.Context, policyID int32, limits training.B
 		return report, false, nil
 	}
 	if err != nil {
+		if db.sizer != nil {
+			db.sizer.Failed(policyID, read, limits.Episodes)
+		}
 		return report, false, err
 	}
 	db.warm.put(policyID, warm, wrote)

@@ -60,6 +60,27 @@ func (s *BatchSizer) Limit(policyID int32, most int) int {
 	return min(max(h.limit, 1), most)
 }
 
+// Failed records a batch of the policy that did not commit (it timed out,
+// say) after reading episodes episodes (0: unknown): the next takes half
+// as many, down to Min, so that a batch too large for its time limit is
+// not retried as it was forever.
+func (s *BatchSizer) Failed(policyID int32, episodes, limit int) {
+	if episodes < 1 {
+		episodes = limit
+	}
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	if s.policies == nil {
+		s.policies = map[int32]*batchHistory{}
+	}
+	h, ok := s.policies[policyID]
+	if !ok {
+		h = &batchHistory{}
+		s.policies[policyID] = h
+	}
+	h.limit = max(episodes/2, s.Min, 1)
+}
+
 // Observe records a committed batch of the policy: how many episodes it
 // took, whether it was full (it reached its limits, so more may have been
 // waiting), and how long it took.

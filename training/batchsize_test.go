@@ -71,3 +71,15 @@ func TestBatchLimitsFull(t *testing.T) {
 		t.Error("with no step bound, steps alone made a batch full")
 	}
 }
+
+// A batch that did not commit is taken again at half of what it read (of
+// its limit when it read nothing), never below the minimum.
+func TestBatchSizerHalvesAfterAFailedBatch(t *testing.T) {
+	s := &training.BatchSizer{Target: 300 * time.Millisecond, Min: 50}
+	for _, c := range []struct{ read, limit, want int }{{8000, 10_000, 4000}, {0, 3000, 1500}, {60, 10_000, 50}} {
+		s.Failed(1, c.read, c.limit)
+		if got := s.Limit(1, 10_000); got != c.want {
+			t.Errorf("after a failed batch that read %d of %d: limit %d, want %d", c.read, c.limit, got, c.want)
+		}
+	}
+}
