@@ -69,11 +69,11 @@ func TestTrainBatchFollowsTheSizer(t *testing.T) {
 	}
 	post("refunds", "c", 300)
 	batchCtx, timeUp := context.WithCancel(ctx)
-	_, _, err = db.TrainBatch(batchCtx, training.BatchLimits{Episodes: 1000}, func(in training.BatchInput) training.BatchResult {
+	_, _, failed := db.TrainBatch(batchCtx, training.BatchLimits{Episodes: 1000}, func(in training.BatchInput) training.BatchResult {
 		timeUp()
 		return training.Learn(in)
 	})
-	if err == nil {
+	if failed == nil {
 		t.Fatal("a batch whose context ended before its write committed")
 	}
 	if got, want := drain(), []int{150, 150}; !slices.Equal(got, want) {
