@@ -68,6 +68,7 @@ const (
 	targetPostRatio     = 0.5
 	targetDrainRatio    = 0.5
 	targetDrainVsNaive  = 20
+	targetDrainVsPost   = 1.0
 	targetVisibilityP99 = time.Second
 	targetSustainRatio  = 0.5
 	targetArrivalP99    = time.Second
@@ -117,6 +118,11 @@ func Report(dir string) (string, error) {
 		label := fmt.Sprintf("training drain (%s episodes, %s pairs)", human(float64(drain.Episodes)), human(float64(drain.Pairs)))
 		t.ratio(label, drain.StepsPerSec, "steps/s", "episode_copy_steps_per_s", targetDrainRatio, 0)
 		t.ratio("training drain vs one statement per update", drain.StepsPerSec, "steps/s", "q_naive_upsert_rows_per_s", targetDrainVsNaive, 0)
+		if post.UnitsPerSec > 0 {
+			ratio := drain.StepsPerSec / post.UnitsPerSec
+			t.verdict("training drain / post, same run", fmt.Sprintf("%.2fx (%s against %s steps/s)", ratio, human(drain.StepsPerSec), human(post.UnitsPerSec)),
+				fmt.Sprintf(">= %gx", targetDrainVsPost), ratio >= targetDrainVsPost)
+		}
 	}
 	var kept MixedReport
 	if err := readJSON(filepath.Join(dir, FileMixedKept), &kept); t.ok("mixed, episodes kept by qtally", err) {
