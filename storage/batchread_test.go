@@ -7,8 +7,6 @@ import (
 
 	"github.com/jackc/pgx/v5"
 
-	"github.com/qtally/qtally/storage"
-	"github.com/qtally/qtally/storage/pgtest"
 	"github.com/qtally/qtally/training"
 )
 
@@ -22,17 +20,7 @@ import (
 // values and the generic plan used after a few executions.
 func TestBatchReadTouchesItsBatchWhateverTheStatistics(t *testing.T) {
 	ctx := context.Background()
-	url := pgtest.NewDatabase(t)
-	db, err := storage.Open(ctx, url, 4, training.DefaultLimits())
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(db.Close)
-	conn, err := pgx.Connect(ctx, url)
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { conn.Close(context.Background()) })
+	db, conn := openWithConn(t)
 	// Statistics change only when this test says so.
 	must(t, exec(ctx, conn, `ALTER TABLE episodes SET (autovacuum_enabled = false)`))
 

@@ -38,25 +38,33 @@ func readHistory(t *testing.T, conn *pgx.Conn) []historyRow {
 	return out
 }
 
+// openWithConn opens a store on a fresh database and a plain connection
+// to look at its tables.
+func openWithConn(t *testing.T) (*storage.DB, *pgx.Conn) {
+	t.Helper()
+	url := pgtest.NewDatabase(t)
+	db, err := storage.Open(context.Background(), url, 4, training.DefaultLimits())
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(db.Close)
+	conn, err := pgx.Connect(context.Background(), url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(func() { conn.Close(context.Background()) })
+	return db, conn
+}
+
 // setup opens a store on a fresh database, with one policy, and a plain
 // connection to look at the tables.
 func setup(t *testing.T, h storage.HistorySettings) (*storage.DB, *pgx.Conn) {
 	t.Helper()
 	ctx := context.Background()
-	url := pgtest.NewDatabase(t)
-	db, err := storage.Open(ctx, url, 4, training.DefaultLimits())
-	if err != nil {
+	db, conn := openWithConn(t)
+	if err := db.SetHistory(h); err != nil {
 		t.Fatal(err)
 	}
-	t.Cleanup(db.Close)
-	if err = db.SetHistory(h); err != nil {
-		t.Fatal(err)
-	}
-	conn, err := pgx.Connect(ctx, url)
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { conn.Close(context.Background()) })
 	if _, _, err := db.PutPolicy(ctx, "parcels", training.Settings{Actions: []string{"van", "bike"}, Gamma: 0.5, Alpha: 0.5, Visit: training.FirstVisit}); err != nil {
 		t.Fatal(err)
 	}
