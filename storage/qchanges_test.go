@@ -2,6 +2,8 @@ package storage_test
 
 import (
 	"context"
+	"fmt"
+	"maps"
 	"slices"
 	"testing"
 
@@ -80,4 +82,65 @@ func TestRowsSinceFollowsTheRecordOfChanges(t *testing.T) {
 	if got := keys(1); !slices.Equal(got, []string{"a/now", "b/later", "c/later"}) {
 		t.Fatalf("after revision 1 with a gap in the record: %v, want the whole table", got)
 	}
+}
+
+// A copy at any revision that applies, in the order given, the rows read
+// since that revision ends equal to the table: read from the change
+// records when it is a few revisions behind (a pair changed by several of
+// them must end at its latest value), through q_values further behind or
+// when a record carries no values (written before records carried them).
+func TestRowsSinceBringACopyToTheTable(t *testing.T) {
+	ctx := context.Background()
+	db, conn := openWithConn(t)
+	p, _, err := db.PutPolicy(ctx, "reminders", training.Settings{Actions: []string{"now", "later"}, Gamma: 1, Alpha: 0.5, Visit: training.EveryVisit})
+	must(t, err)
+	type pair struct {
+		state  string
+		action int16
+	}
+	type value struct {
+		q        float64
+		visits   int64
+		revision int64
+	}
+	read := func(after int64, into map[pair]value) {
+		t.Helper()
+		must(t, db.QRowsSince(ctx, p.ID, after, func(r training.QRow) {
+			into[pair{r.State, r.Action}] = value{r.Q, r.Visits, r.Revision}
+		}))
+	}
+	var copies []map[pair]value // the table after each revision
+	for i := range 8 {
+		eps := []training.Episode{{ID: fmt.Sprint(i), Steps: []training.Step{
+			{State: "overdue", Action: "now", Reward: float64(i)},
+			{State: fmt.Sprint("day ", i%3), Action: "later", Reward: float64(10 * i)}}}}
+		_, err := db.Ingest(ctx, "reminders", eps)
+		must(t, err)
+		_, trained, err := db.TrainBatch(ctx, training.BatchLimits{Episodes: 10}, training.Learn)
+		must(t, err)
+		if !trained {
+			t.Fatalf("batch %d trained nothing", i)
+		}
+		table := map[pair]value{}
+		read(0, table)
+		copies = append(copies, table)
+	}
+	check := func(when string) {
+		t.Helper()
+		latest := copies[len(copies)-1]
+		for k := range len(copies) - 1 {
+			copied := maps.Clone(copies[k])
+			read(int64(k+1), copied)
+			for key, want := range latest {
+				if got := copied[key]; got.q != want.q || got.visits != want.visits {
+					t.Errorf("%s: a copy at revision %d ends with %v at %+v, the table has %+v", when, k+1, key, got, want)
+				}
+			}
+		}
+	}
+	check("records with values")
+	if _, err := conn.Exec(ctx, `UPDATE q_changes SET q = NULL, visits = NULL WHERE revision = 7`); err != nil {
+		t.Fatal(err)
+	}
+	check("a record without values")
 }

@@ -250,8 +250,8 @@ func writeBatch(ctx context.Context, tx pgx.Tx, policyID int32, trainedThrough, 
 	batch.Queue(`
 		WITH rev AS (SELECT revision FROM policies WHERE policy_id = $1),
 		changes AS (
-			INSERT INTO q_changes (policy_id, revision, states, actions)
-			SELECT $1, rev.revision, $2::text[], $3::int2[] FROM rev
+			INSERT INTO q_changes (policy_id, revision, states, actions, q, visits)
+			SELECT $1, rev.revision, $2::text[], $3::int2[], $4::float8[], $5::int8[] FROM rev
 		)
 		INSERT INTO q_values (policy_id, state, action, q, visits, last_delta, updated_at, revision)
 		SELECT $1, u.state, u.action, u.q, u.visits, u.last_delta, now(), rev.revision
