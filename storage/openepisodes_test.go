@@ -216,15 +216,7 @@ func TestEndsCommittedTogetherAnswerEachRequest(t *testing.T) {
 	runUntilCleanup(t, recorder.Run, ender.Run)
 
 	const episodes = 40
-	for e := range episodes {
-		for step := range 1 + e%3 {
-			d := training.Decision{PolicyID: p.ID, Episode: fmt.Sprintf("e%d", e), Step: step, State: fmt.Sprintf("s%d", step),
-				Probability: 1, Allowed: training.ActionSet{3}, Mode: training.Greedy}
-			if _, _, recErr := recorder.Record(ctx, d); recErr != nil {
-				t.Fatal(recErr)
-			}
-		}
-	}
+	recordSteps(t, recorder, p, episodes, func(e int) int { return 1 + e%3 })
 	final := func(e int) *float64 {
 		v := float64(e)
 		if e%10 == 7 {
@@ -316,15 +308,7 @@ func TestRewardsAddedTogetherAnswerEachRequest(t *testing.T) {
 	runUntilCleanup(t, recorder.Run, rewarder.Run, ender.Run)
 
 	const episodes = 12
-	for e := range episodes {
-		for step := range 2 {
-			d := training.Decision{PolicyID: p.ID, Episode: fmt.Sprintf("e%d", e), Step: step, State: fmt.Sprintf("s%d", step),
-				Probability: 1, Allowed: training.ActionSet{3}, Mode: training.Greedy}
-			if _, _, recErr := recorder.Record(ctx, d); recErr != nil {
-				t.Fatal(recErr)
-			}
-		}
-	}
+	recordSteps(t, recorder, p, episodes, func(int) int { return 2 })
 	if _, err := ender.EndOpenEpisode(ctx, "rewards", "e0", training.EndRequest{}); err != nil {
 		t.Fatal(err)
 	}
@@ -437,6 +421,21 @@ func TestRewardsAddedTogetherAnswerEachRequest(t *testing.T) {
 }
 
 // putPolicy stores a policy of two actions, a and b, with settings.
+// recordSteps records greedy decisions for episodes e0, e1, ... of p,
+// stepsOf(e) of them for episode e, each answered before the next is sent.
+func recordSteps(t *testing.T, recorder *storage.DecisionBatcher, p training.Policy, episodes int, stepsOf func(int) int) {
+	t.Helper()
+	for e := range episodes {
+		for step := range stepsOf(e) {
+			d := training.Decision{PolicyID: p.ID, Episode: fmt.Sprintf("e%d", e), Step: step, State: fmt.Sprintf("s%d", step),
+				Probability: 1, Allowed: training.ActionSet{3}, Mode: training.Greedy}
+			if _, _, err := recorder.Record(context.Background(), d); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+}
+
 func putPolicy(t *testing.T, db *storage.DB, name string, settings training.Settings) training.Policy {
 	t.Helper()
 	settings.Actions = []string{"a", "b"}
