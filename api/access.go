@@ -27,8 +27,6 @@ import (
 // whether that policy exists or not, so answers tell nothing of other
 // policies. The names are also kept on the request for the audit log.
 
-const namedPoliciesKey = "qtally.policies"
-
 // isPolicyQueryParam says whether a query parameter names a policy.
 func isPolicyQueryParam(name string) bool {
 	return name == "policy" || strings.HasSuffix(name, "_policy")
@@ -70,9 +68,8 @@ func namePolicy(c echo.Context, field, name string) error {
 	if name == "" {
 		return nil
 	}
-	names, _ := c.Get(namedPoliciesKey).([]string)
-	if !slices.Contains(names, name) {
-		c.Set(namedPoliciesKey, append(names, name))
+	if rc := stateOf(c); rc != nil && !slices.Contains(rc.policies, name) {
+		rc.policies = append(rc.policies, name)
 	}
 	tok := requestToken(c)
 	if tok == nil {
@@ -92,8 +89,11 @@ func namePolicy(c echo.Context, field, name string) error {
 
 // namedPolicies are the policies a request named, the path's first.
 func namedPolicies(c echo.Context) []string {
-	names, _ := c.Get(namedPoliciesKey).([]string)
-	return names
+	if rc := stateOf(c); rc != nil && len(rc.policies) > 0 {
+		// A copy: the audit entry outlives the pooled context.
+		return slices.Clone(rc.policies)
+	}
+	return nil
 }
 
 // authorizeBodyNames authorises every training.PolicyName in a decoded

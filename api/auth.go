@@ -45,11 +45,7 @@ func newGuard(auth Authenticator, sessions PageSessions, rc RateConfig) *guard {
 	return &guard{auth: auth, sessions: sessions, rate: rc}
 }
 
-const (
-	tokenKey    = "qtally.token"
-	sessionKey  = "qtally.session"
-	bearerRealm = `Bearer realm="qtally"`
-)
+const bearerRealm = `Bearer realm="qtally"`
 
 // openRoutes answer without a token: probes and scrapers carry none, and
 // the sign-in page is how a browser gets one.
@@ -79,7 +75,9 @@ func (g *guard) authenticate(next echo.HandlerFunc) echo.HandlerFunc {
 			} else if err != nil {
 				return err
 			}
-			c.Set(sessionKey, true)
+			if rc := stateOf(c); rc != nil {
+				rc.session = true
+			}
 		} else {
 			scheme, secret, found := strings.Cut(header, " ")
 			if !found || !strings.EqualFold(scheme, "Bearer") || secret == "" {
@@ -97,7 +95,9 @@ func (g *guard) authenticate(next echo.HandlerFunc) echo.HandlerFunc {
 			return echo.NewHTTPError(http.StatusTooManyRequests,
 				"token "+strconv.FormatInt(tok.ID, 10)+" is over its request rate; retry after the time in Retry-After")
 		}
-		c.Set(tokenKey, tok)
+		if rc := stateOf(c); rc != nil {
+			rc.token = tok
+		}
 		return next(c)
 	}
 }
@@ -135,7 +135,7 @@ func (g *guard) requireScope(scopes ...access.Scope) echo.MiddlewareFunc {
 			return next
 		}
 		return func(c echo.Context) error {
-			tok, _ := c.Get(tokenKey).(*access.Token)
+			tok := requestToken(c)
 			if tok == nil {
 				return training.Unauthenticatedf("this request needs a token")
 			}
@@ -157,12 +157,14 @@ func (g *guard) requireScope(scopes ...access.Scope) echo.MiddlewareFunc {
 
 // requestToken is the verified token of a request; nil when auth is off.
 func requestToken(c echo.Context) *access.Token {
-	tok, _ := c.Get(tokenKey).(*access.Token)
-	return tok
+	if rc := stateOf(c); rc != nil {
+		return rc.token
+	}
+	return nil
 }
 
 // inSession tells whether a page request was authenticated by a session.
 func inSession(c echo.Context) bool {
-	in, _ := c.Get(sessionKey).(bool)
-	return in
+	rc := stateOf(c)
+	return rc != nil && rc.session
 }

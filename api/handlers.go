@@ -388,7 +388,7 @@ func handleChoose(ch Chooser, rec RecordedChooser, m *metrics.Metrics, cfg Confi
 		if err != nil {
 			return err
 		}
-		m.Choices.WithLabelValues(name, string(req.Mode), strconv.FormatBool(res.Explored), strconv.FormatBool(res.KnownState)).Inc()
+		m.CountChoice(name, string(req.Mode), res.Explored, res.KnownState)
 		return writeChooseAnswer(c, newChooseResponse(res))
 	}
 }
@@ -412,7 +412,7 @@ func chooseRecorded(c echo.Context, rec RecordedChooser, m *metrics.Metrics, nam
 		m.Open.DecisionsRepeated.WithLabelValues(name).Inc()
 	} else {
 		m.Open.DecisionsRecorded.WithLabelValues(name).Inc()
-		m.Choices.WithLabelValues(name, string(req.Mode), strconv.FormatBool(res.Explored), strconv.FormatBool(res.KnownState)).Inc()
+		m.CountChoice(name, string(req.Mode), res.Explored, res.KnownState)
 	}
 	out := newChooseResponse(res.ChooseResult)
 	out.Episode, out.Step, out.Repeated = res.Episode, &res.Step, &res.Repeated

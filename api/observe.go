@@ -3,7 +3,6 @@ package api
 import (
 	"log/slog"
 	"net/http"
-	"strconv"
 	"sync"
 	"time"
 
@@ -35,7 +34,8 @@ func observe(m *metrics.Metrics, logger *slog.Logger, types problemTypes, e *ech
 		return func(c echo.Context) error {
 			start := time.Now()
 			line := requestLine{id: assignRequestID(c)}
-			err := callRecovering(next, c)
+			rc := wrapRequest(c)
+			err := callRecovering(next, rc)
 			if err != nil {
 				c.Error(err)
 			}
@@ -60,8 +60,9 @@ func observe(m *metrics.Metrics, logger *slog.Logger, types problemTypes, e *ech
 			if err != nil && types.toProblem(err).Status >= http.StatusInternalServerError {
 				line.failure = err
 			}
-			m.HTTPDuration.WithLabelValues(line.route, line.method, strconv.Itoa(line.status)).Observe(line.elapsed.Seconds())
+			m.ObserveRequest(line.route, line.method, line.status, line.elapsed)
 			line.log(c.Request().Context(), logger)
+			rc.release()
 			return nil
 		}
 	}

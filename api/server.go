@@ -176,12 +176,11 @@ func clientAddress(cfg Config) echo.IPExtractor {
 
 // NewServer returns the HTTP handler of an API process.
 func NewServer(cfg Config, d Deps) http.Handler {
-	e := newEcho(cfg, d)
-	e.IPExtractor = clientAddress(cfg)
 	g := newGuard(d.Auth, d.Sessions, cfg.TokenRate)
 	audit := auditedRoutes{}
 	// The audit log records refusals too: it runs before names are authorised.
-	e.Use(g.authenticate, audit.record(d.Audit, d.Logger), authorizeNamedPolicies)
+	e := newEcho(cfg, d, g.authenticate, audit.record(d.Audit, d.Logger), authorizeNamedPolicies)
+	e.IPExtractor = clientAddress(cfg)
 	addHealthRoutes(e, d)
 	addAPIRoutes(e, cfg, d, g, audit)
 	addStatusRoutes(e, cfg, d, g)
@@ -195,14 +194,23 @@ func NewHealthServer(cfg Config, d Deps) http.Handler {
 	return e
 }
 
-func newEcho(cfg Config, d Deps) *echo.Echo {
+// newEcho returns the echo server of a process: every request, matched
+// route or not, goes through observe and then through every middleware
+// of all, the first outermost.
+func newEcho(cfg Config, d Deps, all ...echo.MiddlewareFunc) *echo.Echo {
 	e := echo.New()
 	e.HideBanner = true
 	e.HidePort = true
 	types := problemTypes{docs: cfg.ProblemDocs}
 	e.HTTPErrorHandler = errorHandler(d.Logger, types)
 	e.Pre(routeOnEscapedPath)
-	e.Use(observe(d.Metrics, d.Logger, types, e))
+	// echo v4 applies its middleware anew for every request, to the
+	// handler routing found (an allocation a middleware); this chain is
+	// built once and ends in that handler, which the context holds. So it
+	// must be the only middleware added with Use.
+	chain := withMiddleware(func(c echo.Context) error { return c.Handler()(c) },
+		append([]echo.MiddlewareFunc{observe(d.Metrics, d.Logger, types, e)}, all...)...)
+	e.Use(func(echo.HandlerFunc) echo.HandlerFunc { return chain })
 	return e
 }
 

@@ -43,6 +43,9 @@ type Metrics struct {
 	HTTPDuration      *prometheus.HistogramVec
 	// Open counts what the process did with episodes qtally keeps open.
 	Open *OpenEpisodeEvents
+
+	requests seriesCache[requestSeries, prometheus.Observer]
+	choices  seriesCache[choiceSeries, prometheus.Counter]
 }
 
 // New registers qtally's metrics and the Go and process collectors on reg.
