@@ -14,7 +14,7 @@ import (
 func TestWorkerHelpListsOnlyWhatTheWorkerReads(t *testing.T) {
 	t.Parallel()
 	workerFlags := []string{
-		"database-url", "listen", "log-format", "log-level", "poll-interval", "shutdown-grace", "db-max-conns", "pprof-listen",
+		"database-url", "listen", "log-format", "log-level", "poll-interval", "shutdown-grace", "db-max-conns", "pprof-listen", "heap-headroom",
 		"problem-docs", // the health server answers problems too
 		// and bounds slow and idle clients like the API's
 		"read-header-timeout", "read-timeout", "write-timeout", "idle-timeout", "max-header-bytes",

@@ -70,6 +70,7 @@ const (
 	flagHistoryFine    = "history-fine-bucket"
 	flagHistoryFineFor = "history-fine-window"
 	flagPprofListen    = "pprof-listen"
+	flagHeapHeadroom   = "heap-headroom"
 	flagProblemDocs    = "problem-docs"
 	flagAPIURL         = "url"
 )
@@ -140,6 +141,7 @@ func serviceFlags(env flagEnv, listenDefault string, roles serviceRoles) []cli.F
 		&cli.DurationFlag{Name: flagHistoryWindow, Value: storage.DefaultHistory().Window, Usage: "how long training history is kept", Sources: env("QTALLY_HISTORY_WINDOW")},
 		&cli.DurationFlag{Name: flagHistoryFine, Value: storage.DefaultHistory().FineBucket, Usage: "stretch of time one row of recent training history sums up", Sources: env("QTALLY_HISTORY_FINE_BUCKET")},
 		&cli.DurationFlag{Name: flagHistoryFineFor, Value: storage.DefaultHistory().FineWindow, Usage: "how long training history stays fine before it is rolled up into --history-bucket rows", Sources: env("QTALLY_HISTORY_FINE_WINDOW")},
+		&cli.Int64Flag{Name: flagHeapHeadroom, Value: 64 << 20, Usage: "bytes the heap may grow past what the last garbage collection left live before the next one runs, while the live heap is smaller than this (larger heaps get Go's default: the next collection at twice the live heap); fewer collections a second for a small process, at this much more memory (0, or GOGC in the environment: Go's default)", Sources: env("QTALLY_HEAP_HEADROOM")},
 		&cli.StringFlag{Name: flagPprofListen, Usage: "serve Go profiles (net/http/pprof) on this loopback address, e.g. 127.0.0.1:6060; off when empty", Sources: env("QTALLY_PPROF_LISTEN")},
 		&cli.StringFlag{Name: flagProblemDocs, Value: api.DefaultProblemDocs, Usage: "address of the problem type documentation (docs/problems.md); each problem type URI is this address, # and the problem's name", Sources: env("QTALLY_PROBLEM_DOCS")},
 	}
@@ -197,7 +199,10 @@ type processConfig struct {
 	Listen        string
 	ShutdownGrace time.Duration
 	PprofListen   string
-	Server        serverLimits
+	// HeapHeadroom is what the heap may grow past the live heap between
+	// garbage collections while it is small (gcpacing); 0: Go's pacing.
+	HeapHeadroom int64
+	Server       serverLimits
 }
 
 // serverLimits bound what slow, idle or verbose clients can hold.
@@ -266,6 +271,7 @@ func (c processConfig) validate() error {
 	p.positive(flagWriteTimeout, c.Server.WriteTimeout)
 	p.positive(flagIdleTimeout, c.Server.IdleTimeout)
 	p.atLeast(flagMaxHeaderBytes, int64(c.Server.MaxHeaderBytes), 4096)
+	p.atLeast(flagHeapHeadroom, c.HeapHeadroom, 0)
 	return errors.Join(p...)
 }
 
@@ -334,6 +340,7 @@ func readServiceConfig(cmd *cli.Command, roles serviceRoles) (serviceConfig, err
 			Listen:        cmd.String(flagListen),
 			ShutdownGrace: cmd.Duration(flagShutdownGrace),
 			PprofListen:   cmd.String(flagPprofListen),
+			HeapHeadroom:  cmd.Int64(flagHeapHeadroom),
 			Server: serverLimits{
 				ReadHeaderTimeout: cmd.Duration(flagReadHeaderTimeout),
 				ReadTimeout:       cmd.Duration(flagReadTimeout),

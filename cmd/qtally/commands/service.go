@@ -16,6 +16,7 @@ import (
 
 	"github.com/qtally/qtally/api"
 	"github.com/qtally/qtally/internal/access"
+	"github.com/qtally/qtally/internal/gcpacing"
 	"github.com/qtally/qtally/internal/metrics"
 	"github.com/qtally/qtally/storage"
 	"github.com/qtally/qtally/training"
@@ -76,6 +77,11 @@ func runService(ctx context.Context, cfg serviceConfig, logger *slog.Logger, std
 	loops := newBackgroundLoops(ctx, logger)
 	defer loops.stop()
 
+	if cfg.Process.HeapHeadroom > 0 && !gcpacing.Chosen() {
+		loops.Go("garbage collection pacing", func(ctx context.Context) error {
+			return gcpacing.KeepHeadroom(ctx, uint64(cfg.Process.HeapHeadroom))
+		})
+	}
 	if cfg.Process.PprofListen != "" {
 		l, err := listenProfiling(cfg.Process.PprofListen)
 		if err != nil {
