@@ -51,6 +51,7 @@ DRAIN_BATCH=${DRAIN_BATCH:-}       # the drain worker's --batch-episodes (empty:
 MIXED_BASIS=${MIXED_BASIS:-post}   # mixed runs at 80% of this figure: post or drain
 DRAIN_STATES=25000                 # x 4 actions: about 100k distinct pairs
 STATES=10000                       # states of the post, choose and mixed traffic
+PAIRED_DIR=choose-in-turns         # wrk outputs of choose and the bare lookup in turns (load.FileChooseInTurns)
 
 say() { echo "bench: $*" >&2; }
 
@@ -68,7 +69,7 @@ mkdir -p "$OUT"
 OUT=$(cd "$OUT" && pwd)
 
 # --- cleanup: ends only what this script started, by PID ----------------------
-WORK= DB_PID= API_PID= WORKER_PID=
+WORK= DB_PID= API_PID= WORKER_PID= BARE_PID=
 stop_pid() {   # stop_pid PID: SIGTERM, then wait up to 30 s, then SIGKILL
   local pid=$1
   [ -n "$pid" ] || return 0
@@ -79,6 +80,7 @@ stop_pid() {   # stop_pid PID: SIGTERM, then wait up to 30 s, then SIGKILL
 }
 cleanup() {
   set +e
+  stop_pid "$BARE_PID"
   stop_pid "$WORKER_PID"
   stop_pid "$API_PID"
   stop_pid "$DB_PID"
@@ -226,6 +228,33 @@ if command -v wrk >/dev/null; then
     profile choose "$LOAD_S"
     CHOOSE_STATES=4096 "${LOAD_PIN[@]}" wrk -t1 -c64 -d"$((LOAD_S + 3))s" -s "$ROOT/scripts/bench/choose.lua" "$CHOOSE_URL" >/dev/null
     wait $!
+  fi
+fi
+
+# 4b. Choose in turns with the ceilings' own bare echo server (built from
+#     the ceilings' folder, on the API's CPU, the same wrk command as the
+#     ceiling's): three rounds of both, so that each pair of the choose
+#     ratio sees the same minutes of this shared machine, whose speed
+#     moves between the ceilings at the start and the choose figure here.
+if command -v wrk >/dev/null; then
+  PAIR_S=$((LOAD_S < 5 ? LOAD_S : 5))
+  say "choose in turns with the bare echo lookup: 3 rounds of ${PAIR_S}s each ..."
+  if (cd "$(dirname "$CEILINGS")" && GOWORK=off go build -mod=readonly -buildvcs=false -o "$WORK/ceil" .); then
+    BARE_PORT=$("$WORK/ceil" freeport)
+    "${API_PIN[@]}" "$WORK/ceil" serve -addr "127.0.0.1:$BARE_PORT" >"$OUT/bare-server.log" 2>&1 &
+    BARE_PID=$!
+    BARE_URL="http://127.0.0.1:$BARE_PORT/v1/policies/1/action?state=s1234"
+    for _ in $(seq 100); do (exec 3<>"/dev/tcp/127.0.0.1/$BARE_PORT") 2>/dev/null && break; sleep 0.05; done
+    mkdir -p "$OUT/$PAIRED_DIR"
+    "${LOAD_PIN[@]}" wrk -t1 -c64 -d1s "$BARE_URL" >/dev/null
+    for r in 1 2 3; do
+      "${LOAD_PIN[@]}" wrk -t1 -c64 -d"${PAIR_S}s" --latency "$BARE_URL" >"$OUT/$PAIRED_DIR/bare-$r.txt"
+      CHOOSE_STATES=4096 "${LOAD_PIN[@]}" wrk -t1 -c64 -d"${PAIR_S}s" --latency -s "$ROOT/scripts/bench/choose.lua" \
+        "$CHOOSE_URL" >"$OUT/$PAIRED_DIR/choose-$r.txt"
+    done
+    stop_pid "$BARE_PID"; BARE_PID=
+  else
+    say "the ceilings' echo server did not build: choose in turns is skipped"
   fi
 fi
 

@@ -9,6 +9,7 @@ import (
 	"math"
 	"os"
 	"path/filepath"
+	"slices"
 	"strconv"
 	"strings"
 	"time"
@@ -19,7 +20,11 @@ import (
 const (
 	FileCeilings  = "ceilings.json" // run.sh --json
 	FileChooseWrk = "choose-wrk.txt"
-	FileChoose    = "choose.json"
+	// FileChooseInTurns is a folder of wrk outputs, bare-N.txt and
+	// choose-N.txt: round N of the ceilings' bare echo lookup and of
+	// choose, measured in turns.
+	FileChooseInTurns = "choose-in-turns"
+	FileChoose        = "choose.json"
 	// FileRecordedChoose: choose that records each decision in an open episode.
 	FileRecordedChoose = "recorded-choose.json"
 	// FileChooseWide and FileRecordedChooseWide: the same two at 256
@@ -93,6 +98,9 @@ func Report(dir string) (string, error) {
 		t.ratio("choose, wrk -t1 -c64", wrk.Requests, "req/s", "echo_get_lookup_rps", targetChooseRatio, wrk.BadStatus+wrk.Errors)
 		t.atMost("choose p99, wrk", wrk.P99, "echo_get_p99_ms", targetChooseP99Ratio)
 		t.info("choose p50, wrk", fmtDuration(wrk.P50), "echo_get_p50_ms", float64(wrk.P50)/1e6)
+	}
+	if rounds, err := readInTurns(filepath.Join(dir, FileChooseInTurns)); t.ok("choose in turns with the bare echo lookup", err) {
+		t.inTurns(rounds)
 	}
 	var choose Figures
 	if err := readJSON(filepath.Join(dir, FileChoose), &choose); t.ok("choose (vegeta, 64 connections)", err) {
@@ -174,6 +182,76 @@ func (t *table) ok(what string, err error) bool {
 		t.missing = append(t.missing, fmt.Sprintf("%s: not measured (%v)", what, err))
 	}
 	return err == nil
+}
+
+// turn is one round of choose measured in turns with the bare echo lookup.
+type turn struct{ bare, choose WrkFigures }
+
+// readInTurns reads the rounds of a FileChooseInTurns folder, in order.
+func readInTurns(dir string) ([]turn, error) {
+	var rounds []turn
+	for n := 1; ; n++ {
+		bare, err := readWrk(filepath.Join(dir, fmt.Sprintf("bare-%d.txt", n)))
+		if err != nil && n > 1 && errors.Is(err, errNoFile) {
+			return rounds, nil
+		}
+		if err != nil {
+			return nil, err
+		}
+		choose, err := readWrk(filepath.Join(dir, fmt.Sprintf("choose-%d.txt", n)))
+		if err != nil {
+			return nil, err
+		}
+		if bare.Requests <= 0 || bare.P99 <= 0 {
+			return nil, fmt.Errorf("round %d: the bare lookup answered nothing", n)
+		}
+		rounds = append(rounds, turn{bare: bare, choose: choose})
+	}
+}
+
+// inTurns adds the rows of choose against the bare echo lookup measured in
+// turns with it: the medians of the rounds' ratios, beside the medians of
+// the two figures. Measured minutes apart, as the ceilings and the choose
+// figure are, the two see a shared machine at different speeds.
+func (t *table) inTurns(rounds []turn) {
+	var ratios, tails, chooses, bares, chooseP99, bareP99 []float64
+	failures := 0
+	for _, r := range rounds {
+		ratios = append(ratios, r.choose.Requests/r.bare.Requests)
+		tails = append(tails, float64(r.choose.P99)/float64(r.bare.P99))
+		chooses, bares = append(chooses, r.choose.Requests), append(bares, r.bare.Requests)
+		chooseP99, bareP99 = append(chooseP99, float64(r.choose.P99)), append(bareP99, float64(r.bare.P99))
+		failures += r.choose.BadStatus + r.choose.Errors
+	}
+	ratio, tail := median(ratios), median(tails)
+	label := fmt.Sprintf("choose in turns with the bare echo lookup, wrk -t1 -c64 (%d rounds; median of the rounds' ratios)", len(rounds))
+	row := [6]string{label, humanUnit(median(chooses), "req/s"), "bare lookup in turns " + humanUnit(median(bares), "req/s"),
+		fmt.Sprintf("%.2fx", ratio), fmt.Sprintf(">= %gx", targetChooseRatio), "no"}
+	if failures > 0 {
+		row[1] += fmt.Sprintf(" (%d failed)", failures)
+	}
+	if ratio >= targetChooseRatio && failures == 0 {
+		row[5] = "yes"
+	}
+	t.rows = append(t.rows, row)
+	row = [6]string{"choose p99 in turns with the bare echo lookup", fmtDuration(time.Duration(median(chooseP99))),
+		"bare lookup in turns " + fmtDuration(time.Duration(median(bareP99))), fmt.Sprintf("%.2fx", tail),
+		fmt.Sprintf("<= %gx", targetChooseP99Ratio), "no"}
+	if tail <= targetChooseP99Ratio {
+		row[5] = "yes"
+	}
+	t.rows = append(t.rows, row)
+}
+
+func median(v []float64) float64 {
+	s := slices.Clone(v)
+	slices.Sort(s)
+	if n := len(s); n%2 == 1 {
+		return s[n/2]
+	} else if n > 0 {
+		return (s[n/2-1] + s[n/2]) / 2
+	}
+	return math.NaN()
 }
 
 // recordedRatio adds the row of recorded choose against plain choose
@@ -382,10 +460,13 @@ func readJSON(path string, v any) error {
 }
 
 // readWrk parses the summary wrk --latency prints.
+// errNoFile: a result file is missing.
+var errNoFile = errors.New("no")
+
 func readWrk(path string) (WrkFigures, error) {
 	f, err := os.Open(path)
 	if errors.Is(err, fs.ErrNotExist) {
-		return WrkFigures{}, fmt.Errorf("no %s", filepath.Base(path))
+		return WrkFigures{}, fmt.Errorf("%w %s", errNoFile, filepath.Base(path))
 	}
 	if err != nil {
 		return WrkFigures{}, err
