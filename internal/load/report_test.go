@@ -135,3 +135,39 @@ func TestReportSustainedLoopKeptByQtally(t *testing.T) {
 		t.Errorf("no arrival row for the kept loop in\n%s", table)
 	}
 }
+
+// testdata/inturns holds the ceilings.json and choose-in-turns folder of a
+// real full `make bench` run (2026-12-02 13:48): three rounds of the bare
+// echo lookup and of choose, in turns.
+func TestReportChooseInTurns(t *testing.T) {
+	table, err := Report("testdata/inturns")
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, want := range []string{
+		// Rounds (choose / bare req/s): 33422.17 / 51954.71 = 0.643,
+		// 35362.38 / 61367.92 = 0.576, 31270.38 / 47972.16 = 0.652: the
+		// median ratio is round 1's, beside the median figures.
+		"| choose in turns with the bare echo lookup, wrk -t1 -c64 (3 rounds; median of the rounds' ratios) | 33.4k req/s | bare lookup in turns 52.0k req/s | 0.64x | >= 0.8x | no |",
+		// p99s: 6.49 / 5.18 = 1.25, 8.19 / 4.25 = 1.93, 7.61 / 5.00 = 1.52.
+		"| choose p99 in turns with the bare echo lookup | 7.61 ms | bare lookup in turns 5.00 ms | 1.52x | <= 2x | yes |",
+	} {
+		if !strings.Contains(table, want) {
+			t.Errorf("the table lacks\n%s\nin\n%s", want, table)
+		}
+	}
+	// A round without its choose file is a broken run, not two rounds.
+	dir := t.TempDir()
+	if err = os.CopyFS(dir, os.DirFS("testdata/inturns")); err != nil {
+		t.Fatal(err)
+	}
+	if err = os.Remove(filepath.Join(dir, FileChooseInTurns, "choose-2.txt")); err != nil {
+		t.Fatal(err)
+	}
+	if table, err = Report(dir); err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(table, "choose in turns with the bare echo lookup: not measured (no choose-2.txt)") {
+		t.Errorf("a missing round's choose file was not reported:\n%s", table)
+	}
+}
