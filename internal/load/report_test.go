@@ -11,21 +11,13 @@ import (
 // testdata/run holds the result files of one real `make bench --quick`
 // run (on a busy machine: the figures are noise, the shapes are real).
 func TestReportTableFromARun(t *testing.T) {
-	table, err := Report("testdata/run")
-	if err != nil {
-		t.Fatal(err)
-	}
-	for _, want := range []string{
+	tableWithRows(t, "testdata/run",
 		// 9976.40 req/s against a ceiling of 4658 req/s.
 		"| choose, wrk -t1 -c64 | 9976 req/s | `echo_get_lookup_rps` 4658 req/s | 2.14x | >= 0.8x | yes |",
 		"| choose p99, wrk | 22.99 ms | `echo_get_p99_ms` 483.00 ms | 0.05x | <= 2x | yes |",
 		"| training drain vs one statement per update | 9029 steps/s | `q_naive_upsert_rows_per_s` 230 rows/s | 39.26x | >= 20x | yes |",
 		"| in-memory Q copy: live heap added by 250.0k pairs (per 1M) | 51.6 MB (52 bytes/pair) |  |  | <= 200.0 MB | yes |",
-	} {
-		if !strings.Contains(table, want) {
-			t.Errorf("the table lacks\n%s\nin\n%s", want, table)
-		}
-	}
+	)
 }
 
 // A missing result file is reported as not measured; the other rows stay.
@@ -72,21 +64,13 @@ func TestWrkDurations(t *testing.T) {
 // ceilings.json of testdata/run: the rows' shapes and arithmetic are what is
 // checked, not the figures.
 func TestReportSustainedLoop(t *testing.T) {
-	table, err := Report("testdata/sustain")
-	if err != nil {
-		t.Fatal(err)
-	}
-	for _, want := range []string{
+	tableWithRows(t, "testdata/sustain",
 		// Best run: 79.8 episodes/s posted. Bound: min(4658 req/s / 20
 		// chooses, 61,168 steps/s / 20 steps) = 233 episodes/s; 79.8 / 233
 		// = 0.34.
 		"| sustained loop: highest flat rate (20 chooses and 20 steps an episode; 2 of 3 trials of 10 s flat) | 79.8 episodes/s (1595 chooses/s) | min(`echo_get_lookup_rps` / 20, `episode_copy_steps_per_s` / 20) 233 episodes/s | 0.34x | >= 0.5x | no |",
 		"| sustained loop: arrival to served p99 at that rate (50 probes, 0 unserved at the end) | 444.22 ms (p50 42.78 ms, max 444.22 ms) |  |  | <= 1.00 s | yes |",
-	} {
-		if !strings.Contains(table, want) {
-			t.Errorf("the table lacks\n%s\nin\n%s", want, table)
-		}
-	}
+	)
 
 	// No flat run at all: the row says so and fails.
 	dir := t.TempDir()
@@ -98,11 +82,11 @@ func TestReportSustainedLoop(t *testing.T) {
 		if f == FileSustain {
 			data = []byte(strings.Replace(string(data), `"best": 1`, `"best": -1`, 1))
 		}
-		if err = os.WriteFile(filepath.Join(dir, f), data, 0o600); err != nil {
+		if err := os.WriteFile(filepath.Join(dir, f), data, 0o600); err != nil {
 			t.Fatal(err)
 		}
 	}
-	table, err = Report(dir)
+	table, err := Report(dir)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -137,37 +121,45 @@ func TestReportSustainedLoopKeptByQtally(t *testing.T) {
 }
 
 // testdata/inturns holds the ceilings.json and choose-in-turns folder of a
-// real full `make bench` run (2026-12-02 13:48): three rounds of the bare
-// echo lookup and of choose, in turns.
+// real full `make bench` run (2026-12-02, started 13:48, recorded 14:06):
+// three rounds of the bare echo lookup and of choose, in turns.
 func TestReportChooseInTurns(t *testing.T) {
-	table, err := Report("testdata/inturns")
-	if err != nil {
-		t.Fatal(err)
-	}
-	for _, want := range []string{
+	tableWithRows(t, "testdata/inturns",
 		// Rounds (choose / bare req/s): 33422.17 / 51954.71 = 0.643,
 		// 35362.38 / 61367.92 = 0.576, 31270.38 / 47972.16 = 0.652: the
 		// median ratio is round 1's, beside the median figures.
 		"| choose in turns with the bare echo lookup, wrk -t1 -c64 (3 rounds; median of the rounds' ratios) | 33.4k req/s | bare lookup in turns 52.0k req/s | 0.64x | >= 0.8x | no |",
 		// p99s: 6.49 / 5.18 = 1.25, 8.19 / 4.25 = 1.93, 7.61 / 5.00 = 1.52.
 		"| choose p99 in turns with the bare echo lookup | 7.61 ms | bare lookup in turns 5.00 ms | 1.52x | <= 2x | yes |",
-	} {
-		if !strings.Contains(table, want) {
-			t.Errorf("the table lacks\n%s\nin\n%s", want, table)
-		}
-	}
+	)
 	// A round without its choose file is a broken run, not two rounds.
 	dir := t.TempDir()
-	if err = os.CopyFS(dir, os.DirFS("testdata/inturns")); err != nil {
+	if err := os.CopyFS(dir, os.DirFS("testdata/inturns")); err != nil {
 		t.Fatal(err)
 	}
-	if err = os.Remove(filepath.Join(dir, FileChooseInTurns, "choose-2.txt")); err != nil {
+	if err := os.Remove(filepath.Join(dir, FileChooseInTurns, "choose-2.txt")); err != nil {
 		t.Fatal(err)
 	}
-	if table, err = Report(dir); err != nil {
+	table, err := Report(dir)
+	if err != nil {
 		t.Fatal(err)
 	}
 	if !strings.Contains(table, "choose in turns with the bare echo lookup: not measured (no choose-2.txt)") {
 		t.Errorf("a missing round's choose file was not reported:\n%s", table)
+	}
+}
+
+// tableWithRows reports the bench run in dir and fails t for each row the
+// table lacks.
+func tableWithRows(t *testing.T, dir string, rows ...string) {
+	t.Helper()
+	table, err := Report(dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, want := range rows {
+		if !strings.Contains(table, want) {
+			t.Errorf("the table lacks\n%s\nin\n%s", want, table)
+		}
 	}
 }
