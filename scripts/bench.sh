@@ -138,6 +138,12 @@ DB_PID=$!
 for _ in $(seq 1200); do [ -s "$WORK/db.url" ] && break; kill -0 "$DB_PID" 2>/dev/null || break; sleep 0.1; done
 [ -s "$WORK/db.url" ] || { say "PostgreSQL did not start (see $OUT/postgres.log)"; exit 1; }
 DB_URL=$(cat "$WORK/db.url")
+# The PostgreSQL server process (benchdb's child): choose and recorded
+# choose report its processor time a request beside the service's and the
+# load generator's.
+PG_ARGS=()
+PG_PID=$(pgrep -P "$DB_PID" -x postgres | head -1 || true)
+[ -n "$PG_PID" ] && PG_ARGS=(--postgres-pid "$PG_PID")
 # qtally refuses a password on its command line (process listings show it):
 # every qtally command below reads the URL from the environment.
 export DATABASE_URL=$DB_URL
@@ -212,12 +218,12 @@ fi
 # 4. Choose at the maximum with 64 connections: vegeta (qtally load), then
 #    wrk -t1 -c64 as the ceiling is measured.
 say "choose: ${LOAD_S}s with vegeta, 64 connections ..."
-qtally_load choose --policy bench --states "$STATES" --workers 64 --duration "${LOAD_S}s" >"$OUT/choose.json"
+qtally_load choose --policy bench --states "$STATES" --workers 64 "${PG_ARGS[@]}" --duration "${LOAD_S}s" >"$OUT/choose.json"
 say "recorded choose: ${LOAD_S}s with vegeta, 64 connections, each decision recorded in an open episode ..."
-qtally_load recorded-choose --policy bench --states "$STATES" --workers 64 --duration "${LOAD_S}s" >"$OUT/recorded-choose.json"
+qtally_load recorded-choose --policy bench --states "$STATES" --workers 64 "${PG_ARGS[@]}" --duration "${LOAD_S}s" >"$OUT/recorded-choose.json"
 say "choose and recorded choose again with 256 connections: ${LOAD_S}s each ..."
-qtally_load choose --policy bench --states "$STATES" --workers 256 --duration "${LOAD_S}s" >"$OUT/choose-256.json"
-qtally_load recorded-choose --policy bench --states "$STATES" --workers 256 --duration "${LOAD_S}s" >"$OUT/recorded-choose-256.json"
+qtally_load choose --policy bench --states "$STATES" --workers 256 "${PG_ARGS[@]}" --duration "${LOAD_S}s" >"$OUT/choose-256.json"
+qtally_load recorded-choose --policy bench --states "$STATES" --workers 256 "${PG_ARGS[@]}" --duration "${LOAD_S}s" >"$OUT/recorded-choose-256.json"
 if command -v wrk >/dev/null; then
   say "choose: ${LOAD_S}s with wrk -t1 -c64 ..."
   CHOOSE_URL=$API/v1/policies/bench/choose

@@ -22,6 +22,12 @@ type Figures struct {
 	UnitsPerReq  int            `json:"units_per_request"`
 	UnitsPerSec  float64        `json:"units_per_s"`
 	DurationSecs float64        `json:"duration_s"`
+	// Processor time a request (microseconds, user and system) of the load
+	// generator itself, the service (its /metrics) and PostgreSQL (when
+	// Config.PostgresPID names it); 0 when not read.
+	ClientCPU   float64 `json:"client_cpu_us_per_request"`
+	ServiceCPU  float64 `json:"service_cpu_us_per_request"`
+	PostgresCPU float64 `json:"postgres_cpu_us_per_request"`
 }
 
 // attack runs targets at cfg.Rate (or as fast as cfg.Workers allow when
@@ -39,6 +45,7 @@ func attack(ctx context.Context, cfg Config, name string, next func(*vegeta.Targ
 	}
 	a := vegeta.NewAttacker(opts...)
 	var m vegeta.Metrics
+	before := readCPUTimes(ctx, cfg)
 	results := a.Attack(next, pacer, cfg.Duration, name)
 	for {
 		select {
@@ -47,7 +54,9 @@ func attack(ctx context.Context, cfg Config, name string, next func(*vegeta.Targ
 		case r, ok := <-results:
 			if !ok {
 				m.Close()
-				return figures(&m, units)
+				f := figures(&m, units)
+				f.perRequest(before, readCPUTimes(ctx, cfg))
+				return f
 			}
 			m.Add(r)
 		}

@@ -32,6 +32,9 @@ type Config struct {
 	StepsPerEpisode int
 	EpisodesPerPost int
 	Seed            uint64
+	// PostgresPID, when set, is the process id of the service's PostgreSQL
+	// server on this machine, whose processor time attacks then report.
+	PostgresPID int
 }
 
 // DefaultConfig matches the shapes the machine's ceilings are measured with:

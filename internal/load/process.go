@@ -46,25 +46,25 @@ type MemoryReading struct {
 // Read collects garbage in the process (the heap profile's gc=1), then
 // reads its live heap and its resident set.
 func (p *Process) Read(ctx context.Context) (MemoryReading, error) {
-	heap, err := p.value(ctx, p.PprofURL+"/debug/pprof/heap?gc=1&debug=1", "# HeapAlloc = ")
+	heap, err := metricValue(ctx, p.http, p.PprofURL+"/debug/pprof/heap?gc=1&debug=1", "# HeapAlloc = ")
 	if err != nil {
 		return MemoryReading{}, err
 	}
-	rss, err := p.value(ctx, p.BaseURL+"/metrics", "process_resident_memory_bytes ")
+	rss, err := metricValue(ctx, p.http, p.BaseURL+"/metrics", "process_resident_memory_bytes ")
 	if err != nil {
 		return MemoryReading{}, err
 	}
 	return MemoryReading{HeapBytes: uint64(heap), RSSBytes: uint64(rss)}, nil
 }
 
-// value finds the first line of url's body that starts with prefix and
-// parses the number after it.
-func (p *Process) value(ctx context.Context, url, prefix string) (float64, error) {
+// metricValue finds the first line of url's body that starts with prefix
+// and parses the number after it.
+func metricValue(ctx context.Context, c *http.Client, url, prefix string) (float64, error) {
 	req, err := http.NewRequestWithContext(ctx, http.MethodGet, url, nil)
 	if err != nil {
 		return 0, err
 	}
-	resp, err := p.http.Do(req)
+	resp, err := c.Do(req)
 	if err != nil {
 		return 0, err
 	}

@@ -266,6 +266,22 @@ func (t *table) recordedRatio(dir, file string, choose Figures, connections int)
 		fmt.Sprintf("%.2fx (%s req/s, success %.4f)", ratio, human(recorded.Throughput), recorded.Success),
 		fmt.Sprintf(">= %gx", targetRecordedRatio), ratio >= targetRecordedRatio && recorded.Success == 1)
 	t.info(fmt.Sprintf("recorded choose p99, vegeta %d connections", connections), fmtDuration(recorded.P99), "", 0)
+	if recorded.ServiceCPU > 0 && choose.ServiceCPU > 0 {
+		t.info(fmt.Sprintf("CPU a request (service + PostgreSQL + load generator), %d connections: recorded choose / choose", connections),
+			recorded.cpuSplit()+" / "+choose.cpuSplit(), "", 0)
+	}
+}
+
+// cpuSplit shows f's processor time a request: the service's, then
+// PostgreSQL's and the load generator's.
+func (f Figures) cpuSplit() string {
+	us := func(v float64) string {
+		if v <= 0 {
+			return "-"
+		}
+		return fmt.Sprintf("%.0f", v)
+	}
+	return fmt.Sprintf("%s + %s + %s = %.0f us", us(f.ServiceCPU), us(f.PostgresCPU), us(f.ClientCPU), f.ServiceCPU+f.PostgresCPU+f.ClientCPU)
 }
 
 func (t *table) ceiling(name string) (Ceiling, string, bool) {

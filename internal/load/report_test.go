@@ -149,6 +149,36 @@ func TestReportChooseInTurns(t *testing.T) {
 	}
 }
 
+// testdata/cpu holds the ceilings and the choose and recorded-choose
+// files of a real full `make bench` run (2026-12-02, 15:38-15:56), with
+// the processor time a request of each process.
+func TestReportCPUARequest(t *testing.T) {
+	tableWithRows(t, "testdata/cpu",
+		// 7220.33 / 22557 req/s; 88.87 + 62.71 + 78.57 us against
+		// 34.97 + 0.49 + 41.83 us.
+		"| recorded choose / choose, vegeta 64 connections, same run | 0.32x (7220 req/s, success 1.0000) |  |  | >= 0.5x | no |",
+		"| CPU a request (service + PostgreSQL + load generator), 64 connections: recorded choose / choose | 89 + 63 + 79 = 230 us / 35 + 0 + 42 = 77 us |",
+		"| recorded choose / choose, vegeta 256 connections, same run | 0.57x (10.5k req/s, success 1.0000) |  |  | >= 0.5x | yes |",
+		"| CPU a request (service + PostgreSQL + load generator), 256 connections: recorded choose / choose | 68 + 36 + 63 = 168 us / 41 + 0 + 53 = 94 us |",
+	)
+	// Files written before the figures existed read as 0: no row.
+	dir := t.TempDir()
+	if err := os.CopyFS(dir, os.DirFS("testdata/cpu")); err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(filepath.Join(dir, FileChoose), []byte(`{"requests": 1000, "throughput_per_s": 20000, "success_ratio": 1}`), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	table, err := Report(dir)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if strings.Contains(table, "CPU a request (service + PostgreSQL + load generator), 64 connections") ||
+		!strings.Contains(table, "CPU a request (service + PostgreSQL + load generator), 256 connections") {
+		t.Errorf("rows of processor time where none or both were read:\n%s", table)
+	}
+}
+
 // tableWithRows reports the bench run in dir and fails t for each row the
 // table lacks.
 func tableWithRows(t *testing.T, dir string, rows ...string) {

@@ -33,12 +33,14 @@ func loadCommand(env flagEnv, getenv func(string) string, stdout, stderr io.Writ
 		&cli.IntFlag{Name: "steps", Value: def.StepsPerEpisode, Usage: "steps per episode"},
 		&cli.IntFlag{Name: "episodes-per-post", Value: def.EpisodesPerPost, Usage: "episodes per POST"},
 		&cli.BoolFlag{Name: "json", Usage: "print figures as JSON"},
+		&cli.IntFlag{Name: "postgres-pid", Usage: "process id of the service's PostgreSQL server on this machine: attacks report its processor time a request"},
 	}
 	config := func(cmd *cli.Command) load.Config {
 		cfg := def
 		cfg.BaseURL, cfg.Policy, cfg.Token = cmd.String(flagAPIURL), cmd.String("policy"), cmd.String("token")
 		cfg.Rate, cfg.Workers, cfg.Duration = cmd.Int("rate"), cmd.Int("workers"), cmd.Duration("duration")
 		cfg.States, cfg.StepsPerEpisode, cfg.EpisodesPerPost = cmd.Int("states"), cmd.Int("steps"), cmd.Int("episodes-per-post")
+		cfg.PostgresPID = cmd.Int("postgres-pid")
 		return cfg
 	}
 	show := func(cmd *cli.Command, v any) error {
