@@ -4,10 +4,15 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
+	"fmt"
 	"net/http"
+	"os"
+	"strconv"
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/jackc/pgx/v5"
 
 	"github.com/qtally/qtally/internal/load"
 	"github.com/qtally/qtally/storage/pgtest"
@@ -33,7 +38,10 @@ func TestLoadScenariosAgainstService(t *testing.T) {
 	t.Parallel()
 	databaseURL := pgtest.NewDatabase(t)
 	pprofAddr := freeLoopbackAddr(t)
-	s := startService(t, databaseURL, "serve", "--pprof-listen", pprofAddr)
+	// No per-token rate limit, as make bench runs it: on a quiet machine
+	// four clients choose faster than the default allows, and the answers
+	// would be 429s instead of the scenario's.
+	s := startService(t, databaseURL, "serve", "--pprof-listen", pprofAddr, "--token-rate", "0")
 	common := []string{"--url", s.URL, "--token", strings.TrimPrefix(s.authorization, "Bearer "), "--json", "--policy", "loadtest", "--states", "200"}
 
 	var post load.Figures
@@ -58,10 +66,18 @@ func TestLoadScenariosAgainstService(t *testing.T) {
 		t.Fatalf("choose: %+v", choose)
 	}
 
+	// Given the PostgreSQL server's process id, recorded choose also
+	// reports that server's processor time a request; every recorded
+	// decision costs PostgreSQL a write, so it is never 0.
 	var recorded load.Figures
-	runLoad(t, &recorded, append([]string{"recorded-choose", "--duration", "1s", "--workers", "4"}, common...)...)
+	runLoad(t, &recorded, append([]string{"recorded-choose", "--duration", "1s", "--workers", "4",
+		"--postgres-pid", strconv.Itoa(postgresServerPID(t, databaseURL))}, common...)...)
 	if recorded.Requests == 0 || recorded.Success != 1 {
 		t.Fatalf("recorded choose: %+v", recorded)
+	}
+	if recorded.ClientCPU <= 0 || recorded.ServiceCPU <= 0 || recorded.PostgresCPU <= 0 {
+		t.Fatalf("recorded choose: processor time a request: load generator %g, service %g, PostgreSQL %g us",
+			recorded.ClientCPU, recorded.ServiceCPU, recorded.PostgresCPU)
 	}
 	var kept load.MixedReport
 	runLoad(t, &kept, append([]string{"mixed", "--keep-episodes", "--duration", "2s", "--rate", "20", "--steps", "5", "--workers", "4",
@@ -159,4 +175,31 @@ func TestLoadDrainStartsAWorker(t *testing.T) {
 	if d.Episodes != 300 || d.Steps != 300*20 || d.Pairs != 200 || d.StepsPerSec <= 0 {
 		t.Fatalf("drain: %+v", d)
 	}
+}
+
+// postgresServerPID is the process id of the PostgreSQL server behind
+// databaseURL (on this machine): the parent of a backend.
+func postgresServerPID(t *testing.T, databaseURL string) int {
+	t.Helper()
+	ctx := context.Background()
+	conn, err := pgx.Connect(ctx, databaseURL)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close(ctx)
+	var backend int
+	if err := conn.QueryRow(ctx, `SELECT pg_backend_pid()`).Scan(&backend); err != nil {
+		t.Fatal(err)
+	}
+	stat, err := os.ReadFile(fmt.Sprintf("/proc/%d/stat", backend))
+	if err != nil {
+		t.Fatal(err)
+	}
+	// proc(5): "pid (comm) state ppid ...", comm possibly holding ")".
+	fields := strings.Fields(string(stat[bytes.LastIndexByte(stat, ')')+1:]))
+	pid, err := strconv.Atoi(fields[1])
+	if err != nil {
+		t.Fatalf("parent of backend %d in %q: %v", backend, stat, err)
+	}
+	return pid
 }
