@@ -188,7 +188,7 @@ func postgresServerPID(t *testing.T, databaseURL string) int {
 	}
 	defer conn.Close(ctx)
 	var backend int
-	if err := conn.QueryRow(ctx, `SELECT pg_backend_pid()`).Scan(&backend); err != nil {
+	if err = conn.QueryRow(ctx, `SELECT pg_backend_pid()`).Scan(&backend); err != nil {
 		t.Fatal(err)
 	}
 	stat, err := os.ReadFile(fmt.Sprintf("/proc/%d/stat", backend))
