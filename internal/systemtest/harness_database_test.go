@@ -31,16 +31,23 @@ type storedEpisode struct {
 	allowed       []byte
 }
 
+// connectDB opens a connection of the test's own to databaseURL, closed
+// when the test ends.
+func connectDB(t testing.TB, databaseURL string) *pgx.Conn {
+	t.Helper()
+	conn, err := pgx.Connect(context.Background(), databaseURL)
+	if err != nil {
+		t.Fatalf("connect: %v", err)
+	}
+	t.Cleanup(func() { _ = conn.Close(context.Background()) })
+	return conn
+}
+
 // storedEpisodes reads a policy's stored episodes in arrival (seq) order.
 func storedEpisodes(t testing.TB, databaseURL, policy string) []storedEpisode {
 	t.Helper()
 	ctx := context.Background()
-	conn, err := pgx.Connect(ctx, databaseURL)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer conn.Close(ctx)
-	rows, err := conn.Query(ctx, `SELECT e.episode_id, e.states, e.actions, e.rewards, e.probabilities, e.allowed
+	rows, err := connectDB(t, databaseURL).Query(ctx, `SELECT e.episode_id, e.states, e.actions, e.rewards, e.probabilities, e.allowed
 		FROM episodes e JOIN policies p ON p.policy_id = e.policy_id WHERE p.name = $1 ORDER BY e.seq`, policy)
 	if err != nil {
 		t.Fatal(err)
@@ -63,12 +70,7 @@ func storedOrder(t testing.TB, databaseURL, policy string) (ids, untrained []str
 	t.Helper()
 	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
 	defer cancel()
-	conn, err := pgx.Connect(ctx, databaseURL)
-	if err != nil {
-		t.Fatalf("connect: %v", err)
-	}
-	defer conn.Close(ctx)
-	rows, err := conn.Query(ctx, `
+	rows, err := connectDB(t, databaseURL).Query(ctx, `
 		SELECT e.episode_id, e.seq > p.trained_through FROM episodes e JOIN policies p USING (policy_id)
 		WHERE p.name = $1
 		ORDER BY e.seq`, policy)

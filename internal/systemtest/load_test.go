@@ -12,8 +12,6 @@ import (
 	"testing"
 	"time"
 
-	"github.com/jackc/pgx/v5"
-
 	"github.com/qtally/qtally/internal/load"
 	"github.com/qtally/qtally/storage/pgtest"
 )
@@ -181,14 +179,8 @@ func TestLoadDrainStartsAWorker(t *testing.T) {
 // databaseURL (on this machine): the parent of a backend.
 func postgresServerPID(t *testing.T, databaseURL string) int {
 	t.Helper()
-	ctx := context.Background()
-	conn, err := pgx.Connect(ctx, databaseURL)
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer conn.Close(ctx)
 	var backend int
-	if err = conn.QueryRow(ctx, `SELECT pg_backend_pid()`).Scan(&backend); err != nil {
+	if err := connectDB(t, databaseURL).QueryRow(context.Background(), `SELECT pg_backend_pid()`).Scan(&backend); err != nil {
 		t.Fatal(err)
 	}
 	stat, err := os.ReadFile(fmt.Sprintf("/proc/%d/stat", backend))

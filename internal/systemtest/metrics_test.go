@@ -16,7 +16,6 @@ import (
 	"testing"
 	"time"
 
-	"github.com/jackc/pgx/v5"
 	dto "github.com/prometheus/client_model/go"
 
 	"github.com/qtally/qtally/storage/pgtest"
@@ -243,12 +242,7 @@ func TestVisitMetricsFollowTheTable(t *testing.T) {
 // case for the copy's distribution).
 func seedPairs(b *testing.B, databaseURL, policy string, n int) {
 	b.Helper()
-	ctx := context.Background()
-	conn, err := pgx.Connect(ctx, databaseURL)
-	if err != nil {
-		b.Fatal(err)
-	}
-	defer conn.Close(ctx)
+	ctx, conn := context.Background(), connectDB(b, databaseURL)
 	if _, err := conn.Exec(ctx, `
 		INSERT INTO q_values (policy_id, state, action, q, visits, last_delta, updated_at, revision)
 		SELECT p.policy_id, 'account ' || (i / 4), (i % 4)::int2, random(), 1 + floor(1000 * random() ^ 4)::bigint, 0, now(), 1
