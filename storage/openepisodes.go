@@ -4,6 +4,7 @@ import (
 	"context"
 	"errors"
 	"fmt"
+	"math"
 	"math/rand/v2"
 	"strings"
 	"time"
@@ -564,13 +565,21 @@ type stepRef struct {
 func addRewardsInTx(ctx context.Context, conn *pgx.Conn, policy string, group []*pendingReward) error {
 	seen := map[string]bool{}
 	var ids, keyEpisodes, keys []string
-	for _, p := range group {
+	addEpisodes, addSteps := make([]string, len(group)), make([]*int32, len(group))
+	for i, p := range group {
 		if !seen[p.episode] {
 			seen[p.episode] = true
 			ids = append(ids, p.episode)
 		}
 		if p.req.Key != "" {
 			keyEpisodes, keys = append(keyEpisodes, p.episode), append(keys, p.req.Key)
+		}
+		addEpisodes[i] = p.episode
+		// A step past int32 reads as the latest; it is refused below as
+		// not recorded.
+		if p.req.Step != nil && *p.req.Step <= math.MaxInt32 {
+			step := int32(*p.req.Step)
+			addSteps[i] = &step
 		}
 	}
 	var policyID int32
@@ -602,7 +611,18 @@ func addRewardsInTx(ctx context.Context, conn *pgx.Conn, policy string, group []
 			_, err := pgx.ForEachRow(rows, []any{&id, &n}, func() error { steps[id] = n; return nil })
 			return err
 		})
-	reads.Queue(`SELECT episode_id, step, reward FROM open_episode_steps WHERE policy_id = `+policyOf+` AND episode_id = ANY($2)`, policy, ids).
+	// The rewards so far of only the decisions the additions name (the
+	// latest, where they name none) and of those that keyed additions
+	// went to before: an addition costs the same in a long episode as in
+	// a short one.
+	reads.Queue(`SELECT s.episode_id, s.step, s.reward FROM open_episode_steps s
+		WHERE s.policy_id = `+policyOf+` AND (s.episode_id, s.step) IN (
+			SELECT o.episode_id, coalesce(r.step, o.steps - 1) FROM unnest($2::text[], $3::integer[]) AS r(episode_id, step)
+				JOIN open_episodes o ON o.policy_id = `+policyOf+` AND o.episode_id = r.episode_id
+			UNION ALL
+			SELECT k.episode_id, k.step FROM unnest($4::text[], $5::text[]) AS r(episode_id, key)
+				JOIN open_episode_reward_keys k ON k.policy_id = `+policyOf+` AND k.episode_id = r.episode_id AND k.key = r.key)`,
+		policy, addEpisodes, addSteps, keyEpisodes, keys).
 		Query(func(rows pgx.Rows) error {
 			var ref stepRef
 			var reward float64

@@ -63,3 +63,53 @@ func BenchmarkRecordDecisions(b *testing.B) {
 		b.ReportMetric(float64(decisions.Load())/float64(n), "decisions/commit")
 	}
 }
+
+// BenchmarkAddReward adds rewards, one at a time, to the latest decision
+// of an open episode of 1 and of 1,000 decisions (the default most an
+// open episode keeps): what an addition costs must not grow with the
+// episode.
+//
+//	go test -run '^$' -bench BenchmarkAddReward -benchtime 2000x ./storage
+func BenchmarkAddReward(b *testing.B) {
+	ctx := context.Background()
+	db, err := storage.Open(ctx, pgtest.NewDurableServer(b).URL(), 4, training.DefaultLimits())
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer db.Close()
+	settings := training.DefaultSettings()
+	settings.Actions = []string{"a", "b", "c"}
+	p, _, err := db.PutPolicy(ctx, "bench", settings)
+	if err != nil {
+		b.Fatal(err)
+	}
+	cfg := storage.GroupCommit{MaxBatch: 256, InFlight: 2, Window: 500 * time.Microsecond}
+	decisions, rewards := db.NewDecisionBatcher(cfg), db.NewRewardBatcher(cfg)
+	runCtx, stop := context.WithCancel(ctx)
+	var running sync.WaitGroup
+	running.Go(func() { _ = decisions.Run(runCtx) })
+	running.Go(func() { _ = rewards.Run(runCtx) })
+	defer func() { stop(); running.Wait() }()
+
+	// Both episodes are recorded first, so that both additions run
+	// against the same table.
+	lengths := []int{1, 1000}
+	for _, steps := range lengths {
+		for step := range steps {
+			d := training.Decision{PolicyID: p.ID, Episode: fmt.Sprintf("e%d", steps), Step: step, State: "s",
+				Probability: 1, Allowed: training.ActionSet{7}, Mode: training.Explore}
+			if _, _, err := decisions.Record(ctx, d); err != nil {
+				b.Fatal(err)
+			}
+		}
+	}
+	for _, steps := range lengths {
+		b.Run(fmt.Sprintf("steps=%d", steps), func(b *testing.B) {
+			for b.Loop() {
+				if _, err := rewards.AddReward(ctx, "bench", fmt.Sprintf("e%d", steps), training.RewardAddition{Reward: 1}); err != nil {
+					b.Fatal(err)
+				}
+			}
+		})
+	}
+}

@@ -418,6 +418,18 @@ func TestRewardsAddedTogetherAnswerEachRequest(t *testing.T) {
 			t.Fatalf("e%d: a key sent eight times at once was added %d times", e, added)
 		}
 	}
+
+	// A key used before answers the sum of the step it went to, also once
+	// a later step is the latest: e1's early key went to step 1, which
+	// sums 2 + 10 + 100.
+	next := training.Decision{PolicyID: p.ID, Episode: "e1", Step: 2, State: "s2", Probability: 1, Allowed: training.ActionSet{3}, Mode: training.Greedy}
+	if _, _, err := recorder.Record(ctx, next); err != nil {
+		t.Fatal(err)
+	}
+	again, err := rewarder.AddReward(ctx, "rewards", "e1", training.RewardAddition{Reward: 5, Key: "early"})
+	if want := (training.RewardResult{Step: 1, Reward: 112, Repeated: true}); err != nil || again != want {
+		t.Fatalf("e1's early key after step 2: %+v, %v; want %+v", again, err, want)
+	}
 }
 
 // putPolicy stores a policy of two actions, a and b, with settings.
