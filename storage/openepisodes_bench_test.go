@@ -21,18 +21,8 @@ import (
 //	go test -run '^$' -bench BenchmarkRecordDecisions -benchtime 20000x ./storage
 func BenchmarkRecordDecisions(b *testing.B) {
 	ctx := context.Background()
-	db, err := storage.Open(ctx, pgtest.NewDurableServer(b).URL(), 20, training.DefaultLimits())
-	if err != nil {
-		b.Fatal(err)
-	}
-	defer db.Close()
-	settings := training.DefaultSettings()
-	settings.Actions = []string{"a", "b", "c"}
-	p, _, err := db.PutPolicy(ctx, "bench", settings)
-	if err != nil {
-		b.Fatal(err)
-	}
-	batcher := db.NewDecisionBatcher(storage.GroupCommit{MaxBatch: 256, InFlight: 2, Window: 500 * time.Microsecond})
+	db, p := benchPolicy(b, 20)
+	batcher := db.NewDecisionBatcher(serviceGroupCommit)
 	var batches, decisions atomic.Int64
 	batcher.Observe = func(n int, _ time.Duration) { batches.Add(1); decisions.Add(int64(n)) }
 	runCtx, stop := context.WithCancel(ctx)
@@ -72,19 +62,8 @@ func BenchmarkRecordDecisions(b *testing.B) {
 //	go test -run '^$' -bench BenchmarkAddReward -benchtime 2000x ./storage
 func BenchmarkAddReward(b *testing.B) {
 	ctx := context.Background()
-	db, err := storage.Open(ctx, pgtest.NewDurableServer(b).URL(), 4, training.DefaultLimits())
-	if err != nil {
-		b.Fatal(err)
-	}
-	defer db.Close()
-	settings := training.DefaultSettings()
-	settings.Actions = []string{"a", "b", "c"}
-	p, _, err := db.PutPolicy(ctx, "bench", settings)
-	if err != nil {
-		b.Fatal(err)
-	}
-	cfg := storage.GroupCommit{MaxBatch: 256, InFlight: 2, Window: 500 * time.Microsecond}
-	decisions, rewards := db.NewDecisionBatcher(cfg), db.NewRewardBatcher(cfg)
+	db, p := benchPolicy(b, 4)
+	decisions, rewards := db.NewDecisionBatcher(serviceGroupCommit), db.NewRewardBatcher(serviceGroupCommit)
 	runCtx, stop := context.WithCancel(ctx)
 	var running sync.WaitGroup
 	running.Go(func() { _ = decisions.Run(runCtx) })
@@ -112,4 +91,25 @@ func BenchmarkAddReward(b *testing.B) {
 			}
 		})
 	}
+}
+
+// serviceGroupCommit is how the service commits decisions and rewards.
+var serviceGroupCommit = storage.GroupCommit{MaxBatch: 256, InFlight: 2, Window: 500 * time.Microsecond}
+
+// benchPolicy opens a private durable PostgreSQL with a pool of conns and
+// stores a policy "bench" of three actions in it; both go with b.
+func benchPolicy(b *testing.B, conns int32) (*storage.DB, training.Policy) {
+	b.Helper()
+	db, err := storage.Open(context.Background(), pgtest.NewDurableServer(b).URL(), conns, training.DefaultLimits())
+	if err != nil {
+		b.Fatal(err)
+	}
+	b.Cleanup(db.Close)
+	settings := training.DefaultSettings()
+	settings.Actions = []string{"a", "b", "c"}
+	p, _, err := db.PutPolicy(context.Background(), "bench", settings)
+	if err != nil {
+		b.Fatal(err)
+	}
+	return db, p
 }
