@@ -133,17 +133,9 @@ func TestReportChooseInTurns(t *testing.T) {
 		"| choose p99 in turns with the bare echo lookup | 7.61 ms | bare lookup in turns 5.00 ms | 1.52x | <= 2x | yes |",
 	)
 	// A round without its choose file is a broken run, not two rounds.
-	dir := t.TempDir()
-	if err := os.CopyFS(dir, os.DirFS("testdata/inturns")); err != nil {
-		t.Fatal(err)
-	}
-	if err := os.Remove(filepath.Join(dir, FileChooseInTurns, "choose-2.txt")); err != nil {
-		t.Fatal(err)
-	}
-	table, err := Report(dir)
-	if err != nil {
-		t.Fatal(err)
-	}
+	table := reportOfChangedRun(t, "testdata/inturns", func(dir string) error {
+		return os.Remove(filepath.Join(dir, FileChooseInTurns, "choose-2.txt"))
+	})
 	if !strings.Contains(table, "choose in turns with the bare echo lookup: not measured (no choose-2.txt)") {
 		t.Errorf("a missing round's choose file was not reported:\n%s", table)
 	}
@@ -162,21 +154,31 @@ func TestReportCPUARequest(t *testing.T) {
 		"| CPU a request (service + PostgreSQL + load generator), 256 connections: recorded choose / choose | 68 + 36 + 63 = 168 us / 41 + 0 + 53 = 94 us |",
 	)
 	// Files written before the figures existed read as 0: no row.
+	table := reportOfChangedRun(t, "testdata/cpu", func(dir string) error {
+		return os.WriteFile(filepath.Join(dir, FileChoose), []byte(`{"requests": 1000, "throughput_per_s": 20000, "success_ratio": 1}`), 0o600)
+	})
+	if strings.Contains(table, "CPU a request (service + PostgreSQL + load generator), 64 connections") ||
+		!strings.Contains(table, "CPU a request (service + PostgreSQL + load generator), 256 connections") {
+		t.Errorf("rows of processor time where none or both were read:\n%s", table)
+	}
+}
+
+// reportOfChangedRun copies the bench run in src, lets change alter the
+// copy, and returns the copy's table.
+func reportOfChangedRun(t *testing.T, src string, change func(dir string) error) string {
+	t.Helper()
 	dir := t.TempDir()
-	if err := os.CopyFS(dir, os.DirFS("testdata/cpu")); err != nil {
+	if err := os.CopyFS(dir, os.DirFS(src)); err != nil {
 		t.Fatal(err)
 	}
-	if err := os.WriteFile(filepath.Join(dir, FileChoose), []byte(`{"requests": 1000, "throughput_per_s": 20000, "success_ratio": 1}`), 0o600); err != nil {
+	if err := change(dir); err != nil {
 		t.Fatal(err)
 	}
 	table, err := Report(dir)
 	if err != nil {
 		t.Fatal(err)
 	}
-	if strings.Contains(table, "CPU a request (service + PostgreSQL + load generator), 64 connections") ||
-		!strings.Contains(table, "CPU a request (service + PostgreSQL + load generator), 256 connections") {
-		t.Errorf("rows of processor time where none or both were read:\n%s", table)
-	}
+	return table
 }
 
 // tableWithRows reports the bench run in dir and fails t for each row the
